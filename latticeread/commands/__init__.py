@@ -1,0 +1,1 @@
+"""One module per command-line command: ``add_parser(parser)`` and ``run(args) -> int``."""

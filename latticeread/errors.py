@@ -1,0 +1,65 @@
+"""One family of exceptions with messages a physicist can act on.
+
+Every error the program raises on purpose derives from :class:`LatticeReadError`, so the
+command line can print the message without a traceback and the GUI can show it in a dialog.
+Each class also derives from the matching built-in (``ValueError``, ``OSError``) so that
+generic code keeps working.
+
+Exit codes of the command line (documented in the README):
+
+====  ==========================================================
+0     success
+1     unexpected internal error (a bug: please report with --debug)
+2     bad command-line usage
+3     input data problem (unreadable file, bad frame, no lattice)
+4     output problem (folder not writable, disk full)
+5     calibration problem (missing keys, wrong frame size or camera)
+130   interrupted (Ctrl-C)
+====  ==========================================================
+"""
+
+from __future__ import annotations
+
+
+class LatticeReadError(Exception):
+    """Base class of every error raised on purpose by latticeread."""
+
+    exit_code = 1
+
+
+class FrameError(LatticeReadError, ValueError):
+    """A frame or stack is unusable: wrong shape, NaN, empty, unreadable."""
+
+    exit_code = 3
+
+
+class FrameFileError(FrameError):
+    """A file holding frames cannot be read (missing, truncated, wrong format)."""
+
+
+class LatticeNotFound(LatticeReadError, ValueError):
+    """No lattice could be found in the image (empty frame, pure noise, one atom...)."""
+
+    exit_code = 3
+
+
+class CalibrationError(LatticeReadError, ValueError):
+    """A calibration is incomplete, malformed or does not match the frames."""
+
+    exit_code = 5
+
+
+class ExportError(LatticeReadError, OSError):
+    """An output file could not be written (read-only folder, disk full...)."""
+
+    exit_code = 4
+
+
+class ReconstructionError(LatticeReadError, ValueError):
+    """Site amplitudes or occupations cannot be computed for this input."""
+
+    exit_code = 3
+
+
+class LatticeReadWarning(UserWarning):
+    """Legal but suspicious input or a result that can mislead (few atoms, poor fit)."""
