@@ -271,15 +271,17 @@ def render_sites(shape, x, y, amplitudes, psf: PSFModel) -> np.ndarray:
     keep = amp != 0
     x, y, amp = x[keep], y[keep], amp[keep]
     r = psf.radius
-    out = np.zeros((height + 2 * r, width + 2 * r))
+    pad = 2 * r  # sources up to r pixels outside the frame still spill light into it
+    out = np.zeros((height + 2 * pad, width + 2 * pad))
     if x.size == 0:
-        return out[r:-r or None, r:-r or None].copy()
+        return np.zeros((height, width))
     xi, yi = np.rint(x).astype(int), np.rint(y).astype(int)
-    stamps = psf.stamps(x - xi, y - yi) * amp[:, None, None]
-    size = 2 * r + 1
     inside = (xi >= -r) & (xi < width + r) & (yi >= -r) & (yi < height + r)
-    # scatter-add every stamp; use flat indices so np.add.at handles overlaps
+    xi, yi = xi[inside], yi[inside]
+    stamps = psf.stamps(x[inside] - xi, y[inside] - yi) * amp[inside, None, None]
+    size = 2 * r + 1
+    # scatter-add every stamp; flat indices let np.add.at handle overlapping stamps
     oy, ox = np.mgrid[0:size, 0:size]
-    flat_rows = (yi[inside, None, None] + oy[None]) * (width + 2 * r) + (xi[inside, None, None] + ox[None])
-    np.add.at(out.ravel(), flat_rows.ravel(), stamps[inside].ravel())
-    return out[r:r + height, r:r + width].copy()
+    flat = (yi[:, None, None] + pad - r + oy[None]) * (width + 2 * pad) + (xi[:, None, None] + pad - r + ox[None])
+    np.add.at(out.ravel(), flat.ravel(), stamps.ravel())
+    return out[pad:pad + height, pad:pad + width].copy()
