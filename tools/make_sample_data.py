@@ -1,0 +1,35 @@
+"""Regenerate the bundled demo stacks in sample_data/ with the forward model.
+
+Run from the repository root:  python tools/make_sample_data.py
+The scenario is invented (sodium-23 at 589 nm, NA 0.70, 160 nm pixels; see
+latticeread.core.simulate.demo_scenario). Seeds are fixed so the files are reproducible.
+"""
+
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+
+from latticeread.cli import main
+
+ROOT = Path(__file__).resolve().parents[1]
+
+#: (file name, scenario, shots, images per shot, seed)
+SAMPLES = [
+    ("demo_square.tif", "square", 6, 2, 20261),
+    ("demo_folded.tif", "folded", 2, 2, 20262),
+    ("demo_triangular.tif", "triangular", 2, 2, 20263),
+]
+
+
+def make_all(folder: Path = ROOT / "sample_data") -> None:
+    folder.mkdir(exist_ok=True)
+    for name, scenario, shots, images, seed in SAMPLES:
+        code = main(["simulate", str(folder / name), "--scenario", scenario, "--shots", str(shots),
+                     "--images-per-shot", str(images), "--seed", str(seed)])
+        if code != 0:
+            sys.exit(code)
+
+
+if __name__ == "__main__":
+    make_all()
