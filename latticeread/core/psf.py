@@ -98,6 +98,7 @@ class PSFModel:
             return amp * amp * k * k / (4 * np.pi)
         kern = self.kernel
         s = self.supersample
+        dx, dy = np.broadcast_arrays(dx, dy)  # image() passes a row and a column of offsets
         c0, c1 = (kern.shape[0] - 1) / 2, (kern.shape[1] - 1) / 2
         coords = np.stack([dy.ravel() * s + c0, dx.ravel() * s + c1])
         vals = ndimage.map_coordinates(kern, coords, order=1, mode="constant", cval=0.0)
