@@ -61,5 +61,17 @@ class ReconstructionError(LatticeReadError, ValueError):
     exit_code = 3
 
 
+class FidelityError(LatticeReadError, ValueError):
+    """Occupation matrices or rates given to the fidelity estimate are unusable."""
+
+    exit_code = 3
+
+
 class LatticeReadWarning(UserWarning):
     """Legal but suspicious input or a result that can mislead (few atoms, poor fit)."""
+
+
+class ClusterError(LatticeReadError, RuntimeError):
+    """A Dask cluster cannot be used: Dask not installed, scheduler unreachable, no workers."""
+
+    exit_code = 2
