@@ -500,10 +500,10 @@ class RunData:
     frame_index : (n,) ndarray of int64
         Frame inside the input file.
     occupation : (n, rows, cols) ndarray of uint8
-        1 occupied, 0 empty, 255 outside the region.
+        1 occupied, 0 empty, 255 outside the region (None if read with ``matrices=False``).
     amplitude, p_occupied, x, y : (n, rows, cols) ndarray of float64
-        Photons, posterior, site centre in pixels; NaN outside the region.
-    flags : (n, rows, cols) ndarray of uint8
+        Photons, posterior, site centre in pixels; NaN outside the region (or None).
+    flags : (n, rows, cols) ndarray of uint8 (or None)
     offset, a1, a2 : (n, 2) ndarray of float64
         Lattice offset and vectors ``(x, y)`` in pixels per shot.
     threshold, filling, peak_to_background, lattice_residual, written_at : (n,) float64
@@ -562,13 +562,17 @@ class RunData:
         }
 
 
-def read_run(path) -> RunData:
+def read_run(path, *, matrices: bool = True) -> RunData:
     """Read a run file written by ``latticeread batch`` or ``latticeread watch``.
 
     Parameters
     ----------
     path : str or Path
         The ``.h5`` run file.
+    matrices : bool
+        Read the per-site matrices (occupation, amplitude...). With False only the per-shot
+        table and failures are read (fast and small for long runs) and the matrix fields
+        are None.
 
     Returns
     -------
@@ -594,7 +598,9 @@ def read_run(path) -> RunData:
         n = int(f.attrs["n_shots"])
         nf = int(f.attrs["n_failures"])
         s = f["shots"]
-        if "occupation" in f:
+        if not matrices:
+            mats = {name: None for name in _MATRICES}
+        elif "occupation" in f:
             mats = {name: f[name][:n] for name in _MATRICES}
         else:
             mats = {name: np.zeros((0, 0, 0), dtype=dtype) for name, (dtype, _fill) in _MATRICES.items()}

@@ -1,0 +1,56 @@
+"""``latticeread batch``: reconstruct a whole data set into one resumable HDF5 run file."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from pathlib import Path
+
+
+def add_parser(parser: argparse.ArgumentParser) -> None:
+    parser.epilog = (
+        "The run file is written shot by shot; an interrupted run keeps every shot written so far, and "
+        "running the same command again skips them (shots are matched by file path, file content and "
+        "frame index). Failed shots are listed in the run file's failures table. Exit code 0 when at "
+        "least one shot was written or nothing was left to do, 3 when every shot of this run failed.")
+    parser.add_argument("inputs", nargs="+", metavar="INPUT",
+                        help="frame files (TIFF, HDF5, .npy/.npz), folders of them, or glob patterns "
+                             "(quote them: 'data/**/*.tif')")
+    parser.add_argument("--calibration", "-c", required=True, type=Path, metavar="CAL.json",
+                        help="calibration file (from 'latticeread calibrate')")
+    parser.add_argument("--out", "-o", required=True, type=Path, metavar="RUN.h5",
+                        help="run file to create, or to continue when it exists")
+    parser.add_argument("--workers", "-j", type=int, default=None, metavar="N",
+                        help="worker processes on this machine (default: all CPUs; 0 = this process only)")
+    parser.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                        help="run on a Dask cluster: a scheduler address (tcp://host:8786) or 'local' to start "
+                             "one on this machine; needs pip install 'latticeread[cluster]'")
+    parser.add_argument("--retry-failed", action="store_true",
+                        help="try again the shots that failed in an earlier run of this run file")
+    parser.add_argument("--no-progress", action="store_true", help="no progress bar")
+    parser.add_argument("--json", action="store_true", help="print the summary as JSON instead of text")
+
+
+def run(args: argparse.Namespace) -> int:
+    from latticeread.runs.batch import run_batch, summary_dict
+
+    if args.workers is not None and args.workers < 0:
+        from latticeread.errors import LatticeReadError
+
+        raise LatticeReadError(f"--workers must be 0 (this process) or a positive number, got {args.workers}")
+    try:
+        summary = run_batch(args.inputs, calibration=args.calibration, out=args.out, workers=args.workers,
+                            scheduler=args.scheduler, retry_failed=args.retry_failed,
+                            progress=not args.no_progress, metadata={"command": "batch"})
+    except KeyboardInterrupt:
+        print(f"latticeread batch: interrupted; every shot written so far is kept in {args.out}. "
+              "Run the same command again to continue.", file=sys.stderr)
+        return 130
+    if args.json:
+        print(json.dumps(summary_dict(summary), indent=2, default=str))
+    else:
+        print(summary.format())
+    if summary.n_new == 0 and summary.n_failed > 0:
+        return 3
+    return 0

@@ -1,0 +1,51 @@
+"""``latticeread watch``: reconstruct new frame files as the camera writes them."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from pathlib import Path
+
+
+def add_parser(parser: argparse.ArgumentParser) -> None:
+    parser.epilog = (
+        "A file is taken when its size has not changed between two looks at the folder and it opens as a "
+        "complete frame file. Each frame is appended to the run file at once (same format as "
+        "'latticeread batch'; files already in it are skipped). Stop with Ctrl-C.")
+    parser.add_argument("folder", type=Path, help="folder the camera writes frame files to")
+    parser.add_argument("--calibration", "-c", required=True, type=Path, metavar="CAL.json",
+                        help="calibration file (from 'latticeread calibrate')")
+    parser.add_argument("--out", "-o", required=True, type=Path, metavar="LIVE.h5",
+                        help="run file to create, or to continue when it exists")
+    parser.add_argument("--interval", type=float, default=0.5, metavar="SECONDS",
+                        help="time between two looks at the folder (default 0.5 s)")
+    parser.add_argument("--max-files", type=int, default=None, metavar="N",
+                        help="stop after N files (default: run until Ctrl-C)")
+    parser.add_argument("--timeout", type=float, default=None, metavar="SECONDS",
+                        help="stop when no new file arrived for this long (default: never)")
+    parser.add_argument("--new-only", action="store_true",
+                        help="ignore the files already in the folder when the watch starts")
+    parser.add_argument("--retry-failed", action="store_true",
+                        help="try again files that failed in an earlier run of this run file")
+    parser.add_argument("--quiet", "-q", action="store_true", help="no line per shot, only the summary")
+
+
+def run(args: argparse.Namespace) -> int:
+    from latticeread.errors import LatticeReadError
+    from latticeread.runs.watch import watch_folder
+
+    if args.interval <= 0:
+        raise LatticeReadError(f"--interval must be a positive number of seconds, got {args.interval}")
+    if args.max_files is not None and args.max_files < 1:
+        raise LatticeReadError(f"--max-files must be at least 1, got {args.max_files}")
+
+    def show(outcome, stats):
+        if not args.quiet:
+            print(stats.describe(outcome), flush=True)
+
+    print(f"watching {args.folder} (Ctrl-C to stop); results go to {args.out}", file=sys.stderr, flush=True)
+    summary = watch_folder(args.folder, calibration=args.calibration, out=args.out, interval=args.interval,
+                           max_files=args.max_files, timeout=args.timeout, include_existing=not args.new_only,
+                           on_shot=show, retry_failed=args.retry_failed, metadata={"command": "watch"})
+    print(summary.format())
+    return 0

@@ -1,0 +1,745 @@
+"""Reconstruct a whole data set into one resumable run file.
+
+The main process finds the input files, hashes them, lists the shots (file, hash, frame)
+not yet in the run file, and hands them out to workers: by default a process pool on this
+machine, optionally a Dask cluster (:mod:`latticeread.runs.cluster`) or this process alone.
+Each worker builds the :class:`~latticeread.core.pipeline.Reconstructor` once (the
+factorisation is never rebuilt per frame) and receives only the file path and frame index,
+never the pixels. Results come back as :class:`~latticeread.io.run_file.ShotRecord` and
+are written by the main process alone, in input order, one shot at a time (so the run file
+of a run is the same whatever ran the shots, and a kill loses nothing already written).
+
+A shot that fails (corrupt file, no lattice, wrong frame size) is recorded in the run
+file's failures table with its reason and the run goes on. Running the same command again
+skips the shots already in the run file and the shots that failed before (their files are
+unchanged, so they would fail again; ``retry_failed=True`` tries them anyway).
+"""
+
+from __future__ import annotations
+
+import contextlib
+import dataclasses
+import glob
+import hashlib
+import logging
+import multiprocessing
+import os
+import re
+import sys
+import time
+from collections import OrderedDict, deque
+from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wait
+from concurrent.futures.process import BrokenProcessPool
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from latticeread.core.calibration import Calibration
+from latticeread.errors import FrameFileError, LatticeReadError, ReconstructionError
+from latticeread.io.calibration_file import calibration_from_json, calibration_to_json, load_calibration
+from latticeread.io.run_file import RunWriter, ShotKey, ShotRecord, read_run
+
+__all__ = [
+    "FRAME_SUFFIXES",
+    "BatchSummary",
+    "ShotFailure",
+    "ShotReconstructor",
+    "find_input_files",
+    "hash_file",
+    "plan_shots",
+    "shot_record",
+    "run_batch",
+    "summarize_run",
+]
+
+log = logging.getLogger(__name__)
+
+#: File name endings recognised as frame files when a folder or glob pattern is given.
+FRAME_SUFFIXES = (".tif", ".tiff", ".h5", ".hdf5", ".npy", ".npz")
+_GLOB_CHARS = re.compile(r"[*?\[]")
+_BLAS_ENV = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
+
+
+# --- input files ---------------------------------------------------------------------------
+
+def _natural_key(path: Path):
+    """Sort ``shot_2.tif`` before ``shot_10.tif``."""
+    return [int(t) if t.isdigit() else t.lower() for t in re.split(r"(\d+)", str(path))]
+
+
+def _is_frame_file(path: Path) -> bool:
+    return path.is_file() and path.suffix.lower() in FRAME_SUFFIXES and not path.name.startswith(".")
+
+
+def find_input_files(inputs, *, exclude=()) -> list[Path]:
+    """Expand files, folders and glob patterns into a list of frame files.
+
+    Parameters
+    ----------
+    inputs : iterable of str or PathLike
+        Files (taken as given), folders (their frame files, not recursive) or glob patterns
+        (``**`` recurses). Folders and patterns keep files ending in :data:`FRAME_SUFFIXES`
+        and skip hidden files (names starting with ``.``, e.g. files being written).
+    exclude : iterable of str or PathLike
+        Files never to take as input (the run file itself).
+
+    Returns
+    -------
+    list of Path
+        Absolute paths, each once, in the order given; inside a folder or pattern in
+        natural order (``shot_2`` before ``shot_10``).
+
+    Raises
+    ------
+    FrameFileError
+        An input does not exist, or a folder/pattern holds no frame file.
+    """
+    excluded = {Path(os.fspath(p)).resolve() for p in exclude}
+    found: list[Path] = []
+    for item in inputs:
+        text = os.fspath(item)
+        path = Path(text)
+        if path.is_file():
+            candidates = [path]
+        elif path.is_dir():
+            candidates = sorted((p for p in path.iterdir() if _is_frame_file(p)), key=_natural_key)
+            candidates = [p for p in candidates if p.resolve() not in excluded]
+            if not candidates:
+                raise FrameFileError(f"the folder {path} holds no frame files ({', '.join(FRAME_SUFFIXES)})")
+        elif _GLOB_CHARS.search(text):
+            candidates = sorted((Path(p) for p in glob.glob(text, recursive=True) if _is_frame_file(Path(p))),
+                                key=_natural_key)
+            candidates = [p for p in candidates if p.resolve() not in excluded]
+            if not candidates:
+                raise FrameFileError(f"no frame file matches {text!r} ({', '.join(FRAME_SUFFIXES)})")
+        else:
+            raise FrameFileError(f"input {text} does not exist")
+        found.extend(p.resolve() for p in candidates)
+    unique = list(dict.fromkeys(p for p in found if p not in excluded))
+    return unique
+
+
+def hash_file(path, *, block_size: int = 1 << 20) -> str:
+    """Hex BLAKE2b-128 digest of a file's bytes (32 characters): the identity of its content."""
+    digest = hashlib.blake2b(digest_size=16)
+    with open(path, "rb") as fh:
+        while chunk := fh.read(block_size):
+            digest.update(chunk)
+    return digest.hexdigest()
+
+
+# --- planning ------------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class ShotFailure:
+    """A shot (or a whole file, ``key.frame_index == -1``) that could not be reconstructed.
+
+    Attributes
+    ----------
+    key : ShotKey
+    error : str
+        Exception class name (``FrameFileError``, ``LatticeNotFound``...).
+    reason : str
+        The message, written for a physicist.
+    """
+
+    key: ShotKey
+    error: str
+    reason: str
+
+
+@dataclass(frozen=True)
+class ShotPlan:
+    """The work of one run.
+
+    Attributes
+    ----------
+    tasks : list of ShotKey
+        Shots to reconstruct, in input order.
+    failures : list of ShotFailure
+        Files that could not be opened (new failures, to be recorded).
+    n_files : int
+        Input files considered.
+    n_done_before : int
+        Shots skipped because they are already in the run file.
+    n_failed_before : int
+        Shots (or files) skipped because they failed in an earlier run.
+    """
+
+    tasks: list
+    failures: list
+    n_files: int
+    n_done_before: int
+    n_failed_before: int
+
+
+def _open_stack(path):
+    from latticeread.io.frames import load_frames  # imported late: heavy readers
+
+    return load_frames(path)
+
+
+def _close_stack(stack) -> None:
+    close = getattr(stack, "close", None)
+    if callable(close):
+        with contextlib.suppress(Exception):
+            close()
+
+
+def _count_frames(path: Path) -> int:
+    stack = _open_stack(path)
+    try:
+        return len(stack)
+    finally:
+        _close_stack(stack)
+
+
+def plan_shots(files, *, done=frozenset(), failed=frozenset(), retry_failed: bool = False,
+               count_frames=_count_frames) -> ShotPlan:
+    """List the shots of ``files`` that still have to be reconstructed.
+
+    Parameters
+    ----------
+    files : iterable of Path
+        Input files (absolute paths).
+    done : set of ShotKey
+        Shots already in the run file; skipped.
+    failed : set of ShotKey
+        Unresolved failures of earlier runs; skipped unless ``retry_failed``.
+    retry_failed : bool
+        Try earlier failures again.
+    count_frames : callable, optional
+        ``count_frames(path) -> int``; by default opens the file with
+        :func:`latticeread.io.frames.load_frames` (headers only).
+
+    Returns
+    -------
+    ShotPlan
+    """
+    tasks: list[ShotKey] = []
+    failures: list[ShotFailure] = []
+    n_done = n_failed = n_files = 0
+    for path in files:
+        n_files += 1
+        source = str(path)
+        try:
+            digest = hash_file(path)
+        except OSError as exc:
+            failures.append(ShotFailure(ShotKey(source, "", -1), type(exc).__name__,
+                                        f"cannot read {path}: {exc.strerror or exc}"))
+            continue
+        whole = ShotKey(source, digest, -1)
+        if whole in failed and not retry_failed:
+            n_failed += 1
+            continue
+        try:
+            n_frames = int(count_frames(path))
+        except Exception as exc:  # noqa: BLE001 - any unreadable file is recorded, not fatal
+            failures.append(ShotFailure(whole, type(exc).__name__, str(exc) or repr(exc)))
+            continue
+        if n_frames == 0:
+            failures.append(ShotFailure(whole, "FrameFileError", f"{path.name} holds no frames"))
+            continue
+        for i in range(n_frames):
+            key = ShotKey(source, digest, i)
+            if key in done:
+                n_done += 1
+            elif key in failed and not retry_failed:
+                n_failed += 1
+            else:
+                tasks.append(key)
+    return ShotPlan(tasks, failures, n_files, n_done, n_failed)
+
+
+# --- one shot -------------------------------------------------------------------------------
+
+def shot_record(key: ShotKey, result) -> ShotRecord:
+    """Turn a pipeline ``FrameResult`` into the record stored in the run file.
+
+    Parameters
+    ----------
+    key : ShotKey
+        The shot's file, hash and frame index.
+    result : FrameResult
+        Output of :class:`latticeread.core.pipeline.Reconstructor` for that frame.
+
+    Returns
+    -------
+    ShotRecord
+        Per-site values placed in (rows, cols) matrices: occupation (fill 255), amplitude
+        in photons, posterior, site centres in pixels (fill NaN), flags (fill 0).
+    """
+    sites = result.sites
+    occupation = sites.to_matrix(np.asarray(result.occupied, dtype=np.uint8), fill=255, dtype=np.uint8)
+    amplitude = sites.to_matrix(np.asarray(result.amplitudes, dtype=np.float64), fill=np.nan, dtype=np.float64)
+    p_occ = sites.to_matrix(np.asarray(result.p_occupied, dtype=np.float64), fill=np.nan, dtype=np.float64)
+    x = sites.to_matrix(np.asarray(sites.x, dtype=np.float64), fill=np.nan, dtype=np.float64)
+    y = sites.to_matrix(np.asarray(sites.y, dtype=np.float64), fill=np.nan, dtype=np.float64)
+    flags = getattr(result, "flags", None)
+    flags = np.zeros(len(sites), np.uint8) if flags is None else np.asarray(flags, dtype=np.uint8)
+    flags = sites.to_matrix(flags, fill=0, dtype=np.uint8)
+    geometry = result.geometry
+    threshold = result.threshold
+    if threshold is not None and hasattr(threshold, "threshold"):
+        threshold = threshold.threshold
+    warnings: list[str] = []
+    for source in (result, getattr(result, "threshold_result", None), geometry.quality):
+        for w in getattr(source, "warnings", ()) or ():
+            if str(w) not in warnings:
+                warnings.append(str(w))
+    return ShotRecord(
+        key=key, occupation=occupation, amplitude=amplitude, p_occupied=p_occ, x=x, y=y, flags=flags,
+        offset=tuple(geometry.offset), a1=tuple(geometry.a1), a2=tuple(geometry.a2),
+        threshold=float("nan") if threshold is None else float(threshold),
+        peak_to_background=float(geometry.quality.peak_to_background),
+        lattice_residual=float(geometry.quality.residual), warnings=tuple(warnings))
+
+
+class ShotReconstructor:
+    """Reconstruct shots given by (file, hash, frame) keys; one per worker process.
+
+    The :class:`~latticeread.core.pipeline.Reconstructor` (and its factorisation) is built
+    once here; a few recently used files are kept open so the frames of a stack are read
+    without reopening the file.
+
+    Parameters
+    ----------
+    calibration : Calibration or str
+        The calibration, or its JSON text.
+    keep_open : int
+        Number of input files kept open.
+    """
+
+    def __init__(self, calibration, *, keep_open: int = 2):
+        if isinstance(calibration, str):
+            calibration = calibration_from_json(calibration)
+        from latticeread.core.pipeline import Reconstructor
+
+        self.calibration: Calibration = calibration
+        self._reconstructor = Reconstructor(calibration)
+        self._stacks: OrderedDict = OrderedDict()
+        self._keep_open = max(1, int(keep_open))
+
+    def _stack(self, source: str):
+        stack = self._stacks.pop(source, None)
+        if stack is None:
+            stack = _open_stack(source)
+        self._stacks[source] = stack
+        while len(self._stacks) > self._keep_open:
+            _close_stack(self._stacks.popitem(last=False)[1])
+        return stack
+
+    def __call__(self, key: ShotKey) -> ShotRecord | ShotFailure:
+        """Reconstruct one shot; every exception becomes a :class:`ShotFailure`."""
+        name = Path(key.source).name
+        try:
+            stack = self._stack(key.source)
+            image = stack[key.frame_index]
+            if np.ndim(image) != 2:
+                raise ReconstructionError(f"frame {key.frame_index} of {name} has {np.ndim(image)} dimensions; "
+                                          "a frame must be a 2-D image")
+            self.calibration.check_frame_shape(np.shape(image), where=f"frame {key.frame_index} of {name}")
+            result = self._reconstructor(image, frame_index=key.frame_index)
+            return shot_record(key, result)
+        except LatticeReadError as exc:
+            self._stacks.pop(key.source, None)
+            return ShotFailure(key, type(exc).__name__, str(exc))
+        except Exception as exc:  # noqa: BLE001 - a bug on one shot must not stop thousands
+            self._stacks.pop(key.source, None)
+            log.warning("unexpected error on frame %d of %s", key.frame_index, key.source, exc_info=True)
+            return ShotFailure(key, type(exc).__name__, f"internal error on frame {key.frame_index} of {name}: "
+                                                        f"{type(exc).__name__}: {exc}")
+
+    def close(self) -> None:
+        while self._stacks:
+            _close_stack(self._stacks.popitem()[1])
+
+
+def calibration_digest(calibration_json: str) -> str:
+    """Short hex digest identifying a calibration text (worker caches are keyed by it)."""
+    return hashlib.blake2b(calibration_json.encode("utf-8"), digest_size=16).hexdigest()
+
+
+# Per-process cache of worker reconstructors. It is only filled inside worker processes
+# (pool initializer, Dask tasks): building the factorisation once per process is the point.
+_WORKER_CACHE: dict[str, ShotReconstructor] = {}
+
+
+def worker_reconstructor(calibration_json: str | None, digest: str) -> ShotReconstructor:
+    """The worker process's reconstructor for a calibration, built on first use."""
+    rec = _WORKER_CACHE.get(digest)
+    if rec is None:
+        if calibration_json is None:
+            raise ReconstructionError("this worker process was started without a calibration")
+        for old in _WORKER_CACHE.values():
+            old.close()
+        _WORKER_CACHE.clear()
+        rec = _WORKER_CACHE[digest] = ShotReconstructor(calibration_json)
+    return rec
+
+
+def _init_pool_worker(calibration_json: str, digest: str) -> None:
+    worker_reconstructor(calibration_json, digest)
+
+
+def _pool_task(digest: str, key: ShotKey) -> ShotRecord | ShotFailure:
+    return worker_reconstructor(None, digest)(key)
+
+
+# --- executors -------------------------------------------------------------------------------
+
+class SerialRunner:
+    """Reconstruct the shots in this process, one after the other."""
+
+    description = "this process"
+
+    def __init__(self, calibration_json: str):
+        self._rec = ShotReconstructor(calibration_json)
+        self._queue: deque = deque()
+        self.n_workers = 1
+
+    def submit(self, index: int, key: ShotKey) -> None:
+        self._queue.append((index, key))
+
+    def next_done(self):
+        index, key = self._queue.popleft()
+        return index, self._rec(key)
+
+    def close(self, *, cancel: bool = False) -> None:
+        self._queue.clear()
+        self._rec.close()
+
+
+@contextlib.contextmanager
+def _single_thread_blas():
+    """Worker processes get one BLAS thread each (N workers on N cores; same arithmetic as Dask)."""
+    saved = {k: os.environ.get(k) for k in _BLAS_ENV}
+    os.environ.update({k: "1" for k in _BLAS_ENV})
+    try:
+        yield
+    finally:
+        for k, v in saved.items():
+            if v is None:
+                os.environ.pop(k, None)
+            else:
+                os.environ[k] = v
+
+
+class PoolRunner:
+    """Reconstruct the shots in a pool of worker processes on this machine.
+
+    Each worker builds its reconstructor once, in the pool initializer, and then receives
+    only (file, hash, frame) keys.
+    """
+
+    def __init__(self, calibration_json: str, *, workers: int):
+        self.n_workers = int(workers)
+        self.description = f"{self.n_workers} worker processes"
+        digest = calibration_digest(calibration_json)
+        methods = multiprocessing.get_all_start_methods()
+        ctx = multiprocessing.get_context("forkserver" if "forkserver" in methods else "spawn")
+        with _single_thread_blas():
+            if ctx.get_start_method() == "forkserver":
+                ctx.set_forkserver_preload(["latticeread.runs.batch"])
+                from multiprocessing import forkserver
+
+                forkserver.ensure_running()
+            self._pool = ProcessPoolExecutor(max_workers=self.n_workers, mp_context=ctx,
+                                             initializer=_init_pool_worker, initargs=(calibration_json, digest))
+        self._digest = digest
+        self._futures: dict[Future, int] = {}
+        self._ready: deque = deque()
+
+    def submit(self, index: int, key: ShotKey) -> None:
+        with _single_thread_blas():  # spawn platforms start workers lazily
+            future = self._pool.submit(_pool_task, self._digest, key)
+        self._futures[future] = (index, key)
+
+    def next_done(self):
+        while not self._ready:
+            done, _ = wait(list(self._futures), return_when=FIRST_COMPLETED)
+            for future in done:
+                self._ready.append((future, *self._futures.pop(future)))
+        future, index, key = self._ready.popleft()
+        try:
+            return index, future.result()
+        except BrokenProcessPool as exc:
+            raise ReconstructionError(
+                "a worker process died (out of memory, or a crash in a file reader); every shot written so far "
+                "is kept: run the same command again to continue") from exc
+
+    def close(self, *, cancel: bool = False) -> None:
+        self._pool.shutdown(wait=True, cancel_futures=cancel)
+
+
+# --- summary ---------------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class BatchSummary:
+    """What a batch (or watch) run did, and what its run file now holds.
+
+    Attributes
+    ----------
+    run_file : Path
+    n_files : int
+        Input files considered.
+    n_new : int
+        Shots reconstructed and written by this run.
+    n_failed : int
+        Shots or files that failed in this run.
+    n_skipped_done, n_skipped_failed : int
+        Shots skipped: already in the run file / failed in an earlier run.
+    n_shots_total : int
+        Shots in the run file after this run.
+    n_failures_total : int
+        Unresolved failures in the run file after this run.
+    mean_filling, filling_std : float
+        Mean and standard deviation over all shots in the file of the filling fraction
+        (occupied / region sites).
+    offset_shift_px : (2,) tuple of float
+        Mean lattice offset of the shots minus the calibration offset, ``(x, y)`` pixels.
+    phase_scatter_px : float
+        RMS distance of the per-shot offsets from their mean, pixels (shot-to-shot phase jitter).
+    phase_drift_max_sites : float
+        Largest distance of a shot's offset from the calibration offset, in lattice
+        spacings (the smaller of the two spacings).
+    seconds : float
+        Wall time of the run.
+    frames_per_second : float
+        New shots per second of wall time (NaN when none).
+    failure_examples : tuple of str
+        Up to five failures of this run, "file frame: reason".
+    workers : str
+        What ran the shots.
+    warnings : tuple of str
+        What the user should look at.
+    """
+
+    run_file: Path
+    n_files: int
+    n_new: int
+    n_failed: int
+    n_skipped_done: int
+    n_skipped_failed: int
+    n_shots_total: int
+    n_failures_total: int
+    mean_filling: float
+    filling_std: float
+    offset_shift_px: tuple
+    phase_scatter_px: float
+    phase_drift_max_sites: float
+    seconds: float
+    frames_per_second: float
+    failure_examples: tuple = ()
+    workers: str = ""
+    warnings: tuple = ()
+
+    def format(self) -> str:
+        """Several lines of plain text for the terminal."""
+        lines = [
+            f"run file      {self.run_file}",
+            f"input files   {self.n_files}",
+            f"this run      {self.n_new} shots written, {self.n_failed} failed, "
+            f"{self.n_skipped_done} already done, {self.n_skipped_failed} skipped (failed before)",
+            f"time          {self.seconds:.1f} s" + (f", {self.frames_per_second:.1f} frames/s on {self.workers}"
+                                                     if np.isfinite(self.frames_per_second) else ""),
+            f"run file now  {self.n_shots_total} shots, {self.n_failures_total} unresolved failures",
+        ]
+        if self.n_shots_total:
+            lines += [
+                f"filling       {self.mean_filling:.4f} +- {self.filling_std:.4f} (mean +- std over shots)",
+                f"lattice phase mean shift ({self.offset_shift_px[0]:+.3f}, {self.offset_shift_px[1]:+.3f}) px "
+                f"from the calibration, shot-to-shot scatter {self.phase_scatter_px:.3f} px rms, "
+                f"largest shift {self.phase_drift_max_sites:.3f} sites",
+            ]
+        lines += [f"failed        {text}" for text in self.failure_examples]
+        lines += [f"warning       {text}" for text in self.warnings]
+        return "\n".join(lines)
+
+
+def summarize_run(path, calibration: Calibration, *, counts: dict, seconds: float, workers: str = "",
+                  failure_examples=()) -> BatchSummary:
+    """Build a :class:`BatchSummary` from the run file's per-shot table and this run's counters."""
+    run = read_run(path, matrices=False)
+    n = len(run)
+    if n:
+        filling = run.filling[np.isfinite(run.filling)]
+        mean_filling = float(filling.mean()) if filling.size else float("nan")
+        filling_std = float(filling.std()) if filling.size else float("nan")
+        ref = np.asarray(calibration.geometry.offset, dtype=float)
+        shift = run.offset - ref
+        mean_shift = shift.mean(axis=0)
+        scatter = float(np.sqrt(np.mean(np.sum((shift - mean_shift) ** 2, axis=1))))
+        spacing = min(calibration.geometry.spacings)
+        drift_max = float(np.max(np.hypot(shift[:, 0], shift[:, 1])) / spacing)
+    else:
+        mean_filling = filling_std = scatter = drift_max = float("nan")
+        mean_shift = np.array([np.nan, np.nan])
+    n_failures_total = int(np.count_nonzero(~run.failures.resolved))
+    new = counts.get("new", 0)
+    warnings = []
+    if counts.get("failed", 0):
+        warnings.append(f"{counts['failed']} shot(s) or file(s) failed in this run; their reasons are in the "
+                        "run file's failures table (latticeread.io.read_run(path).failures)")
+    if n and np.isfinite(drift_max) and drift_max > 0.5:
+        warnings.append(f"the lattice offset moved by up to {drift_max:.2f} sites from the calibration: "
+                        "site indices may have jumped; check the lattice phase per shot")
+    return BatchSummary(
+        run_file=Path(path), n_files=counts.get("files", 0), n_new=new, n_failed=counts.get("failed", 0),
+        n_skipped_done=counts.get("skipped_done", 0), n_skipped_failed=counts.get("skipped_failed", 0),
+        n_shots_total=n, n_failures_total=n_failures_total, mean_filling=mean_filling, filling_std=filling_std,
+        offset_shift_px=tuple(float(v) for v in mean_shift), phase_scatter_px=scatter,
+        phase_drift_max_sites=drift_max, seconds=float(seconds),
+        frames_per_second=new / seconds if new and seconds > 0 else float("nan"),
+        failure_examples=tuple(failure_examples)[:5], workers=workers, warnings=tuple(warnings))
+
+
+# --- the run ---------------------------------------------------------------------------------
+
+def _as_calibration(calibration) -> Calibration:
+    if isinstance(calibration, Calibration):
+        return calibration
+    return load_calibration(calibration)
+
+
+def _describe_failure(failure: ShotFailure) -> str:
+    where = Path(failure.key.source).name
+    if failure.key.frame_index >= 0:
+        where += f" frame {failure.key.frame_index}"
+    return f"{where}: {failure.reason}"
+
+
+def _progress_bar(total: int, enabled: bool, description: str):
+    from tqdm import tqdm
+
+    return tqdm(total=total, unit="frame", desc=description, file=sys.stderr, disable=not enabled,
+                dynamic_ncols=True, smoothing=0.1)
+
+
+def run_batch(inputs, *, calibration, out, workers: int | None = None, scheduler: str | None = None,
+              retry_failed: bool = False, progress: bool = True, metadata: dict | None = None,
+              window: int | None = None) -> BatchSummary:
+    """Reconstruct every frame of ``inputs`` into the run file ``out`` (resumable).
+
+    Parameters
+    ----------
+    inputs : iterable of str or PathLike
+        Files, folders or glob patterns (see :func:`find_input_files`).
+    calibration : Calibration or str or PathLike
+        The calibration, or its JSON file.
+    out : str or PathLike
+        The run file; created, or resumed when it exists.
+    workers : int, optional
+        Worker processes on this machine (default: number of CPUs). ``0`` reconstructs in
+        this process (no pool). Ignored when ``scheduler`` is given.
+    scheduler : str, optional
+        ``"local"`` starts a Dask ``LocalCluster``; any other value is the address of a Dask
+        scheduler (``tcp://host:8786``). Needs the optional extra ``latticeread[cluster]``.
+    retry_failed : bool
+        Try again the shots that failed in an earlier run.
+    progress : bool
+        Show a tqdm progress bar on stderr (frames/s and time left).
+    metadata : dict, optional
+        Stored with the run file when it is created.
+    window : int, optional
+        Shots in flight at once (default 4 per worker); bounds the memory of the main process.
+
+    Returns
+    -------
+    BatchSummary
+
+    Raises
+    ------
+    FrameFileError
+        An input does not exist or holds no frame files.
+    ExportError
+        The run file cannot be written or belongs to another calibration.
+    CalibrationError
+        The calibration file is unusable.
+    """
+    t_start = time.perf_counter()
+    cal = _as_calibration(calibration)
+    cal_json = calibration_to_json(cal)
+    out = Path(os.fspath(out))
+    files = find_input_files(inputs, exclude=[out])
+    meta = {"inputs": [os.fspath(i) for i in inputs], "workers": workers, "scheduler": scheduler,
+            **(metadata or {})}
+    counts = {"files": len(files), "new": 0, "failed": 0, "skipped_done": 0, "skipped_failed": 0}
+    examples: list[str] = []
+    with RunWriter(out, calibration_json=cal_json, metadata=meta) as writer:
+        plan = plan_shots(files, done=writer.done, failed=writer.failed, retry_failed=retry_failed)
+        counts["skipped_done"] = plan.n_done_before
+        counts["skipped_failed"] = plan.n_failed_before
+        for failure in plan.failures:
+            writer.record_failure(failure.key, error=failure.error, reason=failure.reason)
+            counts["failed"] += 1
+            examples.append(_describe_failure(failure))
+            log.warning("%s", _describe_failure(failure))
+        description = "nothing to do"
+        if plan.tasks:
+            runner = _make_runner(cal_json, workers=workers, scheduler=scheduler)
+            description = runner.description
+            try:
+                _drive(runner, plan.tasks, writer, counts, examples, progress=progress,
+                       window=window or max(4, 4 * runner.n_workers))
+            finally:
+                runner.close(cancel=True)
+    return summarize_run(out, cal, counts=counts, seconds=time.perf_counter() - t_start, workers=description,
+                         failure_examples=examples)
+
+
+def _make_runner(cal_json: str, *, workers: int | None, scheduler: str | None):
+    if scheduler:
+        from latticeread.runs.cluster import DaskRunner
+
+        return DaskRunner(cal_json, scheduler=scheduler)
+    n = (os.cpu_count() or 1) if workers is None else int(workers)
+    if n < 0:
+        raise ValueError(f"--workers must be 0 (this process) or a positive number, got {n}")
+    if n == 0:
+        return SerialRunner(cal_json)
+    return PoolRunner(cal_json, workers=n)
+
+
+def _write_outcome(writer: RunWriter, outcome, counts: dict, examples: list) -> None:
+    if isinstance(outcome, ShotFailure):
+        writer.record_failure(outcome.key, error=outcome.error, reason=outcome.reason)
+        counts["failed"] += 1
+        examples.append(_describe_failure(outcome))
+        log.warning("%s", _describe_failure(outcome))
+    elif writer.append(outcome):
+        counts["new"] += 1
+
+
+def _drive(runner, tasks: list, writer: RunWriter, counts: dict, examples: list, *, progress: bool,
+           window: int) -> None:
+    """Submit shots (at most ``window`` unwritten at once) and write them in input order."""
+    buffered: dict[int, object] = {}
+    next_submit = next_write = 0
+    bar = _progress_bar(len(tasks), progress, "reconstructing")
+    try:
+        while next_write < len(tasks):
+            while next_submit < len(tasks) and next_submit - next_write < window:
+                runner.submit(next_submit, tasks[next_submit])
+                next_submit += 1
+            index, outcome = runner.next_done()
+            buffered[index] = outcome
+            while next_write in buffered:
+                _write_outcome(writer, buffered.pop(next_write), counts, examples)
+                next_write += 1
+                bar.update(1)
+                bar.set_postfix(failed=counts["failed"], refresh=False)
+    finally:
+        # On Ctrl-C or an error keep what already came back (order does not matter for keys).
+        for index in sorted(buffered):
+            with contextlib.suppress(Exception):
+                _write_outcome(writer, buffered[index], counts, examples)
+        bar.close()
+
+
+def summary_dict(summary: BatchSummary) -> dict:
+    """The summary as plain JSON-able values (for ``--json`` output or the GUI)."""
+    data = dataclasses.asdict(summary)
+    data["run_file"] = str(summary.run_file)
+    return data

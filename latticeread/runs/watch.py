@@ -1,0 +1,350 @@
+"""Reconstruct frame files as the camera writes them into a folder.
+
+:class:`FolderWatcher` is a plain poll-based detector (no threads, no Qt): call
+:meth:`FolderWatcher.poll` every fraction of a second (the GUI does it from a timer, the
+command line from a loop) and it returns the files that became complete since the last
+call. A file counts as complete when its size and modification time did not change
+between two polls **and** it opens as a valid frame file whose last frame can be read (a
+TIFF still being written fails that test). A file that stays unchanged but unreadable for
+``give_up_polls`` polls is reported as broken, once.
+
+:func:`watch_folder` ties the watcher to a reconstructor (built once) and a run file: every
+new frame is reconstructed and appended (resumable like a batch run; files already in the
+run file are skipped), and a callback receives each result for running statistics.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from latticeread.io.calibration_file import calibration_to_json
+from latticeread.io.run_file import RunWriter, ShotKey, ShotRecord
+from latticeread.runs.batch import (
+    FRAME_SUFFIXES,
+    BatchSummary,
+    ShotFailure,
+    ShotReconstructor,
+    _as_calibration,
+    _close_stack,
+    _describe_failure,
+    _open_stack,
+    hash_file,
+    plan_shots,
+    summarize_run,
+)
+
+__all__ = ["WatchEvent", "FolderWatcher", "RunningStats", "watch_folder", "validate_frame_file"]
+
+log = logging.getLogger(__name__)
+
+
+@dataclass(frozen=True)
+class WatchEvent:
+    """A file the watcher reports.
+
+    Attributes
+    ----------
+    path : Path
+        The file (absolute).
+    status : {"ready", "broken"}
+        "ready": complete and readable; "broken": unchanged for a while but unreadable.
+    reason : str
+        Why a broken file cannot be read (empty for ready files).
+    """
+
+    path: Path
+    status: str
+    reason: str = ""
+
+
+def validate_frame_file(path) -> int:
+    """Open a frame file and read its last frame; return the number of frames.
+
+    Raises
+    ------
+    Exception
+        Whatever :func:`latticeread.io.frames.load_frames` raises for an incomplete or
+        corrupt file (FrameFileError, FrameError...), or FrameFileError for no frames.
+    """
+    from latticeread.errors import FrameFileError
+
+    stack = _open_stack(path)
+    try:
+        n = len(stack)
+        if n == 0:
+            raise FrameFileError(f"{Path(path).name} holds no frames")
+        np.asarray(stack[n - 1])
+        return n
+    finally:
+        _close_stack(stack)
+
+
+@dataclass
+class _FileState:
+    stat: tuple
+    stable: int = 0  # consecutive polls with an unchanged stat
+    reported: tuple | None = None  # stat at the time it was reported
+    last_error: str = ""
+
+
+class FolderWatcher:
+    """Detect frame files that appear (and finish being written) in a folder, by polling.
+
+    Parameters
+    ----------
+    folder : str or PathLike
+        The folder the camera writes to (not recursive).
+    suffixes : tuple of str
+        File endings to watch (default: TIFF, HDF5, npy). Hidden files (``.name``), which
+        cameras and our own writers use while writing, are ignored.
+    exclude : iterable of paths
+        Files never reported (e.g. the run file when it lies in the same folder).
+    include_existing : bool
+        Report files already present at the first poll (default True). With False only
+        files created or changed afterwards are reported.
+    give_up_polls : int
+        A file unchanged but unreadable for this many polls is reported as broken.
+    validate : callable, optional
+        ``validate(path)`` raises when the file is not a complete frame file; default
+        :func:`validate_frame_file`.
+
+    Notes
+    -----
+    A file is reported once per version: if it is rewritten (size or time changes) after
+    it was reported, it is reported again when it is complete again.
+    """
+
+    def __init__(self, folder, *, suffixes=FRAME_SUFFIXES, exclude=(), include_existing: bool = True,
+                 give_up_polls: int = 10, validate=None):
+        from latticeread.errors import FrameFileError
+
+        self.folder = Path(os.fspath(folder)).resolve()
+        if not self.folder.is_dir():
+            raise FrameFileError(f"cannot watch {folder}: it is not a folder")
+        self.suffixes = tuple(s.lower() for s in suffixes)
+        self._exclude = {Path(os.fspath(p)).resolve() for p in exclude}
+        self._validate = validate or validate_frame_file
+        self._give_up = max(2, int(give_up_polls))
+        self._files: dict[Path, _FileState] = {}
+        self._first = True
+        self._include_existing = bool(include_existing)
+
+    def _scan(self) -> dict[Path, tuple]:
+        found = {}
+        try:
+            entries = list(os.scandir(self.folder))
+        except OSError as exc:
+            log.warning("cannot list %s: %s", self.folder, exc)
+            return found
+        for entry in entries:
+            name = entry.name
+            if name.startswith(".") or not name.lower().endswith(self.suffixes):
+                continue
+            try:
+                if not entry.is_file():
+                    continue
+                st = entry.stat()
+            except OSError:  # vanished between listing and stat
+                continue
+            path = Path(entry.path)
+            if path in self._exclude:
+                continue
+            found[path] = (st.st_size, st.st_mtime_ns)
+        return found
+
+    def poll(self) -> list[WatchEvent]:
+        """Look at the folder once; return files that became complete (or broken) since last time.
+
+        Returns
+        -------
+        list of WatchEvent
+            In natural file-name order.
+        """
+        current = self._scan()
+        events: list[WatchEvent] = []
+        for path in [p for p in self._files if p not in current]:
+            del self._files[path]  # deleted or renamed away
+        for path, stat in current.items():
+            state = self._files.get(path)
+            if state is None:
+                state = self._files[path] = _FileState(stat)
+                if self._first and not self._include_existing:
+                    state.reported = stat
+                continue
+            if stat != state.stat:
+                state.stat, state.stable, state.last_error = stat, 0, ""
+                continue
+            state.stable += 1
+            if state.reported == stat or (stat[0] == 0 and state.stable < self._give_up):
+                continue
+            try:
+                self._validate(path)
+            except Exception as exc:  # noqa: BLE001 - any failure means "not (yet) a frame file"
+                state.last_error = str(exc) or type(exc).__name__
+                if state.stable >= self._give_up:
+                    state.reported = stat
+                    reason = state.last_error if stat[0] else f"{path.name} is empty"
+                    events.append(WatchEvent(path, "broken", reason))
+                continue
+            state.reported = stat
+            events.append(WatchEvent(path, "ready"))
+        self._first = False
+        from latticeread.runs.batch import _natural_key
+
+        return sorted(events, key=lambda e: _natural_key(e.path))
+
+    @property
+    def pending(self) -> list[Path]:
+        """Files seen but not yet reported (still being written or not yet readable)."""
+        return [p for p, s in self._files.items() if s.reported != s.stat]
+
+
+@dataclass
+class RunningStats:
+    """Running statistics of a watch: updated per shot, for the terminal or the GUI trend plots.
+
+    Attributes
+    ----------
+    n_shots, n_failed : int
+        Shots written / shots or files failed in this watch.
+    filling : list of float
+        Filling fraction per written shot (occupied / region sites).
+    offsets : list of (float, float)
+        Lattice offset ``(x, y)`` in pixels per written shot.
+    """
+
+    n_shots: int = 0
+    n_failed: int = 0
+    filling: list = field(default_factory=list)
+    offsets: list = field(default_factory=list)
+
+    def add(self, outcome) -> None:
+        if isinstance(outcome, ShotFailure):
+            self.n_failed += 1
+        else:
+            self.n_shots += 1
+            self.filling.append(outcome.filling)
+            self.offsets.append(tuple(outcome.offset))
+
+    @property
+    def mean_filling(self) -> float:
+        values = np.asarray(self.filling, dtype=float)
+        values = values[np.isfinite(values)]
+        return float(values.mean()) if values.size else float("nan")
+
+    def describe(self, outcome) -> str:
+        """One line about the latest shot and the running mean."""
+        if isinstance(outcome, ShotFailure):
+            return f"failed  {_describe_failure(outcome)}"
+        key: ShotKey = outcome.key
+        return (f"{Path(key.source).name}[{key.frame_index}]  filling {outcome.filling:.3f}  "
+                f"(mean {self.mean_filling:.3f} over {self.n_shots} shots, {self.n_failed} failed)  "
+                f"offset ({outcome.offset[0]:.2f}, {outcome.offset[1]:.2f}) px  "
+                f"threshold {outcome.threshold:.0f} photons")
+
+
+def watch_folder(folder, *, calibration, out, interval: float = 0.5, max_files: int | None = None,
+                 timeout: float | None = None, include_existing: bool = True, on_shot=None,
+                 retry_failed: bool = False, metadata: dict | None = None, sleep=time.sleep) -> BatchSummary:
+    """Reconstruct frame files as they appear in ``folder`` and append them to a run file.
+
+    Parameters
+    ----------
+    folder : str or PathLike
+        Folder the camera writes to.
+    calibration : Calibration or str or PathLike
+        The calibration, or its JSON file.
+    out : str or PathLike
+        The run file (created, or resumed: shots already in it are skipped).
+    interval : float
+        Seconds between polls of the folder.
+    max_files : int, optional
+        Stop after this many files were handled (ready or broken).
+    timeout : float, optional
+        Stop when no new file was handled for this many seconds.
+    include_existing : bool
+        Also reconstruct files present when the watch starts (default True).
+    on_shot : callable, optional
+        ``on_shot(outcome, stats)`` after each shot, with a ShotRecord or ShotFailure and the
+        :class:`RunningStats`.
+    retry_failed : bool
+        Try files again that failed in an earlier run of the same run file.
+    metadata : dict, optional
+        Stored with the run file when it is created.
+    sleep : callable
+        Waits between polls (tests may replace it).
+
+    Returns
+    -------
+    BatchSummary
+        Also when stopped with Ctrl-C: the KeyboardInterrupt is caught, the run file closed
+        and the summary returned with ``interrupted`` in its warnings.
+    """
+    t_start = time.perf_counter()
+    cal = _as_calibration(calibration)
+    out = Path(os.fspath(out))
+    stats = RunningStats()
+    counts = {"files": 0, "new": 0, "failed": 0, "skipped_done": 0, "skipped_failed": 0}
+    examples: list[str] = []
+    interrupted = False
+    watcher = FolderWatcher(folder, exclude=[out], include_existing=include_existing)
+    meta = {"watched_folder": str(watcher.folder), **(metadata or {})}
+    with RunWriter(out, calibration_json=calibration_to_json(cal), metadata=meta) as writer:
+        reconstruct = ShotReconstructor(cal)
+        last_activity = time.monotonic()
+        try:
+            while True:
+                for event in watcher.poll():
+                    counts["files"] += 1
+                    last_activity = time.monotonic()
+                    if event.status == "broken":
+                        try:
+                            digest = hash_file(event.path)
+                        except OSError:
+                            digest = ""
+                        outcomes = [ShotFailure(ShotKey(str(event.path), digest, -1), "FrameFileError",
+                                                event.reason)]
+                        if outcomes[0].key in writer.failed and not retry_failed:
+                            counts["skipped_failed"] += 1
+                            outcomes = []
+                    else:
+                        plan = plan_shots([event.path], done=writer.done, failed=writer.failed,
+                                          retry_failed=retry_failed)
+                        counts["skipped_done"] += plan.n_done_before
+                        counts["skipped_failed"] += plan.n_failed_before
+                        outcomes = list(plan.failures) + [reconstruct(key) for key in plan.tasks]
+                    for outcome in outcomes:
+                        if isinstance(outcome, ShotFailure):
+                            writer.record_failure(outcome.key, error=outcome.error, reason=outcome.reason)
+                            counts["failed"] += 1
+                            examples.append(_describe_failure(outcome))
+                        elif writer.append(outcome):
+                            counts["new"] += 1
+                        stats.add(outcome)
+                        if on_shot is not None:
+                            on_shot(outcome, stats)
+                    if max_files is not None and counts["files"] >= max_files:
+                        break
+                if max_files is not None and counts["files"] >= max_files:
+                    break
+                if timeout is not None and time.monotonic() - last_activity > timeout:
+                    break
+                sleep(interval)
+        except KeyboardInterrupt:
+            interrupted = True
+        finally:
+            reconstruct.close()
+    summary = summarize_run(out, cal, counts=counts, seconds=time.perf_counter() - t_start,
+                            workers="this process", failure_examples=examples)
+    if interrupted:
+        from dataclasses import replace
+
+        summary = replace(summary, warnings=(*summary.warnings, "interrupted (Ctrl-C); every shot shown above "
+                                             "is in the run file"))
+    return summary
