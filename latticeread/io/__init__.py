@@ -7,6 +7,7 @@ either complete or absent, and an existing file is never left half-overwritten.
 
 from latticeread.io.atomic import atomic_path, atomic_write
 from latticeread.io.calibration_file import load_calibration, save_calibration
+from latticeread.io.frames import FrameReport, FrameStack, check_frame, load_frames, load_mask
 from latticeread.io.export import (
     OccupationFile,
     read_occupation_hdf5,
@@ -17,6 +18,11 @@ from latticeread.io.export import (
 )
 
 __all__ = [
+    "load_frames",
+    "load_mask",
+    "check_frame",
+    "FrameStack",
+    "FrameReport",
     "atomic_write",
     "atomic_path",
     "save_calibration",
