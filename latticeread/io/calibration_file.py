@@ -37,7 +37,7 @@ from latticeread.errors import CalibrationError
 from .atomic import atomic_write
 
 __all__ = ["save_calibration", "load_calibration", "calibration_to_json", "calibration_from_json",
-           "to_jsonable", "from_jsonable"]
+           "save_camera", "load_camera", "to_jsonable", "from_jsonable"]
 
 _NONFINITE = {"NaN": math.nan, "Infinity": math.inf, "-Infinity": -math.inf}
 
@@ -276,3 +276,79 @@ def load_calibration(path) -> Calibration:
     except UnicodeDecodeError as exc:
         raise CalibrationError(f"calibration file {path} is not a text (UTF-8 JSON) file") from exc
     return calibration_from_json(text, where=f"calibration file {path.name}")
+
+
+# --- camera files (written by ``latticeread camera``) ------------------------------------------
+
+def save_camera(path, estimate, *, inputs=None, protect=None) -> Path:
+    """Write a measured camera (a ``CameraEstimate`` or a ``CameraModel``) to JSON, atomically.
+
+    Parameters
+    ----------
+    path : str or PathLike
+    estimate : CameraEstimate or CameraModel
+        Camera fields in counts plus, for an estimate, the dark and photon-transfer
+        diagnostics.
+    inputs : mapping, optional
+        Input file names, stored for traceability.
+    protect : iterable of paths, optional
+        Files that must not be overwritten (the dark and flat frame files).
+    """
+    import datetime as _dt
+
+    from latticeread import __version__
+    from latticeread.core.camera import CameraModel
+
+    body = {"camera": estimate.to_dict()} if isinstance(estimate, CameraModel) else estimate.to_dict()
+    data = {"format": "latticeread-camera", "format_version": 1, "program_version": __version__,
+            "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+            "inputs": inputs or {}, **body}
+    path = Path(os.fspath(path))
+    with atomic_write(path, "w", protect=protect) as fh:
+        fh.write(json.dumps(to_jsonable(data), indent=2, allow_nan=False) + "\n")
+    return path
+
+
+_CAMERA_KEYS = ("camera.kind", "camera.em_gain", "camera.counts_per_electron", "camera.bias", "camera.read_noise",
+                "camera.quantum_efficiency", "camera.clock_induced_charge", "camera.saturation")
+
+
+def load_camera(path):
+    """Read the camera of a camera file (``latticeread camera``) or of a calibration file.
+
+    Returns
+    -------
+    CameraModel
+
+    Raises
+    ------
+    CalibrationError
+        Missing/unreadable file, invalid JSON, no ``camera`` object, or a camera field of
+        the wrong type or value (the message names the key).
+    """
+    from latticeread.core.camera import CameraModel
+
+    path = Path(os.fspath(path))
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError as exc:
+        raise CalibrationError(f"camera file {path} does not exist") from exc
+    except (OSError, UnicodeDecodeError) as exc:
+        raise CalibrationError(f"cannot read camera file {path}: {exc}") from exc
+    where = f"camera file {path.name}"
+    try:
+        data = from_jsonable(json.loads(text))
+    except json.JSONDecodeError as exc:
+        raise CalibrationError(f"{where} is not valid JSON (line {exc.lineno}, column {exc.colno}: {exc.msg})") from exc
+    if not isinstance(data, dict) or not isinstance(data.get("camera"), dict):
+        raise CalibrationError(f"{where}: key 'camera' is missing")
+    for key in _CAMERA_KEYS:
+        _, name = key.split(".")
+        if name in data["camera"]:
+            check, expected = _SCHEMA[key][1]
+            if not check(data["camera"][name]):
+                raise CalibrationError(f"{where}: key '{key}' must be {expected}, got {_describe(data['camera'][name])}")
+    try:
+        return CameraModel.from_dict(data["camera"])
+    except (TypeError, ValueError) as exc:
+        raise CalibrationError(f"{where}: {exc}") from exc
