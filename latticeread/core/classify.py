@@ -1,0 +1,701 @@
+"""Occupancy classification: a threshold on the histogram of site amplitudes.
+
+Site amplitudes (photons) form a bimodal histogram: empty sites scatter around 0, occupied
+sites around the number of photons detected per atom. :func:`select_threshold` fits two
+components to that histogram and picks the threshold; :func:`classify` applies it.
+
+Models
+------
+Both components are normal distributions, fitted by maximum likelihood with the
+expectation-maximisation (EM) algorithm. Two physical constraints keep the fit sensible when
+occupied sites are rare:
+
+* the occupied component is never narrower than the empty one (an atom adds shot noise on
+  top of the noise every site has);
+* when a :class:`~latticeread.core.camera.CameraModel` is given (``model="camera"``), the
+  occupied variance is at least ``empty_var + F^2 * mean / QE`` photons^2, the shot noise of
+  ``mean`` photons at the sensor after the gain register (``F^2`` = 2 for an EMCCD at high
+  gain, Robbins & Hadwen, IEEE Trans. Electron Devices 50, 1227 (2003); 1 for sCMOS). Extra
+  spread (atom-to-atom brightness variation) is fitted on top of that floor.
+
+The ``"mixture"`` threshold is where the two weighted component densities cross (posterior
+0.5): it minimises the expected number of misclassified sites. ``"otsu"`` maximises the
+between-class variance of the histogram; ``"minimum"`` takes the lowest bin between the two
+peaks of the smoothed histogram. For every method the fitted components give the error rates
+at the chosen threshold.
+
+Fallbacks when the histogram is not bimodal
+-------------------------------------------
+If the two fitted components are not separated (separation below
+:data:`BIMODAL_SEPARATION`), the amplitudes are described by one robust location (median)
+and width (1.4826 x median absolute deviation). Amplitudes are background-subtracted, so a
+location within :data:`NO_ATOM_Z` widths of 0 means *no atoms*: the threshold is put
+:data:`FALLBACK_Z` widths above the location (a per-site false-positive rate of ~3e-7 for a
+normal distribution), widened by the excess-noise factor ``F`` when a camera model is given
+(an EMCCD's multiplied noise has a heavier tail than a normal distribution). Otherwise all
+sites are taken as *occupied* and the threshold is put halfway between 0 and the location.
+The missing component's parameters and its error rate are NaN, and the posterior becomes a
+step at the threshold.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import logging
+import math
+import warnings as _warnings
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import ndimage, special
+
+from latticeread.core.camera import CameraModel
+from latticeread.core.flags import SATURATED
+from latticeread.errors import LatticeReadWarning, ReconstructionError
+
+__all__ = [
+    "ThresholdResult",
+    "select_threshold",
+    "classify",
+    "oracle_threshold",
+    "otsu_threshold",
+    "minimum_threshold",
+    "THRESHOLD_METHODS",
+]
+
+logger = logging.getLogger(__name__)
+
+#: Methods accepted by :func:`select_threshold`.
+THRESHOLD_METHODS = ("mixture", "otsu", "minimum")
+#: Components closer than this many combined standard deviations,
+#: ``(m1 - m0) / sqrt(v0 + v1)``, are "not bimodal" (two equal normal components give a
+#: density with two peaks only above ~1.4).
+BIMODAL_SEPARATION = 2.0
+#: A unimodal histogram whose median lies within this many robust widths of 0 has no atoms.
+NO_ATOM_Z = 3.0
+#: Fallback threshold for a histogram without atoms, in robust widths above the median.
+FALLBACK_Z = 5.0
+#: Fewer finite sites than this gives a "too few sites" warning.
+MIN_SITES = 50
+#: Fewer sites in the occupied component than this gives a "few atoms" warning.
+MIN_ATOMS = 10
+
+_MAD_TO_STD = 1.482602218505602  # 1 / Phi^-1(3/4) for a normal distribution
+
+
+@dataclass(frozen=True)
+class ThresholdResult:
+    """A chosen occupancy threshold with the two fitted histogram components.
+
+    Attributes
+    ----------
+    threshold : float
+        Sites with amplitude strictly above this value (photons) are called occupied.
+    method : str
+        How the threshold was chosen: ``"mixture"``, ``"otsu"``, ``"minimum"``,
+        ``"user"`` (set with :meth:`with_threshold`) or ``"fallback"`` (histogram not
+        bimodal; see the module notes).
+    empty_mean, empty_std : float
+        Mean and standard deviation of the empty-site component (photons). NaN if there
+        is no empty component (all sites occupied).
+    occupied_mean, occupied_std : float
+        Same for the occupied component (photons). NaN if there are no atoms.
+    occupied_fraction : float
+        Weight of the occupied component (fraction of sites, 0..1).
+    false_positive_rate : float
+        P(called occupied | empty) at ``threshold`` from the empty component (0..1).
+    false_negative_rate : float
+        P(called empty | occupied) at ``threshold`` from the occupied component (0..1).
+    n_sites : int
+        Number of finite amplitudes used.
+    warnings : tuple of str
+        Reasons why the result may mislead (not bimodal, few sites, no atoms, all
+        occupied, saturated, NaN amplitudes); empty when all is well.
+    model : str
+        ``"gaussian"`` (free variances) or ``"camera"`` (occupied variance bounded below by
+        the camera's shot-noise model).
+    """
+
+    threshold: float
+    method: str
+    empty_mean: float
+    empty_std: float
+    occupied_mean: float
+    occupied_std: float
+    occupied_fraction: float
+    false_positive_rate: float
+    false_negative_rate: float
+    n_sites: int
+    warnings: tuple[str, ...] = ()
+    model: str = "gaussian"
+
+    # --- derived ---------------------------------------------------------------------
+    @property
+    def has_components(self) -> bool:
+        """True when both components are defined (the histogram was bimodal)."""
+        return bool(np.isfinite([self.empty_mean, self.empty_std, self.occupied_mean, self.occupied_std]).all())
+
+    @property
+    def error_rate(self) -> float:
+        """Expected fraction of misclassified sites at ``threshold`` (0..1); NaN if unknown."""
+        w = self.occupied_fraction
+        return float((1 - w) * self.false_positive_rate + w * self.false_negative_rate)
+
+    @property
+    def is_reliable(self) -> bool:
+        """True when no warning was raised."""
+        return len(self.warnings) == 0
+
+    def posterior(self, amplitudes) -> np.ndarray:
+        """Probability that each site is occupied, from the fitted components.
+
+        Parameters
+        ----------
+        amplitudes : array_like of float
+            Site amplitudes in photons (any shape).
+
+        Returns
+        -------
+        ndarray of float64, same shape
+            P(occupied | amplitude) in 0..1; NaN where the amplitude is NaN. The posterior
+            does not depend on ``threshold``; when a component is missing (see the module
+            notes) it is a step: 1 above ``threshold``, 0 at or below.
+        """
+        a = np.asarray(amplitudes, dtype=float)
+        if not self.has_components:
+            p = (a > self.threshold).astype(float)
+        else:
+            w = min(max(self.occupied_fraction, 1e-300), 1 - 1e-16)
+            z0 = (a - self.empty_mean) / self.empty_std
+            z1 = (a - self.occupied_mean) / self.occupied_std
+            log_odds = (math.log(w) - math.log(1 - w) + math.log(self.empty_std) - math.log(self.occupied_std)
+                        + 0.5 * (z0 * z0 - z1 * z1))
+            p = special.expit(log_odds)
+        p = np.where(np.isnan(a), np.nan, p)
+        return p
+
+    def with_threshold(self, threshold: float) -> "ThresholdResult":
+        """Same components, a new threshold (e.g. dragged by the user) and its error rates.
+
+        Parameters
+        ----------
+        threshold : float
+            New threshold in photons.
+        """
+        t = float(threshold)
+        if not np.isfinite(t):
+            raise ReconstructionError(f"the threshold must be a finite number of photons, got {threshold}")
+        fp, fn = _error_rates(t, self.empty_mean, self.empty_std, self.occupied_mean, self.occupied_std)
+        return dataclasses.replace(self, threshold=t, method="user", false_positive_rate=fp, false_negative_rate=fn)
+
+    def to_dict(self) -> dict:
+        """Plain dict (NaN written as None so that it is valid JSON)."""
+        out = {}
+        for f in dataclasses.fields(self):
+            v = getattr(self, f.name)
+            if f.name == "warnings":
+                v = list(v)
+            elif isinstance(v, (float, np.floating)):
+                v = None if not np.isfinite(v) else float(v)
+            elif isinstance(v, (np.integer,)):
+                v = int(v)
+            out[f.name] = v
+        return out
+
+    @classmethod
+    def from_dict(cls, data: dict) -> "ThresholdResult":
+        """Inverse of :meth:`to_dict`; raises ReconstructionError on missing keys."""
+        names = [f.name for f in dataclasses.fields(cls)]
+        required = [n for n in names if n not in ("warnings", "model")]
+        missing = [n for n in required if n not in data]
+        if missing:
+            raise ReconstructionError(f"threshold record is missing {', '.join(missing)}")
+        kw = {}
+        for n in names:
+            if n not in data:
+                continue
+            v = data[n]
+            if n == "warnings":
+                v = tuple(str(s) for s in v)
+            elif n in ("method", "model"):
+                v = str(v)
+            elif n == "n_sites":
+                v = int(v)
+            else:
+                v = float("nan") if v is None else float(v)
+            kw[n] = v
+        return cls(**kw)
+
+
+# --- public functions -------------------------------------------------------------------
+def select_threshold(
+    amplitudes,
+    *,
+    method: str = "mixture",
+    camera: CameraModel | None = None,
+    nbins: int = 256,
+    hist: tuple | None = None,
+    flags=None,
+    max_iter: int = 300,
+) -> ThresholdResult:
+    """Choose the occupancy threshold from the histogram of site amplitudes.
+
+    Parameters
+    ----------
+    amplitudes : array_like of float or None
+        Site amplitudes in photons (any shape; flattened). NaN values are ignored with a
+        warning. May be None when ``hist`` is given.
+    method : {"mixture", "otsu", "minimum"}
+        ``"mixture"``: where the fitted component densities cross (fewest expected errors);
+        ``"otsu"``: Otsu's between-class-variance maximum on the ``nbins`` histogram;
+        ``"minimum"``: lowest point between the two peaks of the smoothed histogram.
+    camera : CameraModel, optional
+        Enables the noise-model-aware mixture (see the module notes).
+    nbins : int
+        Number of histogram bins for ``"otsu"`` and ``"minimum"`` (and the EM start).
+    hist : (counts, bin_centers), optional
+        A precomputed histogram (photons); used instead of ``amplitudes``. The mixture is
+        then fitted to the binned data.
+    flags : array_like of uint8, optional
+        Per-site flags (:mod:`latticeread.core.flags`), same size as ``amplitudes``; sites
+        flagged SATURATED produce a warning (their amplitude is underestimated).
+    max_iter : int
+        Maximum number of EM iterations.
+
+    Returns
+    -------
+    ThresholdResult
+
+    Raises
+    ------
+    ReconstructionError
+        Unknown method, fewer than 3 finite amplitudes, or a malformed histogram.
+    """
+    if method not in THRESHOLD_METHODS:
+        raise ReconstructionError(f"unknown threshold method {method!r}; use one of {', '.join(THRESHOLD_METHODS)}")
+    nbins = int(nbins)
+    if nbins < 8:
+        raise ReconstructionError(f"the histogram needs at least 8 bins, got nbins={nbins}")
+    warn: list[str] = []
+
+    if hist is not None:
+        x, c = _check_hist(hist)
+        binwidth = float(np.median(np.diff(x))) if x.size > 1 else 0.0
+        counts, centers = c, x
+        n_sites = int(round(c.sum()))
+    else:
+        if amplitudes is None:
+            raise ReconstructionError("give either site amplitudes or a histogram (hist=)")
+        a = np.asarray(amplitudes, dtype=float).ravel()
+        finite = np.isfinite(a)
+        n_bad = int(a.size - np.count_nonzero(finite))
+        if n_bad:
+            warn.append(f"{n_bad} of {a.size} sites have NaN or infinite amplitudes and were ignored")
+        x = a[finite]
+        c = None
+        binwidth = 0.0
+        n_sites = int(x.size)
+        if n_sites >= 3:
+            counts, edges = np.histogram(x, bins=nbins)
+            centers = 0.5 * (edges[1:] + edges[:-1])
+    if n_sites < 3:
+        raise ReconstructionError(
+            f"only {n_sites} sites have a finite amplitude; at least 3 are needed to choose a threshold")
+    if n_sites < MIN_SITES:
+        warn.append(f"only {n_sites} sites: the threshold and error rates are poorly determined "
+                    f"(at least {MIN_SITES} recommended)")
+    if flags is not None:
+        fl = np.asarray(flags).ravel().astype(np.uint8)
+        n_sat = int(np.count_nonzero(fl & SATURATED))
+        if n_sat:
+            warn.append(f"{n_sat} sites touch saturated pixels: their amplitudes are underestimated")
+
+    kappa = None
+    if camera is not None:
+        kappa = camera.excess_noise_factor_squared / camera.quantum_efficiency
+    model = "gaussian" if kappa is None else "camera"
+
+    t_otsu = otsu_threshold(None, hist=(counts, centers))
+    fit = _fit_two_normals(x, c, t_init=t_otsu, kappa=kappa, binwidth=binwidth, max_iter=max_iter)
+    m0, s0, m1, s1, w1, converged = fit
+    separation = (m1 - m0) / math.sqrt(s0 * s0 + s1 * s1)
+    if not converged and separation >= BIMODAL_SEPARATION:
+        warn.append(f"the mixture fit did not converge in {max_iter} iterations")
+
+    if not (separation >= BIMODAL_SEPARATION) or w1 * n_sites < 0.5:
+        # --- not bimodal: one component only ----------------------------------------
+        loc, scale = _robust_location(x, c)
+        not_bimodal = (f"the amplitude histogram is not bimodal (component separation {separation:.2f} < "
+                       f"{BIMODAL_SEPARATION})")
+        method_used = "fallback"
+        if loc <= NO_ATOM_Z * scale:
+            widen = math.sqrt(camera.excess_noise_factor_squared) if camera is not None else 1.0
+            t = loc + FALLBACK_Z * widen * scale
+            above = x > t
+            n_above = int(above.sum() if c is None else c[above].sum())
+            if n_above == 0:
+                warn.append(not_bimodal)
+                warn.append(f"no atoms found: threshold set {FALLBACK_Z:g} noise widths above the empty level "
+                            f"({t:.4g} photons)")
+                m0, s0, m1, s1, w1 = loc, scale, float("nan"), float("nan"), 0.0
+            else:
+                # a few bright outliers on an empty histogram: isolated atoms. The empty
+                # component is the robust fit; the occupied one is made of the outliers.
+                wts = np.ones(int(above.sum())) if c is None else c[above]
+                m0, s0 = loc, scale
+                m1 = float(np.average(x[above], weights=wts))
+                v1 = float(np.average((x[above] - m1) ** 2, weights=wts))
+                s1 = math.sqrt(_floor_occupied(v1, s0 * s0, m1, kappa))
+                w1 = n_above / n_sites
+                t = _crossing(m0, s0, m1, s1, w1)
+                warn.append(f"only {n_above} sites look occupied: the occupied component is poorly determined")
+                method_used = "mixture"
+        else:
+            t = 0.5 * loc
+            warn.append(not_bimodal)
+            warn.append(f"all sites look occupied: threshold set halfway between 0 and the occupied level "
+                        f"({t:.4g} photons)")
+            m0, s0, m1, s1, w1 = float("nan"), float("nan"), loc, scale, 1.0
+    else:
+        n_occ = w1 * n_sites
+        if n_occ < MIN_ATOMS:
+            warn.append(f"only about {n_occ:.0f} sites look occupied: the occupied component is poorly "
+                        f"determined")
+        if w1 * n_sites > n_sites - MIN_ATOMS:
+            warn.append(f"only about {n_sites - n_occ:.0f} sites look empty: the empty component is poorly "
+                        f"determined")
+        if method == "mixture":
+            t = _crossing(m0, s0, m1, s1, w1)
+        elif method == "otsu":
+            t = t_otsu
+        else:
+            t = minimum_threshold(None, hist=(counts, centers))
+            if t is None:
+                warn.append("the smoothed histogram never shows two peaks; used Otsu's threshold instead")
+                t = t_otsu
+        method_used = method
+
+    fp, fn = _error_rates(t, m0, s0, m1, s1)
+    for text in warn:
+        logger.info("threshold: %s", text)
+    for text in warn:
+        if "NaN" in text:
+            _warnings.warn(text, LatticeReadWarning, stacklevel=2)
+    return ThresholdResult(
+        threshold=float(t), method=method_used, empty_mean=float(m0), empty_std=float(s0),
+        occupied_mean=float(m1), occupied_std=float(s1), occupied_fraction=float(w1),
+        false_positive_rate=fp, false_negative_rate=fn, n_sites=n_sites, warnings=tuple(warn), model=model)
+
+
+def classify(amplitudes, threshold) -> tuple[np.ndarray, np.ndarray]:
+    """Call each site occupied or empty.
+
+    Parameters
+    ----------
+    amplitudes : array_like of float
+        Site amplitudes in photons (any shape).
+    threshold : ThresholdResult or float
+        Sites with amplitude strictly above the threshold (photons) are occupied.
+
+    Returns
+    -------
+    occupied : ndarray of uint8, same shape
+        1 = occupied, 0 = empty (also 0 where the amplitude is NaN).
+    p_occupied : ndarray of float64, same shape
+        Posterior probability of occupation from the fitted components
+        (:meth:`ThresholdResult.posterior`); for a plain float threshold, 1.0 above and 0.0
+        at or below it. NaN where the amplitude is NaN.
+    """
+    a = np.asarray(amplitudes, dtype=float)
+    if isinstance(threshold, ThresholdResult):
+        t = threshold.threshold
+        p = threshold.posterior(a)
+    else:
+        t = float(threshold)
+        if not np.isfinite(t):
+            raise ReconstructionError(f"the threshold must be a finite number of photons, got {threshold}")
+        with np.errstate(invalid="ignore"):
+            p = (a > t).astype(float)
+        p[np.isnan(a)] = np.nan
+    with np.errstate(invalid="ignore"):
+        occupied = (a > t).astype(np.uint8)
+    return occupied, p
+
+
+def oracle_threshold(amplitudes, truth_occupied) -> float:
+    """The threshold that makes the fewest errors given the true occupation (benchmarks only).
+
+    Parameters
+    ----------
+    amplitudes : array_like of float
+        Site amplitudes (photons); NaN sites are ignored.
+    truth_occupied : array_like of bool or 0/1
+        True occupation of the same sites.
+
+    Returns
+    -------
+    float
+        Threshold (photons) midway between the two sorted amplitudes that bracket the best
+        split; ties are broken by the widest gap. Sites above it are called occupied.
+    """
+    a = np.asarray(amplitudes, dtype=float).ravel()
+    truth = np.asarray(truth_occupied).ravel().astype(bool)
+    if a.shape != truth.shape:
+        raise ReconstructionError(f"{a.size} amplitudes but {truth.size} truth values")
+    keep = np.isfinite(a)
+    a, truth = a[keep], truth[keep]
+    if a.size == 0:
+        raise ReconstructionError("no finite amplitudes to place an oracle threshold")
+    order = np.argsort(a, kind="stable")
+    a, truth = a[order], truth[order]
+    # errors when the first k sorted sites (k = 0..n) are called empty
+    occ_below = np.concatenate([[0], np.cumsum(truth)])
+    empty_above = (~truth).sum() - np.concatenate([[0], np.cumsum(~truth)])
+    errors = occ_below + empty_above
+    # a split is only possible between distinct values
+    valid = np.ones(a.size + 1, dtype=bool)
+    valid[1:-1] = a[1:] > a[:-1]
+    errors = np.where(valid, errors, np.iinfo(np.int64).max)
+    best = np.flatnonzero(errors == errors.min())
+    lo = np.concatenate([[a[0] - 1.0], a])[best]
+    hi = np.concatenate([a, [a[-1] + 1.0]])[best]
+    k = int(np.argmax(hi - lo))
+    return float(0.5 * (lo[k] + hi[k]))
+
+
+def otsu_threshold(amplitudes=None, *, nbins: int = 256, hist: tuple | None = None) -> float:
+    """Otsu's threshold: the split of the histogram with the largest between-class variance.
+
+    Parameters
+    ----------
+    amplitudes : array_like of float, optional
+        Site amplitudes (photons); NaN ignored. Not needed when ``hist`` is given.
+    nbins : int
+        Number of bins over the amplitude range.
+    hist : (counts, bin_centers), optional
+        Precomputed histogram.
+
+    Returns
+    -------
+    float
+        Centre of the last bin of the lower class (photons).
+
+    Notes
+    -----
+    With cumulative weights ``w0(k)``, ``w1(k)`` and means ``m0(k)``, ``m1(k)`` of the bins
+    up to and after ``k``, the split maximises ``w0 w1 (m0 - m1)^2`` (Otsu, IEEE Trans.
+    Syst. Man Cybern. 9, 62 (1979)).
+    """
+    if hist is None:
+        a = np.asarray(amplitudes, dtype=float).ravel()
+        a = a[np.isfinite(a)]
+        if a.size == 0:
+            raise ReconstructionError("no finite amplitudes for Otsu's threshold")
+        counts, edges = np.histogram(a, bins=int(nbins))
+        centers = 0.5 * (edges[1:] + edges[:-1])
+    else:
+        centers, counts = _check_hist(hist)
+    counts = counts.astype(float)
+    if centers.size == 1:
+        return float(centers[0])
+    w0 = np.cumsum(counts)[:-1]
+    w1 = np.cumsum(counts[::-1])[::-1][1:]
+    s0 = np.cumsum(counts * centers)[:-1]
+    s1 = np.cumsum((counts * centers)[::-1])[::-1][1:]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        between = w0 * w1 * (s0 / w0 - s1 / w1) ** 2
+    between = np.where(np.isfinite(between), between, -1.0)
+    return float(centers[int(np.argmax(between))])
+
+
+def minimum_threshold(amplitudes=None, *, nbins: int = 256, hist: tuple | None = None,
+                      max_smoothing: float | None = None) -> float | None:
+    """The lowest point between the two peaks of the smoothed histogram.
+
+    The histogram is smoothed with a Gaussian of increasing width (0.5, 1, 1.5 ... bins)
+    until it has exactly two local maxima; the threshold is the centre of the lowest bin
+    between them.
+
+    Parameters
+    ----------
+    amplitudes : array_like of float, optional
+        Site amplitudes (photons); NaN ignored. Not needed when ``hist`` is given.
+    nbins : int
+        Number of bins over the amplitude range.
+    hist : (counts, bin_centers), optional
+        Precomputed histogram.
+    max_smoothing : float, optional
+        Largest Gaussian width tried, in bins (default ``nbins / 8``).
+
+    Returns
+    -------
+    float or None
+        Threshold in photons, or None when no smoothing gives two peaks.
+    """
+    if hist is None:
+        a = np.asarray(amplitudes, dtype=float).ravel()
+        a = a[np.isfinite(a)]
+        if a.size == 0:
+            raise ReconstructionError("no finite amplitudes for the minimum threshold")
+        counts, edges = np.histogram(a, bins=int(nbins))
+        centers = 0.5 * (edges[1:] + edges[:-1])
+    else:
+        centers, counts = _check_hist(hist)
+    counts = counts.astype(float)
+    top = counts.size / 8 if max_smoothing is None else float(max_smoothing)
+    sigma = 0.5
+    while sigma <= top:
+        sm = ndimage.gaussian_filter1d(counts, sigma, mode="constant")
+        # local maxima with plateaus reduced to their first bin
+        d = np.diff(sm)
+        d = np.where(np.abs(d) <= 1e-12 * sm.max(), 0.0, d)
+        sign = np.sign(d)
+        # carry the last non-zero slope over flat parts
+        nz = np.flatnonzero(sign)
+        if nz.size:
+            idx = np.maximum.accumulate(np.where(sign != 0, np.arange(sign.size), 0))
+            sign = sign[idx]
+        peaks = np.flatnonzero((np.concatenate([[1.0], sign]) > 0) & (np.concatenate([sign, [-1.0]]) < 0))
+        if peaks.size == 2:
+            lo, hi = peaks
+            return float(centers[lo + int(np.argmin(sm[lo:hi + 1]))])
+        if peaks.size < 2:
+            return None
+        sigma += 0.5
+    return None
+
+
+# --- helpers ----------------------------------------------------------------------------
+def _check_hist(hist):
+    try:
+        counts, centers = hist
+        counts = np.asarray(counts, dtype=float).ravel()
+        centers = np.asarray(centers, dtype=float).ravel()
+    except (TypeError, ValueError) as exc:
+        raise ReconstructionError("hist must be a pair (counts, bin_centers)") from exc
+    if counts.shape != centers.shape or counts.size == 0:
+        raise ReconstructionError(
+            f"hist counts ({counts.size} values) and bin centres ({centers.size} values) must have the same "
+            f"non-zero length")
+    if not (np.all(np.isfinite(counts)) and np.all(counts >= 0) and np.all(np.isfinite(centers))):
+        raise ReconstructionError("hist counts must be finite and >= 0, bin centres finite")
+    if centers.size > 1 and np.any(np.diff(centers) <= 0):
+        raise ReconstructionError("hist bin centres must increase")
+    return centers, counts
+
+
+def _robust_location(x, c):
+    """Median and 1.4826 x MAD of (possibly weighted) data."""
+    if c is None:
+        med = float(np.median(x))
+        mad = float(np.median(np.abs(x - med)))
+        if mad == 0:
+            mad = float(np.std(x)) / _MAD_TO_STD
+    else:
+        med = _weighted_median(x, c)
+        mad = _weighted_median(np.abs(x - med), c)
+        if mad == 0:
+            mad = math.sqrt(np.average((x - med) ** 2, weights=c)) / _MAD_TO_STD
+    scale = _MAD_TO_STD * mad
+    if scale <= 0:
+        scale = max(abs(med), 1.0) * 1e-6
+    return med, scale
+
+
+def _weighted_median(x, w):
+    order = np.argsort(x)
+    cw = np.cumsum(w[order])
+    return float(x[order][np.searchsorted(cw, 0.5 * cw[-1])])
+
+
+def _fit_two_normals(x, c, *, t_init, kappa, binwidth, max_iter, tol=1e-9):
+    """EM for two normal components; returns (m0, s0, m1, s1, w1, converged).
+
+    ``c`` are counts per value (histogram input) or None (one count per value).
+    """
+    weights = np.ones_like(x) if c is None else c
+    total = float(weights.sum())
+    span = float(x.max() - x.min())
+    v_min = (1e-6 * span) ** 2 + (binwidth**2 / 12.0) + 1e-300
+    sheppard = binwidth**2 / 12.0  # binned data overestimate the variance by h^2/12
+
+    def stats(r):
+        n = float((weights * r).sum())
+        if n <= 0:
+            return 0.0, float(np.average(x, weights=weights)), v_min
+        m = float((weights * r * x).sum() / n)
+        v = float((weights * r * (x - m) ** 2).sum() / n) - sheppard
+        return n, m, max(v, v_min)
+
+    upper = (x > t_init).astype(float)
+    n1, m1, v1 = stats(upper)
+    n0, m0, v0 = stats(1.0 - upper)
+    if n1 == 0 or n0 == 0:
+        # everything on one side: split at the median instead
+        upper = (x > np.median(x)).astype(float)
+        n1, m1, v1 = stats(upper)
+        n0, m0, v0 = stats(1.0 - upper)
+    w1 = min(max(n1 / total, 1.0 / total), 1 - 1.0 / total) if total > 1 else 0.5
+    v1 = _floor_occupied(v1, v0, m1, kappa)
+    old = -np.inf
+    converged = False
+    for _ in range(int(max_iter)):
+        l0 = math.log(1 - w1) - 0.5 * math.log(v0) - 0.5 * (x - m0) ** 2 / v0
+        l1 = math.log(w1) - 0.5 * math.log(v1) - 0.5 * (x - m1) ** 2 / v1
+        top = np.maximum(l0, l1)
+        lse = top + np.log(np.exp(l0 - top) + np.exp(l1 - top))
+        loglik = float((weights * lse).sum())
+        r = np.exp(l1 - lse)
+        n1, m1n, v1n = stats(r)
+        n0, m0n, v0n = stats(1.0 - r)
+        if n1 < 1e-9 or n0 < 1e-9:
+            break
+        m0, v0, m1, v1 = m0n, v0n, m1n, v1n
+        if m1 < m0:  # keep the labels: component 1 is the brighter one
+            m0, v0, m1, v1, n0, n1 = m1, v1, m0, v0, n1, n0
+        v1 = _floor_occupied(v1, v0, m1, kappa)
+        w1 = min(max(n1 / total, 1e-300), 1 - 1e-16)
+        if abs(loglik - old) <= tol * max(1.0, abs(loglik)):
+            converged = True
+            break
+        old = loglik
+    return m0, math.sqrt(v0), m1, math.sqrt(v1), w1, converged
+
+
+def _floor_occupied(v1, v0, m1, kappa):
+    floor = v0
+    if kappa is not None:
+        floor = v0 + kappa * max(m1, 0.0)
+    return max(v1, floor)
+
+
+def _crossing(m0, s0, m1, s1, w1):
+    """Amplitude between the means where the weighted normal densities are equal (photons)."""
+    w1 = min(max(w1, 1e-300), 1 - 1e-16)
+    # log((1-w1) N(t; m0, s0)) = log(w1 N(t; m1, s1))  ->  a t^2 + b t + c = 0
+    a = 0.5 / s1**2 - 0.5 / s0**2
+    b = m0 / s0**2 - m1 / s1**2
+    c = (0.5 * m1**2 / s1**2 - 0.5 * m0**2 / s0**2 + math.log(s1 / s0)
+         + math.log((1 - w1) / w1))
+    if abs(a) < 1e-14 * (abs(b) + 1e-300) ** 2 or a == 0:
+        roots = np.array([-c / b]) if b != 0 else np.array([])
+    else:
+        disc = b * b - 4 * a * c
+        if disc < 0:
+            roots = np.array([])
+        else:
+            sq = math.sqrt(disc)
+            roots = np.array([(-b - sq) / (2 * a), (-b + sq) / (2 * a)])
+    inside = roots[(roots >= m0) & (roots <= m1)] if roots.size else roots
+    if inside.size:
+        return float(inside[np.argmin(np.abs(inside - 0.5 * (m0 + m1)))])
+    if roots.size:
+        # the dominant component wins everywhere between the means: take the nearest crossing
+        return float(roots[np.argmin(np.abs(roots - 0.5 * (m0 + m1)))])
+    return 0.5 * (m0 + m1)
+
+
+def _error_rates(t, m0, s0, m1, s1):
+    fp = float(special.ndtr(-(t - m0) / s0)) if np.isfinite(m0) and s0 > 0 else float("nan")
+    fn = float(special.ndtr((t - m1) / s1)) if np.isfinite(m1) and s1 > 0 else float("nan")
+    return fp, fn

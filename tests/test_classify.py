@@ -1,0 +1,249 @@
+"""Tests of the occupancy threshold and classification (latticeread.core.classify).
+
+Site amplitudes are drawn directly from the two-component noise model: empty sites scatter
+around 0 photons (background and read noise), occupied sites carry Poisson photons
+multiplied in an EMCCD gain register (gamma-distributed output, Robbins & Hadwen 2003) plus
+an atom-to-atom brightness spread.
+"""
+
+import json
+import warnings
+
+import numpy as np
+import pytest
+from scipy import stats
+from skimage.filters import threshold_minimum, threshold_otsu
+
+from latticeread.core.camera import CameraModel
+from latticeread.core.classify import (ThresholdResult, classify, minimum_threshold, oracle_threshold,
+                                       otsu_threshold, select_threshold)
+from latticeread.core.flags import SATURATED
+from latticeread.errors import LatticeReadWarning, ReconstructionError
+
+CAMERA = CameraModel(kind="emccd", em_gain=150.0, counts_per_electron=0.05, bias=200.0, read_noise=3.0,
+                     quantum_efficiency=0.9)
+
+
+def draw_amplitudes(n, *, filling=0.3, photons=400.0, empty_std=45.0, spread=0.1, rng=0):
+    """Site amplitudes (photons at the sensor) and their true occupation."""
+    rng = np.random.default_rng(rng)
+    truth = rng.random(n) < filling
+    mean = photons * rng.gamma(1 / spread**2, spread**2, n)
+    electrons = rng.poisson(mean * CAMERA.quantum_efficiency)
+    amplified = np.where(electrons > 0, rng.gamma(np.maximum(electrons, 1), CAMERA.em_gain), 0.0)
+    signal = amplified / CAMERA.em_gain / CAMERA.quantum_efficiency
+    a = rng.normal(0.0, empty_std, n) + np.where(truth, signal, 0.0)
+    return a, truth
+
+
+def test_otsu_agrees_with_scikit_image_within_a_bin():
+    """Reference library: scikit-image ``filters.threshold_otsu`` on the same 256-bin histogram."""
+    a, _ = draw_amplitudes(20000, photons=600.0, rng=1)
+    ours = otsu_threshold(a, nbins=256)
+    ref = threshold_otsu(a, nbins=256)
+    binwidth = (a.max() - a.min()) / 256
+    assert abs(ours - ref) <= binwidth
+    # same through select_threshold and with a precomputed histogram
+    assert abs(select_threshold(a, method="otsu").threshold - ref) <= binwidth
+    counts, edges = np.histogram(a, bins=256)
+    centres = 0.5 * (edges[1:] + edges[:-1])
+    assert abs(select_threshold(None, method="otsu", hist=(counts, centres)).threshold - ref) <= binwidth
+
+
+def test_minimum_agrees_with_scikit_image():
+    """Reference library: scikit-image ``filters.threshold_minimum`` (valley of the smoothed histogram).
+
+    The two smooth differently, so agreement is asked within 3 % of the gap between the peaks.
+    """
+    a, _ = draw_amplitudes(20000, photons=600.0, filling=0.4, rng=2)
+    ref = threshold_minimum(a, nbins=256)
+    ours = minimum_threshold(a, nbins=256)
+    assert abs(ours - ref) < 0.03 * 600.0
+    assert select_threshold(a, method="minimum").method == "minimum"
+
+
+@pytest.mark.parametrize("camera", [None, CAMERA], ids=["gaussian", "camera"])
+def test_mixture_error_rates_agree_with_truth_counts(camera):
+    """The fitted false-positive/negative rates agree with the counted errors.
+
+    Outside check: the counted error numbers are binomial; the model rate must lie in the
+    99.9 % Clopper-Pearson interval (scipy.stats.binomtest) of the counts. The components
+    overlap on purpose (~1 % errors) so that the rates are measurable. The brightness spread
+    is small (5 %): a wide gamma spread skews the occupied peak and the normal model then
+    over-estimates the false-negative rate (2.6 % predicted vs 1.9 % counted at 15 %).
+    """
+    a, truth = draw_amplitudes(40000, photons=260.0, empty_std=50.0, spread=0.05, rng=3)
+    res = select_threshold(a, camera=camera)
+    assert res.warnings == ()
+    assert res.model == ("gaussian" if camera is None else "camera")
+    occ, p = classify(a, res)
+    fp_count = int(np.sum(occ[~truth]))
+    fn_count = int(np.sum(1 - occ[truth]))
+    assert fp_count > 20 and fn_count > 20  # the check has teeth
+    for k, n, rate in ((fp_count, int((~truth).sum()), res.false_positive_rate),
+                       (fn_count, int(truth.sum()), res.false_negative_rate)):
+        ci = stats.binomtest(k, n).proportion_ci(confidence_level=0.999)
+        assert ci.low <= rate <= ci.high, (k, n, rate)
+    # the mixture threshold is close to the error-minimising one: few extra errors
+    best = oracle_threshold(a, truth)
+    err = lambda t: np.sum((a > t) != truth)  # noqa: E731
+    assert err(res.threshold) <= err(best) * 1.05 + 5
+    # the posterior is calibrated: among sites with p in (0.2, 0.8) the occupied fraction is in between
+    mid = (p > 0.2) & (p < 0.8)
+    assert 0.2 < truth[mid].mean() < 0.8
+    assert res.occupied_fraction == pytest.approx(truth.mean(), abs=0.01)
+
+
+def test_camera_model_sets_a_floor_on_the_occupied_width():
+    """Occupied variance >= empty variance + F^2 mean / QE with F^2 = 2 for an EMCCD at high gain.
+
+    Source: Robbins & Hadwen, IEEE Trans. Electron Devices 50, 1227 (2003), excess noise
+    factor sqrt(2). With only 5 atoms the free Gaussian fit cannot know the width; the camera
+    model gives it.
+    """
+    rng = np.random.default_rng(5)
+    a = rng.normal(0, 40.0, 3000)
+    a[:5] = [600.0, 601.0, 602.0, 603.0, 604.0]  # five atoms with an implausibly small spread
+    res = select_threshold(a, camera=CAMERA)
+    f2 = CAMERA.excess_noise_factor_squared
+    assert f2 == pytest.approx(2.0, abs=0.01)
+    floor = np.sqrt(res.empty_std**2 + f2 * res.occupied_mean / CAMERA.quantum_efficiency)
+    assert res.occupied_std == pytest.approx(floor, rel=1e-6)
+    plain = select_threshold(a)
+    assert plain.occupied_std == pytest.approx(plain.empty_std, rel=1e-6)  # floor: the empty width
+    assert any("only about 5 sites look occupied" in w for w in res.warnings)
+
+
+def test_with_threshold_keeps_components_and_recomputes_rates():
+    """Error rates at a user threshold are the normal tails (scipy.stats.norm)."""
+    a, _ = draw_amplitudes(10000, rng=6)
+    res = select_threshold(a)
+    moved = res.with_threshold(150.0)
+    assert moved.method == "user" and moved.threshold == 150.0
+    assert (moved.empty_mean, moved.occupied_std) == (res.empty_mean, res.occupied_std)
+    assert moved.false_positive_rate == pytest.approx(stats.norm.sf(150.0, res.empty_mean, res.empty_std))
+    assert moved.false_negative_rate == pytest.approx(stats.norm.cdf(150.0, res.occupied_mean, res.occupied_std))
+    occ, p = classify(a, moved)
+    np.testing.assert_array_equal(occ, (a > 150.0).astype(np.uint8))
+    np.testing.assert_allclose(p, res.posterior(a))
+
+
+def test_posterior_is_half_at_the_mixture_threshold():
+    a, _ = draw_amplitudes(10000, rng=7)
+    res = select_threshold(a)
+    assert res.posterior([res.threshold])[0] == pytest.approx(0.5, abs=1e-6)
+    assert res.posterior([res.threshold - 50])[0] < 0.5 < res.posterior([res.threshold + 50])[0]
+
+
+def test_oracle_threshold_against_brute_force():
+    rng = np.random.default_rng(8)
+    a = rng.normal(0, 1, 300) + 2.0 * (truth := rng.random(300) < 0.4)
+    t = oracle_threshold(a, truth)
+    brute = min(np.sum((a > c) != truth) for c in np.concatenate([[a.min() - 1], a]))
+    assert np.sum((a > t) != truth) == brute
+
+
+def test_no_atoms_falls_back_to_noise_level():
+    rng = np.random.default_rng(9)
+    a = rng.normal(0, 40.0, 5000)
+    res = select_threshold(a)
+    assert res.method == "fallback"
+    assert any("no atoms" in w for w in res.warnings) and any("not bimodal" in w for w in res.warnings)
+    assert res.threshold == pytest.approx(5 * 40.0, rel=0.1)
+    assert np.isnan(res.occupied_mean) and np.isnan(res.false_negative_rate)
+    assert classify(a, res)[0].sum() == 0
+    # the camera model widens the fallback by the excess-noise factor F = sqrt(2)
+    assert select_threshold(a, camera=CAMERA).threshold == pytest.approx(res.threshold * np.sqrt(2), rel=0.05)
+
+
+def test_one_atom_is_found():
+    rng = np.random.default_rng(10)
+    a = rng.normal(0, 40.0, 2000)
+    a[123] = 500.0
+    res = select_threshold(a)
+    occ, p = classify(a, res)
+    assert np.flatnonzero(occ).tolist() == [123]
+    assert p[123] > 0.99
+    assert any("only 1 sites look occupied" in w for w in res.warnings)
+
+
+def test_all_occupied():
+    rng = np.random.default_rng(11)
+    a = rng.normal(500.0, 50.0, 1000)
+    res = select_threshold(a)
+    assert any("all sites look occupied" in w for w in res.warnings)
+    assert classify(a, res)[0].all()
+    assert np.isnan(res.empty_mean)
+
+
+def test_nan_amplitudes_are_ignored_with_a_warning():
+    a, truth = draw_amplitudes(5000, rng=12)
+    a[[3, 7, 11]] = np.nan
+    with pytest.warns(LatticeReadWarning, match="3 of 5000 sites have NaN"):
+        res = select_threshold(a)
+    assert res.n_sites == 4997
+    occ, p = classify(a, res)
+    assert occ[3] == 0 and np.isnan(p[3])
+    assert np.isfinite(p[0])
+
+
+def test_few_sites_and_saturation_warnings():
+    a, _ = draw_amplitudes(40, photons=800.0, rng=13)
+    flags = np.zeros(40, np.uint8)
+    flags[:2] = SATURATED
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # no Python warning without NaN
+        res = select_threshold(a, flags=flags)
+    assert any("only 40 sites" in w for w in res.warnings)
+    assert any("2 sites touch saturated pixels" in w for w in res.warnings)
+
+
+def test_float_threshold_and_shape_kept():
+    a = np.array([[0.0, 300.0], [np.nan, 120.0]])
+    occ, p = classify(a, 100.0)
+    assert occ.dtype == np.uint8 and occ.shape == (2, 2)
+    np.testing.assert_array_equal(occ, [[0, 1], [0, 1]])
+    np.testing.assert_array_equal(p[~np.isnan(a)], [0.0, 1.0, 1.0])
+
+
+def test_dict_round_trip_through_json():
+    a, _ = draw_amplitudes(3000, rng=14)
+    for res in (select_threshold(a), select_threshold(np.random.default_rng(0).normal(0, 1, 500))):
+        back = ThresholdResult.from_dict(json.loads(json.dumps(res.to_dict(), allow_nan=False)))
+        assert back.threshold == res.threshold and back.warnings == res.warnings
+        np.testing.assert_array_equal(back.posterior(a), res.posterior(a))
+
+
+def test_unknown_method():
+    with pytest.raises(ReconstructionError, match="unknown threshold method 'median'"):
+        select_threshold(np.arange(10.0), method="median")
+
+
+def test_too_few_finite_amplitudes():
+    with pytest.raises(ReconstructionError, match="only 2 sites have a finite amplitude"):
+        select_threshold([1.0, np.nan, 2.0, np.inf])
+
+
+def test_bad_histogram():
+    with pytest.raises(ReconstructionError, match="hist counts .* and bin centres .* must have the same"):
+        select_threshold(None, hist=(np.ones(5), np.arange(4.0)))
+
+
+def test_missing_amplitudes_and_histogram():
+    with pytest.raises(ReconstructionError, match="give either site amplitudes or a histogram"):
+        select_threshold(None)
+
+
+def test_non_finite_user_threshold():
+    with pytest.raises(ReconstructionError, match="the threshold must be a finite number of photons"):
+        classify(np.zeros(3), float("nan"))
+
+
+def test_from_dict_missing_keys():
+    with pytest.raises(ReconstructionError, match="threshold record is missing"):
+        ThresholdResult.from_dict({"threshold": 1.0})
+
+
+def test_oracle_shape_mismatch():
+    with pytest.raises(ReconstructionError, match="3 amplitudes but 2 truth values"):
+        oracle_threshold([1.0, 2.0, 3.0], [0, 1])
