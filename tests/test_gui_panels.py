@@ -179,6 +179,22 @@ def test_histogram_controls_emit_for_the_user_only(qtbot):
     assert panel.threshold_line.value() == pytest.approx(512.5)
 
 
+def test_histogram_draws_the_empty_component_alone_when_there_are_no_atoms(qtbot):
+    from latticeread.core.classify import select_threshold
+
+    panel = _show(qtbot, HistogramPanel())
+    amps = np.random.default_rng(9).normal(0.0, 50.0, 2000)
+    result = select_threshold(amps, method="mixture")
+    panel.set_amplitudes(amps)
+    panel.set_threshold_result(result)
+    x, y = panel._empty_curve.getData()
+    assert np.nanmax(y) > 10
+    x, y = panel._occ_curve.getData()
+    assert not np.isfinite(y).any()
+    assert "no occupied component" in panel.summary_label.text()
+    assert panel.warnings_label.isVisibleTo(panel)  # the fit says why it may mislead
+
+
 def test_histogram_handles_no_finite_amplitudes(qtbot):
     panel = _show(qtbot, HistogramPanel())
     panel.set_amplitudes([np.nan, np.inf])
@@ -211,6 +227,11 @@ def test_geometry_panel_shows_vectors_in_pixels_and_nm(qtbot, tmp_path):
     x, y = panel._drift_curves[0].getData()
     assert y[0] == 0 and y[-1] == pytest.approx(0.29)  # relative to the first frame
     assert "0.01, y -0.005 px/frame" in panel.drift_label.text()
+    gappy = offsets.copy()
+    gappy[0] = np.nan  # lattice not seen in frame 0
+    panel.set_drift(frames, gappy)
+    x, y = panel._drift_curves[0].getData()
+    assert np.isnan(y[0]) and y[1] == 0 and y[-1] == pytest.approx(0.28)
     with pytest.raises(ValueError, match="30 frame indices but 29 offsets"):
         panel.set_drift(frames, offsets[:-1])
     assert not _missing_tooltips(panel), _missing_tooltips(panel)
@@ -258,6 +279,8 @@ def test_geometry_nudges_emit_a_new_geometry_on_every_step(qtbot):
     with qtbot.waitSignal(panel.geometryEdited) as blocker:
         panel.scale_plus.click()
     assert blocker.args[0].spacings[0] == pytest.approx(rotated.spacings[0] * 1.0005, rel=1e-12)
+    assert "adjusted by hand" in panel.edited_label.text()
+    panel.set_geometry(blocker.args[0])  # the owner echoes the edit back: revert point kept
     assert "adjusted by hand" in panel.edited_label.text()
     with qtbot.waitSignal(panel.geometryEdited) as blocker:
         panel.revert_button.click()
@@ -330,6 +353,11 @@ def test_psf_panel_shows_an_empirical_psf(qtbot, tmp_path):
     # a Gaussian of FWHM 4.5 px drops to half its peak at 2.25 px
     assert float(np.interp(2.25, r, y)) / y[0] == pytest.approx(0.5, abs=0.01)
     _assert_render(panel, tmp_path, "psf")
+    panel.log_check.click()  # display only: log10 of the image relative to its peak, clipped at 1e-3
+    shown = panel._image.image
+    assert shown.max() == pytest.approx(0.0) and shown.min() >= -3.0
+    assert np.allclose(10 ** shown[shown > -3], (image / image.max())[shown > -3])
+    _assert_render(panel, tmp_path, "psf_log")
 
 
 # ------------------------------------------------------------------------------ fidelity

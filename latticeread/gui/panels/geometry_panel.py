@@ -10,7 +10,9 @@ Methods (data in)
 ``set_geometry(geometry, *, pixel_size_nm=None)``
     Show the vectors (pixels, and nm when the object-plane pixel size is known), angles,
     quality (peak-to-background, residual, sites used, warnings in red) and load the nudge
-    boxes. Becomes the "revert" point of the manual nudges. ``None`` clears.
+    boxes. Becomes the "revert" point of the manual nudges, except when it equals the
+    geometry this panel last emitted with ``geometryEdited`` (the owner echoing the edit
+    back). ``None`` clears.
 ``set_spectrum(spectrum_2d, peaks_xy=None, *, is_log=False)``
     ``spectrum_2d``: (H, W) magnitude of the 2-D FFT, shifted so zero frequency is at pixel
     ``(W // 2, H // 2)`` (complex input is reduced to its magnitude); shown as
@@ -18,7 +20,8 @@ Methods (data in)
     peaks in the same (x = column, y = row) pixel coordinates of the spectrum, marked with
     red crosses. The reciprocal vectors of the shown geometry are drawn as green circles.
 ``set_drift(frame_indices, offsets, trend=None, *, units="px")``
-    Phase of every frame against frame index, plotted relative to the first frame. ``offsets``: (N, 2) offset ``(x, y)`` in
+    Phase of every frame against frame index, plotted relative to the first frame with a
+    finite offset (NaN rows, frames where the lattice was not seen, leave gaps). ``offsets``: (N, 2) offset ``(x, y)`` in
     pixels (``units="px"``) or phases along ``(a1, a2)`` in lattice sites
     (``units="sites"``). ``trend``: (N, 2) fitted linear trend at the same frame indices
     (drawn dashed; its slope is printed), or None.
@@ -300,6 +303,11 @@ class GeometryPanel(QtWidgets.QWidget):
         self.spacing_unit.model().item(1).setEnabled(self._pixel_size_nm is not None)
         if self._pixel_size_nm is None and self.spacing_unit.currentIndex() == 1:
             self.spacing_unit.setCurrentIndex(0)
+        if geometry is not None and self._geometry is not None and geometry == self._geometry:
+            # the owner echoes back the geometry this panel just emitted: keep the revert point
+            self._geometry = geometry
+            self._update_labels()
+            return
         self._reference = geometry
         self._show(geometry)
 
@@ -346,11 +354,12 @@ class GeometryPanel(QtWidgets.QWidget):
         unit_text = "px" if units == "px" else "sites"
         dp = self.drift_plot.getPlotItem()
         # plot changes relative to the first frame so both components share one scale
-        ref = o[0].copy() if f.size else np.zeros(2)
+        finite_rows = np.flatnonzero(np.isfinite(o).all(axis=1))
+        ref = o[finite_rows[0]].copy() if finite_rows.size else np.zeros(2)
         dp.setLabel("left", "Δ offset (px)" if units == "px" else "Δ phase (sites)")
         self._drift_legend.clear()
         for i, curve in enumerate(self._drift_curves):
-            curve.setData(f, o[:, i] - ref[i])
+            curve.setData(f, o[:, i] - ref[i], connect="finite")
             self._drift_legend.addItem(curve, names[i])
         text = [f"{f.size} frames"]
         if f.size:

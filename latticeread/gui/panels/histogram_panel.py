@@ -96,25 +96,46 @@ def _pair(result, name, index):
         return None
 
 
+def _valid(mu, sd) -> bool:
+    return mu is not None and sd is not None and math.isfinite(mu) and math.isfinite(sd) and sd > 0
+
+
 def _components(result):
-    """(empty_mean, empty_std, occupied_mean, occupied_std, occupied_fraction) or None."""
-    e_mu = _get(result, "empty_mean")
-    e_sd = _get(result, "empty_std")
-    o_mu = _get(result, "occupied_mean")
-    o_sd = _get(result, "occupied_std")
-    frac = _get(result, "occupied_fraction")
-    if e_mu is None:
+    """(empty_mean, empty_std, occupied_mean, occupied_std, occupied_fraction) or None.
+
+    A component that is not defined (e.g. no atoms at all) has NaN mean and width; None when
+    neither is defined.
+    """
+    def num(v):
+        try:
+            return float(v)
+        except (TypeError, ValueError):
+            return None
+
+    e_mu, e_sd = num(_get(result, "empty_mean")), num(_get(result, "empty_std"))
+    o_mu, o_sd = num(_get(result, "occupied_mean")), num(_get(result, "occupied_std"))
+    frac = num(_get(result, "occupied_fraction"))
+    if e_mu is None and o_mu is None:
         e_mu, o_mu = _pair(result, "means", 0), _pair(result, "means", 1)
         e_sd, o_sd = _pair(result, "stds", 0), _pair(result, "stds", 1)
-        w_occ = _pair(result, "weights", 1)
-        frac = w_occ if frac is None else frac
-    values = (e_mu, e_sd, o_mu, o_sd, frac)
-    if any(v is None for v in values):
+        frac = _pair(result, "weights", 1) if frac is None else frac
+    has_empty, has_occ = _valid(e_mu, e_sd), _valid(o_mu, o_sd)
+    if not (has_empty or has_occ):
         return None
-    values = tuple(float(v) for v in values)
-    if not all(math.isfinite(v) for v in values) or values[1] <= 0 or values[3] <= 0:
-        return None
-    return values
+    if frac is None or not math.isfinite(frac):
+        if has_empty and has_occ:
+            return None
+        frac = 1.0 if has_occ else 0.0
+    nan = float("nan")
+    return (e_mu if has_empty else nan, e_sd if has_empty else nan,
+            o_mu if has_occ else nan, o_sd if has_occ else nan, float(np.clip(frac, 0.0, 1.0)))
+
+
+def _same(a, b) -> bool:
+    """Equal component tuples (NaN equal to NaN)."""
+    if a is None or b is None:
+        return a is b
+    return bool(np.array_equal(np.asarray(a), np.asarray(b), equal_nan=True))
 
 
 def _gauss(x, mu, sd):
@@ -290,7 +311,7 @@ class HistogramPanel(QtWidgets.QWidget):
             f"false positives {self._pct(fp)} of empty sites · false negatives {self._pct(fn)} of occupied sites"
             + (f" · method: {method}" if method is not None else ""))
         comps = _components(result)
-        if comps != self._components:
+        if not _same(comps, self._components):
             self._components = comps
             self._update_component_curves(force=True)
             self._update_summary()
@@ -367,9 +388,12 @@ class HistogramPanel(QtWidgets.QWidget):
         lo, hi = float(self._edges[0]), float(self._edges[-1])
         x = np.linspace(lo, hi, 400)
         scale = self._n_finite * float(self._edges[1] - self._edges[0])  # density -> sites per bin
-        empty = scale * (1.0 - frac) * _gauss(x, e_mu, e_sd)
-        occ = scale * frac * _gauss(x, o_mu, o_sd)
+        zeros = np.zeros_like(x)
+        empty = scale * (1.0 - frac) * _gauss(x, e_mu, e_sd) if _valid(e_mu, e_sd) else zeros
+        occ = scale * frac * _gauss(x, o_mu, o_sd) if _valid(o_mu, o_sd) else zeros
         total = empty + occ
+        if not (_valid(e_mu, e_sd) and _valid(o_mu, o_sd)):
+            total = zeros  # one component only: the sum adds nothing
         # hide the flat tails so a component does not run along the axis under the other peak
         floor = 0.05 if self._log() else 2e-3 * max(float(total.max()), 1e-12)
         empty, occ, total = (np.where(v > floor, v, np.nan) for v in (empty, occ, total))
@@ -390,8 +414,8 @@ class HistogramPanel(QtWidgets.QWidget):
         if self._components is not None:
             e_mu, e_sd, o_mu, o_sd, frac = self._components
             u = self._unit
-            parts.append(f"empty {fmt(e_mu)} ± {fmt(e_sd)} {u}")
-            parts.append(f"occupied {fmt(o_mu)} ± {fmt(o_sd)} {u}")
+            parts.append(f"empty {fmt(e_mu)} ± {fmt(e_sd)} {u}" if _valid(e_mu, e_sd) else "no empty component")
+            parts.append(f"occupied {fmt(o_mu)} ± {fmt(o_sd)} {u}" if _valid(o_mu, o_sd) else "no occupied component")
             parts.append(f"fitted filling {100 * frac:.1f} %")
         self.summary_label.setText(" · ".join(parts))
 

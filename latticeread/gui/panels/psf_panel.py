@@ -12,6 +12,7 @@ Methods (data in)
     densities of a unit-flux source, divided by the ideal peak), FWHM in pixels and nm,
     ellipticity and number of atoms used (from ``params["ellipticity"]``,
     ``params["n_atoms"]`` of empirical models) and any ``params["warnings"]``. None clears.
+    A "log image" box switches the image to a logarithmic scale (display only).
 ``set_optics(*, numerical_aperture=None, wavelength_nm=None, pixel_size_nm=None)``
     Fill the optics boxes (e.g. from the calibration) without emitting ``opticsChanged``.
 ``optics()``
@@ -58,6 +59,7 @@ class PSFPanel(QtWidgets.QWidget):
     def __init__(self, parent=None):
         super().__init__(parent)
         self._psf: PSFModel | None = None
+        self._psf_image: np.ndarray | None = None
 
         # --- image ------------------------------------------------------------------
         self.image_plot = pg.PlotWidget(background="k")
@@ -121,6 +123,11 @@ class PSFPanel(QtWidgets.QWidget):
         form.addRow("wavelength", self.wavelength_box)
         form.addRow("pixel size", self.pixel_box)
 
+        self.log_check = QtWidgets.QCheckBox("log image")
+        self.log_check.setToolTip("Show the PSF image on a logarithmic scale (three decades), to see "
+                                  "the diffraction rings and aberrated wings")
+        self.log_check.toggled.connect(lambda _on: self._show_image())
+
         self.estimate_button = QtWidgets.QPushButton("Estimate PSF")
         self.estimate_button.setToolTip("Estimate the PSF from isolated atoms in the frames "
                                         "(sparse frames work best)")
@@ -141,6 +148,7 @@ class PSFPanel(QtWidgets.QWidget):
         right.addWidget(self.numbers_label)
         right.addWidget(self.warnings_label)
         right.addStretch(1)
+        right.addWidget(self.log_check)
         right.addWidget(self.estimate_button)
         bottom = QtWidgets.QHBoxLayout()
         bottom.addWidget(optics, 2)
@@ -170,17 +178,29 @@ class PSFPanel(QtWidgets.QWidget):
     def set_psf(self, psf_model: PSFModel | None) -> None:
         """Show ``psf_model`` (see module docstring); None clears."""
         self._psf = psf_model
-        if psf_model is None:
-            self._image.clear()
-        else:
-            s = _IMAGE_SUPERSAMPLE
-            img = psf_model.image(supersample=s)
-            r = psf_model.radius
-            self._image.setImage(img, levels=(0.0, float(img.max()) or 1.0))
-            half = 0.5 / s
-            self._image.setRect(QtCore.QRectF(-r - half, -r - half, img.shape[1] / s, img.shape[0] / s))
+        self._psf_image = None
+        if psf_model is not None:
+            self._psf_image = psf_model.image(supersample=_IMAGE_SUPERSAMPLE)
+        self._show_image()
+        if psf_model is not None:
             self.image_plot.getPlotItem().autoRange(padding=0)
         self._redraw()
+
+    def _show_image(self) -> None:
+        img = getattr(self, "_psf_image", None)
+        if img is None:
+            self._image.clear()
+            return
+        top = float(np.nanmax(img)) or 1.0
+        if self.log_check.isChecked():
+            shown = np.log10(np.clip(img / top, 1e-3, None))
+            levels = (-3.0, 0.0)
+        else:
+            shown, levels = img, (0.0, top)
+        s, r = _IMAGE_SUPERSAMPLE, self._psf.radius
+        self._image.setImage(shown, levels=levels)
+        half = 0.5 / s
+        self._image.setRect(QtCore.QRectF(-r - half, -r - half, img.shape[1] / s, img.shape[0] / s))
 
     def set_optics(self, *, numerical_aperture=None, wavelength_nm=None, pixel_size_nm=None) -> None:
         """Fill the optics boxes without emitting ``opticsChanged`` (None leaves a box as is)."""
