@@ -1,7 +1,8 @@
 """Per-site tables (CSV) and occupation matrices (HDF5): the output contract.
 
 Both writers take an iterable of per-frame results (``FrameResult`` from
-:mod:`latticeread.core.pipeline`, read duck-typed) and consume it one frame at a time, so a
+:mod:`latticeread.core.pipeline`, read duck-typed) and consume it lazily (the CSV one frame
+at a time, the HDF5 file in slabs of a few frames, about 1 MiB per dataset), so a
 generator over thousands of frames runs in flat memory. Both are atomic: the output appears
 complete or not at all, and an existing file is never left half-overwritten.
 
@@ -352,8 +353,8 @@ def write_occupation_hdf5(path, results: Iterable, *, calibration=None, metadata
     path : str or PathLike
         Output file (``.h5``).
     results : iterable of FrameResult
-        Per-frame results; a generator is appended frame by frame into resizable chunked
-        datasets, so memory stays flat. All frames must share the site index set of the
+        Per-frame results; a generator is appended in slabs of a few frames (about 1 MiB per
+        dataset, also the HDF5 chunk size) into resizable datasets, so memory stays flat. All frames must share the site index set of the
         first frame (a fixed calibration), otherwise ReconstructionError.
     calibration : Calibration, optional
         Stored as root attributes (``geometry``, ``psf``, ``camera``, ``threshold``,
@@ -387,33 +388,28 @@ def write_occupation_hdf5(path, results: Iterable, *, calibration=None, metadata
     with atomic_path(path, protect=protect) as tmp:
         with h5py.File(tmp, "w") as h5:
             ds = {}
+            buf = None
             row_min = col_min = n_r = n_c = 0
             for position, result in enumerate(results):
                 f = _read_result(result, position)
-                if n == 0:
+                if n == 0 and buf is None:
                     if f.rows.size:
                         row_min, col_min = int(f.rows.min()), int(f.cols.min())
                         n_r, n_c = int(f.rows.max()) - row_min + 1, int(f.cols.max()) - col_min + 1
-                    ds = _create_datasets(h5, n_r, n_c, compression)
+                    block = _block_frames(n_r, n_c)
+                    ds = _create_datasets(h5, n_r, n_c, compression, block)
+                    buf = _Buffer(block, n_r, n_c)
                 ii, jj = f.rows - row_min, f.cols - col_min
                 if f.rows.size and (ii.min() < 0 or jj.min() < 0 or ii.max() >= n_r or jj.max() >= n_c):
                     raise ReconstructionError(
                         f"frame {f.index} has sites outside the index range of the first frame "
                         f"(rows {row_min}..{row_min + n_r - 1}, cols {col_min}..{col_min + n_c - 1}); "
                         "frames exported together must share one calibration's site set")
-                for d in ds.values():
-                    d.resize(n + 1, axis=0)
-                for name, values in (("occupation", f.occupied), ("amplitude", f.amplitude),
-                                     ("p_occupied", f.p_occupied), ("flags", f.flags), ("x", f.x), ("y", f.y)):
-                    dtype, fill, _ = _MATRIX_DATASETS[name]
-                    m = np.full((n_r, n_c), fill, dtype=dtype)
-                    m[ii, jj] = values
-                    ds[name][n] = m
-                ds["frame_index"][n] = f.index
-                ds["offset"][n] = f.offset
-                ds["threshold"][n] = f.threshold
-                ds["warnings"][n] = "; ".join(f.warnings)
-                n += 1
+                buf.add(f, ii, jj)
+                if buf.full:
+                    n = buf.flush(ds, n)
+            if buf is not None:
+                n = buf.flush(ds, n)
             if n == 0:
                 raise ReconstructionError(f"nothing to export to {path.name}: there are no frame results")
             attrs = h5.attrs
@@ -435,11 +431,60 @@ def write_occupation_hdf5(path, results: Iterable, *, calibration=None, metadata
     return n
 
 
-def _create_datasets(h5, n_r: int, n_c: int, compression):
+def _block_frames(n_r: int, n_c: int) -> int:
+    """Frames buffered (and stored per chunk): about 1 MiB of float64 per dataset."""
+    return int(np.clip(2**17 // max(n_r * n_c, 1), 1, 256))
+
+
+class _Buffer:
+    """A few frames held in memory so the HDF5 file is written in slabs (flat memory)."""
+
+    def __init__(self, block: int, n_r: int, n_c: int):
+        self.block = block
+        self.m = {name: np.full((block, n_r, n_c), fill, dtype=dtype)
+                  for name, (dtype, fill, _) in _MATRIX_DATASETS.items()}
+        self.index = np.zeros(block, np.int64)
+        self.offset = np.zeros((block, 2))
+        self.threshold = np.zeros(block)
+        self.warnings: list[str] = []
+        self.k = 0
+
+    @property
+    def full(self) -> bool:
+        return self.k == self.block
+
+    def add(self, f: _Frame, ii, jj) -> None:
+        k = self.k
+        for name, values in (("occupation", f.occupied), ("amplitude", f.amplitude), ("p_occupied", f.p_occupied),
+                             ("flags", f.flags), ("x", f.x), ("y", f.y)):
+            self.m[name][k] = _MATRIX_DATASETS[name][1]
+            self.m[name][k][ii, jj] = values
+        self.index[k], self.offset[k], self.threshold[k] = f.index, f.offset, f.threshold
+        self.warnings.append("; ".join(f.warnings))
+        self.k += 1
+
+    def flush(self, ds: dict, n: int) -> int:
+        k = self.k
+        if k == 0:
+            return n
+        for d in ds.values():
+            d.resize(n + k, axis=0)
+        for name, m in self.m.items():
+            ds[name][n:n + k] = m[:k]
+        ds["frame_index"][n:n + k] = self.index[:k]
+        ds["offset"][n:n + k] = self.offset[:k]
+        ds["threshold"][n:n + k] = self.threshold[:k]
+        ds["warnings"][n:n + k] = self.warnings
+        self.warnings = []
+        self.k = 0
+        return n + k
+
+
+def _create_datasets(h5, n_r: int, n_c: int, compression, block: int = 1):
     import h5py
 
     kw = {"compression": compression, "shuffle": True} if compression and n_r * n_c else {}
-    chunks = (1, n_r, n_c) if n_r * n_c else None
+    chunks = (block, n_r, n_c) if n_r * n_c else None
     ds = {}
     for name, (dtype, fill, description) in _MATRIX_DATASETS.items():
         d = h5.create_dataset(name, shape=(0, n_r, n_c), maxshape=(None, n_r, n_c), dtype=dtype,

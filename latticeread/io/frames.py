@@ -305,14 +305,16 @@ class _TiffReader:
             self.dtype = np.dtype(series.dtype)
             self._series = series
             n = int(np.prod(shape[:-2])) if len(shape) > 2 else 1
-            spages = [p for p in series.pages if p is not None]
-            self._pages = spages if len(spages) == n and len(shape) <= 3 else None
+            self._pages = None
             if series.dataoffset is not None and len(shape) <= 3:
                 try:
                     mm = tifffile.memmap(self.path, series=0, mode="r")
                     self.memmap = mm.reshape((n, *shape[-2:]))
                 except (ValueError, OSError):
                     self.memmap = None
+            if self.memmap is None:
+                spages = [p for p in series.pages if p is not None]
+                self._pages = spages if len(spages) == n and len(shape) <= 3 else None
 
     def _check_page(self, page, k: int, size: int) -> None:
         name = self.path.name
