@@ -311,3 +311,64 @@ def test_output_permission_denied_or_disk_full(tmp_path, monkeypatch, writer, co
     with pytest.raises(ExportError, match=text):
         WRITERS[writer](tmp_path)
     assert list(tmp_path.iterdir()) == []
+
+
+# --- property test: the numerical core never fails with a foreign exception ------------------
+
+from hypothesis import HealthCheck, given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+_KINDS = ["noise", "constant", "zero", "nan", "inf", "one_atom", "huge", "negative", "uint16"]
+
+
+def _random_frame(kind, shape, seed):
+    rng = np.random.default_rng(seed)
+    img = rng.normal(100.0, 10.0, shape)
+    if kind == "constant":
+        img[:] = rng.uniform(-5, 70000)
+    elif kind == "zero":
+        img[:] = 0
+    elif kind == "nan":
+        img[rng.random(shape) < 0.1] = np.nan
+    elif kind == "inf":
+        img[rng.random(shape) < 0.05] = np.inf
+    elif kind == "one_atom":
+        img[rng.integers(0, shape[0]), rng.integers(0, shape[1])] += 5000
+    elif kind == "huge":
+        img *= 1e30
+    elif kind == "negative":
+        img -= 1e4
+    elif kind == "uint16":
+        img = img.astype(np.uint16)
+    return img
+
+
+@settings(max_examples=30, deadline=None)
+@given(kind=st.sampled_from(_KINDS), seed=st.integers(0, 2**16),
+       shape=st.one_of(st.just((32, 32)), st.tuples(st.integers(1, 40), st.integers(1, 40))))
+def test_lattice_and_reconstruction_return_result_or_own_error(kind, shape, seed):
+    """Random and degenerate frames (no atoms, no lattice, NaN, inf, wrong size):
+    estimate_lattice and Reconstructor give a result or a LatticeReadError, nothing else."""
+    from latticeread.core.camera import CameraModel
+    from latticeread.core.geometry import LatticeGeometry
+    from latticeread.core.lattice import estimate_lattice
+    from latticeread.core.pipeline import FrameResult, Reconstructor
+    from latticeread.errors import LatticeReadError
+
+    cal = Calibration(geometry=LatticeGeometry(a1=(4.1, 0.2), a2=(-0.2, 4.1), offset=(15.5, 16.2)),
+                      psf=gaussian_psf(fwhm=2.6), frame_shape=(32, 32), threshold=300.0,
+                      camera=CameraModel(kind="emccd", em_gain=100, counts_per_electron=0.5, bias=100, read_noise=10))
+    image = _random_frame(kind, shape, seed)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        try:
+            geometry = estimate_lattice(image)
+            assert isinstance(geometry, LatticeGeometry)
+        except LatticeReadError:
+            pass
+        try:
+            result = Reconstructor(cal)(image)
+            assert isinstance(result, FrameResult)
+            assert result.occupied.shape == result.amplitudes.shape == (len(result.sites),)
+        except LatticeReadError:
+            pass
