@@ -410,3 +410,10 @@ def test_export_of_real_pipeline_results(tmp_path):
         assert rows.min() >= 0 and cols.min() >= 0
         agree = np.mean(f.occupation[k][rows, cols] == truth.final_occupation[k])
         assert agree > 0.9
+
+
+def test_damaged_sidecar(tmp_path):
+    write_sites_csv(tmp_path / "sites.csv", make_results(1))
+    sidecar_path(tmp_path / "sites.csv").write_text("{truncated")
+    with pytest.raises(FrameFileError, match=r"sites\.csv\.json \(settings of sites\.csv\) is not valid JSON"):
+        read_sites_metadata(tmp_path / "sites.csv")

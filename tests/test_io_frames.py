@@ -215,3 +215,32 @@ def test_loaders_return_input_or_own_error(tmp_path_factory, dtype, shape, fmt, 
         expect = expect.reshape(got.shape)
     assert got.shape == expect.shape
     np.testing.assert_array_equal(got, expect)
+
+
+def test_blocks_appended_as_separate_series(tmp_path):
+    """Acquisition code that appends blocks of frames creates several TIFF series."""
+    data = stack("u2", n=15)
+    for block in (data[:5], data[5:12], data[12:13], data[13:]):
+        tifffile.imwrite(tmp_path / "run.tif", block, append=True, photometric="minisblack")
+    with load_frames(tmp_path / "run.tif") as frames:
+        assert frames.shape == (15, 12, 10)
+        np.testing.assert_array_equal(frames[:], data)
+
+
+def test_tiff_pages_of_different_sizes(tmp_path):
+    tifffile.imwrite(tmp_path / "run.tif", stack("u2", n=1)[0])
+    tifffile.imwrite(tmp_path / "run.tif", stack("u2", n=1, h=11)[0], append=True)
+    with pytest.raises(FrameFileError, match="holds images of different sizes or types: series 0 is 12x10 uint16, "
+                                             "series 1 is 11x10 uint16"):
+        load_frames(tmp_path / "run.tif")
+
+
+def test_frame_shape_must_match_calibration(tmp_path):
+    from latticeread.errors import CalibrationError
+
+    np.save(tmp_path / "run_0042.npy", stack("u2"))
+    with pytest.raises(CalibrationError, match="the frames of run_0042.npy are 12x10 pixels but the calibration "
+                                               "was made for 12x12"):
+        load_frames(tmp_path / "run_0042.npy", frame_shape=(12, 12))
+    with load_frames(tmp_path / "run_0042.npy", roi=(0, 12, 0, 10), frame_shape=(12, 10)) as frames:
+        assert len(frames) == 5

@@ -328,7 +328,10 @@ def read_sites_metadata(path) -> dict:
     side = sidecar_path(path)
     if not side.exists():
         return {}
-    return from_jsonable(json.loads(side.read_text(encoding="utf-8")))
+    try:
+        return from_jsonable(json.loads(side.read_text(encoding="utf-8")))
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        raise FrameFileError(f"{side.name} (settings of {Path(path).name}) is not valid JSON: {exc}") from exc
 
 
 # --- HDF5 -----------------------------------------------------------------------------------

@@ -27,7 +27,7 @@ from pathlib import Path
 
 import numpy as np
 
-from latticeread.errors import FrameError, FrameFileError, LatticeReadWarning
+from latticeread.errors import CalibrationError, FrameError, FrameFileError, LatticeReadWarning
 
 __all__ = [
     "FrameStack",
@@ -290,12 +290,21 @@ class _TiffReader:
         if cap.messages:
             raise FrameFileError(f"{name} is damaged (truncated or corrupt TIFF): {cap.messages[0]}")
         series = all_series[0]
-        if (len(all_series) > 1 and all(len(s.shape) == 2 for s in all_series)
-                and all(s.shape == series.shape and s.dtype == series.dtype for s in all_series)):
-            # pages appended one by one: one series per page, all alike
-            self.shape = (len(all_series), *series.shape)
+        if len(all_series) > 1:
+            # frames appended one by one or in blocks: several series, which must all agree
+            for k, other in enumerate(all_series[1:], start=1):
+                if tuple(other.shape[-2:]) != tuple(series.shape[-2:]) or other.dtype != series.dtype:
+                    raise FrameFileError(
+                        f"{name} holds images of different sizes or types: series 0 is "
+                        f"{_shape_text(series.shape[-2:])} {np.dtype(series.dtype)}, series {k} is "
+                        f"{_shape_text(other.shape[-2:])} {np.dtype(other.dtype)}")
+            n_frames = sum(int(np.prod(s.shape[:-2])) for s in all_series)
+            if n_frames != len(pages) or any(getattr(p, "samplesperpixel", 1) != 1 for p in pages):
+                raise FrameFileError(f"{name} has a page layout latticeread cannot read as a stack of frames "
+                                     f"({len(all_series)} series, {len(pages)} pages, {n_frames} images)")
+            self.shape = (n_frames, *series.shape[-2:])
             self.dtype = np.dtype(series.dtype)
-            self._pages = [s.pages[0] for s in all_series]
+            self._pages = pages
             self._series = None
         else:
             shape = tuple(series.shape)
@@ -616,7 +625,7 @@ def _check_roi(roi, frame_shape, where):
 
 
 def load_frames(path, *, dataset: str | None = None, roi=None, saturation: float | None = None,
-                nonfinite: str = "raise", validate: bool = True) -> FrameStack:
+                nonfinite: str = "raise", validate: bool = True, frame_shape=None) -> FrameStack:
     """Open a file of camera frames, read-only and lazily.
 
     Parameters
@@ -637,6 +646,9 @@ def load_frames(path, *, dataset: str | None = None, roi=None, saturation: float
         NaN/inf pixels raise FrameError (default) or are kept for the pipeline to flag.
     validate : bool
         Check every frame handed out (NaN/inf, saturation, constant frames).
+    frame_shape : (int, int), optional
+        Expected ``(height, width)`` in pixels after the region of interest, usually
+        ``calibration.frame_shape``; a mismatch raises CalibrationError.
 
     Returns
     -------
@@ -648,6 +660,8 @@ def load_frames(path, *, dataset: str | None = None, roi=None, saturation: float
         Missing, empty, damaged or unrecognised file; dataset missing or ambiguous.
     FrameError
         Array of the wrong dimensionality (1-D, 4-D...) or type.
+    CalibrationError
+        The frames do not have ``frame_shape``.
     """
     path = Path(os.fspath(path))
     if not path.exists():
@@ -683,8 +697,14 @@ def load_frames(path, *, dataset: str | None = None, roi=None, saturation: float
         reader = _ArrayReader(path, fmt, dataset)
         dataset = reader.dataset
     try:
-        return FrameStack(reader, path, dataset=dataset, roi=roi, saturation=saturation, nonfinite=nonfinite,
-                          validate=validate)
+        stack = FrameStack(reader, path, dataset=dataset, roi=roi, saturation=saturation, nonfinite=nonfinite,
+                           validate=validate)
+        if frame_shape is not None and tuple(stack.frame_shape) != tuple(int(v) for v in frame_shape):
+            h, w = stack.frame_shape
+            raise CalibrationError(
+                f"the frames of {stack._where} are {h}x{w} pixels but the calibration was made for "
+                f"{int(frame_shape[0])}x{int(frame_shape[1])}; recalibrate or crop the frames (region of interest)")
+        return stack
     except BaseException:
         reader.close()
         raise
