@@ -417,3 +417,8 @@ def test_damaged_sidecar(tmp_path):
     sidecar_path(tmp_path / "sites.csv").write_text("{truncated")
     with pytest.raises(FrameFileError, match=r"sites\.csv\.json \(settings of sites\.csv\) is not valid JSON"):
         read_sites_metadata(tmp_path / "sites.csv")
+
+
+def test_single_input_name_is_not_split_into_letters(tmp_path):
+    write_occupation_hdf5(tmp_path / "run.h5", make_results(1), metadata={"inputs": tmp_path / "run_0042.tif"})
+    assert read_occupation_hdf5(tmp_path / "run.h5").attrs["inputs"] == [str(tmp_path / "run_0042.tif")]

@@ -6,7 +6,7 @@ either complete or absent, and an existing file is never left half-overwritten.
 """
 
 from latticeread.io.atomic import atomic_path, atomic_write
-from latticeread.io.calibration_file import load_calibration, save_calibration
+from latticeread.io.calibration_file import load_calibration, load_camera, save_calibration, save_camera
 from latticeread.io.frames import FrameReport, FrameStack, check_frame, load_frames, load_mask
 from latticeread.io.export import (
     OccupationFile,
@@ -27,6 +27,8 @@ __all__ = [
     "atomic_path",
     "save_calibration",
     "load_calibration",
+    "save_camera",
+    "load_camera",
     "write_sites_csv",
     "read_sites_csv",
     "read_sites_metadata",

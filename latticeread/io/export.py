@@ -194,12 +194,18 @@ def _settings(calibration, metadata: Mapping | None, *, fmt: str) -> dict:
         "program_version": __version__,
         "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
         "units": UNITS,
-        "inputs": [os.fspath(p) for p in meta.pop("inputs", [])],
+        "inputs": _input_names(meta.pop("inputs", [])),
         "calibration": None if calibration is None else calibration.to_dict(),
         "fidelity": meta.pop("fidelity", None),
         "metadata": meta,
     }
     return to_jsonable(out)
+
+
+def _input_names(inputs) -> list[str]:
+    if isinstance(inputs, (str, os.PathLike)):
+        inputs = [inputs]
+    return [os.fspath(p) for p in inputs]
 
 
 def sidecar_path(path) -> Path:

@@ -583,7 +583,7 @@ class FrameStack:
         for text in report.problems:
             if "non-finite" in text:
                 continue
-            warnings.warn(text, LatticeReadWarning, stacklevel=4)
+            warnings.warn(text, LatticeReadWarning, stacklevel=3)
 
     def validate_frame(self, i) -> FrameReport:
         """Check frame ``i`` without raising or warning; see :class:`FrameReport`."""
