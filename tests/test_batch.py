@@ -51,8 +51,10 @@ def make_dataset(folder: Path, *, n_files: int = 3, frames_per_file: int = 2, se
         path = folder / f"{prefix}_{k}.tif"
         tifffile.imwrite(path, frames[k * frames_per_file:(k + 1) * frames_per_file], photometric="minisblack")
         paths.append(path)
+    rows, cols = truth.sites.rows, truth.sites.cols
+    bounds = [int(rows.min()), int(rows.max()), int(cols.min()), int(cols.max())]
     cal = Calibration(geometry=kw["geometry"], psf=kw["psf"], camera=kw["camera"], frame_shape=SHAPE,
-                      threshold=THRESHOLD)
+                      threshold=THRESHOLD, notes={"index_bounds": bounds})
     return cal, paths, truth
 
 
@@ -151,3 +153,167 @@ def test_empty_folder_on_the_command_line(tmp_path, capsys):
     assert code == 3
     assert "holds no frame files" in capsys.readouterr().err
     assert not (tmp_path / "r.h5").exists()
+
+
+# --- the run (needs the pipeline) -------------------------------------------------------------
+
+def assert_runs_identical(a, b):
+    """Every stored array equal byte for byte (only the wall-clock write times may differ)."""
+    assert len(a) == len(b)
+    for name in ("source", "file_hash", "frame_index", "occupation", "amplitude", "p_occupied", "x", "y",
+                 "flags", "offset", "a1", "a2", "threshold", "n_sites", "n_occupied", "filling",
+                 "peak_to_background", "lattice_residual"):
+        va, vb = np.asarray(getattr(a, name)), np.asarray(getattr(b, name))
+        assert va.dtype == vb.dtype and va.shape == vb.shape, name
+        if va.dtype.kind in "fiub":
+            assert va.tobytes() == vb.tobytes(), name
+        else:
+            assert va.tolist() == vb.tolist(), name
+    assert a.warnings == b.warnings
+    for name in ("source", "file_hash", "frame_index", "error", "reason", "resolved"):
+        assert np.asarray(getattr(a.failures, name)).tolist() == np.asarray(getattr(b.failures, name)).tolist()
+
+
+def test_run_stores_what_the_pipeline_gives_and_records_failures(tmp_path):
+    from latticeread.core.pipeline import Reconstructor
+    from latticeread.runs.batch import run_batch
+
+    cal, paths, truth = make_dataset(tmp_path / "data", n_files=2, frames_per_file=2, seed=1)
+    truncated_tiff(tmp_path / "data" / "shot_0a.tif")
+    np.save(tmp_path / "data" / "small.npy",  # wrong frame size
+            np.random.default_rng(0).integers(200, 300, (64, 64)).astype(np.uint16))
+    summary = run_batch([tmp_path / "data"], calibration=cal, out=tmp_path / "run.h5", workers=0,
+                        progress=False)
+    assert (summary.n_files, summary.n_new, summary.n_failed) == (4, 4, 2)
+    run = read_run(tmp_path / "run.h5")
+    # input order: shot_0 (2 frames), shot_0a (failed), shot_1 (2 frames), small (failed)
+    assert [Path(s).name for s in run.source] == ["shot_0.tif", "shot_0.tif", "shot_1.tif", "shot_1.tif"]
+    assert run.frame_index.tolist() == [0, 1, 0, 1]
+    assert run.file_hash[0] == hash_file(paths[0])
+    reasons = dict(zip([Path(s).name for s in run.failures.source], run.failures.reason))
+    assert "truncated" in reasons["shot_0a.tif"]
+    assert "64x64" in reasons["small.npy"] and "128x128" in reasons["small.npy"]
+    assert run.failures.frame_index.tolist() == [-1, 0]  # whole file unreadable / frame 0 rejected
+    # Reference 1: the Reconstructor called directly gives the same numbers.
+    rec = Reconstructor(cal)
+    frames = np.concatenate([tifffile.imread(p) for p in paths])
+    for k, image in enumerate(frames):
+        direct = rec(image, frame_index=k % 2)
+        sites = direct.sites
+        np.testing.assert_array_equal(sites.from_matrix(run.occupation[k]), direct.occupied)
+        np.testing.assert_allclose(sites.from_matrix(run.amplitude[k]), direct.amplitudes, rtol=1e-9, atol=1e-9)
+        np.testing.assert_allclose(run.offset[k], direct.geometry.offset, rtol=0, atol=1e-9)
+        assert run.threshold[k] == pytest.approx(direct.threshold)
+    # Reference 2: the forward model's truth (initial occupation of each frame).
+    truth_occ = truth.occupation_matrices(final=False)
+    assert run.occupation.shape == truth_occ.shape
+    agree = np.mean(run.occupation == truth_occ)
+    assert agree > 0.97, f"only {agree:.3f} of sites agree with the simulated truth"
+    assert summary.mean_filling == pytest.approx(np.mean(run.filling))
+    assert 0.3 < summary.mean_filling < 0.6  # simulated filling 0.45
+    assert run.calibration["notes"]["index_bounds"] == cal.notes["index_bounds"]
+
+
+def test_resume_adds_only_new_shots_and_does_not_retry_failures(tmp_path):
+    from latticeread.runs.batch import run_batch
+
+    cal, paths, _ = make_dataset(tmp_path / "data", n_files=2, frames_per_file=1, seed=2)
+    truncated_tiff(tmp_path / "data" / "bad.tif")
+    out = tmp_path / "run.h5"
+    first = run_batch([tmp_path / "data"], calibration=cal, out=out, workers=0, progress=False)
+    assert (first.n_new, first.n_failed) == (2, 1)
+    make_dataset(tmp_path / "data", n_files=1, frames_per_file=1, seed=3, prefix="later")
+    second = run_batch([tmp_path / "data"], calibration=cal, out=out, workers=0, progress=False)
+    assert (second.n_new, second.n_failed, second.n_skipped_done, second.n_skipped_failed) == (1, 0, 2, 1)
+    third = run_batch([tmp_path / "data"], calibration=cal, out=out, workers=0, progress=False,
+                      retry_failed=True)
+    assert (third.n_new, third.n_failed, third.n_skipped_done) == (0, 1, 3)
+    run = read_run(out)
+    assert len(run) == 3 and len(set(run.keys)) == 3
+    assert len(run.failures) == 1  # the retried failure updated its row, no second row
+    # The file gets completed (as a camera would): a new version, read and its old failure resolved.
+    tifffile.imwrite(tmp_path / "data" / "bad.tif", tifffile.imread(paths[0]), photometric="minisblack")
+    fourth = run_batch([tmp_path / "data"], calibration=cal, out=out, workers=0, progress=False)
+    assert (fourth.n_new, fourth.n_failures_total) == (1, 0)
+
+
+def test_pool_equals_single_process_bit_for_bit(tmp_path):
+    from latticeread.runs.batch import run_batch
+
+    cal, _, _ = make_dataset(tmp_path / "data", n_files=3, frames_per_file=2, seed=4)
+    run_batch([tmp_path / "data"], calibration=cal, out=tmp_path / "a.h5", workers=0, progress=False)
+    summary = run_batch([tmp_path / "data"], calibration=cal, out=tmp_path / "b.h5", workers=2, progress=False,
+                        window=3)
+    assert summary.workers == "2 worker processes" and summary.n_new == 6
+    assert_runs_identical(read_run(tmp_path / "a.h5"), read_run(tmp_path / "b.h5"))
+
+
+def _n_shots_now(path: Path) -> int:
+    try:
+        with h5py.File(path, "r", locking=False) as f:
+            return int(f.attrs["n_shots"])
+    except (OSError, KeyError):  # not created yet, or caught in the middle of a write
+        return -1
+
+
+def test_kill_in_the_middle_then_resume_gives_every_shot_once(tmp_path):
+    n_frames = 40
+    cal, paths, _ = make_dataset(tmp_path / "data", n_files=1, frames_per_file=4, seed=5)
+    # 40 frames from 4 simulated ones (simulating is the slow part); each index is its own shot.
+    tifffile.imwrite(paths[0], np.tile(tifffile.imread(paths[0]), (n_frames // 4, 1, 1)), photometric="minisblack")
+    save_calibration(tmp_path / "cal.json", cal)
+    out = tmp_path / "run.h5"
+    cmd = [sys.executable, "-m", "latticeread", "batch", str(tmp_path / "data"), "-c", str(tmp_path / "cal.json"),
+           "-o", str(out), "--workers", "0", "--no-progress"]
+    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, start_new_session=True)
+    try:
+        deadline = time.monotonic() + 120
+        while _n_shots_now(out) < 3 and proc.poll() is None and time.monotonic() < deadline:
+            time.sleep(0.005)
+    finally:
+        if proc.poll() is None:
+            os.killpg(proc.pid, signal.SIGKILL)  # the process group of the run we started
+        proc.wait()
+        err = proc.stderr.read().decode()
+        proc.stderr.close()
+    assert proc.returncode == -signal.SIGKILL, f"the run ended before it was killed: {err}"
+    killed = read_run(out)  # readable after SIGKILL
+    assert 3 <= len(killed) < n_frames
+    assert killed.frame_index.tolist() == list(range(len(killed)))
+    from latticeread.runs.batch import run_batch
+
+    resumed = run_batch([tmp_path / "data"], calibration=tmp_path / "cal.json", out=out, workers=0,
+                        progress=False)
+    assert resumed.n_skipped_done == len(killed) and resumed.n_new == n_frames - len(killed)
+    run = read_run(out)
+    assert sorted(run.frame_index.tolist()) == list(range(n_frames))  # every shot exactly once
+    # and the same numbers as a run that was never interrupted
+    run_batch([tmp_path / "data"], calibration=tmp_path / "cal.json", out=tmp_path / "clean.h5", workers=0,
+              progress=False)
+    assert_runs_identical(run, read_run(tmp_path / "clean.h5"))
+
+
+def test_batch_command_line(tmp_path, capsys):
+    import json
+
+    from latticeread.cli import main
+
+    cal, _, _ = make_dataset(tmp_path / "data", n_files=1, frames_per_file=2, seed=6)
+    save_calibration(tmp_path / "cal.json", cal)
+    args = ["batch", str(tmp_path / "data"), "-c", str(tmp_path / "cal.json"), "-o", str(tmp_path / "r.h5"),
+            "--workers", "0", "--no-progress"]
+    assert main(args) == 0
+    assert "2 shots written, 0 failed" in capsys.readouterr().out
+    assert main([*args, "--json"]) == 0
+    summary = json.loads(capsys.readouterr().out)
+    assert summary["n_new"] == 0 and summary["n_skipped_done"] == 2 and summary["n_shots_total"] == 2
+    # every shot of a run failing is exit code 3 (input data problem)
+    (tmp_path / "bad").mkdir()
+    truncated_tiff(tmp_path / "bad" / "b.tif")
+    assert main(["batch", str(tmp_path / "bad"), "-c", str(tmp_path / "cal.json"), "-o", str(tmp_path / "r2.h5"),
+                 "--no-progress"]) == 3
+    assert "truncated" in capsys.readouterr().out
+    with pytest.raises(SystemExit) as exit_info:  # usage error: argparse exits with 2
+        main([*args, "--workers", "-1"])
+    assert exit_info.value.code == 2
+    assert "must be 0 (this process) or a positive number" in capsys.readouterr().err

@@ -81,8 +81,8 @@ def test_resume_keeps_shots_and_continues(tmp_path):
     with RunWriter(path, calibration_json=CAL) as w:
         w.append(_record(0))
         w.append(_record(1))
-    # Same calibration with different provenance notes still resumes.
-    cal2 = json.dumps({**json.loads(CAL), "notes": {"made": "tomorrow"}})
+    # The same calibration written with other spacing, key order and program version resumes.
+    cal2 = json.dumps({**dict(reversed(list(json.loads(CAL).items()))), "program_version": "9.9"}, indent=3)
     with RunWriter(path, calibration_json=cal2) as w:
         assert w.done == {_record(0).key, _record(1).key}
         assert not w.append(_record(1))
@@ -128,12 +128,23 @@ def test_failures_are_recorded_once_and_resolved(tmp_path):
     assert list(f.resolved) == [False, True]
 
 
+def test_new_version_of_a_failed_file_resolves_its_failure(tmp_path):
+    path = tmp_path / "run.h5"
+    with RunWriter(path, calibration_json=CAL) as w:
+        w.record_failure(ShotKey("/data/shot.tif", "00" * 16, -1), error="FrameFileError", reason="truncated")
+        w.record_failure(ShotKey("/data/other.tif", "00" * 16, -1), error="FrameFileError", reason="truncated")
+        w.append(_record(0, source="/data/shot.tif", file_hash="11" * 16))
+        assert w.failed == {ShotKey("/data/other.tif", "00" * 16, -1)}
+    assert list(read_run(path).failures.resolved) == [True, False]
+
+
 def test_resume_with_other_calibration_is_refused(tmp_path):
     path = tmp_path / "run.h5"
     RunWriter(path, calibration_json=CAL).close()
-    other = json.dumps({**json.loads(CAL), "frame_shape": [128, 128]})
-    with pytest.raises(ExportError, match="different calibration"):
-        RunWriter(path, calibration_json=other)
+    for other in ({**json.loads(CAL), "frame_shape": [128, 128]},
+                  {**json.loads(CAL), "notes": {"index_bounds": [0, 9, 0, 9]}}):  # notes steer the pipeline
+        with pytest.raises(ExportError, match="different calibration"):
+            RunWriter(path, calibration_json=json.dumps(other))
 
 
 def test_existing_non_run_file_is_left_alone(tmp_path):

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import io
 import os
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -118,3 +119,102 @@ def test_watching_a_missing_folder(tmp_path):
 def test_validate_frame_file_counts_frames(tmp_path):
     (tmp_path / "s.tif").write_bytes(_tiff_bytes(4))
     assert validate_frame_file(tmp_path / "s.tif") == 4
+
+
+# --- the watch loop with the real pipeline ------------------------------------------------------
+
+def test_watch_reconstructs_new_files_as_they_arrive(tmp_path):
+    from latticeread.io.run_file import read_run
+    from latticeread.runs.watch import watch_folder
+
+    from test_batch import make_dataset
+
+    src = tmp_path / "made"
+    cal, paths, _ = make_dataset(src, n_files=3, frames_per_file=1, seed=11)
+    live = tmp_path / "camera"
+    live.mkdir()
+    (live / "shot_0.tif").write_bytes(paths[0].read_bytes())  # there before the watch starts
+    arrivals = [paths[1].read_bytes(), paths[2].read_bytes()]
+    state = {"polls": 0}
+
+    def camera(_seconds):  # the "camera" writes between polls: half a file, then the rest
+        state["polls"] += 1
+        if state["polls"] == 2:
+            data = arrivals.pop(0)
+            (live / "shot_1.tif").write_bytes(data[: len(data) // 2])
+            state["rest"] = data
+        elif state["polls"] == 4:
+            (live / "shot_1.tif").write_bytes(state["rest"])
+        elif state["polls"] == 6:
+            (live / "shot_2.tif").write_bytes(arrivals.pop(0))
+        elif state["polls"] > 60:
+            raise AssertionError("the watch did not stop")
+
+    lines = []
+    summary = watch_folder(live, calibration=cal, out=live / "live.h5", max_files=3, on_shot=lambda o, s:
+                           lines.append(s.describe(o)), sleep=camera)
+    run = read_run(live / "live.h5")
+    assert [Path(s).name for s in run.source] == ["shot_0.tif", "shot_1.tif", "shot_2.tif"]
+    assert len(run.failures) == 0  # the half-written file was waited for, not failed
+    assert summary.n_new == 3 and len(lines) == 3
+    assert "mean" in lines[-1] and "over 3 shots" in lines[-1]
+    # the watch gives the same bits as a batch run of the same files
+    from latticeread.runs.batch import run_batch
+
+    from test_batch import assert_runs_identical
+
+    run_batch([live / f"shot_{k}.tif" for k in range(3)], calibration=cal, out=tmp_path / "batch.h5", workers=0,
+              progress=False)
+    assert_runs_identical(run, read_run(tmp_path / "batch.h5"))
+
+
+def test_watch_records_broken_files_and_stops_cleanly_on_ctrl_c(tmp_path):
+    from latticeread.io.run_file import read_run
+    from latticeread.runs.watch import watch_folder
+
+    from test_batch import make_dataset
+
+    cal, _, _ = make_dataset(tmp_path / "made", n_files=1, frames_per_file=1, seed=12)
+    live = tmp_path / "camera"
+    live.mkdir()
+    (live / "junk.tif").write_bytes(b"II*\x00" + b"\x00" * 40)  # unchanged and never readable
+    polls = []
+
+    def ctrl_c_after_a_while(_seconds):
+        polls.append(1)
+        if len(polls) == 15:
+            raise KeyboardInterrupt
+
+    summary = watch_folder(live, calibration=cal, out=tmp_path / "live.h5", sleep=ctrl_c_after_a_while)
+    assert any("interrupted" in w for w in summary.warnings)
+    run = read_run(tmp_path / "live.h5")
+    assert len(run) == 0 and len(run.failures) == 1
+    assert run.failures.frame_index.tolist() == [-1]
+
+
+def test_watch_command_line(tmp_path, capsys):
+    from latticeread.cli import main
+    from latticeread.io.calibration_file import save_calibration
+
+    from test_batch import make_dataset
+
+    cal, _, _ = make_dataset(tmp_path, n_files=2, frames_per_file=1, seed=13)
+    save_calibration(tmp_path / "cal.json", cal)
+    code = main(["watch", str(tmp_path), "-c", str(tmp_path / "cal.json"), "-o", str(tmp_path / "live.h5"),
+                 "--max-files", "2", "--interval", "0.01"])
+    out = capsys.readouterr().out
+    assert code == 0
+    assert "shot_0.tif[0]" in out and "shot_1.tif[0]" in out and "2 shots" in out
+    code = main(["watch", str(tmp_path), "-c", str(tmp_path / "cal.json"), "-o", str(tmp_path / "live.h5"),
+                 "--max-files", "2", "--interval", "0.01", "--quiet"])
+    out = capsys.readouterr().out
+    assert code == 0 and "0 shots written" in out and "2 already done" in out  # resumed, nothing twice
+
+
+def test_watch_rejects_a_non_positive_interval(tmp_path, capsys):
+    from latticeread.cli import main
+
+    with pytest.raises(SystemExit) as exit_info:
+        main(["watch", str(tmp_path), "-c", "cal.json", "-o", "live.h5", "--interval", "0"])
+    assert exit_info.value.code == 2
+    assert "must be a positive number" in capsys.readouterr().err

@@ -8,6 +8,16 @@ import sys
 from pathlib import Path
 
 
+def _workers(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        value = -1
+    if value < 0:
+        raise argparse.ArgumentTypeError(f"must be 0 (this process) or a positive number of processes, got {text!r}")
+    return value
+
+
 def add_parser(parser: argparse.ArgumentParser) -> None:
     parser.epilog = (
         "The run file is written shot by shot; an interrupted run keeps every shot written so far, and "
@@ -21,7 +31,7 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
                         help="calibration file (from 'latticeread calibrate')")
     parser.add_argument("--out", "-o", required=True, type=Path, metavar="RUN.h5",
                         help="run file to create, or to continue when it exists")
-    parser.add_argument("--workers", "-j", type=int, default=None, metavar="N",
+    parser.add_argument("--workers", "-j", type=_workers, default=None, metavar="N",
                         help="worker processes on this machine (default: all CPUs; 0 = this process only)")
     parser.add_argument("--scheduler", default=None, metavar="ADDRESS",
                         help="run on a Dask cluster: a scheduler address (tcp://host:8786) or 'local' to start "
@@ -35,10 +45,6 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
 def run(args: argparse.Namespace) -> int:
     from latticeread.runs.batch import run_batch, summary_dict
 
-    if args.workers is not None and args.workers < 0:
-        from latticeread.errors import LatticeReadError
-
-        raise LatticeReadError(f"--workers must be 0 (this process) or a positive number, got {args.workers}")
     try:
         summary = run_batch(args.inputs, calibration=args.calibration, out=args.out, workers=args.workers,
                             scheduler=args.scheduler, retry_failed=args.retry_failed,

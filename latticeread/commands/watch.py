@@ -7,6 +7,18 @@ import sys
 from pathlib import Path
 
 
+def _positive(kind):
+    def check(text: str):
+        try:
+            value = kind(text)
+        except ValueError:
+            value = 0
+        if not value > 0:
+            raise argparse.ArgumentTypeError(f"must be a positive number, got {text!r}")
+        return value
+    return check
+
+
 def add_parser(parser: argparse.ArgumentParser) -> None:
     parser.epilog = (
         "A file is taken when its size has not changed between two looks at the folder and it opens as a "
@@ -17,11 +29,11 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
                         help="calibration file (from 'latticeread calibrate')")
     parser.add_argument("--out", "-o", required=True, type=Path, metavar="LIVE.h5",
                         help="run file to create, or to continue when it exists")
-    parser.add_argument("--interval", type=float, default=0.5, metavar="SECONDS",
+    parser.add_argument("--interval", type=_positive(float), default=0.5, metavar="SECONDS",
                         help="time between two looks at the folder (default 0.5 s)")
-    parser.add_argument("--max-files", type=int, default=None, metavar="N",
+    parser.add_argument("--max-files", type=_positive(int), default=None, metavar="N",
                         help="stop after N files (default: run until Ctrl-C)")
-    parser.add_argument("--timeout", type=float, default=None, metavar="SECONDS",
+    parser.add_argument("--timeout", type=_positive(float), default=None, metavar="SECONDS",
                         help="stop when no new file arrived for this long (default: never)")
     parser.add_argument("--new-only", action="store_true",
                         help="ignore the files already in the folder when the watch starts")
@@ -31,13 +43,7 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from latticeread.errors import LatticeReadError
     from latticeread.runs.watch import watch_folder
-
-    if args.interval <= 0:
-        raise LatticeReadError(f"--interval must be a positive number of seconds, got {args.interval}")
-    if args.max_files is not None and args.max_files < 1:
-        raise LatticeReadError(f"--max-files must be at least 1, got {args.max_files}")
 
     def show(outcome, stats):
         if not args.quiet:

@@ -195,10 +195,14 @@ def _canonical_json(text_or_dict) -> str:
 
 
 def _calibration_identity(text: str) -> str:
-    """Calibration JSON without the free-form ``notes`` (provenance must not block a resume)."""
+    """Calibration JSON in canonical form, without the program version.
+
+    ``notes`` is kept: the pipeline reads settings from it (e.g. ``index_bounds``), so a
+    calibration with other notes may give other results.
+    """
     data = json.loads(text)
     if isinstance(data, dict):
-        data = {k: v for k, v in data.items() if k not in ("notes", "program_version")}
+        data = {k: v for k, v in data.items() if k != "program_version"}
     return _canonical_json(data)
 
 
@@ -414,8 +418,11 @@ class RunWriter:
                 d[n] = value
             # Commit: the row counts only once the counter says so.
             f.attrs["n_shots"] = n + 1
-            if key in self._failed:  # a retry of an earlier failure succeeded
-                f["failures/resolved"][self._failed.pop(key)] = True
+            # An earlier failure of this shot, or of an older version of this file (e.g. read
+            # while the camera was still writing it), is resolved by this success.
+            for old in [k for k in self._failed if k == key or (k.source == key.source and
+                                                                 k.file_hash != key.file_hash)]:
+                f["failures/resolved"][self._failed.pop(old)] = True
             f.flush()
         except OSError as exc:
             raise ExportError(f"writing shot {record.key.frame_index} of {record.key.source} to {self.path} "
@@ -475,7 +482,8 @@ class RunFailures:
     frame_index : (n,) ndarray of int64
         -1 when the whole file could not be read.
     resolved : (n,) ndarray of bool
-        True when a later retry of the shot succeeded.
+        True when a later retry of the shot succeeded, or a shot of a newer version of the
+        same file (other content hash) was written.
     """
 
     source: np.ndarray

@@ -301,7 +301,8 @@ class ShotReconstructor:
 
     The :class:`~latticeread.core.pipeline.Reconstructor` (and its factorisation) is built
     once here; a few recently used files are kept open so the frames of a stack are read
-    without reopening the file.
+    without reopening the file. BLAS runs on one thread inside (so results do not depend
+    on where the shot ran; parallelism comes from the worker processes).
 
     Parameters
     ----------
@@ -314,10 +315,16 @@ class ShotReconstructor:
     def __init__(self, calibration, *, keep_open: int = 2):
         if isinstance(calibration, str):
             calibration = calibration_from_json(calibration)
+        from threadpoolctl import ThreadpoolController
+
         from latticeread.core.pipeline import Reconstructor
 
         self.calibration: Calibration = calibration
-        self._reconstructor = Reconstructor(calibration)
+        # One BLAS thread: the thread count changes amplitudes in the last bits, and every
+        # run (this process, a pool worker, a Dask worker) must give identical results.
+        self._blas = ThreadpoolController()
+        with self._blas.limit(limits=1, user_api="blas"):
+            self._reconstructor = Reconstructor(calibration)
         self._stacks: OrderedDict = OrderedDict()
         self._keep_open = max(1, int(keep_open))
 
@@ -340,7 +347,8 @@ class ShotReconstructor:
                 raise ReconstructionError(f"frame {key.frame_index} of {name} has {np.ndim(image)} dimensions; "
                                           "a frame must be a 2-D image")
             self.calibration.check_frame_shape(np.shape(image), where=f"frame {key.frame_index} of {name}")
-            result = self._reconstructor(image, frame_index=key.frame_index)
+            with self._blas.limit(limits=1, user_api="blas"):
+                result = self._reconstructor(image, frame_index=key.frame_index)
             return shot_record(key, result)
         except LatticeReadError as exc:
             self._stacks.pop(key.source, None)
