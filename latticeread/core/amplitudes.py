@@ -1,0 +1,1036 @@
+"""Site amplitudes: how many photons each lattice site sent to the camera.
+
+The image model (all in photons, see :meth:`CameraModel.counts_to_photons`) is
+
+    image(p) = background(p) + sum_k A_k * s_k(p) + noise(p),
+
+where ``s_k`` is the pixel-integrated PSF stamp of site ``k`` (it sums to 1 over its
+``(2 r + 1)^2`` window, so ``A_k`` is the flux of the site inside the window) and the
+background is a constant or a plane. Three estimators are offered:
+
+``"linear"`` (default)
+    Weighted least squares on the sparse per-site basis ``B`` (one column per site, one row
+    per pixel) plus the background columns. The normal matrix ``G = B^T W B`` is a banded
+    symmetric positive-definite matrix (sites only couple to neighbours within two stamp
+    radii); it is factorised ONCE per geometry, PSF, frame shape and pixel mask
+    (:class:`SiteBasis`), so a frame costs one sparse matrix-vector product ``B^T W y`` and
+    one banded triangular solve.
+``"nonlinear"``
+    Uses the binary nature of occupation. Below a spacing of about 0.7 FWHM the linear
+    problem is degenerate: for an Airy PSF the optical cut-off ``2 NA / lambda = 1.03 / FWHM``
+    lies inside the lattice's Brillouin zone (its corner is at ``1 / (sqrt(2) d)``), so some
+    occupation patterns leave no trace in the image at all and the linear estimate's noise
+    explodes. Every site is instead re-tested, in turn, with all other sites' current
+    contributions subtracted: the per-site statistic ``t_k = atom n_k + s_k^T W r / s_k^T W s_k``
+    is the site's own matched-filter amplitude, and a site is flipped when that lowers the
+    squared residual (the log-likelihood ratio of the two states under Gaussian noise with the
+    weights' variance). See :meth:`SiteBasis._refine`.
+``"wiener"`` / ``"richardson_lucy"``
+    Deconvolution of the whole frame followed by summing the deconvolved image over each
+    site's cell (the pixels nearer to that site than to any other; :func:`cell_integrate`).
+
+The frame-to-frame phase
+------------------------
+The lattice vectors are fixed by the calibration; only the offset moves, by a shift
+``delta`` that the phase refit keeps within about half a lattice spacing. Two facts let the
+factorisation be reused for every frame:
+
+* The normal matrix only depends on the *relative* positions of sites: ``G_kl`` is the
+  pixel sum of ``s_k s_l``. By the Poisson summation formula the pixel sum equals the
+  continuous overlap integral, independent of where the pair sits relative to the pixel
+  grid, as long as the product of two pixel-integrated PSFs has no spatial frequency above
+  one cycle per pixel -- exactly true for an Airy PSF with FWHM above about 1.03 pixels
+  (cut-off ``2 NA / lambda``), and true to better than 1e-6 for Gaussian PSFs with FWHM above 2
+  pixels. Only sites whose stamp is cut by the frame border break this; they are flagged EDGE.
+* The projection ``B^T W y`` does depend on the sub-pixel phase. It is rebuilt per frame
+  from a table of stamps precomputed on a ``phase_steps x phase_steps`` grid of sub-pixel
+  positions (nearest entry: positional error at most ``1 / (2 phase_steps)`` pixel, 1/64
+  pixel by default), which is a gather of ``N (2 r + 1)^2`` numbers -- no PSF evaluation.
+
+Flags
+-----
+Per-site flags (:mod:`latticeread.core.flags`): EDGE when more than 5 % of the site's stamp
+falls outside the frame, MASKED when more than 5 % falls on pixels excluded by the mask,
+SATURATED / NONFINITE when more than 1 % falls on saturated / NaN pixels. Saturated and
+non-finite pixels are left out of the fit (the factorisation is corrected with a low-rank
+Woodbury update), so their sites still get an estimate, but flagged.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import logging
+from dataclasses import dataclass, field
+
+import numpy as np
+import scipy.fft
+import scipy.linalg
+import scipy.sparse
+import scipy.sparse.linalg
+from scipy import ndimage, signal
+
+from latticeread.core import flags as site_flags
+from latticeread.core.geometry import LatticeGeometry, SiteGrid, lattice_sites
+from latticeread.core.psf import PSFModel
+from latticeread.errors import ReconstructionError
+
+__all__ = [
+    "AMPLITUDE_METHODS",
+    "AmplitudeResult",
+    "SiteBasis",
+    "extract_amplitudes",
+    "wiener_deconvolve",
+    "richardson_lucy_deconvolve",
+    "cell_labels",
+    "cell_integrate",
+    "deconvolution_amplitudes",
+]
+
+log = logging.getLogger(__name__)
+
+try:  # optional: keep BLAS single-threaded inside the small banded solves (threads only add overhead
+    # there, and on a busy machine OpenBLAS's spinning threads slow them down a hundredfold)
+    from threadpoolctl import ThreadpoolController as _ThreadpoolController
+except ImportError:  # pragma: no cover - without it BLAS keeps its default threads
+    _ThreadpoolController = None
+
+
+class _OneThread:
+    """Context manager limiting BLAS to one thread while it is active (no-op without threadpoolctl)."""
+
+    def __init__(self):
+        self._controller = _ThreadpoolController() if _ThreadpoolController is not None else None
+
+    def __call__(self):
+        if self._controller is None:
+            return contextlib.nullcontext()
+        return self._controller.limit(limits=1, user_api="blas")
+
+#: Estimators understood by :func:`extract_amplitudes` and the pipeline.
+AMPLITUDE_METHODS = ("linear", "nonlinear", "wiener", "richardson_lucy")
+
+#: Fraction of a site's stamp outside the frame / on masked pixels that sets EDGE / MASKED.
+EDGE_FRACTION = 0.05
+#: Fraction of a site's stamp on saturated / non-finite pixels that sets SATURATED / NONFINITE.
+BAD_PIXEL_FRACTION = 0.01
+#: Largest number of excluded (NaN or saturated) pixels handled by the low-rank correction.
+MAX_BAD_PIXELS = 4000
+
+
+@dataclass(frozen=True)
+class AmplitudeResult:
+    """Site amplitudes of one frame.
+
+    Attributes
+    ----------
+    amplitudes : (N,) ndarray of float
+        Photons per site inside the PSF window (background removed).
+    background : float
+        Mean background in photons per pixel over the frame.
+    flags : (N,) ndarray of uint8
+        Bit flags from :mod:`latticeread.core.flags` (EDGE, MASKED, SATURATED, NONFINITE).
+    x, y : (N,) ndarray of float
+        Site centres used for this frame, pixels.
+    method : str
+        Estimator that produced the amplitudes.
+    iterations : int
+        Refinement passes (``"nonlinear"``) or deconvolution iterations; 0 for ``"linear"``.
+    warnings : tuple of str
+        Reasons why the amplitudes may mislead.
+    """
+
+    amplitudes: np.ndarray = field(repr=False)
+    background: float
+    flags: np.ndarray = field(repr=False)
+    x: np.ndarray = field(repr=False)
+    y: np.ndarray = field(repr=False)
+    method: str = "linear"
+    iterations: int = 0
+    warnings: tuple[str, ...] = ()
+
+
+def _as_image(image, frame_shape=None) -> np.ndarray:
+    image = np.asarray(image)
+    if image.ndim != 2:
+        raise ReconstructionError(
+            f"expected one 2-D frame, got an array of shape {image.shape}; pass frames one at a time")
+    if not (np.issubdtype(image.dtype, np.number) and not np.iscomplexobj(image)):
+        raise ReconstructionError(f"frame must hold real numbers, got dtype {image.dtype}")
+    if frame_shape is not None and image.shape != tuple(frame_shape):
+        raise ReconstructionError(
+            f"frame is {image.shape[0]}x{image.shape[1]} pixels but the site basis was built for "
+            f"{frame_shape[0]}x{frame_shape[1]}")
+    return image
+
+
+class SiteBasis:
+    """The sparse per-site PSF basis of one lattice in one frame shape, factorised once.
+
+    Parameters
+    ----------
+    geometry : LatticeGeometry
+        Lattice vectors and the reference offset (pixels). Frames whose offset differs are
+        handled by passing ``offset=`` to the per-frame methods.
+    frame_shape : (int, int)
+        ``(height, width)`` in pixels.
+    psf : PSFModel
+        Image of one atom; its ``radius`` sets the stamp window.
+    sites : SiteGrid, optional
+        Sites to fit, at the reference offset (default: every site whose centre is in the
+        frame). The site list, and hence the matrix shape, never changes afterwards.
+    mask : (H, W) ndarray of bool, optional
+        Pixels to use (True). Excluded pixels carry no weight in the fit.
+    pixel_weights : (H, W) ndarray of float, optional
+        Inverse noise variance per pixel (1/photons^2), e.g. from a per-pixel read-noise map.
+        Default: uniform weights (unweighted least squares).
+    background : {"constant", "plane", "none"}
+        Background model fitted together with the sites.
+    ridge : float
+        Relative Tikhonov term added to the diagonal of the normal matrix (times its mean
+        diagonal) so that sites without usable pixels do not make it singular.
+
+    Notes
+    -----
+    Cost: building the basis evaluates ``phase_steps^2`` PSF stamps and factorises the
+    banded normal matrix (tenths of a second for a few thousand sites); per frame,
+    :meth:`project` is a gather plus a sparse matrix-vector product and :meth:`solve` a
+    banded triangular solve.
+    """
+
+    def __init__(self, geometry: LatticeGeometry, *, frame_shape, psf: PSFModel, sites: SiteGrid | None = None,
+                 mask=None, pixel_weights=None, background: str = "constant", ridge: float = 1e-6):
+        if background not in ("constant", "plane", "none"):
+            raise ReconstructionError(f"unknown background model {background!r}; use 'constant', 'plane' or 'none'")
+        self.geometry = geometry
+        self.frame_shape = (int(frame_shape[0]), int(frame_shape[1]))
+        self.psf = psf
+        self.sites = sites if sites is not None else lattice_sites(geometry, self.frame_shape)
+        if len(self.sites) == 0:
+            raise ReconstructionError("no lattice site lies inside the frame; check the lattice geometry")
+        self.background_model = background
+        height, width = self.frame_shape
+        r = int(psf.radius)
+        self.radius = r
+        # padding: the stamp radius plus room for the phase to move by a lattice spacing
+        self.pad = r + int(np.ceil(max(geometry.spacings))) + 1
+        self.padded_shape = (height + 2 * self.pad, width + 2 * self.pad)
+        hp, wp = self.padded_shape
+
+        weights = np.ones(self.frame_shape) if pixel_weights is None else np.asarray(pixel_weights, float)
+        if weights.shape != self.frame_shape:
+            raise ReconstructionError(f"pixel weights are {weights.shape} but the frame is {self.frame_shape}")
+        if not np.all(np.isfinite(weights)) or np.any(weights < 0):
+            raise ReconstructionError("pixel weights must be finite and non-negative")
+        inside = np.zeros(self.padded_shape)
+        inside[self.pad:self.pad + height, self.pad:self.pad + width] = 1.0
+        self._inside = inside.ravel()
+        if mask is not None:
+            mask = np.asarray(mask, dtype=bool)
+            if mask.shape != self.frame_shape:
+                raise ReconstructionError(f"mask is {mask.shape[0]}x{mask.shape[1]} pixels but the frame is "
+                                          f"{height}x{width}")
+            weights = weights * mask
+        self.mask = mask
+        w = np.zeros(self.padded_shape)
+        w[self.pad:self.pad + height, self.pad:self.pad + width] = weights
+        self._weights = w.ravel()
+        self._usable = (w > 0).astype(float).ravel()
+        self._uniform = pixel_weights is None and mask is None
+
+        self._stamps = _StampSampler(psf)
+        oy, ox = np.mgrid[-r:r + 1, -r:r + 1]
+        self._window = (oy.ravel() * wp + ox.ravel()).astype(np.int64)
+        n = len(self.sites)
+        self._indptr = np.arange(0, n * self._window.size + 1, self._window.size, dtype=np.int64)
+        self._cache_key = None
+        self._cache = None
+
+        # background columns (padded frame coordinates), weighted later
+        cols = []
+        if background in ("constant", "plane"):
+            cols.append(inside.ravel())
+        if background == "plane":
+            yy, xx = np.mgrid[0:hp, 0:wp]
+            cols.append(((xx - self.pad - (width - 1) / 2) / max(width, 1) * inside).ravel())
+            cols.append(((yy - self.pad - (height - 1) / 2) / max(height, 1) * inside).ravel())
+        self._bg = np.stack(cols, axis=1) if cols else np.zeros((hp * wp, 0))
+        self._bg_nz = np.flatnonzero(self._inside)
+
+        self._prepare_projection(weights, mask, pixel_weights)
+        self._one_thread = _OneThread()
+        with self._one_thread():
+            self._factorise(ridge)
+
+    def _factorise(self, ridge):
+        """Normal matrix at the reference offset, its banded Cholesky factor, background couplings."""
+        n = len(self.sites)
+        bt = self._basis_t((0.0, 0.0))
+        wbt = bt.multiply(self._weights[None, :]).tocsr()
+        gram = (wbt @ bt.T).tocsr()
+        diag = gram.diagonal()
+        scale = float(np.mean(diag[diag > 0])) if np.any(diag > 0) else 1.0
+        self._ridge = ridge * scale
+        gram = gram + scipy.sparse.identity(n, format="csr") * self._ridge
+        self.gram = gram
+        self.gram_diagonal = gram.diagonal().copy()
+        self._factor = _BandedSPD(gram)
+        # couplings to the background columns and the Schur complement
+        wbg = self._bg * self._weights[:, None]
+        self._v = np.asarray(bt @ wbg) if self._bg.shape[1] else np.zeros((n, 0))
+        self._e = self._bg.T @ wbg
+        if self._bg.shape[1]:
+            self._z = self._factor.solve(self._v)
+            schur = self._e - self._v.T @ self._z
+            self._schur = scipy.linalg.cho_factor(schur)
+        self._n_bg_pixels = float(np.sum(self._weights > 0))
+
+    def _prepare_projection(self, weights, mask, pixel_weights):
+        height, width = self.frame_shape
+        r = self.radius
+        geometry = self.geometry
+        background = self.background_model
+        # per-frame projections: correlation of the frame with the centred stamp on a region
+        # around the sites, then cubic-spline interpolation at the (shifted) site centres
+        self._kernel = self.psf.stamps([0.0], [0.0])[0][::-1, ::-1].copy()
+        allow = max(geometry.spacings) + 1.0
+        y0 = max(int(np.floor(self.sites.y.min() - allow)) - r - 4, -self.pad)
+        y1 = min(int(np.ceil(self.sites.y.max() + allow)) + r + 5, height + self.pad)
+        x0 = max(int(np.floor(self.sites.x.min() - allow)) - r - 4, -self.pad)
+        x1 = min(int(np.ceil(self.sites.x.max() + allow)) + r + 5, width + self.pad)
+        self._roi = (y0, y1, x0, x1)
+        self._wframe = None if self._uniform else weights
+        bgf = [np.ones(self.frame_shape)] if background in ("constant", "plane") else []
+        if background == "plane":
+            yy, xx = np.mgrid[0:height, 0:width]
+            bgf += [(xx - (width - 1) / 2) / max(width, 1), (yy - (height - 1) / 2) / max(height, 1)]
+        self._bg_frame = np.stack([b.ravel() for b in bgf]) if bgf else np.zeros((0, height * width))
+        self._frac_inside = self._spline(np.ones(self.frame_shape))
+        self._frac_usable = self._spline(weights > 0) if mask is not None or pixel_weights is not None \
+            else self._frac_inside
+
+    # --- per-frame geometry --------------------------------------------------------------
+    def positions(self, offset=None) -> tuple[np.ndarray, np.ndarray]:
+        """Site centres ``(x, y)`` in pixels for a frame whose lattice offset is ``offset``."""
+        dx, dy = self._shift(offset)
+        return self.sites.x + dx, self.sites.y + dy
+
+    def _shift(self, offset) -> tuple[float, float]:
+        if offset is None:
+            return 0.0, 0.0
+        return float(offset[0] - self.geometry.offset[0]), float(offset[1] - self.geometry.offset[1])
+
+    def _basis_t(self, shift) -> scipy.sparse.csr_matrix:
+        """Transposed basis ``B^T`` (N sites x padded pixels) for a frame shifted by ``shift``."""
+        key = (float(shift[0]), float(shift[1]))
+        if self._cache_key == key:
+            return self._cache
+        x = self.sites.x + shift[0]
+        y = self.sites.y + shift[1]
+        lim = self.pad - self.radius
+        ix = np.clip(np.rint(x).astype(np.int64), -lim, self.frame_shape[1] - 1 + lim)
+        iy = np.clip(np.rint(y).astype(np.int64), -lim, self.frame_shape[0] - 1 + lim)
+        data = self._stamps(x - ix, y - iy).reshape(len(x), -1)
+        hp, wp = self.padded_shape
+        anchor = (iy + self.pad) * wp + (ix + self.pad)
+        indices = (anchor[:, None] + self._window[None, :]).ravel()
+        bt = scipy.sparse.csr_matrix((data.ravel(), indices, self._indptr), shape=(len(x), hp * wp))
+        self._cache_key, self._cache = key, bt
+        return bt
+
+    def _padded(self, image) -> np.ndarray:
+        h, w = self.frame_shape
+        buf = np.zeros(self.padded_shape)
+        buf[self.pad:self.pad + h, self.pad:self.pad + w] = image
+        return buf.ravel()
+
+    # --- the linear estimator --------------------------------------------------------------
+    def _spline(self, image) -> np.ndarray:
+        """Cubic-spline coefficients of ``image`` correlated with the centred stamp, on the region."""
+        y0, y1, x0, x1 = self._roi
+        h, w = self.frame_shape
+        buf = np.zeros((y1 - y0, x1 - x0))
+        fy0, fy1, fx0, fx1 = max(y0, 0), min(y1, h), max(x0, 0), min(x1, w)
+        buf[fy0 - y0:fy1 - y0, fx0 - x0:fx1 - x0] = np.asarray(image, float)[fy0:fy1, fx0:fx1]
+        corr = signal.fftconvolve(buf, self._kernel, mode="same")
+        return ndimage.spline_filter(corr, order=3, mode="mirror")
+
+    def _sample(self, coef, offset, extra=(0.0, 0.0)) -> np.ndarray:
+        """Spline ``coef`` sampled at the site centres for ``offset`` (+ ``extra``), pixels."""
+        dx, dy = self._shift(offset)
+        y0, _, x0, _ = self._roi
+        coords = np.stack([self.sites.y + dy + extra[1] - y0, self.sites.x + dx + extra[0] - x0])
+        return ndimage.map_coordinates(coef, coords, order=3, prefilter=False, mode="mirror")
+
+    def _weighted(self, image, bad_pixels=None) -> np.ndarray:
+        y = np.asarray(image, float)
+        if bad_pixels is not None:
+            y = np.where(bad_pixels, 0.0, y)
+        return y if self._wframe is None else y * self._wframe
+
+    def project(self, image, *, offset=None, bad_pixels=None):
+        """Right-hand side of the normal equations for one frame.
+
+        Parameters
+        ----------
+        image : (H, W) ndarray
+            Frame in photons per pixel. Non-finite pixels must be listed in ``bad_pixels``.
+        offset : (float, float), optional
+            Lattice offset of this frame, pixels (default: the reference offset).
+        bad_pixels : (H, W) ndarray of bool, optional
+            Pixels to leave out of this frame's fit (NaN, saturated).
+
+        Returns
+        -------
+        c : (N,) ndarray
+            ``B^T W y`` (photons): the frame correlated with the PSF stamp and interpolated at
+            the site centres (cubic spline; the correlation is band-limited like the PSF, so the
+            interpolation error is far below the shot noise for FWHM >= 2 pixels).
+        d : (m,) ndarray
+            Background projections.
+        """
+        image = _as_image(image, self.frame_shape)
+        y = self._weighted(image, bad_pixels)
+        c = self._sample(self._spline(y), offset)
+        d = np.einsum("ij,j->i", self._bg_frame, y.ravel())
+        return c, d
+
+    def project_exact(self, image, *, offset=None):
+        """``B^T W y`` from the explicit sparse basis (stamps at the exact positions); for checks."""
+        image = _as_image(image, self.frame_shape)
+        y = self._padded(self._weighted(image))
+        return self._basis_t(self._shift(offset)) @ y
+
+    def solve(self, c, d, *, correction=None):
+        """Solve the normal equations for site amplitudes and background coefficients.
+
+        Parameters
+        ----------
+        c, d : ndarray
+            Output of :meth:`project`.
+        correction : _LowRank, optional
+            Low-rank correction for pixels left out of this frame.
+
+        Returns
+        -------
+        amplitudes : (N,) ndarray, photons
+        background : (m,) ndarray, background coefficients (photons per pixel)
+        """
+        if correction is not None:
+            return correction.solve(c, d)
+        return self._solve_full(c, d)
+
+    def _solve_full(self, c, d):
+        c = np.asarray(c, float)
+        a0 = self._factor.solve(c)
+        if not self._bg.shape[1]:
+            return a0, np.zeros((0,) + c.shape[1:])
+        b = scipy.linalg.cho_solve(self._schur, d - np.einsum("ij,i...->j...", self._v, a0))
+        return a0 - np.einsum("ij,j...->i...", self._z, b), b
+
+    def _low_rank(self, bad_flat, offset):
+        """Woodbury correction for leaving the padded-frame pixels ``bad_flat`` out of the fit."""
+        bt = self._basis_t(self._shift(offset))
+        sw = np.sqrt(self._weights[bad_flat])
+        u_sites = (bt[:, bad_flat].toarray()) * sw[None, :]  # (N, nb)
+        u_bg = self._bg[bad_flat].T * sw[None, :]  # (m, nb)
+        return _LowRank(self, u_sites, u_bg)
+
+    def background_level(self, coefficients) -> float:
+        """Mean background over the frame in photons per pixel from fitted coefficients."""
+        if coefficients.size == 0:
+            return 0.0
+        return float(coefficients[0])
+
+    # --- the lattice phase by model fitting --------------------------------------------------
+    def explained(self, image, *, offset) -> float:
+        """Weighted image energy explained by the least-squares fit at ``offset`` (photons^2).
+
+        ``||y||^2 - ||y - D theta||^2 = theta . D^T W y`` for the least-squares ``theta`` (site
+        amplitudes and background): the larger, the better the lattice at ``offset`` fits.
+        """
+        c, d = self.project(image, offset=offset)
+        a, b = self._solve_full(c, d)
+        return float(np.einsum("i,i->", a, c) + np.einsum("i,i->", b, d))
+
+    def fit_offset(self, image, *, start=None, search: bool = False, atom_photons: float | None = None,
+                   max_iter: int = 8, tol: float = 1e-3) -> tuple[tuple[float, float], int]:
+        """Lattice offset of one frame by fitting the image model (vectors kept).
+
+        Alternates (i) the site amplitudes at the current offset (least squares, or the binary
+        refinement when ``atom_photons`` is given) and (ii) the offset that best fits the image
+        with those amplitudes held fixed: minimising ``||y - bg - B(delta) a||^2`` over ``delta``
+        means maximising ``a . c(delta)`` (``B^T B`` does not depend on ``delta``, see the module
+        notes), a 2-D Newton search on the cubic-spline correlation image -- no new solve.
+        Works at any spacing, also where the lattice's Fourier peaks lie beyond the optical
+        cut-off (spacing below ~1 FWHM for an Airy PSF).
+
+        Parameters
+        ----------
+        image : (H, W) ndarray
+            Frame in photons per pixel (finite).
+        start : (float, float), optional
+            Starting offset, pixels (default: the reference offset).
+        search : bool
+            First scan a 6 x 6 grid over one unit cell around ``start`` for the largest
+            matched-filter energy ``sum_k c_k^2`` (when no reliable start is known).
+        atom_photons : float, optional
+            Photons of one atom: use binary amplitudes (for spacings below ~0.7 FWHM).
+        max_iter : int
+            Largest number of alternations.
+        tol : float
+            Stop when the offset moves less than this, pixels.
+
+        Returns
+        -------
+        offset : (float, float)
+            Pixels; the lattice translate nearest the reference offset (indices stay stable).
+        iterations : int
+        """
+        with self._one_thread():
+            return self._fit_offset(image, start=start, search=search, atom_photons=atom_photons,
+                                    max_iter=max_iter, tol=tol)
+
+    def _fit_offset(self, image, *, start, search, atom_photons, max_iter, tol):
+        image = _as_image(image, self.frame_shape).astype(float)
+        ref = np.asarray(self.geometry.offset, float)
+        best = ref.copy() if start is None else np.asarray(start, float).reshape(2).copy()
+        y = self._weighted(np.where(np.isfinite(image), image, 0.0))
+        coef = self._spline(y)
+        d = np.einsum("ij,j->i", self._bg_frame, y.ravel())
+        a1, a2 = np.asarray(self.geometry.a1), np.asarray(self.geometry.a2)
+        if search:
+            grid = (np.arange(6) - 2.5) / 6
+            trials = [best + u * a1 + v * a2 for u in grid for v in grid]
+            energy = [float(np.sum(self._sample(coef, t) ** 2)) for t in trials]
+            best = trials[int(np.argmax(energy))]
+        h = 0.05
+        stencil = np.array([(0, 0), (1, 0), (-1, 0), (0, 1), (0, -1), (1, 1), (-1, -1)], float) * h
+        zeros_bg = np.zeros((d.size, 2))
+        pattern = None
+        it = 0
+        for it in range(1, max_iter + 1):
+            cs = [self._sample(coef, best, extra=e) for e in stencil]
+            jac = np.stack([cs[1] - cs[2], cs[3] - cs[4]], axis=1) / (2 * h)
+            dxx = (cs[1] - 2 * cs[0] + cs[2]) / h**2
+            dyy = (cs[3] - 2 * cs[0] + cs[4]) / h**2
+            dxy = (cs[5] - cs[1] - cs[3] + 2 * cs[0] - cs[2] - cs[4] + cs[6]) / (2 * h**2)
+            a, b = self._solve_full(cs[0], d)
+            if atom_photons is None:
+                # Newton on the explained energy E(delta) = c^T K c (amplitudes re-fitted jointly)
+                kj, _ = self._solve_full(jac, zeros_bg)
+                curv = jac.T @ kj
+            else:
+                # binary amplitudes held fixed while the offset moves: maximise a . c(delta)
+                starts = None if pattern is None else (pattern,)
+                stat, _ = self._refine(cs[0], d, a, b, atom=atom_photons, correction=None, max_iter=200,
+                                       starts=starts)
+                pattern = stat > atom_photons / 2
+                a = atom_photons * pattern
+                curv = np.zeros((2, 2))
+            grad = 2 * jac.T @ a
+            hess = 2 * curv + 2 * np.array([[a @ dxx, a @ dxy], [a @ dxy, a @ dyy]])
+            if np.all(np.linalg.eigvalsh(hess) < 0):
+                step = -np.linalg.solve(hess, grad)
+            else:  # not near a maximum yet: move uphill by a bounded step
+                step = grad / (np.linalg.norm(grad) or 1.0) * 0.25
+            norm = np.hypot(*step)
+            if norm > 0.5:
+                step *= 0.5 / norm
+            best = best + step
+            if np.hypot(*step) < tol:
+                break
+        frac = self.geometry.reciprocal @ (best - ref)
+        best = best - np.rint(frac[0]) * a1 - np.rint(frac[1]) * a2
+        return (float(best[0]), float(best[1])), it
+
+    # --- flags ---------------------------------------------------------------------------
+    def flags(self, *, offset=None, saturated=None, nonfinite=None) -> np.ndarray:
+        """Per-site flags (uint8) for a frame with the given offset and bad pixels."""
+        inside = self._sample(self._frac_inside, offset)
+        usable = self._sample(self._frac_usable, offset) if self._frac_usable is not self._frac_inside else inside
+        out = np.zeros(len(self.sites), np.uint8)
+        out[inside < 1 - EDGE_FRACTION] |= site_flags.EDGE
+        out[inside - usable > EDGE_FRACTION] |= site_flags.MASKED
+        if saturated is not None:
+            out[self._sample(self._spline(saturated), offset) > BAD_PIXEL_FRACTION] |= site_flags.SATURATED
+        if nonfinite is not None:
+            out[self._sample(self._spline(nonfinite), offset) > BAD_PIXEL_FRACTION] |= site_flags.NONFINITE
+        return out
+
+    # --- whole-frame estimators ------------------------------------------------------------
+    def linear(self, image, *, offset=None, saturated=None) -> AmplitudeResult:
+        """Least-squares amplitudes of one frame (see module notes).
+
+        Parameters
+        ----------
+        image : (H, W) ndarray
+            Frame in photons per pixel; NaN/inf pixels are left out and flagged.
+        offset : (float, float), optional
+            Lattice offset of this frame in pixels.
+        saturated : (H, W) ndarray of bool, optional
+            Pixels that reached the camera's saturation value (left out and flagged).
+        """
+        return self._run(image, offset=offset, saturated=saturated, refine_level=None)
+
+    def nonlinear(self, image, *, atom_photons, offset=None, saturated=None, max_iter: int = 200) -> AmplitudeResult:
+        """Linear amplitudes refined with the binary occupation (see module notes).
+
+        Parameters
+        ----------
+        image : (H, W) ndarray
+            Frame in photons per pixel.
+        atom_photons : float
+            Mean photons of one atom (the occupied peak of the histogram); the refined
+            statistic is to be thresholded near ``atom_photons / 2``.
+        max_iter : int
+            Largest number of local-search passes.
+        """
+        if not np.isfinite(atom_photons) or atom_photons <= 0:
+            raise ReconstructionError(f"the binary refinement needs the photons of one atom as a positive number, "
+                                      f"got {atom_photons}")
+        return self._run(image, offset=offset, saturated=saturated, refine_level=float(atom_photons),
+                         max_iter=max_iter)
+
+    def binary_energy(self, image, *, atom_photons, offset=None) -> float:
+        """Lowest squared residual (photons^2, up to a constant) of binary patterns of fixed brightness.
+
+        Used to choose the photons of one atom: the true value minimises it (see :func:`calibrate`).
+        """
+        with self._one_thread():
+            c, d = self.project(np.where(np.isfinite(image), image, 0.0), offset=offset)
+            a, b = self._solve_full(c, d)
+            self._refine(c, d, a, b, atom=float(atom_photons), correction=None, max_iter=300, fit_atom=False)
+        return self.last_energy
+
+    def _run(self, image, **kwargs) -> AmplitudeResult:
+        with self._one_thread():
+            return self._run_frame(image, **kwargs)
+
+    def _run_frame(self, image, *, offset, saturated, refine_level, max_iter=200) -> AmplitudeResult:
+        image = _as_image(image, self.frame_shape)
+        image = image.astype(float, copy=False)
+        warnings = []
+        finite = np.isfinite(image)
+        nonfinite = None if finite.all() else ~finite
+        if saturated is not None:
+            saturated = np.asarray(saturated, dtype=bool)
+            if saturated.shape != self.frame_shape:
+                raise ReconstructionError(f"saturation mask is {saturated.shape} but the frame is {self.frame_shape}")
+            saturated = saturated if saturated.any() else None
+        bad = None
+        if nonfinite is not None or saturated is not None:
+            bad = np.zeros(self.frame_shape, bool)
+            if nonfinite is not None:
+                bad |= nonfinite
+                warnings.append(f"{int(nonfinite.sum())} non-finite pixel(s) were left out of the fit")
+            if saturated is not None:
+                bad |= saturated
+                warnings.append(f"{int(saturated.sum())} saturated pixel(s) were left out of the fit")
+            if bad.all():
+                raise ReconstructionError("every pixel of the frame is NaN, infinite or saturated")
+        c, d = self.project(image, offset=offset, bad_pixels=bad)
+        correction = None
+        if bad is not None:
+            h, w = self.frame_shape
+            yy, xx = np.nonzero(bad)
+            flat = (yy + self.pad) * self.padded_shape[1] + (xx + self.pad)
+            flat = flat[self._weights[flat] > 0]
+            if flat.size > MAX_BAD_PIXELS:
+                raise ReconstructionError(
+                    f"{flat.size} pixels of the frame are NaN, infinite or saturated (at most {MAX_BAD_PIXELS} "
+                    f"can be left out); mask the bad region instead")
+            if flat.size:
+                correction = self._low_rank(flat, offset)
+        amps, bg = self.solve(c, d, correction=correction)
+        iterations = 0
+        if refine_level is not None:
+            amps, iterations = self._refine(c, d, amps, bg, atom=refine_level, correction=correction,
+                                            max_iter=max_iter)
+        flags = self.flags(offset=offset, saturated=saturated, nonfinite=nonfinite)
+        x, y = self.positions(offset)
+        return AmplitudeResult(amplitudes=amps, background=self.background_level(bg), flags=flags, x=x, y=y,
+                               method="linear" if refine_level is None else "nonlinear",
+                               iterations=iterations, warnings=tuple(warnings))
+
+    # --- binary refinement ---------------------------------------------------------------
+    def _refine(self, c, d, amps, bg, *, atom, correction, max_iter, starts=None, fit_atom=True):
+        """Binary refinement: local search over occupation patterns with neighbours subtracted.
+
+        The energy ``E(n) = || y - bg - atom * B n ||_W^2`` (up to a constant) is lowered by
+        flipping single sites; in site space ``E = atom^2 n^T G n - 2 atom n^T h`` with
+        ``h = B^T W (y - bg)``, so a flip costs one sparse row of ``G``. Flips of strongly coupled
+        sites are never made in the same pass (only the best flip of each neighbourhood), so every
+        pass lowers the energy. Two starts are tried -- the linear estimate thresholded at half an
+        atom, and the empty lattice (a greedy, brightest-first fill) -- and the lower energy wins.
+
+        Returns the per-site statistic ``t_k = atom * n_k + (B^T W r)_k / G_kk`` (photons): the
+        site's own matched-filter amplitude with every other site's current contribution removed;
+        thresholding it at ``atom / 2`` reproduces the final pattern.
+        """
+        gram, diag = self.gram, self.gram_diagonal
+        v = self._v
+        if correction is not None:
+            gram, v = correction.gram, correction.v
+            diag = gram.diagonal()
+        rhs = c - (v @ bg if v.shape[1] else 0.0)
+        pattern = self._interaction_pattern(gram, diag)
+        # sites with (almost) no usable pixels cannot be tested: they stay empty
+        dead = diag < 0.05 * np.median(diag)
+        best = None
+        if starts is None:
+            starts = (amps > atom / 2, np.zeros(amps.size, bool))
+        for start in starts:
+            n, g, passes = self._local_search(start & ~dead, rhs, gram, diag, pattern, atom=atom, max_iter=max_iter,
+                                              dead=dead)
+            energy = atom * atom * (n @ (gram @ n.astype(float))) - 2 * atom * (n @ rhs)
+            if best is None or energy < best[0]:
+                best = (energy, n, g, passes)
+        _, n, g, passes = best
+        # the brightness of one atom: least-squares scale of the pattern, then search again (an
+        # empty pattern means the guess was too bright: halve it)
+        for _ in range(12 if fit_atom else 0):
+            nf = n.astype(float)
+            norm = float(nf @ (gram @ nf))
+            new_atom = float(nf @ rhs) / norm if norm > 0 else 0.5 * atom
+            if not np.isfinite(new_atom) or new_atom <= 0:
+                break
+            if abs(new_atom - atom) <= 1e-3 * atom:
+                break
+            atom = float(np.clip(new_atom, 0.5 * atom, 2.0 * atom))
+            n, g, more = self._local_search(n.copy(), rhs, gram, diag, pattern, atom=atom, max_iter=max_iter,
+                                            dead=dead)
+            passes += more
+        self._last_pattern = n
+        self.last_atom_photons = atom
+        self.last_energy = float(atom * atom * (n @ (gram @ n.astype(float))) - 2 * atom * (n @ rhs))
+        return atom * n + g / diag, passes
+
+    @staticmethod
+    def _interaction_pattern(gram, diag):
+        """Sparse pattern of site pairs coupled by more than 1 % of the diagonal (for exclusion)."""
+        coo = gram.tocoo()
+        strong = np.abs(coo.data) > 0.01 * np.sqrt(diag[coo.row] * diag[coo.col])
+        return scipy.sparse.csr_matrix((np.ones(int(strong.sum())), (coo.row[strong], coo.col[strong])),
+                                       shape=gram.shape)
+
+    @staticmethod
+    def _local_search(n, rhs, gram, diag, pattern, *, atom, max_iter, dead=None):
+        g = rhs - atom * (gram @ n.astype(float))
+        order = np.arange(n.size) * 1e-12  # deterministic tie-break
+        indptr, indices = pattern.indptr, pattern.indices
+        nonempty = np.diff(indptr) > 0
+        passes = 0
+        for passes in range(1, max_iter + 1):
+            d_e = atom * atom * diag + np.where(n, 2 * atom * g, -2 * atom * g)
+            d_e = d_e * (1 + order)
+            if dead is not None:
+                d_e[dead] = np.inf
+            if not np.any(d_e < 0):
+                break
+            neigh_min = np.full(n.size, np.inf)
+            neigh_min[nonempty] = np.minimum.reduceat(d_e[indices], indptr[:-1][nonempty])
+            flip = (d_e < 0) & (d_e <= neigh_min)
+            idx = np.flatnonzero(flip)
+            delta = np.where(n[idx], -1.0, 1.0)
+            n[idx] = ~n[idx]
+            g -= atom * (gram[idx].T @ delta)
+        return n, g, passes
+
+class _StampSampler:
+    """Pixel-integrated, window-normalised PSF stamps at any sub-pixel position, fast.
+
+    :meth:`PSFModel.stamps` averages the PSF density over ``s x s`` sub-samples of every pixel
+    for every stamp. Here that same sub-sample average is tabulated once on a grid of step
+    ``1 / (4 s)`` pixel (the sub-sample offsets fall exactly on the grid) and stamps are read
+    off by cubic-spline interpolation: agreement with :meth:`PSFModel.stamps` is checked in
+    the tests.
+    """
+
+    def __init__(self, psf: PSFModel, oversample: int = 4):
+        s, r = int(psf.supersample), int(psf.radius)
+        k = int(oversample) * s  # grid points per pixel
+        sub = np.rint(((np.arange(s) + 0.5) / s - 0.5) * k).astype(int)  # sub-sample offsets in grid steps
+        half = (r + 2) * k
+        margin = int(np.abs(sub).max())
+        u = np.arange(-half - margin, half + margin + 1) / k
+        dens = psf.density(u[None, :], u[:, None])
+        n = 2 * half + 1
+        acc = np.zeros((n, n))
+        for oy in sub:
+            for ox in sub:
+                acc += dens[margin + oy:margin + oy + n, margin + ox:margin + ox + n]
+        self.coef = ndimage.spline_filter(acc / (s * s), order=3, mode="mirror")
+        self.k, self.origin, self.radius = k, half, r
+
+    def __call__(self, dx, dy) -> np.ndarray:
+        """(N, 2r+1, 2r+1) stamps of emitters at offsets ``(dx, dy)`` pixels from the middle pixel."""
+        dx = np.atleast_1d(np.asarray(dx, float))
+        dy = np.atleast_1d(np.asarray(dy, float))
+        p = np.arange(-self.radius, self.radius + 1, dtype=float)
+        size = p.size
+        out = np.empty((dx.size, size, size))
+        for start in range(0, dx.size, 2048):
+            sl = slice(start, start + 2048)
+            cy = (p[None, :, None] - dy[sl, None, None]) * self.k + self.origin
+            cx = (p[None, None, :] - dx[sl, None, None]) * self.k + self.origin
+            cy, cx = np.broadcast_arrays(cy, cx)
+            out[sl] = ndimage.map_coordinates(self.coef, [cy.ravel(), cx.ravel()], order=3, prefilter=False,
+                                              mode="mirror").reshape(-1, size, size)
+        out /= out.sum(axis=(1, 2), keepdims=True)
+        return out
+
+
+class _BandedSPD:
+    """Cholesky factor of a sparse SPD matrix stored as a band (ordering chosen to narrow it)."""
+
+    def __init__(self, matrix):
+        coo = matrix.tocoo()
+        n = matrix.shape[0]
+        self.n = n
+        bw = int(np.max(np.abs(coo.row - coo.col))) if coo.nnz else 0
+        # reverse Cuthill-McKee only if it narrows the band
+        perm = None
+        from scipy.sparse.csgraph import reverse_cuthill_mckee
+
+        p = reverse_cuthill_mckee(matrix.tocsr(), symmetric_mode=True)
+        inv = np.empty_like(p)
+        inv[p] = np.arange(n)
+        bw_p = int(np.max(np.abs(inv[coo.row] - inv[coo.col]))) if coo.nnz else 0
+        if bw_p < bw:
+            perm, bw = p, bw_p
+        self.perm = perm
+        self.bandwidth = bw
+        if n * (bw + 1) > 4e8:
+            raise ReconstructionError(
+                f"the site basis is too large to factorise ({n} sites coupled over {bw} neighbours); restrict "
+                f"the reconstruction to the region holding atoms")
+        rows, cols = (coo.row, coo.col) if perm is None else (inv[coo.row], inv[coo.col])
+        upper = rows <= cols
+        band = np.zeros((bw + 1, n))
+        band[bw + rows[upper] - cols[upper], cols[upper]] = coo.data[upper]
+        try:
+            self.factor = scipy.linalg.cholesky_banded(band, lower=False)
+        except np.linalg.LinAlgError as exc:
+            raise ReconstructionError(f"the site basis is degenerate (the normal matrix is not positive "
+                                      f"definite): {exc}") from exc
+
+    def solve(self, rhs):
+        rhs = np.asarray(rhs, float)
+        if self.perm is None:
+            return scipy.linalg.cho_solve_banded((self.factor, False), rhs, check_finite=False)
+        out = scipy.linalg.cho_solve_banded((self.factor, False), rhs[self.perm], check_finite=False)
+        res = np.empty_like(out)
+        res[self.perm] = out
+        return res
+
+
+class _LowRank:
+    """Normal equations with some pixels removed: ``K' = K - U U^T`` solved by Woodbury's identity."""
+
+    def __init__(self, basis: SiteBasis, u_sites, u_bg):
+        self.basis = basis
+        self.u_sites = u_sites
+        self.u_bg = u_bg
+        # K^{-1} U for every removed pixel
+        y_sites, y_bg = basis._solve_full(u_sites, u_bg)
+        self.y_sites, self.y_bg = y_sites, y_bg
+        cap = np.eye(u_sites.shape[1]) - (u_sites.T @ y_sites + u_bg.T @ y_bg)
+        try:
+            self.cap = scipy.linalg.lu_factor(cap, check_finite=False)
+        except (ValueError, np.linalg.LinAlgError) as exc:
+            raise ReconstructionError(f"the bad pixels leave too little data to fit: {exc}") from exc
+        us = scipy.sparse.csr_matrix(u_sites)
+        self.gram = (basis.gram - us @ us.T).tocsr()
+        self.v = basis._v - u_sites @ u_bg.T if basis._v.shape[1] else basis._v
+
+    def solve(self, c, d):
+        a0, b0 = self.basis._solve_full(c, d)
+        w = scipy.linalg.lu_solve(self.cap, self.u_sites.T @ a0 + self.u_bg.T @ b0, check_finite=False)
+        return a0 + self.y_sites @ w, b0 + self.y_bg @ w
+
+
+# --- deconvolution alternatives ---------------------------------------------------------------
+
+def _transfer_function(kernel, shape) -> np.ndarray:
+    """Real-FFT transfer function of a centred odd-sized kernel on a periodic ``shape`` grid."""
+    padded = np.zeros(shape)
+    padded[:kernel.shape[0], :kernel.shape[1]] = kernel
+    padded = np.roll(padded, (-(kernel.shape[0] // 2), -(kernel.shape[1] // 2)), axis=(0, 1))
+    return scipy.fft.rfft2(padded)
+
+
+def wiener_deconvolve(image, *, psf_image, balance: float = 0.05) -> np.ndarray:
+    """Wiener-Hunt deconvolution with a Laplacian regulariser (periodic boundaries).
+
+    ``X = conj(H) Y / (|H|^2 + balance |L|^2)`` with ``H`` the transfer function of the PSF and
+    ``L`` that of the discrete Laplacian; the DC gain is exactly 1, so fluxes are kept.
+
+    Parameters
+    ----------
+    image : (H, W) ndarray
+        Frame, photons per pixel (background removed).
+    psf_image : (M, M) ndarray
+        Centred pixel-integrated PSF (odd size, sums to 1).
+    balance : float
+        Regularisation strength (dimensionless); larger = smoother, less noise.
+
+    Returns
+    -------
+    (H, W) ndarray, photons per pixel.
+    """
+    image = _as_image(image).astype(float)
+    if balance < 0:
+        raise ReconstructionError(f"Wiener balance must be >= 0, got {balance}")
+    laplacian = np.array([[0.0, -1.0, 0.0], [-1.0, 4.0, -1.0], [0.0, -1.0, 0.0]])
+    h = _transfer_function(np.asarray(psf_image, float), image.shape)
+    lap = _transfer_function(laplacian, image.shape)
+    filt = np.conj(h) / (np.abs(h) ** 2 + balance * np.abs(lap) ** 2)
+    return scipy.fft.irfft2(filt * scipy.fft.rfft2(image), s=image.shape)
+
+
+def richardson_lucy_deconvolve(image, *, psf_image, n_iter: int = 30, background: float = 0.0) -> np.ndarray:
+    """Richardson-Lucy deconvolution (Poisson maximum likelihood), zero outside the frame.
+
+    Parameters
+    ----------
+    image : (H, W) ndarray
+        Frame, photons per pixel (background included when ``background`` > 0).
+    psf_image : (M, M) ndarray
+        Centred pixel-integrated PSF (odd size, sums to 1).
+    n_iter : int
+        Iterations.
+    background : float
+        Known background in photons per pixel, kept in the forward model
+        (``image ~ psf * x + background``) so the estimate ``x`` is background-free.
+
+    Returns
+    -------
+    (H, W) ndarray, photons per pixel.
+    """
+    image = _as_image(image).astype(float)
+    if n_iter < 1:
+        raise ReconstructionError(f"Richardson-Lucy needs at least one iteration, got {n_iter}")
+    psf_image = np.asarray(psf_image, float)
+    mirror = psf_image[::-1, ::-1]
+    estimate = np.full(image.shape, 0.5)
+    for _ in range(int(n_iter)):
+        blurred = signal.fftconvolve(estimate, psf_image, mode="same") + background + 1e-12
+        estimate = estimate * signal.fftconvolve(image / blurred, mirror, mode="same")
+    return estimate
+
+
+def cell_labels(geometry: LatticeGeometry, sites: SiteGrid, frame_shape) -> np.ndarray:
+    """Index (into ``sites``) of the site whose cell holds each pixel, -1 for none.
+
+    A pixel belongs to the site with the nearest integer lattice indices (the cell is the
+    parallelogram around the site spanned by ``a1`` and ``a2``).
+    """
+    height, width = int(frame_shape[0]), int(frame_shape[1])
+    yy, xx = np.mgrid[0:height, 0:width]
+    fr, fc = geometry.fractional_indices(xx.ravel(), yy.ravel())
+    r = np.rint(fr).astype(np.int64) - sites.row_min
+    c = np.rint(fc).astype(np.int64) - sites.col_min
+    lookup = np.full(sites.matrix_shape, -1, np.int64)
+    lookup[sites.rows - sites.row_min, sites.cols - sites.col_min] = np.arange(len(sites))
+    ok = (r >= 0) & (r < sites.n_rows) & (c >= 0) & (c < sites.n_cols)
+    out = np.full(r.shape, -1, np.int64)
+    out[ok] = lookup[r[ok], c[ok]]
+    return out.reshape(height, width)
+
+
+def cell_integrate(image, *, labels, n_sites: int) -> np.ndarray:
+    """Sum of ``image`` over each site's cell (photons), from :func:`cell_labels`."""
+    image = np.asarray(image, float)
+    lab = np.asarray(labels).ravel()
+    ok = (lab >= 0) & np.isfinite(image.ravel())
+    return np.bincount(lab[ok], weights=image.ravel()[ok], minlength=n_sites)[:n_sites]
+
+
+# --- one-call convenience -------------------------------------------------------------------
+
+def extract_amplitudes(image, *, geometry: LatticeGeometry, psf: PSFModel, sites: SiteGrid | None = None,
+                       method: str = "linear", atom_photons: float | None = None, saturation: float | None = None,
+                       mask=None, balance: float = 0.05, n_iter: int = 30) -> AmplitudeResult:
+    """Site amplitudes of one frame in photons (builds a fresh :class:`SiteBasis`).
+
+    For many frames of one setting build a :class:`SiteBasis` (or use
+    :class:`latticeread.core.pipeline.Reconstructor`) instead, so the factorisation is reused.
+
+    Parameters
+    ----------
+    image : (H, W) ndarray
+        Frame in photons per pixel.
+    geometry : LatticeGeometry
+        Lattice of this frame (pixels).
+    psf : PSFModel
+        Image of one atom.
+    sites : SiteGrid, optional
+        Sites to estimate (default: all sites with their centre in the frame).
+    method : {"linear", "nonlinear", "wiener", "richardson_lucy"}
+    atom_photons : float, optional
+        Mean photons of one atom, required by ``"nonlinear"``.
+    saturation : float, optional
+        Saturated pixel value in photons.
+    mask : (H, W) ndarray of bool, optional
+        Pixels to use.
+    balance : float
+        Wiener regularisation.
+    n_iter : int
+        Richardson-Lucy iterations.
+
+    Returns
+    -------
+    AmplitudeResult
+    """
+    if method not in AMPLITUDE_METHODS:
+        raise ReconstructionError(f"unknown amplitude method {method!r}; use one of {', '.join(AMPLITUDE_METHODS)}")
+    image = _as_image(image)
+    basis = SiteBasis(geometry, frame_shape=image.shape, psf=psf, sites=sites, mask=mask)
+    saturated = None
+    if saturation is not None:
+        with np.errstate(invalid="ignore"):
+            saturated = np.asarray(image) >= saturation
+    if method == "linear":
+        return basis.linear(image, saturated=saturated)
+    if method == "nonlinear":
+        if atom_photons is None:
+            raise ReconstructionError("the nonlinear amplitude method needs the photons of one atom (atom_photons)")
+        return basis.nonlinear(image, atom_photons=atom_photons, saturated=saturated)
+    return deconvolution_amplitudes(image, basis=basis, method=method, saturated=saturated, balance=balance,
+                                    n_iter=n_iter)
+
+
+def deconvolution_amplitudes(image, *, basis: SiteBasis, method: str, offset=None, saturated=None,
+                             balance: float = 0.05, n_iter: int = 30, labels=None) -> AmplitudeResult:
+    """Amplitudes by Wiener or Richardson-Lucy deconvolution and cell integration.
+
+    The background is the constant of the least-squares fit of ``basis`` (a parameter of the
+    same image model), removed before integration. NaN pixels are replaced by that background.
+    """
+    image = _as_image(image, basis.frame_shape).astype(float)
+    lin = basis.linear(image, offset=offset, saturated=saturated)
+    bg = lin.background
+    clean = np.where(np.isfinite(image), image, bg)
+    psf_image = basis.psf.image()
+    if method == "wiener":
+        deconv = wiener_deconvolve(clean - bg, psf_image=psf_image, balance=balance)
+        iterations = 0
+    elif method == "richardson_lucy":
+        deconv = richardson_lucy_deconvolve(np.clip(clean, 0, None), psf_image=psf_image, n_iter=n_iter,
+                                            background=max(bg, 0.0))
+        iterations = int(n_iter)
+    else:
+        raise ReconstructionError(f"unknown deconvolution method {method!r}; use 'wiener' or 'richardson_lucy'")
+    geometry = basis.geometry if offset is None else basis.geometry.with_offset(offset)
+    if labels is None:
+        labels = cell_labels(geometry, _shifted_sites(basis, offset), basis.frame_shape)
+    amps = cell_integrate(deconv, labels=labels, n_sites=len(basis.sites))
+    return AmplitudeResult(amplitudes=amps, background=bg, flags=lin.flags, x=lin.x, y=lin.y, method=method,
+                           iterations=iterations, warnings=lin.warnings)
+
+
+def _shifted_sites(basis: SiteBasis, offset) -> SiteGrid:
+    x, y = basis.positions(offset)
+    s = basis.sites
+    return SiteGrid(rows=s.rows, cols=s.cols, x=x, y=y, row_min=s.row_min, col_min=s.col_min,
+                    n_rows=s.n_rows, n_cols=s.n_cols)

@@ -1,0 +1,582 @@
+"""From camera frames to occupation matrices: the one pipeline shared by GUI, CLI and batch runs.
+
+Steps per frame (:class:`Reconstructor`): counts -> photons (camera model), re-fit the
+lattice phase (the vectors stay those of the calibration), site amplitudes
+(:mod:`latticeread.core.amplitudes`, the factorisation reused from frame to frame),
+classification against the threshold (:mod:`latticeread.core.classify`).
+
+:func:`calibrate` makes the :class:`~latticeread.core.calibration.Calibration` from a stack:
+geometry and PSF (estimated when not given), the amplitude method (the binary refinement
+when the lattice spacing is below 0.7 PSF FWHM) and the threshold on the pooled histogram.
+
+Re-classifying with a new threshold (:func:`reclassify`) never recomputes amplitudes.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import logging
+from collections.abc import Callable, Iterable, Iterator
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from latticeread.core import flags as site_flags
+from latticeread.core.amplitudes import (
+    AMPLITUDE_METHODS,
+    AmplitudeResult,
+    SiteBasis,
+    cell_labels,
+    deconvolution_amplitudes,
+)
+from latticeread.core.calibration import Calibration
+from latticeread.core.camera import CameraModel
+from latticeread.core.classify import ThresholdResult, classify, select_threshold
+from latticeread.core.geometry import LatticeGeometry, SiteGrid, lattice_sites
+from latticeread.core.psf import PSFModel
+from latticeread.errors import CalibrationError, FrameError, LatticeNotFound, ReconstructionError
+
+__all__ = ["FrameResult", "Reconstructor", "calibrate", "reconstruct_stack", "reclassify",
+           "NONLINEAR_BELOW", "UNCERTAIN_RANGE"]
+
+log = logging.getLogger(__name__)
+
+#: Spacing / PSF FWHM below which :func:`calibrate` chooses the binary ("nonlinear") refinement.
+NONLINEAR_BELOW = 0.7
+#: Posterior range flagged UNCERTAIN.
+UNCERTAIN_RANGE = (0.1, 0.9)
+#: Sites of margin kept around the region where atoms were seen (see :func:`calibrate`).
+REGION_MARGIN = 3
+
+
+@dataclass(frozen=True)
+class FrameResult:
+    """Reconstruction of one frame.
+
+    Attributes
+    ----------
+    frame_index : int
+        0-based index of the frame in its stack.
+    geometry : LatticeGeometry
+        Lattice of this frame (calibration vectors, re-fitted offset), pixels.
+    sites : SiteGrid
+        The calibration's site set with this frame's centres ``x``, ``y`` (pixels).
+    amplitudes : (N,) ndarray of float
+        Photons per site (background removed).
+    occupied : (N,) ndarray of uint8
+        1 = atom, 0 = empty.
+    p_occupied : (N,) ndarray of float
+        Posterior probability of an atom.
+    flags : (N,) ndarray of uint8
+        Quality bits, :mod:`latticeread.core.flags`.
+    threshold : float
+        Threshold used, photons.
+    threshold_result : ThresholdResult or None
+        The histogram fit behind the threshold (None for a bare number).
+    background : float
+        Fitted background, photons per pixel.
+    method : str
+        Amplitude estimator.
+    warnings : tuple of str
+        Why this frame's result may mislead.
+    """
+
+    frame_index: int
+    geometry: LatticeGeometry
+    sites: SiteGrid = field(repr=False)
+    amplitudes: np.ndarray = field(repr=False)
+    occupied: np.ndarray = field(repr=False)
+    p_occupied: np.ndarray = field(repr=False)
+    flags: np.ndarray = field(repr=False)
+    threshold: float = float("nan")
+    threshold_result: ThresholdResult | None = None
+    background: float = 0.0
+    method: str = "linear"
+    warnings: tuple[str, ...] = ()
+
+    @property
+    def n_atoms(self) -> int:
+        """Number of sites called occupied."""
+        return int(np.count_nonzero(self.occupied))
+
+    def occupation_matrix(self, fill: int = 255) -> np.ndarray:
+        """(n_rows, n_cols) uint8 matrix: 1 atom, 0 empty, ``fill`` where there is no site."""
+        return self.sites.to_matrix(self.occupied, fill=fill, dtype=np.uint8)
+
+    def amplitude_matrix(self) -> np.ndarray:
+        """(n_rows, n_cols) amplitudes in photons, NaN where there is no site."""
+        return self.sites.to_matrix(self.amplitudes.astype(float), fill=np.nan)
+
+
+def _uncertain(p_occupied) -> np.ndarray:
+    lo, hi = UNCERTAIN_RANGE
+    with np.errstate(invalid="ignore"):
+        return (p_occupied > lo) & (p_occupied < hi)
+
+
+def reclassify(result: FrameResult, threshold) -> FrameResult:
+    """The same frame classified against another threshold; amplitudes are not recomputed.
+
+    Parameters
+    ----------
+    result : FrameResult
+    threshold : ThresholdResult or float
+        New threshold (photons), e.g. dragged by the user on the histogram. A float keeps the
+        components of ``result.threshold_result`` (if any) for the posterior.
+
+    Returns
+    -------
+    FrameResult
+    """
+    if not isinstance(threshold, ThresholdResult) and result.threshold_result is not None:
+        threshold = result.threshold_result.with_threshold(float(threshold))
+    occupied, p = classify(result.amplitudes, threshold)
+    flags = result.flags & np.uint8(~site_flags.UNCERTAIN & 0xFF)
+    flags = flags | (_uncertain(p) * site_flags.UNCERTAIN).astype(np.uint8)
+    t = threshold.threshold if isinstance(threshold, ThresholdResult) else float(threshold)
+    return dataclasses.replace(result, occupied=occupied, p_occupied=p, flags=flags, threshold=float(t),
+                               threshold_result=threshold if isinstance(threshold, ThresholdResult) else None)
+
+
+def _calibration_threshold(calibration: Calibration):
+    """The calibration's fixed threshold as a ThresholdResult when its fit was stored, else float/None."""
+    stored = calibration.notes.get("threshold_result") if isinstance(calibration.notes, dict) else None
+    if calibration.threshold is None:
+        return None
+    if stored:
+        try:
+            tr = ThresholdResult.from_dict(stored)
+        except (ReconstructionError, TypeError, ValueError):
+            return float(calibration.threshold)
+        if tr.threshold != calibration.threshold:
+            tr = tr.with_threshold(calibration.threshold)
+        return tr
+    return float(calibration.threshold)
+
+
+class Reconstructor:
+    """Turn frames of one setting into :class:`FrameResult` objects.
+
+    Everything that does not change from frame to frame (site set, PSF stamp table, the
+    factorised normal matrix) is prepared once here.
+
+    Parameters
+    ----------
+    calibration : Calibration
+        Geometry (vectors; the offset is the reference for the phase refit), PSF, camera,
+        frame shape, threshold and amplitude method.
+    method : {"linear", "nonlinear", "wiener", "richardson_lucy"}, optional
+        Overrides ``calibration.amplitude_method``.
+    mask : (H, W) ndarray of bool, optional
+        Pixels to use (True); sites that rely on excluded pixels are flagged MASKED.
+    refit_phase : bool
+        Re-find the lattice offset in every frame (True) or use the calibration's offset.
+    phase_method : {"model", "fourier"}
+        How the offset is re-found. ``"model"`` (default): search one unit cell for the best
+        matched-filter energy, then Newton steps on the least-squares fit of the whole image
+        model (:meth:`SiteBasis.fit_offset`); works at every spacing, also where the lattice's
+        Fourier peaks lie beyond the optical cut-off (spacing below ~1 FWHM for an Airy PSF).
+        ``"fourier"``: start from :func:`latticeread.core.lattice.refine_phase`, then the
+        same model polish.
+    index_bounds : (row_min, row_max, col_min, col_max), optional
+        Restrict the sites to these indices (default: ``calibration.notes["index_bounds"]``
+        when present, else every site whose centre lies in the frame).
+
+    Raises
+    ------
+    CalibrationError
+        The calibration is not usable (no frame shape, unknown method, mask of another size).
+    """
+
+    def __init__(self, calibration: Calibration, *, method: str | None = None, mask=None, refit_phase: bool = True,
+                 index_bounds=None, phase_method: str = "model"):
+        if not isinstance(calibration, Calibration):
+            raise CalibrationError(f"expected a Calibration, got {type(calibration).__name__}")
+        shape = tuple(int(s) for s in calibration.frame_shape)
+        if len(shape) != 2 or min(shape) <= 0:
+            raise CalibrationError(f"the calibration has no valid frame shape ({calibration.frame_shape}); "
+                                   "recalibrate from frames")
+        method = method or calibration.amplitude_method or "linear"
+        if method not in AMPLITUDE_METHODS:
+            raise CalibrationError(f"unknown amplitude method {method!r}; use one of {', '.join(AMPLITUDE_METHODS)}")
+        if mask is not None:
+            mask = np.asarray(mask, dtype=bool)
+            if mask.shape != shape:
+                raise CalibrationError(f"the mask is {mask.shape[0]}x{mask.shape[1]} pixels but the calibration was "
+                                       f"made for {shape[0]}x{shape[1]}")
+            if not mask.any():
+                raise CalibrationError("the mask excludes every pixel")
+        if phase_method not in ("model", "fourier"):
+            raise CalibrationError(f"unknown phase method {phase_method!r}; use 'model' or 'fourier'")
+        self.calibration = calibration
+        self.method = method
+        self.phase_method = phase_method
+        self.refit_phase = bool(refit_phase)
+        self.frame_shape = shape
+        self.camera: CameraModel = calibration.camera
+        if index_bounds is None and isinstance(calibration.notes, dict):
+            index_bounds = calibration.notes.get("index_bounds")
+        self.index_bounds = None if index_bounds is None else tuple(int(v) for v in index_bounds)
+        self.sites = lattice_sites(calibration.geometry, shape, index_bounds=self.index_bounds)
+        if len(self.sites) == 0:
+            raise CalibrationError("no lattice site of the calibration lies inside the frame")
+        self.basis = SiteBasis(calibration.geometry, frame_shape=shape, psf=calibration.psf, sites=self.sites,
+                               mask=mask)
+        self.threshold = _calibration_threshold(calibration)
+        atom = calibration.notes.get("photons_per_atom") if isinstance(calibration.notes, dict) else None
+        if atom is None and calibration.threshold is not None:
+            atom = 2.0 * float(calibration.threshold)
+        self.atom_photons = None if atom is None or not np.isfinite(atom) or atom <= 0 else float(atom)
+        self._last_offset = calibration.geometry.offset
+
+    # --- steps ------------------------------------------------------------------------------
+    def _check(self, image, where: str) -> np.ndarray:
+        image = np.asarray(image)
+        if image.ndim != 2:
+            raise FrameError(f"{where} has shape {image.shape}; expected one 2-D frame (pass a stack frame by frame)")
+        if not np.issubdtype(image.dtype, np.number) or np.iscomplexobj(image):
+            raise FrameError(f"{where} holds {image.dtype} values; expected real camera counts")
+        self.calibration.check_frame_shape(image.shape, where=where)
+        return image
+
+    def _saturated(self, image) -> np.ndarray | None:
+        if np.issubdtype(image.dtype, np.floating):
+            with np.errstate(invalid="ignore"):
+                sat = image >= self.camera.saturation
+        else:
+            sat = image >= self.camera.saturation
+        return sat if sat.any() else None
+
+    def _frame_geometry(self, photons) -> tuple[LatticeGeometry, list[str], bool]:
+        geometry = self.calibration.geometry
+        if not self.refit_phase:
+            return geometry, [], False
+        clean = photons if np.isfinite(photons).all() else np.where(np.isfinite(photons), photons,
+                                                                        np.nanmedian(photons))
+        warnings: list[str] = []
+        poor = False
+        start, search = None, True
+        if self.phase_method == "fourier":
+            from latticeread.core.lattice import refine_phase  # the geometry engineer's module
+
+            try:
+                fitted = refine_phase(clean, geometry, reference=geometry.offset)
+                start, search = fitted.offset, False
+                warnings.extend(fitted.quality.warnings)
+            except (LatticeNotFound, FrameError) as exc:
+                warnings.append(f"the Fourier phase fit failed in this frame ({exc}); the model fit searched "
+                                "the whole unit cell instead")
+        atom = self.atom_photons if self.method == "nonlinear" else None
+        offset, _ = self.basis.fit_offset(clean, start=start, search=search, atom_photons=atom)
+        shift = np.hypot(offset[0] - geometry.offset[0], offset[1] - geometry.offset[1])
+        if shift > max(geometry.spacings):
+            warnings.append(f"the re-fitted lattice moved by {shift:.2f} pixels, more than a lattice spacing; "
+                            "the calibration's offset was used")
+            return geometry, warnings, True
+        return geometry.with_offset(offset), warnings, poor
+
+    def extract_full(self, image, *, where: str = "the frame") -> tuple[LatticeGeometry, AmplitudeResult, tuple]:
+        """Geometry, amplitudes (with background and flags) and warnings of one frame.
+
+        Parameters
+        ----------
+        image : (H, W) ndarray
+            Raw camera frame in counts.
+        """
+        image = self._check(image, where)
+        photons = self.camera.counts_to_photons(image)
+        saturated = self._saturated(image)
+        geometry, warnings, poor = self._frame_geometry(photons)
+        offset = geometry.offset
+        if self.method == "linear":
+            amp = self.basis.linear(photons, offset=offset, saturated=saturated)
+        elif self.method == "nonlinear":
+            atom = self.atom_photons
+            if atom is None:
+                lin = self.basis.linear(photons, offset=offset, saturated=saturated)
+                tr = select_threshold(lin.amplitudes, method="mixture", camera=self.camera, flags=lin.flags)
+                atom = tr.occupied_mean if np.isfinite(tr.occupied_mean) else np.nan
+                if not np.isfinite(atom) or atom <= 0:
+                    warnings.append("no atoms found for the binary refinement; linear amplitudes were used")
+                    amp = lin
+                else:
+                    amp = self.basis.nonlinear(photons, atom_photons=atom, offset=offset, saturated=saturated)
+            else:
+                amp = self.basis.nonlinear(photons, atom_photons=atom, offset=offset, saturated=saturated)
+        else:
+            labels = cell_labels(geometry, _with_positions(self.sites, *self.basis.positions(offset)),
+                                 self.frame_shape)
+            amp = deconvolution_amplitudes(photons, basis=self.basis, method=self.method, offset=offset,
+                                           saturated=saturated, labels=labels)
+        flags = amp.flags
+        if poor:
+            flags = flags | np.uint8(site_flags.POOR_FIT)
+            amp = dataclasses.replace(amp, flags=flags)
+        return geometry, amp, tuple(warnings) + amp.warnings
+
+    def extract(self, image):
+        """The heavy step: ``(geometry, amplitudes (photons), flags)`` of one frame in counts."""
+        geometry, amp, _ = self.extract_full(image)
+        return geometry, amp.amplitudes, amp.flags
+
+    def __call__(self, image, *, frame_index: int = 0, threshold=None) -> FrameResult:
+        """Reconstruct one frame (counts): phase refit, amplitudes, classification.
+
+        Parameters
+        ----------
+        image : (H, W) ndarray
+            Raw camera frame in counts.
+        frame_index : int
+            Index recorded in the result (and used in error messages).
+        threshold : ThresholdResult or float, optional
+            Threshold in photons; default: the calibration's, else chosen from this frame's
+            histogram with the calibration's threshold method.
+        """
+        geometry, amp, warnings = self.extract_full(image, where=f"frame {frame_index}")
+        threshold = threshold if threshold is not None else self.threshold
+        if threshold is None:
+            threshold = select_threshold(amp.amplitudes, method=self.calibration.threshold_method or "mixture",
+                                         camera=self.camera, flags=amp.flags)
+        elif not isinstance(threshold, ThresholdResult):
+            threshold = float(threshold)
+        sites = _with_positions(self.sites, amp.x, amp.y)
+        result = FrameResult(frame_index=int(frame_index), geometry=geometry, sites=sites,
+                             amplitudes=amp.amplitudes, occupied=np.zeros(len(sites), np.uint8),
+                             p_occupied=np.zeros(len(sites)), flags=amp.flags, threshold=float("nan"),
+                             threshold_result=None, background=amp.background, method=amp.method,
+                             warnings=tuple(warnings))
+        return reclassify(result, threshold)
+
+
+def _with_positions(sites: SiteGrid, x, y) -> SiteGrid:
+    return SiteGrid(rows=sites.rows, cols=sites.cols, x=np.asarray(x, float), y=np.asarray(y, float),
+                    row_min=sites.row_min, col_min=sites.col_min, n_rows=sites.n_rows, n_cols=sites.n_cols)
+
+
+def _n_frames(frames) -> int:
+    try:
+        return len(frames)
+    except TypeError:
+        return -1
+
+
+def _frame_iter(frames) -> Iterator[np.ndarray]:
+    if isinstance(frames, np.ndarray):
+        if frames.ndim == 2:
+            yield frames
+            return
+        if frames.ndim != 3:
+            raise FrameError(f"expected a frame (H, W) or a stack (n, H, W), got shape {frames.shape}")
+        yield from frames
+        return
+    yield from frames
+
+
+def reconstruct_stack(frames: Iterable, calibration: Calibration, *, method: str | None = None, mask=None,
+                      refit_phase: bool = True, threshold=None,
+                      progress: Callable[[int, int], None] | None = None) -> Iterator[FrameResult]:
+    """Reconstruct frames one by one (a generator: memory stays flat in the number of frames).
+
+    Parameters
+    ----------
+    frames : (n, H, W) ndarray, FrameStack or iterable of (H, W) arrays
+        Raw camera frames in counts.
+    calibration : Calibration
+    method, mask, refit_phase :
+        See :class:`Reconstructor`.
+    threshold : ThresholdResult or float, optional
+        Fixed threshold in photons for every frame.
+    progress : callable(done, total), optional
+        Called after each frame (``total`` is -1 when unknown).
+
+    Yields
+    ------
+    FrameResult
+    """
+    rec = Reconstructor(calibration, method=method, mask=mask, refit_phase=refit_phase)
+    total = _n_frames(frames)
+    for i, frame in enumerate(_frame_iter(frames)):
+        yield rec(frame, frame_index=i, threshold=threshold)
+        if progress is not None:
+            progress(i + 1, total)
+
+
+def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None = None,
+              pixel_size_nm: float | None = None, geometry: LatticeGeometry | None = None,
+              threshold_method: str = "mixture", method: str | None = None, mask=None,
+              restrict_region: bool = True, max_frames: int = 50) -> Calibration:
+    """Make a calibration from a stack of frames.
+
+    Parameters
+    ----------
+    frames : (n, H, W) or (H, W) ndarray, FrameStack or sequence of (H, W) arrays
+        Raw camera frames in counts; at most ``max_frames`` (evenly spread) are used.
+    psf : PSFModel, optional
+        Known PSF; default: estimated from isolated atoms (:func:`estimate_psf`).
+    camera : CameraModel, optional
+        Counts-to-photons conversion; default: 1 count = 1 photon, no offset.
+    pixel_size_nm : float, optional
+        Camera pixel in the atom plane, nanometres (stored).
+    geometry : LatticeGeometry, optional
+        Known lattice; default: estimated from the frames (:func:`estimate_lattice`).
+    threshold_method : {"mixture", "otsu", "minimum"}
+        How the threshold is chosen on the pooled histogram.
+    method : str, optional
+        Amplitude method; default ``"nonlinear"`` when the spacing is below
+        :data:`NONLINEAR_BELOW` PSF FWHM, else ``"linear"``.
+    mask : (H, W) ndarray of bool, optional
+        Pixels to use.
+    restrict_region : bool
+        Keep only the sites within :data:`REGION_MARGIN` sites of the bounding box of the
+        sites where atoms were seen (fewer unknowns: faster and better conditioned).
+    max_frames : int
+        Largest number of frames used.
+
+    Returns
+    -------
+    Calibration
+        With ``notes``: ``threshold_result`` (the histogram fit), ``photons_per_atom``,
+        ``n_frames_used``, ``index_bounds`` (when restricted), ``amplitude_warnings``.
+    """
+    camera = camera or CameraModel()
+    n_total = _n_frames(frames)
+    if n_total == 0:
+        raise FrameError("no frames to calibrate from")
+    if isinstance(frames, np.ndarray) and frames.ndim == 2:
+        frames = frames[None]
+    if isinstance(frames, np.ndarray) and frames.ndim != 3:
+        raise FrameError(f"expected a frame (H, W) or a stack (n, H, W), got shape {frames.shape}")
+    if n_total < 0:
+        frames = list(frames)
+        n_total = len(frames)
+    pick = np.unique(np.linspace(0, n_total - 1, min(n_total, int(max_frames))).round().astype(int))
+    chosen = [np.asarray(frames[int(i)]) for i in pick]
+    for i, f in zip(pick, chosen):
+        if f.ndim != 2:
+            raise FrameError(f"frame {i} has shape {f.shape}; expected 2-D frames")
+        if f.shape != chosen[0].shape:
+            raise FrameError(f"frame {i} is {f.shape[0]}x{f.shape[1]} pixels but frame {pick[0]} is "
+                             f"{chosen[0].shape[0]}x{chosen[0].shape[1]}")
+    shape = chosen[0].shape
+    photons = np.stack([camera.counts_to_photons(f) for f in chosen])
+    finite = np.isfinite(photons)
+    clean = np.where(finite, photons, np.nanmedian(photons)) if not finite.all() else photons
+    notes: dict = {"n_frames_used": int(len(chosen))}
+    if geometry is None:
+        from latticeread.core.lattice import estimate_lattice  # the geometry engineer's module
+
+        # one frame, the brightest: summing a stack whose phase jitters would blur the peaks
+        geometry = estimate_lattice(clean[int(np.argmax(clean.reshape(len(clean), -1).sum(axis=1)))])
+        notes["geometry_estimated"] = True
+    if psf is None:
+        from latticeread.core.psf_estimate import estimate_psf  # the classification engineer's module
+
+        psf = estimate_psf(clean, geometry)
+        notes["psf_estimated"] = True
+    ratio = min(geometry.spacings) / psf.fwhm
+    if method is None:
+        method = "nonlinear" if ratio < NONLINEAR_BELOW else "linear"
+    if method not in AMPLITUDE_METHODS:
+        raise CalibrationError(f"unknown amplitude method {method!r}; use one of {', '.join(AMPLITUDE_METHODS)}")
+    notes["spacing_over_fwhm"] = float(ratio)
+
+    draft = Calibration(geometry=geometry, psf=psf, camera=camera, frame_shape=shape, threshold=None,
+                        threshold_method=threshold_method, amplitude_method="linear", pixel_size_nm=pixel_size_nm,
+                        notes={})
+    rec = Reconstructor(draft, method="linear", mask=mask, refit_phase=True)
+    pooled, pooled_flags, warnings = _pooled(rec, chosen)
+    tr = select_threshold(pooled, method=threshold_method, camera=camera, flags=pooled_flags)
+    if restrict_region and np.isfinite(tr.threshold):
+        bounds = _atom_region(rec.sites, pooled.reshape(len(chosen), -1), tr.threshold)
+        if bounds is not None:
+            notes["index_bounds"] = list(bounds)
+            draft = draft.replace(notes={"index_bounds": list(bounds)})
+            rec = Reconstructor(draft, method="linear", mask=mask, refit_phase=rec.refit_phase)
+            pooled, pooled_flags, warnings = _pooled(rec, chosen)
+            tr = select_threshold(pooled, method=threshold_method, camera=camera, flags=pooled_flags)
+    atom = tr.occupied_mean
+    if method == "nonlinear":
+        if not np.isfinite(atom) or atom <= 0:
+            warnings = warnings + ["no atoms were found, so the amplitude method fell back to linear"]
+            method = "linear"
+        else:
+            # the binary fit re-estimates the brightness of one atom in every frame (least-squares
+            # scale of the pattern); its decision level is half of it, which is the threshold
+            notes_round = dict(draft.notes, photons_per_atom=float(atom))
+            rec = Reconstructor(draft.replace(amplitude_method=method, notes=notes_round), method=method,
+                                mask=mask, refit_phase=rec.refit_phase)
+            pooled, pooled_flags, warnings, atoms = _pooled(rec, chosen, atoms=True)
+            atom = float(np.median(atoms)) if atoms else atom
+            # the self-consistent brightness can sit in a local minimum with too few atoms: scan
+            # fixed brightnesses on a few frames and keep the one with the smallest residual
+            atom = _scan_atom(rec, chosen[:3], atom)
+            rec = Reconstructor(draft.replace(amplitude_method=method,
+                                              notes=dict(draft.notes, photons_per_atom=atom)),
+                                method=method, mask=mask, refit_phase=rec.refit_phase)
+            pooled, pooled_flags, warnings, atoms = _pooled(rec, chosen, atoms=True)
+            atom = float(np.median(atoms)) if atoms else atom
+            tr = select_threshold(pooled, method=threshold_method, camera=camera, flags=pooled_flags)
+            tr = tr.with_threshold(atom / 2)
+            notes["threshold_note"] = ("binary refinement: threshold = half the fitted photons of one atom, "
+                                       "the decision level of the fit")
+    elif method in ("wiener", "richardson_lucy"):
+        rec = Reconstructor(draft.replace(amplitude_method=method, notes=dict(draft.notes)), method=method,
+                            mask=mask, refit_phase=rec.refit_phase)
+        pooled, pooled_flags, warnings = _pooled(rec, chosen)
+        tr = select_threshold(pooled, method=threshold_method, camera=camera, flags=pooled_flags)
+        atom = tr.occupied_mean
+    notes["threshold_result"] = tr.to_dict()
+    if np.isfinite(atom) and atom > 0:
+        notes["photons_per_atom"] = float(atom)
+    if warnings or tr.warnings:
+        notes["warnings"] = sorted(set(warnings) | set(tr.warnings))
+    return Calibration(geometry=geometry, psf=psf, camera=camera, frame_shape=shape, threshold=float(tr.threshold),
+                       threshold_method=threshold_method, amplitude_method=method, pixel_size_nm=pixel_size_nm,
+                       notes=notes)
+
+
+def _pooled(rec: Reconstructor, frames, *, atoms: bool = False):
+    amps, flags, warnings, fitted = [], [], [], []
+    for i, frame in enumerate(frames):
+        _, amp, warn = rec.extract_full(frame, where=f"calibration frame {i}")
+        amps.append(amp.amplitudes)
+        flags.append(amp.flags)
+        warnings.extend(warn)
+        if atoms and amp.method == "nonlinear" and getattr(rec.basis, "last_atom_photons", None):
+            fitted.append(float(rec.basis.last_atom_photons))
+    out = (np.concatenate(amps), np.concatenate(flags), sorted(set(warnings)))
+    return out + (fitted,) if atoms else out
+
+
+def _scan_atom(rec: Reconstructor, frames, atom: float) -> float:
+    """Photons of one atom minimising the binary-fit residual summed over ``frames``."""
+    candidates = atom * np.linspace(0.5, 1.25, 16)
+    energy = np.zeros(candidates.size)
+    for frame in frames:
+        image = rec._check(frame, "calibration frame")
+        photons = rec.camera.counts_to_photons(image)
+        geometry, _, _ = rec._frame_geometry(photons)
+        for i, a in enumerate(candidates):
+            energy[i] += rec.basis.binary_energy(photons, atom_photons=a, offset=geometry.offset)
+    k = int(np.argmin(energy))
+    if 0 < k < candidates.size - 1:  # parabola through the minimum and its neighbours
+        e0, e1, e2 = energy[k - 1:k + 2]
+        denom = e0 - 2 * e1 + e2
+        step = candidates[1] - candidates[0]
+        if denom > 0:
+            return float(candidates[k] + 0.5 * step * (e0 - e2) / denom)
+    return float(candidates[k])
+
+
+def _atom_region(sites: SiteGrid, amplitudes, threshold: float):
+    """Index bounds of the sites that held an atom in any frame, widened by REGION_MARGIN."""
+    seen = np.any(amplitudes > threshold, axis=0)
+    if seen.sum() < 2:
+        return None
+    r, c = sites.rows[seen], sites.cols[seen]
+    m = REGION_MARGIN
+    bounds = (int(r.min()) - m, int(r.max()) + m, int(c.min()) - m, int(c.max()) + m)
+    full = (int(sites.rows.min()), int(sites.rows.max()), int(sites.cols.min()), int(sites.cols.max()))
+    if bounds[0] <= full[0] and bounds[1] >= full[1] and bounds[2] <= full[2] and bounds[3] >= full[3]:
+        return None
+    return bounds
