@@ -1,0 +1,1183 @@
+"""The shared session model: frames, calibration, per-frame results, fidelity, settings.
+
+No widget code lives here; the desktop program observes a :class:`Session` through its
+psygnal signals and changes it only through its methods. Everything numerical goes through
+the core (:mod:`latticeread.core.pipeline`, :mod:`~latticeread.core.lattice`,
+:mod:`~latticeread.core.classify`, :mod:`~latticeread.core.psf_estimate`,
+:mod:`~latticeread.core.fidelity`), so the program and the command line give the same numbers.
+
+Dependencies between the stored results
+---------------------------------------
+``frames -> calibration (geometry, PSF, camera) -> amplitudes -> occupations -> fidelity``.
+
+* Loading frames drops every stored result; the calibration is kept only when it was made for
+  the same frame size (otherwise it is dropped with a status message).
+* Changing the geometry, the PSF, the camera or the amplitude method drops the amplitudes
+  (and everything after them).
+* Changing the threshold or the threshold method re-classifies the stored amplitudes with
+  :func:`latticeread.core.classify.classify` only; no amplitude is recomputed.
+
+Long computations are split into a *job* (a generator function that only reads a snapshot of
+the session and may run on any thread) and a *store* method that applies its output on the
+thread that owns the session. A job remembers the generation of the calibration it was made
+for; the store methods drop output that belongs to an older generation (a stale request).
+
+Signals (each emitted only when the value really changed)
+--------------------------------------------------------
+frames_changed(object)            the frame stack (or None)
+index_changed(int)                current frame index
+calibration_changed(object)       Calibration (or None)
+amplitudes_changed(object)        tuple of frame indices whose amplitudes were stored; () = cleared
+classification_changed()          occupations changed (new threshold or new amplitudes)
+threshold_result_changed(object)  ThresholdResult (or None)
+fidelity_changed(object)          FidelityReport (or None)
+settings_changed(dict)            the full settings dict after a change
+undo_changed(bool, bool)          (can undo, can redo)
+modified_changed(bool)            unsaved changes exist
+message(str)                      what the session just did, for a status bar
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import logging
+import os
+import threading
+from pathlib import Path
+from typing import Any, Callable, Iterator
+
+import numpy as np
+from psygnal import Signal
+
+from latticeread import __version__
+from latticeread.errors import (CalibrationError, ExportError, FrameError, FrameFileError, LatticeReadError,
+                                ReconstructionError)
+
+__all__ = ["Session", "DEFAULT_SETTINGS", "SESSION_FORMAT", "ReconstructBatch"]
+
+log = logging.getLogger(__name__)
+
+SESSION_FORMAT = "latticeread-session"
+SESSION_FORMAT_VERSION = 1
+
+#: User settings with their defaults (optics in nanometres, counts for the camera).
+DEFAULT_SETTINGS: dict[str, Any] = {
+    "images_per_shot": 1,          # consecutive images of the same atoms (>= 2 for fidelity)
+    "wavelength_nm": 767.0,        # fluorescence wavelength
+    "numerical_aperture": 0.75,    # objective NA
+    "pixel_size_nm": None,         # camera pixel in the atom plane; None = unknown
+    "geometry_frames": 50,         # frames summed for the lattice estimate
+    "psf_source": "estimate",      # "estimate" from isolated atoms or "airy" from the optics
+    "camera": None,                # CameraModel.to_dict() of the camera; None = 1 count per photon
+    "bootstrap_resamples": 200,    # resamples over shots for the fidelity intervals
+}
+
+
+@dataclasses.dataclass(frozen=True)
+class ReconstructBatch:
+    """Amplitudes of a few frames produced by a reconstruct job (any thread).
+
+    Attributes
+    ----------
+    generation : int
+        Calibration generation the job was made for; stale batches are dropped.
+    indices : tuple of int
+        Frame indices (0-based) in this batch.
+    geometries : tuple of LatticeGeometry
+        Per-frame geometry (offset re-fitted to the frame).
+    amplitudes : (n, N) ndarray
+        Site amplitudes in photons, one row per frame.
+    flags : (n, N) ndarray of uint8
+        Site flags (latticeread.core.flags) before classification.
+    backgrounds : (n,) ndarray
+        Fitted background per frame, photons per pixel.
+    warnings : tuple of tuple of str
+        Per-frame warnings of the extraction (poor phase fit, saturated pixels...).
+    """
+
+    generation: int
+    indices: tuple
+    geometries: tuple
+    amplitudes: np.ndarray
+    flags: np.ndarray
+    backgrounds: np.ndarray
+    warnings: tuple
+
+
+def _pipeline():
+    from latticeread.core import pipeline
+
+    return pipeline
+
+
+def _classify_module():
+    from latticeread.core import classify
+
+    return classify
+
+
+class Session:
+    """Frames, calibration, results and settings of one analysis, with change signals.
+
+    Parameters
+    ----------
+    settings : dict, optional
+        Initial user settings; missing keys take :data:`DEFAULT_SETTINGS`.
+    """
+
+    frames_changed = Signal(object)
+    index_changed = Signal(int)
+    calibration_changed = Signal(object)
+    amplitudes_changed = Signal(object)
+    classification_changed = Signal()
+    threshold_result_changed = Signal(object)
+    fidelity_changed = Signal(object)
+    settings_changed = Signal(dict)
+    undo_changed = Signal(bool, bool)
+    modified_changed = Signal(bool)
+    message = Signal(str)
+
+    def __init__(self, *, settings: dict | None = None):
+        self._frames = None
+        self._frames_source: str | None = None
+        self._frames_dataset: str | None = None
+        self._frame_lock = threading.Lock()
+        self._index = 0
+        self._calibration = None
+        self._generation = 0           # bumped whenever stored amplitudes become invalid
+        self._reconstructor = None
+        self._reconstructor_generation = -1
+        self._sites = None             # SiteGrid of the fixed site index set (from the Reconstructor)
+        self._amplitudes: np.ndarray | None = None   # (n_frames, N) photons, NaN where not done
+        self._flags: np.ndarray | None = None        # (n_frames, N) uint8
+        self._backgrounds: np.ndarray | None = None  # (n_frames,) photons per pixel
+        self._warnings: list = []                    # per-frame extraction warnings
+        self._geometries: list = []
+        self._done: np.ndarray = np.zeros(0, dtype=bool)
+        self._results: dict[int, Any] = {}           # classified FrameResult cache
+        self._threshold_result = None
+        self._fidelity = None
+        self._settings = {**DEFAULT_SETTINGS, **(settings or {})}
+        self._undo: list = []
+        self._redo: list = []
+        self._undo_group: str | None = None
+        self._modified = False
+
+    # ------------------------------------------------------------------ frames
+    @property
+    def frames(self):
+        """The frame stack (``len``, ``shape`` (n, H, W), ``__getitem__``) or None."""
+        return self._frames
+
+    @property
+    def source(self) -> str | None:
+        """Path of the file the frames came from (None for frames held in memory)."""
+        return self._frames_source
+
+    @property
+    def n_frames(self) -> int:
+        return 0 if self._frames is None else len(self._frames)
+
+    @property
+    def frame_shape(self) -> tuple[int, int] | None:
+        if self._frames is None:
+            return None
+        shape = tuple(int(s) for s in self._frames.shape)
+        return shape[-2:]
+
+    def frame(self, index: int | None = None) -> np.ndarray:
+        """Frame ``index`` (default: the current one) as a 2-D array; safe from any thread."""
+        if self._frames is None:
+            raise FrameError("no frames are loaded; open a file first")
+        i = self._index if index is None else int(index)
+        if not 0 <= i < len(self._frames):
+            raise FrameError(f"frame {i} does not exist; the stack has {len(self._frames)} frame(s)")
+        with self._frame_lock:
+            return np.asarray(self._frames[i])
+
+    def _frame_reader(self) -> Callable[[int], np.ndarray]:
+        """``read(i)`` bound to the current stack (a later load does not change what it reads)."""
+        frames, lock = self._frames, self._frame_lock
+        if frames is None:
+            raise FrameError("no frames are loaded; open a file first")
+
+        def read(i: int) -> np.ndarray:
+            with lock:
+                return np.asarray(frames[int(i)])
+
+        return read
+
+    def open_frames(self, path, *, dataset: str | None = None) -> None:
+        """Load frames from a TIFF/HDF5/npy file (through :func:`latticeread.io.load_frames`).
+
+        Raises
+        ------
+        FrameFileError, FrameError
+            The file cannot be read; the session is left unchanged.
+        """
+        from latticeread.io import load_frames
+
+        stack = load_frames(path, dataset=dataset)
+        self.set_frames(stack, source=str(Path(path).resolve()), dataset=dataset)
+
+    def set_frames(self, frames, *, source: str | None = None, dataset: str | None = None) -> None:
+        """Use ``frames`` (a FrameStack or an (n, H, W) / (H, W) array) and drop stored results."""
+        if isinstance(frames, np.ndarray):
+            if frames.ndim == 2:
+                frames = frames[None]
+            if frames.ndim != 3:
+                raise FrameError(f"frames must be a 2-D frame or a 3-D stack, got an array of shape {frames.shape}")
+        if len(frames) == 0:
+            raise FrameError("the file holds no frames")
+        old_frames = self._frames
+        if old_frames is not None and old_frames is not frames and hasattr(old_frames, "close"):
+            try:
+                old_frames.close()
+            except Exception:  # noqa: BLE001 - a failing close must not block loading new frames
+                log.debug("closing the previous frame file failed", exc_info=True)
+        self._frames = frames
+        self._frames_source = source
+        self._frames_dataset = dataset
+        shape = self.frame_shape
+        if self._calibration is not None and tuple(self._calibration.frame_shape) not in ((0, 0), shape):
+            old = self._calibration.frame_shape
+            self._calibration = None
+            self._undo.clear()
+            self._redo.clear()
+            self.calibration_changed.emit(None)
+            self.undo_changed.emit(False, False)
+            self.message.emit(f"calibration dropped: it was made for {old[0]}x{old[1]} frames, "
+                              f"these are {shape[0]}x{shape[1]}")
+        self._invalidate_amplitudes(emit=False)
+        self._index = 0
+        self.frames_changed.emit(frames)
+        self.index_changed.emit(0)
+        self.amplitudes_changed.emit(())
+        self.classification_changed.emit()
+        self._set_modified(True)
+        name = Path(source).name if source else "memory"
+        self.message.emit(f"loaded {len(frames)} frame(s) of {shape[0]}x{shape[1]} pixels from {name}")
+
+    # ------------------------------------------------------------------ index
+    @property
+    def index(self) -> int:
+        return self._index
+
+    def set_index(self, index: int) -> None:
+        """Make frame ``index`` current (clamped to the stack)."""
+        if self._frames is None:
+            return
+        index = int(np.clip(int(index), 0, len(self._frames) - 1))
+        if index != self._index:
+            self._index = index
+            self.index_changed.emit(index)
+
+    # ------------------------------------------------------------------ settings
+    @property
+    def settings(self) -> dict:
+        return dict(self._settings)
+
+    def update_settings(self, **changes) -> None:
+        """Change user settings; unknown keys raise ValueError."""
+        unknown = set(changes) - set(DEFAULT_SETTINGS)
+        if unknown:
+            raise ValueError(f"unknown setting(s) {', '.join(sorted(unknown))}; known: {', '.join(DEFAULT_SETTINGS)}")
+        if "images_per_shot" in changes and int(changes["images_per_shot"]) < 1:
+            raise ValueError(f"images per shot must be at least 1, got {changes['images_per_shot']}")
+        if changes.get("camera") is not None:
+            from latticeread.core.camera import CameraModel
+
+            CameraModel.from_dict(changes["camera"])  # raises ValueError with the camera's own message
+        new = {**self._settings, **changes}
+        if new != self._settings:
+            old = self._settings
+            self._settings = new
+            if new["images_per_shot"] != old["images_per_shot"]:
+                self._set_fidelity(None)
+            self.settings_changed.emit(dict(new))
+            self._set_modified(True)
+            if new["camera"] != old["camera"] and new["camera"] is not None and self._calibration is not None:
+                camera = self.camera_model()
+                if _differs(camera, self._calibration.camera):
+                    # photons change with the camera, so a fixed threshold in photons is meaningless
+                    self.set_calibration(self._calibration.replace(camera=camera, threshold=None))
+                    self.message.emit("camera changed: amplitudes will be recomputed and the threshold re-chosen")
+
+    # ------------------------------------------------------------------ calibration
+    @property
+    def calibration(self):
+        return self._calibration
+
+    @property
+    def generation(self) -> int:
+        """Counter bumped whenever stored amplitudes become invalid."""
+        return self._generation
+
+    def set_calibration(self, calibration, *, record: bool = True, group: str | None = None) -> None:
+        """Replace the calibration, invalidating only what depends on the changed fields.
+
+        Parameters
+        ----------
+        calibration : Calibration or None
+        record : bool
+            Put the previous calibration on the undo stack.
+        group : str, optional
+            Consecutive edits with the same group name (e.g. ``"threshold"`` while dragging)
+            make one undo step until :meth:`close_undo_group` is called.
+        """
+        old = self._calibration
+        if calibration is not None and self._frames is not None:
+            calibration.check_frame_shape(self.frame_shape, where=f"each frame of {self._source_name()}")
+        if calibration is old or (calibration is not None and old is not None and calibration == old
+                                  and _same_arrays(calibration, old)):
+            return
+        if record:
+            if not (group is not None and group == self._undo_group and self._undo):
+                self._undo.append(old)
+            self._undo_group = group
+            self._redo.clear()
+        self._apply_calibration(old, calibration)
+        self.undo_changed.emit(self.can_undo, self.can_redo)
+
+    def close_undo_group(self) -> None:
+        """End a run of merged edits (e.g. when the mouse button is released)."""
+        self._undo_group = None
+
+    def _apply_calibration(self, old, new) -> None:
+        self._calibration = new
+        amplitude_fields = ("geometry", "psf", "camera", "frame_shape", "amplitude_method")
+        if old is None or new is None or any(_differs(getattr(old, f), getattr(new, f)) for f in amplitude_fields):
+            self._invalidate_amplitudes(emit=True)
+        else:
+            if new.threshold_method != old.threshold_method and self._threshold_result is not None:
+                self._threshold_result = None
+                self._refresh_threshold_result()
+            elif new.threshold != old.threshold and self._threshold_result is not None and new.threshold is not None:
+                self._set_threshold_result(self._threshold_result.with_threshold(float(new.threshold)))
+            elif new.threshold is None and old.threshold is not None:
+                self._threshold_result = None
+                self._refresh_threshold_result()
+            self._reclassify()
+        self.calibration_changed.emit(new)
+        self._set_modified(True)
+
+    def _source_name(self) -> str:
+        return Path(self._frames_source).name if self._frames_source else "the loaded stack"
+
+    def set_geometry(self, geometry, *, record: bool = True, group: str | None = None) -> None:
+        """Use a new lattice geometry (drops amplitudes). Needs a calibration (or a PSF) first."""
+        cal = self._require_calibration("set the lattice geometry")
+        self.set_calibration(cal.replace(geometry=geometry), record=record, group=group)
+
+    def set_psf(self, psf, *, record: bool = True) -> None:
+        cal = self._require_calibration("set the PSF")
+        self.set_calibration(cal.replace(psf=psf), record=record)
+
+    def set_threshold(self, threshold: float | None, *, record: bool = True, group: str | None = None) -> None:
+        """Fix the occupancy threshold in photons (None = automatic from the histogram)."""
+        cal = self._require_calibration("set a threshold")
+        if threshold is not None:
+            threshold = float(threshold)
+            if not np.isfinite(threshold):
+                raise ValueError(f"the threshold must be a finite number of photons, got {threshold}")
+        self.set_calibration(cal.replace(threshold=threshold), record=record, group=group)
+
+    def set_threshold_method(self, method: str, *, record: bool = True) -> None:
+        """Choose the automatic threshold method ("mixture", "otsu", "minimum"); clears a fixed threshold."""
+        if method not in ("mixture", "otsu", "minimum"):
+            raise ValueError(f"unknown threshold method {method!r}; use 'mixture', 'otsu' or 'minimum'")
+        cal = self._require_calibration("choose a threshold method")
+        self.set_calibration(cal.replace(threshold_method=method, threshold=None), record=record)
+
+    def _require_calibration(self, what: str):
+        if self._calibration is None:
+            raise CalibrationError(f"cannot {what}: there is no calibration yet; estimate the geometry first")
+        return self._calibration
+
+    # ------------------------------------------------------------------ undo / redo
+    @property
+    def can_undo(self) -> bool:
+        return bool(self._undo)
+
+    @property
+    def can_redo(self) -> bool:
+        return bool(self._redo)
+
+    def undo(self) -> bool:
+        """Go back to the previous calibration; False when there is nothing to undo."""
+        if not self._undo:
+            return False
+        self._undo_group = None
+        previous = self._undo.pop()
+        self._redo.append(self._calibration)
+        self._apply_calibration(self._calibration, previous)
+        self.undo_changed.emit(self.can_undo, self.can_redo)
+        self.message.emit("undone")
+        return True
+
+    def redo(self) -> bool:
+        if not self._redo:
+            return False
+        self._undo_group = None
+        nxt = self._redo.pop()
+        self._undo.append(self._calibration)
+        self._apply_calibration(self._calibration, nxt)
+        self.undo_changed.emit(self.can_undo, self.can_redo)
+        self.message.emit("redone")
+        return True
+
+    # ------------------------------------------------------------------ amplitudes
+    def _invalidate_amplitudes(self, *, emit: bool) -> None:
+        self._generation += 1
+        n = self.n_frames
+        self._reconstructor = None
+        self._sites = None
+        self._amplitudes = None
+        self._flags = None
+        self._backgrounds = None
+        self._warnings = [()] * n
+        self._geometries = [None] * n
+        self._done = np.zeros(n, dtype=bool)
+        self._results.clear()
+        self._threshold_result = None
+        self._fidelity = None
+        if emit:
+            self.amplitudes_changed.emit(())
+            self.threshold_result_changed.emit(None)
+            self.fidelity_changed.emit(None)
+            self.classification_changed.emit()
+
+    def reconstructor(self):
+        """The :class:`latticeread.core.pipeline.Reconstructor` for the current calibration."""
+        cal = self._require_calibration("reconstruct frames")
+        if self._reconstructor is None or self._reconstructor_generation != self._generation:
+            self._reconstructor = _pipeline().Reconstructor(cal)
+            self._reconstructor_generation = self._generation
+        return self._reconstructor
+
+    @property
+    def done(self) -> np.ndarray:
+        """(n_frames,) bool: which frames have amplitudes stored."""
+        return self._done.copy()
+
+    @property
+    def sites(self):
+        """SiteGrid of the fixed site index set (positions of the calibration geometry), or None."""
+        return self._sites
+
+    def amplitudes(self, index: int | None = None) -> np.ndarray | None:
+        """Stored amplitudes (photons) of frame ``index`` or None when not reconstructed."""
+        i = self._index if index is None else int(index)
+        if self._amplitudes is None or not (0 <= i < self.n_frames) or not self._done[i]:
+            return None
+        return self._amplitudes[i]
+
+    def all_amplitudes(self) -> np.ndarray:
+        """Amplitudes of every reconstructed frame, flattened (photons); empty when none."""
+        if self._amplitudes is None or not self._done.any():
+            return np.zeros(0)
+        return self._amplitudes[self._done].ravel()
+
+    def reconstruct_job(self, indices=None, *, batch_size: int = 8) -> Callable[..., Iterator[ReconstructBatch]]:
+        """A generator function extracting amplitudes of ``indices`` (default: all not yet done).
+
+        The returned function takes ``should_stop`` (a callable returning True to cancel) and
+        yields :class:`ReconstructBatch` objects; pass each to :meth:`store_batch` on the
+        session's thread. It reads frames through :meth:`frame` (thread safe).
+        """
+        rec = self.reconstructor()
+        generation = self._generation
+        if indices is None:
+            indices = [int(i) for i in np.flatnonzero(~self._done)]
+        indices = [int(i) for i in indices]
+        frame = self._frame_reader()
+
+        name = self._source_name()
+
+        def job(should_stop: Callable[[], bool] = lambda: False) -> Iterator[ReconstructBatch]:
+            for start in range(0, len(indices), batch_size):
+                if should_stop():
+                    return
+                chunk = indices[start:start + batch_size]
+                geoms, amps, flags, backs, warns = [], [], [], [], []
+                for i in chunk:
+                    g, amp, w = rec.extract_full(frame(i), where=f"frame {i} of {name}")
+                    geoms.append(g)
+                    amps.append(np.asarray(amp.amplitudes, dtype=float))
+                    flags.append(np.asarray(amp.flags, dtype=np.uint8))
+                    backs.append(float(np.mean(amp.background)))
+                    warns.append(tuple(str(x) for x in w))
+                    if should_stop():
+                        break
+                done = len(amps)
+                yield ReconstructBatch(generation, tuple(chunk[:done]), tuple(geoms), np.stack(amps),
+                                       np.stack(flags), np.asarray(backs, dtype=float), tuple(warns))
+
+        job.n_frames = len(indices)  # type: ignore[attr-defined]
+        return job
+
+    def store_batch(self, batch: ReconstructBatch) -> bool:
+        """Store amplitudes from a reconstruct job; returns False for a stale batch (dropped)."""
+        if batch.generation != self._generation or self._calibration is None:
+            return False
+        if self._amplitudes is None:
+            self._sites = self.reconstructor().sites
+            n_sites = batch.amplitudes.shape[1]
+            self._amplitudes = np.full((self.n_frames, n_sites), np.nan)
+            self._flags = np.zeros((self.n_frames, n_sites), dtype=np.uint8)
+            self._backgrounds = np.full(self.n_frames, np.nan)
+            self._warnings = [()] * self.n_frames
+        if batch.amplitudes.shape[1] != self._amplitudes.shape[1]:
+            raise LatticeReadError(
+                f"frame {batch.indices[0]} gave {batch.amplitudes.shape[1]} sites but earlier frames gave "
+                f"{self._amplitudes.shape[1]}; the site set must be fixed by the calibration")
+        idx = list(batch.indices)
+        self._amplitudes[idx] = batch.amplitudes
+        self._flags[idx] = batch.flags
+        self._backgrounds[idx] = batch.backgrounds
+        for i, g, w in zip(idx, batch.geometries, batch.warnings):
+            self._geometries[i] = g
+            self._warnings[i] = tuple(w)
+            self._results.pop(i, None)
+        self._done[idx] = True
+        if self._fidelity is not None:
+            self._set_fidelity(None)
+        self.amplitudes_changed.emit(tuple(idx))
+        if self._threshold_result is None:
+            self._refresh_threshold_result()
+        self.classification_changed.emit()
+        return True
+
+    def reconstruct(self, indices=None) -> None:
+        """Extract amplitudes on this thread (for scripts and tests; the GUI uses a worker)."""
+        job = self.reconstruct_job(indices)
+        for batch in job():
+            self.store_batch(batch)
+
+    def finish_reconstruction(self) -> None:
+        """Re-fit the automatic threshold on all stored amplitudes (call when a job ends)."""
+        self._threshold_result = None
+        self._refresh_threshold_result()
+        self._reclassify()
+
+    # ------------------------------------------------------------------ classification
+    @property
+    def threshold_result(self):
+        """ThresholdResult of the pooled amplitude histogram (with the user's threshold), or None."""
+        return self._threshold_result
+
+    @property
+    def threshold(self) -> float | None:
+        """Threshold in photons in force: the fixed one, else the automatic one, else None."""
+        if self._calibration is not None and self._calibration.threshold is not None:
+            return float(self._calibration.threshold)
+        if self._threshold_result is not None:
+            return float(self._threshold_result.threshold)
+        return None
+
+    def _refresh_threshold_result(self) -> None:
+        amps = self.all_amplitudes()
+        amps = amps[np.isfinite(amps)]
+        if amps.size == 0 or self._calibration is None:
+            self._set_threshold_result(None)
+            return
+        cal = self._calibration
+        tr = _classify_module().select_threshold(amps, method=cal.threshold_method, camera=cal.camera)
+        if cal.threshold is not None:
+            tr = tr.with_threshold(float(cal.threshold))
+        self._set_threshold_result(tr)
+
+    def _set_threshold_result(self, result) -> None:
+        if result is not self._threshold_result:
+            self._threshold_result = result
+            self.threshold_result_changed.emit(result)
+
+    def _reclassify(self) -> None:
+        self._results.clear()
+        self._set_fidelity(None)
+        self.classification_changed.emit()
+
+    def _classifier(self):
+        """What to pass to classify(): the ThresholdResult (posteriors) or the bare threshold."""
+        if self._threshold_result is not None:
+            return self._threshold_result
+        return self.threshold
+
+    def classify_frame(self, index: int | None = None):
+        """(occupied uint8, p_occupied float) of a reconstructed frame, or None."""
+        amps = self.amplitudes(index)
+        thr = self._classifier()
+        if amps is None or thr is None:
+            return None
+        return _classify_module().classify(amps, thr)
+
+    def result(self, index: int | None = None):
+        """Classified :class:`~latticeread.core.pipeline.FrameResult` of a frame, or None.
+
+        Built from the stored amplitudes and the threshold in force; cached until the
+        threshold or the amplitudes change.
+        """
+        i = self._index if index is None else int(index)
+        if i in self._results:
+            return self._results[i]
+        amps = self.amplitudes(i)
+        thr = self._classifier()
+        if amps is None or thr is None:
+            return None
+        pipeline = _pipeline()
+        n = amps.size
+        bare = pipeline.FrameResult(
+            frame_index=i, geometry=self._geometries[i], sites=self._frame_sites(i), amplitudes=amps,
+            occupied=np.zeros(n, np.uint8), p_occupied=np.zeros(n), flags=self._flags[i],
+            background=float(self._backgrounds[i]), method=self.reconstructor().method,
+            warnings=tuple(self._warnings[i]))
+        res = pipeline.reclassify(bare, thr)
+        self._results[i] = res
+        return res
+
+    def _frame_sites(self, i: int):
+        """Site grid of frame ``i`` with positions at that frame's geometry."""
+        from latticeread.core.geometry import SiteGrid
+
+        base = self._sites
+        x, y = self.reconstructor().basis.positions(self._geometries[i].offset)
+        return SiteGrid(base.rows, base.cols, x, y, base.row_min, base.col_min, base.n_rows, base.n_cols)
+
+    def results(self) -> list:
+        """Classified FrameResults of every reconstructed frame, in frame order."""
+        return [self.result(int(i)) for i in np.flatnonzero(self._done)]
+
+    def occupation_stack(self) -> np.ndarray | None:
+        """(n_done, n_rows, n_cols) uint8 occupation matrices of the reconstructed frames (255 outside)."""
+        if self._amplitudes is None or not self._done.any() or self._classifier() is None:
+            return None
+        amps = self._amplitudes[self._done]
+        occ, _ = _classify_module().classify(amps.ravel(), self._classifier())
+        occ = np.asarray(occ, dtype=np.uint8).reshape(amps.shape)
+        s = self._sites
+        out = np.full((amps.shape[0], s.n_rows, s.n_cols), 255, dtype=np.uint8)
+        out[:, s.rows - s.row_min, s.cols - s.col_min] = occ
+        return out
+
+    def mean_occupation(self) -> np.ndarray | None:
+        """Mean occupation over the reconstructed frames, (n_rows, n_cols), NaN outside the region."""
+        stack = self.occupation_stack()
+        if stack is None:
+            return None
+        inside = stack != 255
+        n = inside.sum(axis=0)
+        total = np.where(inside, stack, 0).sum(axis=0, dtype=float)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return np.where(n > 0, total / n, np.nan)
+
+    def pooled_counts(self) -> dict | None:
+        """Occupied / empty / uncertain counts over every reconstructed frame (as in the histogram)."""
+        amps = self.all_amplitudes()
+        thr = self._classifier()
+        if amps.size == 0 or thr is None:
+            return None
+        occ, p = _classify_module().classify(amps, thr)
+        n_occ = int(np.count_nonzero(occ))
+        finite = int(np.count_nonzero(np.isfinite(amps)))
+        return {"occupied": n_occ, "empty": finite - n_occ,
+                "uncertain": int(np.count_nonzero((p >= 0.1) & (p <= 0.9)))}
+
+    def fit_threshold_job(self):
+        """A function fitting the automatic threshold on a snapshot of all amplitudes (any thread).
+
+        Returns ``(generation, ThresholdResult or None)`` for :meth:`store_threshold_fit`.
+        """
+        amps = self.all_amplitudes().copy()
+        amps = amps[np.isfinite(amps)]
+        cal = self._calibration
+        generation = self._generation
+
+        def job(should_stop: Callable[[], bool] = lambda: False):
+            if amps.size == 0 or cal is None:
+                return generation, None
+            tr = _classify_module().select_threshold(amps, method=cal.threshold_method, camera=cal.camera)
+            return generation, tr
+
+        return job
+
+    def store_threshold_fit(self, fit) -> bool:
+        """Use a threshold fit from :meth:`fit_threshold_job`; False when it is stale."""
+        generation, tr = fit
+        if generation != self._generation or self._calibration is None:
+            return False
+        if tr is not None and self._calibration.threshold is not None:
+            tr = tr.with_threshold(float(self._calibration.threshold))
+        self._set_threshold_result(tr)
+        self._reclassify()
+        return True
+
+    def phase_drift(self):
+        """Per-frame lattice offsets of the reconstructed frames and their linear trend.
+
+        Returns
+        -------
+        indices : (n,) ndarray of int
+        offsets : (n, 2) ndarray
+            Offset ``(x, y)`` in pixels of each frame's re-fitted geometry.
+        trend : (n, 2) ndarray or None
+            Least-squares straight line through the offsets (None for fewer than 3 frames).
+        """
+        idx = np.array([i for i, g in enumerate(self._geometries) if g is not None and self._done[i]], dtype=int)
+        if idx.size == 0:
+            return idx, np.zeros((0, 2)), None
+        offsets = np.array([self._geometries[i].offset for i in idx], dtype=float)
+        trend = None
+        if idx.size >= 3:
+            coef = np.polynomial.polynomial.polyfit(idx.astype(float), offsets, 1)
+            trend = np.polynomial.polynomial.polyval(idx.astype(float), coef).T
+        return idx, offsets, trend
+
+    def model_job(self, index: int | None = None):
+        """A function rendering the model image of a frame: sum of amplitude x PSF (photons)."""
+        res = self.result(index)
+        if res is None:
+            raise ReconstructionError("this frame has no amplitudes yet: reconstruct it first")
+        psf = self._calibration.psf
+        shape = self.frame_shape
+
+        def job(should_stop: Callable[[], bool] = lambda: False):
+            from latticeread.core.psf import render_sites
+
+            amps = np.nan_to_num(np.asarray(res.amplitudes, dtype=float))
+            return render_sites(shape, res.sites.x, res.sites.y, amps, psf)
+
+        return job
+
+    def counts(self, index: int | None = None) -> dict | None:
+        """Occupied / empty / uncertain site counts of a frame (uncertain: posterior in [0.1, 0.9])."""
+        cls = self.classify_frame(index)
+        if cls is None:
+            return None
+        occ, p = cls
+        n_occ = int(np.count_nonzero(occ))
+        return {"occupied": n_occ, "empty": int(occ.size - n_occ),
+                "uncertain": int(np.count_nonzero((p >= 0.1) & (p <= 0.9)))}
+
+    # ------------------------------------------------------------------ geometry / PSF / calibration jobs
+    def estimate_geometry_job(self, *, constraints: dict | None = None):
+        """A function returning a new LatticeGeometry estimated from the summed frames (any thread).
+
+        Parameters
+        ----------
+        constraints : dict, optional
+            From the lab's own calibration: ``spacing_px`` (pixels, both vectors),
+            ``angle_deg`` (direction of a1 from +x towards +y, degrees) and
+            ``angle_between_deg`` (degrees). Passed to
+            :func:`latticeread.core.lattice.estimate_lattice` as ``fixed_spacing`` and
+            ``fixed_angle``.
+        """
+        if self._frames is None:
+            raise FrameError("no frames are loaded; open a file first")
+        n = min(self.n_frames, int(self._settings["geometry_frames"]))
+        frame = self._frame_reader()
+        kwargs = self._constraint_kwargs(constraints or {})
+
+        def job(should_stop: Callable[[], bool] = lambda: False):
+            from latticeread.core.lattice import estimate_lattice
+
+            stack = np.stack([frame(i).astype(float) for i in range(n)])
+            return estimate_lattice(stack, **kwargs)
+
+        return job
+
+    def _constraint_kwargs(self, constraints: dict) -> dict:
+        kwargs: dict[str, Any] = {}
+        if constraints.get("spacing_px") is not None:
+            kwargs["fixed_spacing"] = float(constraints["spacing_px"])
+        if constraints.get("angle_deg") is not None:
+            a1_dir = np.deg2rad(float(constraints["angle_deg"]))
+            if constraints.get("angle_between_deg") is not None:
+                between = np.deg2rad(float(constraints["angle_between_deg"]))
+            elif self._calibration is not None:
+                between = self._calibration.geometry.angle_between
+            else:
+                between = np.pi / 2
+            # canonical basis: a1 follows a2 towards +y, so a2 = a1 - angle between
+            kwargs["fixed_angle"] = (float(a1_dir), float(a1_dir - between))
+        elif constraints.get("angle_between_deg") is not None:
+            self.message.emit("an angle between the vectors needs the direction of a1 too; it was ignored")
+        return kwargs
+
+    def spectrum_job(self):
+        """A function returning the Fourier magnitude of the summed frames and the lattice peaks.
+
+        Display only: ``|FFT|`` of the mean-subtracted sum of the calibration frames, shifted
+        so zero frequency sits at pixel ``(W // 2, H // 2)``, and the positions ``(x, y)`` in
+        that image of +-b1, +-b2 of the current geometry (the peaks the estimate locked on).
+        """
+        if self._frames is None:
+            raise FrameError("no frames are loaded; open a file first")
+        n = min(self.n_frames, int(self._settings["geometry_frames"]))
+        frame = self._frame_reader()
+        geometry = None if self._calibration is None else self._calibration.geometry
+
+        def job(should_stop: Callable[[], bool] = lambda: False):
+            total = np.zeros(self.frame_shape)
+            for i in range(n):
+                total += np.nan_to_num(frame(i).astype(float))
+            total -= total.mean()
+            spectrum = np.abs(np.fft.fftshift(np.fft.fft2(total)))
+            h, w = spectrum.shape
+            peaks = np.zeros((0, 2))
+            if geometry is not None:
+                b = geometry.reciprocal  # rows b1, b2 in cycles per pixel, (x, y)
+                k = np.concatenate([b, -b])
+                peaks = np.column_stack([w // 2 + k[:, 0] * w, h // 2 + k[:, 1] * h])
+            return spectrum, peaks
+
+        return job
+
+    def calibrate_job(self):
+        """A function returning a full Calibration (geometry, PSF, threshold) from the frames."""
+        if self._frames is None:
+            raise FrameError("no frames are loaded; open a file first")
+        n = min(self.n_frames, int(self._settings["geometry_frames"]))
+        frame = self._frame_reader()
+        old = self._calibration
+        settings = dict(self._settings)
+        camera = self.camera_model()
+
+        def job(should_stop: Callable[[], bool] = lambda: False):
+            stack = np.stack([frame(i) for i in range(n)])
+            kwargs: dict[str, Any] = {"pixel_size_nm": settings["pixel_size_nm"], "camera": camera}
+            if old is not None:
+                kwargs["threshold_method"] = old.threshold_method
+            if settings["psf_source"] == "airy" and settings["pixel_size_nm"]:
+                from latticeread.core.psf import airy_psf
+
+                kwargs["psf"] = airy_psf(wavelength_nm=settings["wavelength_nm"],
+                                         numerical_aperture=settings["numerical_aperture"],
+                                         pixel_size_nm=settings["pixel_size_nm"])
+            try:
+                return _pipeline().calibrate(stack, **kwargs)
+            except ReconstructionError as exc:
+                if "psf" in kwargs or "isolated" not in str(exc):
+                    raise
+                raise ReconstructionError(
+                    f"{exc}. Or use the ideal Airy PSF: in Analysis settings enter the pixel size, wavelength "
+                    "and NA and choose 'ideal Airy pattern'") from exc
+
+        return job
+
+    def camera_model(self):
+        """CameraModel from the settings, else the calibration's, else 1 count per photon."""
+        from latticeread.core.camera import CameraModel
+
+        if self._settings.get("camera"):
+            return CameraModel.from_dict(self._settings["camera"])
+        if self._calibration is not None:
+            return self._calibration.camera
+        return CameraModel()
+
+    def apply_geometry(self, geometry) -> None:
+        """Store an estimated geometry: into the calibration, or start one with a PSF if none exists."""
+        if self._calibration is not None:
+            self.set_geometry(geometry)
+            return
+        raise CalibrationError("no calibration yet: use 'calibrate' to estimate geometry, PSF and threshold together")
+
+    def estimate_psf_job(self):
+        """A function returning an empirical PSFModel from isolated atoms (any thread)."""
+        cal = self._require_calibration("estimate the PSF")
+        n = min(self.n_frames, int(self._settings["geometry_frames"]))
+        frame = self._frame_reader()
+
+        def job(should_stop: Callable[[], bool] = lambda: False):
+            from latticeread.core.psf_estimate import estimate_psf
+
+            stack = np.stack([frame(i) for i in range(n)])
+            photons = cal.camera.counts_to_photons(stack)
+            return estimate_psf(photons, cal.geometry)
+
+        return job
+
+    # ------------------------------------------------------------------ fidelity
+    @property
+    def fidelity(self):
+        return self._fidelity
+
+    def _set_fidelity(self, report) -> None:
+        if report is not self._fidelity:
+            self._fidelity = report
+            self.fidelity_changed.emit(report)
+
+    def fidelity_job(self):
+        """A function estimating loss and hopping from consecutive images (any thread).
+
+        Needs ``images_per_shot >= 2`` and every frame reconstructed. Returns
+        ``(generation, FidelityReport)`` for :meth:`store_fidelity`.
+        """
+        ips = int(self._settings["images_per_shot"])
+        if ips < 2:
+            raise ReconstructionError(
+                "fidelity needs at least two consecutive images of the same atoms: set 'images per shot' to 2 or more")
+        if self.n_frames == 0 or not self._done.all():
+            raise ReconstructionError(
+                f"fidelity needs every frame reconstructed; {int(self._done.sum())} of {self.n_frames} are done")
+        if self.n_frames % ips:
+            raise ReconstructionError(f"{self.n_frames} frames do not split into shots of {ips} images each")
+        stack = self.occupation_stack()
+        occ = stack.reshape(self.n_frames // ips, ips, *stack.shape[1:])
+        tr = self._threshold_result
+        rates = {}
+        if tr is not None:
+            rates = {"false_positive_rate": float(tr.false_positive_rate),
+                     "false_negative_rate": float(tr.false_negative_rate)}
+        geometry = self._calibration.geometry
+        n_boot = int(self._settings["bootstrap_resamples"])
+        key = (self._generation, self._classification_key())
+
+        def job(should_stop: Callable[[], bool] = lambda: False):
+            from latticeread.core.fidelity import estimate_fidelity
+
+            return key, estimate_fidelity(occ, geometry=geometry, n_bootstrap=n_boot, **rates)
+
+        return job
+
+    def store_fidelity(self, output) -> bool:
+        """Use the output of :meth:`fidelity_job`; False (dropped) when results changed meanwhile."""
+        key, report = output
+        if key != (self._generation, self._classification_key()):
+            return False
+        self._set_fidelity(report)
+        self.message.emit("fidelity estimated")
+        return True
+
+    def compute_fidelity(self) -> None:
+        """Estimate loss and hopping on this thread (scripts and tests; the GUI uses a worker)."""
+        self.store_fidelity(self.fidelity_job()())
+
+    def _classification_key(self):
+        tr = self._threshold_result
+        return (self.threshold, id(tr), int(self._done.sum()))
+
+    # ------------------------------------------------------------------ modified flag
+    @property
+    def modified(self) -> bool:
+        return self._modified
+
+    def _set_modified(self, value: bool) -> None:
+        if value != self._modified:
+            self._modified = value
+            self.modified_changed.emit(value)
+
+    # ------------------------------------------------------------------ save / open
+    def save(self, path) -> Path:
+        """Save the session: ``path`` (JSON) plus the results in ``<stem>.h5`` next to it.
+
+        The JSON holds the frame file name, current frame, calibration, settings and undo
+        history; the HDF5 file holds the stored amplitudes, flags and per-frame offsets (and
+        the frames themselves when they came from memory rather than a file). Both files are
+        written atomically; refuses to overwrite the frame file.
+        """
+        path = Path(path)
+        if path.suffix.lower() != ".json":
+            path = path.with_suffix(".json")
+        h5_path = path.with_suffix(".h5")
+        self._write_results_h5(h5_path)
+        doc = {
+            "format": SESSION_FORMAT,
+            "format_version": SESSION_FORMAT_VERSION,
+            "program_version": __version__,
+            "frames": {"source": self._frames_source, "dataset": self._frames_dataset,
+                       "n_frames": self.n_frames,
+                       "frame_shape": None if self.frame_shape is None else list(self.frame_shape)},
+            "current_index": self._index,
+            "calibration": None if self._calibration is None else self._calibration.to_dict(),
+            "undo": [None if c is None else c.to_dict() for c in self._undo[-20:]],
+            "settings": self._settings,
+            "results_file": h5_path.name,
+        }
+        text = json.dumps(doc, indent=1, default=_json_default)
+        from latticeread.io import atomic_write
+
+        with atomic_write(path, "w", protect=self._protected()) as fh:
+            fh.write(text)
+        self._set_modified(False)
+        self.message.emit(f"session saved to {path.name}")
+        return path
+
+    def autosave(self, path) -> Path | None:
+        """Save quietly for crash recovery (only when something changed since the last save)."""
+        if not self._modified or self._frames is None:
+            return None
+        was = self._modified
+        path = self.save(path)
+        self._set_modified(was)
+        return path
+
+    def _write_results_h5(self, h5_path: Path) -> None:
+        import h5py
+
+        from latticeread.io import atomic_path
+
+        with atomic_path(h5_path, protect=self._protected()) as tmp:
+            with h5py.File(tmp, "w") as f:
+                f.attrs["format"] = SESSION_FORMAT
+                f.attrs["program_version"] = __version__
+                f.attrs["generation_calibration"] = json.dumps(
+                    None if self._calibration is None else self._calibration.to_dict(), default=_json_default)
+                if self._frames is not None and self._frames_source is None:
+                    frames = np.stack([self.frame(i) for i in range(self.n_frames)])
+                    f.create_dataset("frames", data=frames, compression="gzip")
+                if self._amplitudes is not None:
+                    s = self._sites
+                    f.create_dataset("rows", data=s.rows)
+                    f.create_dataset("cols", data=s.cols)
+                    f.create_dataset("done", data=self._done)
+                    f.create_dataset("amplitude", data=self._amplitudes, compression="gzip")
+                    f.create_dataset("flags", data=self._flags, compression="gzip")
+                    offsets = np.full((self.n_frames, 2), np.nan)
+                    for i, g in enumerate(self._geometries):
+                        if g is not None:
+                            offsets[i] = g.offset
+                    f.create_dataset("offset", data=offsets)
+                    f.create_dataset("background", data=self._backgrounds)
+                    f.attrs["frame_warnings"] = json.dumps([list(w) for w in self._warnings])
+
+    @classmethod
+    def open(cls, path) -> "Session":
+        """Reopen a session saved by :meth:`save` (frames are reloaded from their file)."""
+        path = Path(path)
+        try:
+            doc = json.loads(path.read_text(encoding="utf-8"))
+        except FileNotFoundError as exc:
+            raise FrameFileError(f"session file {path} does not exist") from exc
+        except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+            raise FrameFileError(f"{path.name} is not a readable session file: {exc}") from exc
+        if not isinstance(doc, dict) or doc.get("format") != SESSION_FORMAT:
+            raise FrameFileError(f"{path.name} is not a latticeread session file")
+        session = cls(settings={k: v for k, v in doc.get("settings", {}).items() if k in DEFAULT_SETTINGS})
+        session.load_state(path, doc)
+        return session
+
+    def load_state(self, path: Path, doc: dict) -> None:
+        """Fill this (fresh) session from a saved session document (see :meth:`open`)."""
+        import h5py
+
+        from latticeread.core.calibration import Calibration
+
+        h5_path = path.parent / doc.get("results_file", path.with_suffix(".h5").name)
+        frames_info = doc.get("frames", {})
+        source = frames_info.get("source")
+        h5 = h5py.File(h5_path, "r") if h5_path.exists() else None
+        try:
+            if source:
+                self.open_frames(source, dataset=frames_info.get("dataset"))
+            elif h5 is not None and "frames" in h5:
+                self.set_frames(h5["frames"][()])
+            if self._frames is not None and frames_info.get("n_frames") not in (None, self.n_frames):
+                raise FrameFileError(f"{Path(source).name if source else 'the frames'} now holds {self.n_frames} "
+                                     f"frames but the session was saved with {frames_info['n_frames']}")
+            cal = doc.get("calibration")
+            if cal is not None:
+                self.set_calibration(Calibration.from_dict(cal), record=False)
+            self._undo = [None if c is None else Calibration.from_dict(c) for c in doc.get("undo", [])]
+            self.undo_changed.emit(self.can_undo, self.can_redo)
+            if h5 is not None and "amplitude" in h5 and self._calibration is not None:
+                self._restore_results(h5)
+        finally:
+            if h5 is not None:
+                h5.close()
+        self.set_index(int(doc.get("current_index", 0)))
+        self._set_modified(False)
+        self.message.emit(f"session {path.name} opened")
+
+    def _restore_results(self, h5) -> None:
+        rec = self.reconstructor()
+        sites = rec.sites
+        rows, cols = h5["rows"][()], h5["cols"][()]
+        if not (np.array_equal(rows, sites.rows) and np.array_equal(cols, sites.cols)):
+            self.message.emit("stored results do not match the calibration's sites; they were dropped")
+            return
+        done = h5["done"][()].astype(bool)
+        amps, flags, offsets = h5["amplitude"][()], h5["flags"][()], h5["offset"][()]
+        if amps.shape[0] != self.n_frames:
+            self.message.emit("stored results do not match the number of frames; they were dropped")
+            return
+        geom = self._calibration.geometry
+        self._sites = sites
+        self._amplitudes = amps
+        self._flags = flags
+        self._done = done
+        self._backgrounds = h5["background"][()] if "background" in h5 else np.zeros(self.n_frames)
+        self._warnings = [tuple(w) for w in json.loads(h5.attrs.get("frame_warnings", "[]"))] or [()] * self.n_frames
+        self._geometries = [geom.with_offset(offsets[i]) if done[i] else None for i in range(self.n_frames)]
+        self.amplitudes_changed.emit(tuple(int(i) for i in np.flatnonzero(done)))
+        self._refresh_threshold_result()
+        self.classification_changed.emit()
+
+    # ------------------------------------------------------------------ export
+    def export_sites_csv(self, path) -> None:
+        """Per-site table of every reconstructed frame (latticeread.io.write_sites_csv)."""
+        from latticeread.io import write_sites_csv
+
+        write_sites_csv(path, self._export_results(), calibration=self._calibration,
+                        metadata=self._export_metadata(), protect=self._protected())
+        self.message.emit(f"per-site table written to {Path(path).name}")
+
+    def export_occupation_hdf5(self, path) -> None:
+        """Occupation matrices and amplitudes (latticeread.io.write_occupation_hdf5)."""
+        from latticeread.io import write_occupation_hdf5
+
+        write_occupation_hdf5(path, self._export_results(), calibration=self._calibration,
+                              metadata=self._export_metadata(), protect=self._protected())
+        self.message.emit(f"occupation matrices written to {Path(path).name}")
+
+    def export_calibration(self, path) -> None:
+        from latticeread.io import save_calibration
+
+        save_calibration(path, self._require_calibration("export a calibration"), protect=self._protected())
+        self.message.emit(f"calibration written to {Path(path).name}")
+
+    def _export_results(self):
+        """Classified results of every reconstructed frame, produced one at a time."""
+        if not self._done.any():
+            raise ExportError("nothing to export yet: reconstruct the frames first")
+        return (self.result(int(i)) for i in np.flatnonzero(self._done))
+
+    def _export_metadata(self) -> dict:
+        meta = {"inputs": [self._frames_source] if self._frames_source else [],
+                "program_version": __version__}
+        if self._threshold_result is not None:
+            meta["threshold"] = self._threshold_result.to_dict()
+        if self._fidelity is not None and hasattr(self._fidelity, "to_dict"):
+            meta["fidelity"] = self._fidelity.to_dict()
+        return meta
+
+    def _protected(self) -> list:
+        """Input files that an output must never overwrite."""
+        return [self._frames_source] if self._frames_source else []
+
+
+def _differs(a, b) -> bool:
+    if a is b:
+        return False
+    if a != b:
+        return True
+    ka, kb = getattr(a, "kernel", None), getattr(b, "kernel", None)
+    if ka is not None or kb is not None:
+        return ka is None or kb is None or not np.array_equal(ka, kb)
+    return False
+
+
+def _same_arrays(a, b) -> bool:
+    return not _differs(a.psf, b.psf)
+
+
+def _json_default(obj):
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    if isinstance(obj, (np.integer,)):
+        return int(obj)
+    if isinstance(obj, (np.floating,)):
+        return float(obj)
+    if dataclasses.is_dataclass(obj):
+        return dataclasses.asdict(obj)
+    raise TypeError(f"cannot store {type(obj).__name__} in a session file")

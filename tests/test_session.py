@@ -1,0 +1,365 @@
+"""The session model: change signals, dependency tracking, undo/redo, save/reopen, export.
+
+Ground truth comes from the project's forward model (latticeread.core.simulate); the
+numbers the session produces must be the ones latticeread.core.pipeline.Reconstructor gives
+for the same frame and threshold (one implementation for GUI and command line).
+"""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+
+from latticeread.core.calibration import Calibration
+from latticeread.core.camera import CameraModel
+from latticeread.core.geometry import LatticeGeometry
+from latticeread.core.psf import gaussian_psf
+from latticeread.errors import CalibrationError, ExportError, FrameError, FrameFileError, ReconstructionError
+from latticeread.session import ReconstructBatch, Session
+
+GEOMETRY = LatticeGeometry(a1=(0.3, 4.0), a2=(4.0, -0.3), offset=(48.2, 47.7))
+PSF = gaussian_psf(fwhm=3.0)
+CAMERA = CameraModel(kind="scmos", counts_per_electron=0.5, bias=100.0, read_noise=1.0, quantum_efficiency=0.8)
+SHAPE = (96, 96)
+
+
+@pytest.fixture(scope="module")
+def simulated():
+    from latticeread.core.simulate import simulate_frames
+
+    frames, truth = simulate_frames(geometry=GEOMETRY, frame_shape=SHAPE, psf=PSF, camera=CAMERA,
+                                    region=("disk", 9), filling=0.4, photons_per_atom=800.0, n_shots=2,
+                                    images_per_shot=2, loss_probability=0.02, rng=7)
+    return frames, truth
+
+
+@pytest.fixture()
+def calibration():
+    return Calibration(geometry=GEOMETRY, psf=PSF, camera=CAMERA, frame_shape=SHAPE)
+
+
+@pytest.fixture()
+def session(simulated, calibration):
+    s = Session()
+    s.set_frames(simulated[0].copy())
+    s.set_calibration(calibration, record=False)
+    return s
+
+
+class Recorder:
+    """Collects the emissions of every signal of a session."""
+
+    def __init__(self, session):
+        self.events = []
+        for name in ("frames_changed", "index_changed", "calibration_changed", "amplitudes_changed",
+                     "classification_changed", "threshold_result_changed", "fidelity_changed",
+                     "settings_changed", "undo_changed", "modified_changed"):
+            getattr(session, name).connect(lambda *a, n=name: self.events.append((n, a)))
+
+    def names(self):
+        return [n for n, _ in self.events]
+
+    def clear(self):
+        self.events.clear()
+
+
+def test_signals_fire_only_on_real_change(session, calibration):
+    rec = Recorder(session)
+    session.set_index(0)
+    session.set_calibration(calibration.replace())  # equal value
+    session.update_settings(images_per_shot=1)      # unchanged
+    assert rec.names() == []
+    session.set_index(2)
+    assert rec.names() == ["index_changed"]
+    assert rec.events[0][1] == (2,)
+    session.set_index(99)  # clamped to the last frame
+    assert session.index == 3
+
+
+def test_amplitudes_match_the_pipeline_and_the_truth(session, simulated):
+    """The session's result of a frame is the Reconstructor's result (same code path) and
+    recovers the forward model's occupation."""
+    from latticeread.core.pipeline import Reconstructor
+
+    frames, truth = simulated
+    session.reconstruct()
+    session.finish_reconstruction()
+    assert session.done.all()
+    t = session.threshold
+    reference = Reconstructor(session.calibration)(frames[1], frame_index=1, threshold=session.threshold_result)
+    mine = session.result(1)
+    np.testing.assert_array_equal(mine.amplitudes, reference.amplitudes)
+    np.testing.assert_array_equal(mine.occupied, reference.occupied)
+    np.testing.assert_allclose(mine.sites.x, reference.sites.x)
+    assert mine.threshold == pytest.approx(t)
+    # against the truth of the forward model: map truth sites to our sites by index
+    for i in range(len(frames)):
+        res = session.result(i)
+        got = res.sites.to_matrix(res.occupied, fill=0)
+        want = np.zeros_like(got)
+        tr, tc = truth.sites.rows - res.sites.row_min, truth.sites.cols - res.sites.col_min
+        # truth.final_occupation: the atoms present at the end of the exposure of frame i
+        want[tr, tc] = truth.final_occupation[i]
+        assert np.mean(got == want) > 0.99
+
+
+def test_threshold_change_reclassifies_without_recomputing(session, monkeypatch):
+    session.reconstruct()
+    session.finish_reconstruction()
+    calls = []
+    rec = session.reconstructor()
+    original = rec.extract_full
+    monkeypatch.setattr(rec, "extract_full", lambda *a, **k: calls.append(1) or original(*a, **k))
+    before = session.amplitudes(0).copy()
+    n_before = session.counts()["occupied"]
+    events = Recorder(session)
+    session.set_threshold(5.0)  # far below the atoms' photons: almost every site "occupied"
+    assert calls == []
+    np.testing.assert_array_equal(session.amplitudes(0), before)
+    assert "amplitudes_changed" not in events.names()
+    assert "classification_changed" in events.names()
+    res = session.result(0)
+    np.testing.assert_array_equal(res.occupied, (before > 5.0).astype(np.uint8))
+    assert session.counts()["occupied"] > n_before
+    assert session.threshold_result.threshold == 5.0
+
+
+def test_geometry_change_invalidates_amplitudes(session):
+    session.reconstruct()
+    gen = session.generation
+    events = Recorder(session)
+    moved = GEOMETRY.with_offset((48.5, 47.7))
+    session.set_geometry(moved)
+    assert session.generation == gen + 1
+    assert session.amplitudes(0) is None and not session.done.any()
+    assert ("amplitudes_changed", ((),)) in events.events
+    assert session.threshold_result is None
+
+
+def test_stale_batches_are_dropped(session):
+    job = session.reconstruct_job([0])
+    batches = list(job())
+    session.set_psf(gaussian_psf(fwhm=3.2))
+    assert session.store_batch(batches[0]) is False
+    assert session.amplitudes(0) is None
+
+
+def test_loading_frames_drops_results_keeps_matching_calibration(session, simulated, calibration):
+    session.reconstruct([0])
+    session.set_frames(simulated[0][:2].copy())
+    assert session.calibration == calibration
+    assert not session.done.any() and session.n_frames == 2
+    messages = []
+    session.message.connect(messages.append)
+    session.set_frames(np.zeros((1, 80, 96), dtype=np.uint16) + 100)
+    assert session.calibration is None
+    assert any("made for 96x96" in m for m in messages)
+
+
+def test_undo_redo_and_merged_threshold_drag(session):
+    session.reconstruct([0])
+    assert not session.can_undo
+    for t in (100.0, 120.0, 140.0):  # one drag: merged into one undo step
+        session.set_threshold(t, group="threshold")
+    session.close_undo_group()
+    session.set_threshold(300.0)
+    assert session.calibration.threshold == 300.0
+    assert session.undo() and session.calibration.threshold == 140.0
+    assert session.undo() and session.calibration.threshold is None
+    assert not session.undo()
+    assert session.redo() and session.calibration.threshold == 140.0
+    assert session.amplitudes(0) is not None  # threshold undo never drops amplitudes
+    moved = GEOMETRY.with_offset((48.6, 47.5))
+    session.set_geometry(moved)
+    assert session.amplitudes(0) is None
+    session.undo()
+    assert session.calibration.geometry == GEOMETRY
+
+
+def test_mean_occupation_and_drift(session):
+    session.reconstruct()
+    session.finish_reconstruction()
+    stack = session.occupation_stack()
+    mean = session.mean_occupation()
+    inside = stack[0] != 255
+    np.testing.assert_allclose(mean[inside], stack[:, inside].mean(axis=0))
+    assert np.isnan(mean[~inside]).all()
+    idx, offsets, trend = session.phase_drift()
+    assert list(idx) == [0, 1, 2, 3] and offsets.shape == (4, 2) and trend.shape == (4, 2)
+    np.testing.assert_allclose(offsets, np.broadcast_to(GEOMETRY.offset, (4, 2)), atol=0.1)
+
+
+def test_fidelity_through_the_core(session):
+    session.reconstruct()
+    session.finish_reconstruction()
+    with pytest.raises(ReconstructionError, match="at least two consecutive images"):
+        session.compute_fidelity()
+    session.update_settings(images_per_shot=2, bootstrap_resamples=20)
+    session.compute_fidelity()
+    report = session.fidelity
+    assert report.n_shots == 2 and report.n_images == 2
+    session.set_threshold(session.threshold + 1.0)
+    assert session.fidelity is None  # stale after re-classification
+
+
+def test_fidelity_needs_every_frame(session):
+    session.update_settings(images_per_shot=2)
+    session.reconstruct([0])
+    with pytest.raises(ReconstructionError, match="needs every frame reconstructed; 1 of 4"):
+        session.compute_fidelity()
+
+
+def test_save_and_reopen_round_trip(session, tmp_path):
+    session.reconstruct([0, 2])
+    session.set_threshold(250.0)
+    session.update_settings(images_per_shot=2, pixel_size_nm=150.0)
+    session.set_index(2)
+    path = session.save(tmp_path / "run.json")
+    assert path.exists() and (tmp_path / "run.h5").exists() and not session.modified
+    doc = json.loads(path.read_text())
+    assert doc["format"] == "latticeread-session" and doc["frames"]["source"] is None
+    again = Session.open(path)
+    assert again.calibration == session.calibration
+    assert again.index == 2 and again.settings == session.settings
+    np.testing.assert_array_equal(again.frame(3), session.frame(3))
+    np.testing.assert_array_equal(again.done, session.done)
+    for i in (0, 2):
+        a, b = again.result(i), session.result(i)
+        np.testing.assert_array_equal(a.amplitudes, b.amplitudes)
+        np.testing.assert_array_equal(a.occupied, b.occupied)
+        np.testing.assert_array_equal(a.sites.x, b.sites.x)
+    assert again.can_undo  # history came back too
+    again.undo()
+    assert again.calibration.threshold is None
+
+
+def test_save_with_file_frames_and_refuse_to_overwrite_input(tmp_path, simulated, calibration):
+    import tifffile
+
+    tif = tmp_path / "shots.tif"
+    tifffile.imwrite(tif, simulated[0], photometric="minisblack")
+    s = Session()
+    s.open_frames(tif)
+    s.set_calibration(calibration)
+    s.reconstruct([1])
+    with pytest.raises(ExportError, match="refusing to overwrite"):
+        s.export_sites_csv(tif)
+    before = tif.read_bytes()
+    path = s.save(tmp_path / "session.json")
+    assert tif.read_bytes() == before
+    again = Session.open(path)
+    assert again.source == str(tif.resolve())
+    np.testing.assert_array_equal(again.amplitudes(1), s.amplitudes(1))
+
+
+def test_export_csv_and_hdf5_read_back(session, tmp_path):
+    from latticeread.io import read_occupation_hdf5, read_sites_csv
+
+    session.reconstruct()
+    session.finish_reconstruction()
+    session.export_sites_csv(tmp_path / "sites.csv")
+    table = read_sites_csv(tmp_path / "sites.csv")
+    results = session.results()
+    assert len(table["frame"]) == sum(len(r.sites) for r in results)
+    first = table["frame"] == 1
+    np.testing.assert_array_equal(table["occupied"][first], results[1].occupied)
+    np.testing.assert_allclose(table["amplitude"][first], results[1].amplitudes, rtol=1e-9)
+    session.export_occupation_hdf5(tmp_path / "occ.h5")
+    occ = read_occupation_hdf5(tmp_path / "occ.h5")
+    np.testing.assert_array_equal(np.asarray(occ.occupation), session.occupation_stack())
+
+
+def test_export_needs_results(session, tmp_path):
+    with pytest.raises(ExportError, match="nothing to export yet"):
+        session.export_sites_csv(tmp_path / "x.csv")
+    assert not (tmp_path / "x.csv").exists()
+
+
+def test_autosave_only_when_modified(session, tmp_path):
+    path = tmp_path / "auto.json"
+    assert session.autosave(path) is not None and path.exists()
+    assert session.modified  # autosave does not count as the user's save
+    session.save(tmp_path / "mine.json")
+    path.unlink()
+    assert session.autosave(path) is None and not path.exists()
+
+
+def test_set_threshold_needs_calibration():
+    s = Session()
+    with pytest.raises(CalibrationError, match="no calibration yet"):
+        s.set_threshold(10.0)
+
+
+def test_threshold_must_be_finite(session):
+    with pytest.raises(ValueError, match="finite number of photons"):
+        session.set_threshold(float("nan"))
+
+
+def test_unknown_threshold_method(session):
+    with pytest.raises(ValueError, match="unknown threshold method 'median'"):
+        session.set_threshold_method("median")
+
+
+def test_unknown_setting():
+    with pytest.raises(ValueError, match="unknown setting"):
+        Session().update_settings(colour="red")
+
+
+def test_images_per_shot_positive():
+    with pytest.raises(ValueError, match="images per shot must be at least 1"):
+        Session().update_settings(images_per_shot=0)
+
+
+def test_frame_index_out_of_range(session):
+    with pytest.raises(FrameError, match="frame 7 does not exist; the stack has 4"):
+        session.frame(7)
+
+
+def test_no_frames_loaded():
+    with pytest.raises(FrameError, match="no frames are loaded"):
+        Session().frame()
+
+
+def test_four_dimensional_frames_rejected():
+    with pytest.raises(FrameError, match="2-D frame or a 3-D stack"):
+        Session().set_frames(np.zeros((2, 2, 8, 8)))
+
+
+def test_calibration_of_other_frame_size_rejected(session):
+    other = Calibration(geometry=GEOMETRY, psf=PSF, camera=CAMERA, frame_shape=(64, 64))
+    with pytest.raises(CalibrationError, match="calibration was made for 64x64"):
+        session.set_calibration(other)
+
+
+def test_open_rejects_other_json(tmp_path):
+    p = tmp_path / "other.json"
+    p.write_text('{"format": "something-else"}')
+    with pytest.raises(FrameFileError, match="not a latticeread session file"):
+        Session.open(p)
+
+
+def test_open_missing_session(tmp_path):
+    with pytest.raises(FrameFileError, match="does not exist"):
+        Session.open(tmp_path / "gone.json")
+
+
+def test_batch_of_wrong_site_count_rejected(session):
+    session.reconstruct([0])
+    n = session.amplitudes(0).size
+    bad = ReconstructBatch(session.generation, (1,), (GEOMETRY,), np.zeros((1, n - 1)),
+                           np.zeros((1, n - 1), np.uint8), np.zeros(1), ((),))
+    with pytest.raises(Exception, match="the site set must be fixed by the calibration"):
+        session.store_batch(bad)
+
+
+def test_camera_setting_recomputes_in_photons(session):
+    session.reconstruct([0])
+    a0 = session.amplitudes(0).copy()
+    double = CAMERA.to_dict() | {"counts_per_electron": 1.0}  # twice the counts per photon
+    session.update_settings(camera=double)
+    assert session.amplitudes(0) is None and session.calibration.camera.counts_per_electron == 1.0
+    session.reconstruct([0])
+    bright = a0 > 400
+    np.testing.assert_allclose(session.amplitudes(0)[bright], a0[bright] / 2, rtol=1e-6)
