@@ -1,0 +1,183 @@
+"""Message boxes and small dialogs of the desktop program.
+
+Message boxes are opened window-modal with ``open()`` (never ``exec()``), so the event loop
+keeps running, background work goes on and tests can find and close them.
+"""
+
+from __future__ import annotations
+
+from PySide6 import QtCore, QtWidgets
+
+from latticeread import __version__
+
+__all__ = ["show_error", "show_info", "ask_yes_no", "show_about", "AnalysisSettingsDialog",
+           "SAFETY_TEXT", "error_title"]
+
+SAFETY_TEXT = (
+    "latticeread only analyses image files. It does not control any hardware: no camera, "
+    "laser, shutter, magnet or vacuum equipment is read or driven by it. Never rely on it "
+    "for the safety of people or apparatus. Results are estimates: check the warnings shown "
+    "next to each result before you publish them."
+)
+
+
+def error_title(exc: BaseException) -> str:
+    """Short title for an error dialog, by error family."""
+    from latticeread.errors import (CalibrationError, ExportError, FrameError, LatticeNotFound,
+                                    ReconstructionError)
+
+    for cls, title in ((ExportError, "Cannot write the file"), (FrameError, "Cannot use these frames"),
+                       (LatticeNotFound, "No lattice found"), (CalibrationError, "Calibration problem"),
+                       (ReconstructionError, "Cannot reconstruct")):
+        if isinstance(exc, cls):
+            return title
+    return "Unexpected error"
+
+
+def _box(parent, icon, title: str, text: str, details: str | None = None) -> QtWidgets.QMessageBox:
+    box = QtWidgets.QMessageBox(icon, title, text, QtWidgets.QMessageBox.Ok, parent)
+    box.setObjectName("latticeread_message")
+    box.setWindowModality(QtCore.Qt.WindowModal)
+    box.setAttribute(QtCore.Qt.WA_DeleteOnClose, True)
+    if details:
+        box.setDetailedText(details)
+    box.open()
+    return box
+
+
+def show_error(parent, title: str, text: str, *, details: str | None = None) -> QtWidgets.QMessageBox:
+    """Non-blocking error box (the window stays usable behind it)."""
+    return _box(parent, QtWidgets.QMessageBox.Critical, title, text, details)
+
+
+def show_info(parent, title: str, text: str) -> QtWidgets.QMessageBox:
+    return _box(parent, QtWidgets.QMessageBox.Information, title, text)
+
+
+def ask_yes_no(parent, title: str, text: str, on_answer) -> QtWidgets.QMessageBox:
+    """Non-blocking question; ``on_answer(bool)`` is called when the user answers."""
+    box = QtWidgets.QMessageBox(QtWidgets.QMessageBox.Question, title, text,
+                                QtWidgets.QMessageBox.Yes | QtWidgets.QMessageBox.No, parent)
+    box.setObjectName("latticeread_question")
+    box.setDefaultButton(QtWidgets.QMessageBox.Yes)
+    box.setWindowModality(QtCore.Qt.WindowModal)
+    box.setAttribute(QtCore.Qt.WA_DeleteOnClose, True)
+    box.finished.connect(lambda code: on_answer(box.clickedButton() is box.button(QtWidgets.QMessageBox.Yes)))
+    box.open()
+    return box
+
+
+def show_about(parent) -> QtWidgets.QMessageBox:
+    text = (f"<b>latticeread {__version__}</b><br>"
+            "Occupation matrices from site-resolved fluorescence images of atoms in optical lattices: "
+            "lattice geometry, point-spread function, site amplitudes, threshold, imaging fidelity "
+            "and export to CSV/HDF5.<br><br>"
+            f"<b>Safety.</b> {SAFETY_TEXT}")
+    box = QtWidgets.QMessageBox(QtWidgets.QMessageBox.Information, "About latticeread", text,
+                                QtWidgets.QMessageBox.Ok, parent)
+    box.setObjectName("latticeread_about")
+    box.setTextFormat(QtCore.Qt.RichText)
+    box.setAttribute(QtCore.Qt.WA_DeleteOnClose, True)
+    box.open()
+    return box
+
+
+class AnalysisSettingsDialog(QtWidgets.QDialog):
+    """Edit the session's analysis settings (optics, images per shot, frames used)."""
+
+    def __init__(self, settings: dict, parent=None):
+        super().__init__(parent)
+        self.setWindowTitle("Analysis settings")
+        form = QtWidgets.QFormLayout(self)
+        self.images_per_shot = QtWidgets.QSpinBox()
+        self.images_per_shot.setRange(1, 100)
+        self.images_per_shot.setValue(int(settings.get("images_per_shot", 1)))
+        self.images_per_shot.setToolTip("Consecutive images taken of the same atoms in one shot; "
+                                        "2 or more lets the program estimate loss and hopping")
+        self.wavelength = QtWidgets.QDoubleSpinBox()
+        self.wavelength.setRange(100.0, 3000.0)
+        self.wavelength.setDecimals(1)
+        self.wavelength.setSuffix(" nm")
+        self.wavelength.setValue(float(settings.get("wavelength_nm", 767.0)))
+        self.wavelength.setToolTip("Fluorescence wavelength, nanometres (for the ideal Airy PSF)")
+        self.na = QtWidgets.QDoubleSpinBox()
+        self.na.setRange(0.05, 1.6)
+        self.na.setDecimals(3)
+        self.na.setSingleStep(0.01)
+        self.na.setValue(float(settings.get("numerical_aperture", 0.75)))
+        self.na.setToolTip("Numerical aperture of the imaging objective")
+        self.pixel = QtWidgets.QDoubleSpinBox()
+        self.pixel.setRange(0.0, 100000.0)
+        self.pixel.setDecimals(2)
+        self.pixel.setSuffix(" nm")
+        self.pixel.setSpecialValueText("unknown")
+        self.pixel.setValue(float(settings.get("pixel_size_nm") or 0.0))
+        self.pixel.setToolTip("Camera pixel projected into the atom plane, nanometres (0 = unknown)")
+        self.geometry_frames = QtWidgets.QSpinBox()
+        self.geometry_frames.setRange(1, 100000)
+        self.geometry_frames.setValue(int(settings.get("geometry_frames", 50)))
+        self.geometry_frames.setToolTip("How many frames (from the start of the stack) are summed to "
+                                        "estimate the lattice and the PSF")
+        self.psf_source = QtWidgets.QComboBox()
+        self.psf_source.addItem("estimate from isolated atoms", "estimate")
+        self.psf_source.addItem("ideal Airy pattern from the optics", "airy")
+        self.psf_source.setCurrentIndex(0 if settings.get("psf_source", "estimate") == "estimate" else 1)
+        self.psf_source.setToolTip("PSF used when calibrating: measured from the frames, or the ideal "
+                                   "diffraction pattern (needs the pixel size)")
+        cam = dict(settings.get("camera") or {})
+        self.camera_kind = QtWidgets.QComboBox()
+        self.camera_kind.addItem("EMCCD", "emccd")
+        self.camera_kind.addItem("sCMOS", "scmos")
+        self.camera_kind.setCurrentIndex(0 if cam.get("kind", "emccd") == "emccd" else 1)
+        self.camera_kind.setToolTip("Camera type: sets the noise model (EMCCD doubles the shot-noise variance)")
+        self.camera_boxes = {}
+        for key, label, lo, hi, dec, default, tip in (
+                ("em_gain", "EM gain", 1.0, 10000.0, 1, 1.0, "Electron-multiplying gain (1 for sCMOS)"),
+                ("counts_per_electron", "Counts per electron", 1e-4, 1000.0, 4, 1.0,
+                 "Read-out conversion, counts (ADU) per electron after multiplication"),
+                ("bias", "Bias", 0.0, 1e6, 1, 0.0, "Offset added to every pixel, counts"),
+                ("read_noise", "Read noise", 0.0, 1e5, 2, 0.0, "RMS read noise, counts"),
+                ("quantum_efficiency", "Quantum efficiency", 0.01, 1.0, 3, 1.0,
+                 "Probability that a photon gives a photoelectron"),
+                ("clock_induced_charge", "Clock-induced charge", 0.0, 10.0, 4, 0.0,
+                 "Spurious electrons per pixel per frame (EMCCD)")):
+            box = QtWidgets.QDoubleSpinBox()
+            box.setRange(lo, hi)
+            box.setDecimals(dec)
+            box.setValue(float(cam.get(key, default)))
+            box.setToolTip(tip + "; changing the camera recomputes the amplitudes (photons)")
+            self.camera_boxes[key] = (label, box)
+        self._saturation = int(cam.get("saturation", 65535))
+        form.addRow("Images per shot", self.images_per_shot)
+        form.addRow("Wavelength", self.wavelength)
+        form.addRow("Numerical aperture", self.na)
+        form.addRow("Pixel size (atom plane)", self.pixel)
+        form.addRow("Frames for calibration", self.geometry_frames)
+        form.addRow("PSF when calibrating", self.psf_source)
+        form.addRow("Camera", self.camera_kind)
+        for label, box in self.camera_boxes.values():
+            form.addRow(label, box)
+        buttons = QtWidgets.QDialogButtonBox(QtWidgets.QDialogButtonBox.Ok | QtWidgets.QDialogButtonBox.Cancel)
+        buttons.button(QtWidgets.QDialogButtonBox.Ok).setToolTip("Use these settings")
+        buttons.button(QtWidgets.QDialogButtonBox.Cancel).setToolTip("Keep the previous settings")
+        buttons.accepted.connect(self.accept)
+        buttons.rejected.connect(self.reject)
+        form.addRow(buttons)
+
+    def values(self) -> dict:
+        pixel = float(self.pixel.value())
+        return {
+            "images_per_shot": int(self.images_per_shot.value()),
+            "wavelength_nm": float(self.wavelength.value()),
+            "numerical_aperture": float(self.na.value()),
+            "pixel_size_nm": pixel if pixel > 0 else None,
+            "geometry_frames": int(self.geometry_frames.value()),
+            "psf_source": self.psf_source.currentData(),
+            "camera": self.camera(),
+        }
+
+    def camera(self) -> dict:
+        """The camera entered, as CameraModel.to_dict() keys (counts, electrons)."""
+        cam = {"kind": self.camera_kind.currentData(), "saturation": self._saturation}
+        cam.update({k: float(box.value()) for k, (_label, box) in self.camera_boxes.items()})
+        return cam

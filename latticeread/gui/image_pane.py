@@ -1,0 +1,396 @@
+"""The camera frame with contrast control, a frame slider and lattice overlays.
+
+A pure view: the main window feeds it with ``set_*`` calls and listens to its signals.
+
+Methods
+-------
+set_frame(image, *, index, n_frames, photons=None)
+    Show a frame (counts); ``photons`` (same shape) is used for the blended view.
+set_lattice(geometry, sites)
+    Lattice grid lines and the site set (SiteGrid: rows, cols, x, y) for hover look-up; None clears.
+set_site_states(occupied, p_occupied, amplitudes)
+    Per-site classification for the coloured site markers (arrays of the SiteGrid's length).
+set_model(model)
+    The model image (photons): sum of PSFs times site amplitudes; None clears.
+set_grid_visible(bool), set_sites_visible(bool), set_view_mode(mode)
+    Overlay toggles and "raw" / "model" / "side" (side by side) / "blend".
+
+Signals
+-------
+frameRequested(int)     the user moved the frame slider / spin box
+siteHovered(object)     dict with x, y (pixels), value (counts) and, over a site, row, col,
+                        amplitude (photons), p_occupied, occupied; None when the cursor leaves
+modelWanted()           the view mode needs a model image that has not been given yet
+overlaysChanged(dict)   {"grid": bool, "sites": bool, "mode": str} after a user toggle
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pyqtgraph as pg
+from PySide6 import QtCore, QtWidgets
+
+__all__ = ["ImagePane", "VIEW_MODES", "grid_segments"]
+
+VIEW_MODES = {
+    "raw": "Raw",
+    "model": "Model",
+    "side": "Side by side",
+    "blend": "Blend",
+}
+VIEW_MODE_TIPS = {
+    "raw": "the camera frame as recorded (counts)",
+    "model": "the model rebuilt from the fitted site amplitudes and the PSF (photons)",
+    "side": "raw frame and model next to each other, zoom and pan linked",
+    "blend": "raw frame (photons) blended with the model; the slider sets the weight",
+}
+
+OCCUPIED_COLOR = (255, 140, 26)
+EMPTY_COLOR = (80, 200, 255)
+UNCERTAIN_COLOR = (255, 60, 220)
+
+
+def grid_segments(geometry, frame_shape) -> tuple[np.ndarray, np.ndarray]:
+    """End points of the lattice cell boundaries covering a frame, for a ``connect="pairs"`` curve.
+
+    Lines run half a lattice vector away from the site centres, so every site sits in the
+    middle of its cell.
+
+    Returns
+    -------
+    x, y : ndarray
+        Pairs of points (pixels), consecutive entries form one segment.
+    """
+    h, w = frame_shape
+    cx = np.array([-0.5, w - 0.5, -0.5, w - 0.5])
+    cy = np.array([-0.5, -0.5, h - 0.5, h - 0.5])
+    fr, fc = geometry.fractional_indices(cx, cy)
+    r0, r1 = int(np.floor(fr.min())), int(np.ceil(fr.max()))
+    c0, c1 = int(np.floor(fc.min())), int(np.ceil(fc.max()))
+    rb = np.arange(r0, r1 + 1) - 0.5
+    cb = np.arange(c0, c1 + 1) - 0.5
+    # lines of constant row index (running along a2) and of constant col index (along a1)
+    r_start = np.stack([rb, np.full_like(rb, c0 - 0.5)], axis=1)
+    r_end = np.stack([rb, np.full_like(rb, c1 + 0.5)], axis=1)
+    c_start = np.stack([np.full_like(cb, r0 - 0.5), cb], axis=1)
+    c_end = np.stack([np.full_like(cb, r1 + 0.5), cb], axis=1)
+    starts = np.concatenate([r_start, c_start])
+    ends = np.concatenate([r_end, c_end])
+    pts = np.empty((2 * len(starts), 2))
+    pts[0::2] = starts
+    pts[1::2] = ends
+    x, y = geometry.site_positions(pts[:, 0], pts[:, 1])
+    return x, y
+
+
+class ImagePane(QtWidgets.QWidget):
+    """Frame view with histogram contrast, frame slider, grid/site overlays and a model view."""
+
+    frameRequested = QtCore.Signal(int)
+    siteHovered = QtCore.Signal(object)
+    modelWanted = QtCore.Signal()
+    overlaysChanged = QtCore.Signal(dict)
+
+    def __init__(self, parent=None):
+        super().__init__(parent)
+        self._image = None
+        self._photons = None
+        self._model = None
+        self._geometry = None
+        self._sites = None
+        self._site_lookup = None
+        self._occupied = None
+        self._p = None
+        self._amplitudes = None
+        self._mode = "raw"
+
+        self.graphics = pg.GraphicsLayoutWidget()
+        self.graphics.setToolTip("Camera frame: scroll to zoom, drag to pan, right-click for view options")
+        self.view = self.graphics.addViewBox(row=0, col=0, lockAspect=True, invertY=True)
+        self.view.setMenuEnabled(True)
+        self.image_item = pg.ImageItem(axisOrder="row-major")
+        self.view.addItem(self.image_item)
+        self.model_view = self.graphics.addViewBox(row=0, col=1, lockAspect=True, invertY=True)
+        self.model_item = pg.ImageItem(axisOrder="row-major")
+        self.model_view.addItem(self.model_item)
+        self.model_view.setXLink(self.view)
+        self.model_view.setYLink(self.view)
+        self.model_view.setVisible(False)
+        self.lut = pg.HistogramLUTItem(image=self.image_item)
+        self.lut.gradient.loadPreset("inferno")
+        self.graphics.addItem(self.lut, row=0, col=2)
+
+        self.grid_item = pg.PlotCurveItem(pen=pg.mkPen((120, 255, 120, 110), width=1), connect="pairs")
+        self.grid_item.setZValue(5)
+        self.view.addItem(self.grid_item)
+        self.site_items = {}
+        # sizes in pixels of the frame (pxMode=False), set from the lattice spacing in set_lattice
+        for state, color in (("empty", EMPTY_COLOR), ("occupied", OCCUPIED_COLOR), ("uncertain", UNCERTAIN_COLOR)):
+            item = pg.ScatterPlotItem(size=1.0, pxMode=False, pen=pg.mkPen(color, width=1.5, cosmetic=True),
+                                      brush=pg.mkBrush(None), symbol="o")
+            item.setZValue(6)
+            self.view.addItem(item)
+            self.site_items[state] = item
+        self.hover_item = pg.ScatterPlotItem(size=1.0, pxMode=False, pen=pg.mkPen("w", width=2, cosmetic=True),
+                                             brush=pg.mkBrush(None), symbol="s")
+        self.hover_item.setZValue(7)
+        self.view.addItem(self.hover_item)
+        self.graphics.scene().sigMouseMoved.connect(self._mouse_moved)
+
+        # --- controls -------------------------------------------------------------------
+        self.prev_button = QtWidgets.QToolButton()
+        self.prev_button.setText("\u25c0")
+        self.prev_button.setToolTip("Previous frame (Left or Page Up)")
+        self.next_button = QtWidgets.QToolButton()
+        self.next_button.setText("\u25b6")
+        self.next_button.setToolTip("Next frame (Right or Page Down)")
+        self.slider = QtWidgets.QSlider(QtCore.Qt.Horizontal)
+        self.slider.setToolTip("Frame of the stack shown (0-based index)")
+        self.slider.setFocusPolicy(QtCore.Qt.NoFocus)
+        self.spin = QtWidgets.QSpinBox()
+        self.spin.setToolTip("Frame index (0-based); type a number to jump")
+        self.count_label = QtWidgets.QLabel("/ 0")
+        self.count_label.setMinimumWidth(48)
+        self.count_label.setToolTip("Number of frames in the stack")
+        self.grid_check = QtWidgets.QCheckBox("Grid")
+        self.grid_check.setChecked(True)
+        self.grid_check.setToolTip("Show the lattice cell boundaries (G)")
+        self.sites_check = QtWidgets.QCheckBox("Sites")
+        self.sites_check.setChecked(True)
+        self.sites_check.setToolTip("Mark site centres: orange = occupied, blue ring = empty, "
+                                    "magenta = uncertain (posterior between 0.1 and 0.9)")
+        self.mode_combo = QtWidgets.QComboBox()
+        for i, (key, text) in enumerate(VIEW_MODES.items()):
+            self.mode_combo.addItem(text, key)
+            self.mode_combo.setItemData(i, VIEW_MODE_TIPS[key].capitalize(), QtCore.Qt.ToolTipRole)
+        self.mode_combo.setToolTip("Compare the raw frame with the model rebuilt from the fitted site "
+                                   "amplitudes and the PSF (in photons)")
+        self.blend_slider = QtWidgets.QSlider(QtCore.Qt.Horizontal)
+        self.blend_slider.setRange(0, 100)
+        self.blend_slider.setValue(50)
+        self.blend_slider.setMaximumWidth(90)
+        self.blend_slider.setEnabled(False)
+        self.blend_slider.setToolTip("Blend weight: left = raw frame (photons), right = model")
+
+        self.slider.setMinimumWidth(120)
+        controls = QtWidgets.QHBoxLayout()
+        controls.setContentsMargins(4, 0, 4, 2)
+        controls.addWidget(self.prev_button)
+        controls.addWidget(self.slider, 1)
+        for w in (self.next_button, self.spin, self.count_label):
+            controls.addWidget(w)
+        controls.addSpacing(12)
+        for w in (self.grid_check, self.sites_check, self.mode_combo, self.blend_slider):
+            controls.addWidget(w)
+        layout = QtWidgets.QVBoxLayout(self)
+        layout.setContentsMargins(0, 0, 0, 0)
+        layout.addWidget(self.graphics, 1)
+        layout.addLayout(controls)
+
+        self.slider.valueChanged.connect(self._slider_moved)
+        self.spin.valueChanged.connect(self._slider_moved)
+        self.prev_button.clicked.connect(lambda: self.frameRequested.emit(self.slider.value() - 1))
+        self.next_button.clicked.connect(lambda: self.frameRequested.emit(self.slider.value() + 1))
+        self.grid_check.toggled.connect(self._toggled)
+        self.sites_check.toggled.connect(self._toggled)
+        self.mode_combo.currentIndexChanged.connect(self._mode_changed)
+        self.blend_slider.valueChanged.connect(lambda _v: self._update_display())
+        self.set_frame_count(0)
+
+    # ------------------------------------------------------------------ frames
+    def set_frame_count(self, n: int) -> None:
+        for w in (self.slider, self.spin):
+            w.blockSignals(True)
+            w.setRange(0, max(0, n - 1))
+            w.blockSignals(False)
+        self.count_label.setText(f"/ {max(0, n - 1)}")
+        enabled = n > 1
+        for w in (self.slider, self.spin, self.prev_button, self.next_button):
+            w.setEnabled(enabled)
+
+    def set_frame(self, image, *, index: int = 0, n_frames: int = 1, photons=None) -> None:
+        """Show ``image`` (counts), keeping the user's zoom and contrast between frames."""
+        first = self._image is None or self._image.shape != np.shape(image)
+        self._image = np.asarray(image)
+        self._photons = None if photons is None else np.asarray(photons, dtype=float)
+        self._model = None
+        if self.slider.maximum() != max(0, n_frames - 1):
+            self.set_frame_count(n_frames)
+        for w in (self.slider, self.spin):
+            w.blockSignals(True)
+            w.setValue(index)
+            w.blockSignals(False)
+        self._update_display(auto_levels=first)
+        if first:
+            self.view.autoRange(padding=0.02)
+        if self._mode != "raw":
+            self.modelWanted.emit()
+
+    def clear(self) -> None:
+        self._image = self._photons = self._model = None
+        self.image_item.clear()
+        self.model_item.clear()
+        self.set_lattice(None, None)
+        self.set_frame_count(0)
+
+    def _slider_moved(self, value: int) -> None:
+        self.frameRequested.emit(int(value))
+
+    # ------------------------------------------------------------------ overlays
+    def set_lattice(self, geometry, sites) -> None:
+        """Grid lines from ``geometry`` and the site set used for hover look-up (None clears)."""
+        self._geometry = geometry
+        self._sites = sites
+        self._site_lookup = None
+        if sites is not None and len(sites):
+            lut = np.full((sites.n_rows, sites.n_cols), -1, dtype=np.int64)
+            lut[sites.rows - sites.row_min, sites.cols - sites.col_min] = np.arange(len(sites))
+            self._site_lookup = lut
+        if geometry is not None:
+            spacing = min(geometry.spacings)
+            self.site_items["occupied"].setSize(0.55 * spacing)
+            self.site_items["uncertain"].setSize(0.55 * spacing)
+            self.site_items["empty"].setSize(0.22 * spacing)
+            self.hover_item.setSize(0.95 * spacing)
+        if geometry is None or self._image is None:
+            self.grid_item.setData([], [])
+        else:
+            x, y = grid_segments(geometry, self._image.shape)
+            self.grid_item.setData(x, y, connect="pairs")
+        if sites is None:
+            self.set_site_states(None, None, None)
+        self.grid_item.setVisible(self.grid_check.isChecked())
+
+    def set_site_states(self, occupied, p_occupied, amplitudes) -> None:
+        """Colour the site markers (arrays over the current SiteGrid); None hides them."""
+        self._occupied = None if occupied is None else np.asarray(occupied)
+        self._p = None if p_occupied is None else np.asarray(p_occupied)
+        self._amplitudes = None if amplitudes is None else np.asarray(amplitudes)
+        if self._sites is None or self._occupied is None:
+            for item in self.site_items.values():
+                item.setData([], [])
+            return
+        x, y = self._sites.x, self._sites.y
+        occ = self._occupied.astype(bool)
+        unc = np.zeros_like(occ) if self._p is None else (self._p >= 0.1) & (self._p <= 0.9)
+        for state, sel in (("occupied", occ & ~unc), ("empty", ~occ & ~unc), ("uncertain", unc)):
+            self.site_items[state].setData(x[sel], y[sel])
+        visible = self.sites_check.isChecked()
+        for item in self.site_items.values():
+            item.setVisible(visible)
+
+    def set_grid_visible(self, visible: bool) -> None:
+        self.grid_check.setChecked(bool(visible))
+
+    def set_sites_visible(self, visible: bool) -> None:
+        self.sites_check.setChecked(bool(visible))
+
+    def toggle_grid(self) -> None:
+        self.grid_check.toggle()
+
+    def _toggled(self, _checked=None) -> None:
+        self.grid_item.setVisible(self.grid_check.isChecked())
+        for item in self.site_items.values():
+            item.setVisible(self.sites_check.isChecked())
+        self.overlaysChanged.emit(self.overlays())
+
+    def overlays(self) -> dict:
+        return {"grid": self.grid_check.isChecked(), "sites": self.sites_check.isChecked(), "mode": self._mode}
+
+    # ------------------------------------------------------------------ raw vs model
+    @property
+    def view_mode(self) -> str:
+        return self._mode
+
+    def set_view_mode(self, mode: str) -> None:
+        if mode not in VIEW_MODES:
+            raise ValueError(f"unknown view mode {mode!r}; use one of {', '.join(VIEW_MODES)}")
+        self.mode_combo.setCurrentIndex(list(VIEW_MODES).index(mode))
+
+    def _mode_changed(self, _i: int) -> None:
+        self._mode = self.mode_combo.currentData()
+        side = self._mode == "side"
+        self.model_view.setVisible(side)
+        layout = self.graphics.ci.layout
+        layout.setColumnStretchFactor(0, 1)
+        layout.setColumnStretchFactor(1, 1 if side else 0)
+        layout.setColumnMaximumWidth(1, 1e6 if side else 0)
+        self.graphics.ci.updateGeometry()
+        self.blend_slider.setEnabled(self._mode == "blend")
+        self._update_display(auto_levels=True)
+        if self._mode != "raw" and self._model is None and self._image is not None:
+            self.modelWanted.emit()
+        self.overlaysChanged.emit(self.overlays())
+
+    def set_model(self, model) -> None:
+        """Model image in photons (same shape as the frame) or None."""
+        self._model = None if model is None else np.asarray(model, dtype=float)
+        self._update_display(auto_levels=True)
+
+    @property
+    def has_model(self) -> bool:
+        return self._model is not None
+
+    def _update_display(self, auto_levels: bool = False) -> None:
+        if self._image is None:
+            return
+        mode = self._mode
+        if mode == "raw" or self._model is None:
+            shown = self._image
+        elif mode == "model":
+            shown = self._model
+        elif mode == "side":
+            shown = self._image
+            self.model_item.setImage(self._model, autoLevels=True)
+        else:  # blend in photons
+            w = self.blend_slider.value() / 100.0
+            raw = self._photons if self._photons is not None else self._image.astype(float)
+            shown = (1 - w) * raw + w * self._model
+        self.image_item.setImage(shown, autoLevels=auto_levels)
+        if auto_levels:
+            finite = np.asarray(shown, dtype=float)
+            finite = finite[np.isfinite(finite)]
+            if finite.size:
+                lo, hi = np.percentile(finite, [0.5, 99.9])
+                self.lut.setLevels(float(lo), float(hi) if hi > lo else float(lo) + 1.0)
+
+    # ------------------------------------------------------------------ hover
+    def site_at(self, x: float, y: float) -> dict:
+        """What lies under pixel position ``(x, y)``: pixel value and, over a site, its data."""
+        info: dict = {"x": float(x), "y": float(y)}
+        if self._image is not None:
+            h, w = self._image.shape
+            ix, iy = int(round(x)), int(round(y))
+            if 0 <= ix < w and 0 <= iy < h:
+                info["value"] = float(self._image[iy, ix])
+        if self._geometry is None or self._site_lookup is None:
+            return info
+        fr, fc = self._geometry.fractional_indices(x, y)
+        row, col = int(np.rint(fr)), int(np.rint(fc))
+        s = self._sites
+        r, c = row - s.row_min, col - s.col_min
+        if 0 <= r < s.n_rows and 0 <= c < s.n_cols and self._site_lookup[r, c] >= 0:
+            k = int(self._site_lookup[r, c])
+            info.update(row=row, col=col, site_x=float(s.x[k]), site_y=float(s.y[k]))
+            if self._amplitudes is not None:
+                info["amplitude"] = float(self._amplitudes[k])
+            if self._p is not None:
+                info["p_occupied"] = float(self._p[k])
+            if self._occupied is not None:
+                info["occupied"] = int(self._occupied[k])
+        return info
+
+    def _mouse_moved(self, pos) -> None:
+        if self._image is None:
+            return
+        if not self.view.sceneBoundingRect().contains(pos):
+            self.hover_item.setData([], [])
+            self.siteHovered.emit(None)
+            return
+        p = self.view.mapSceneToView(pos)
+        info = self.site_at(p.x(), p.y())
+        if "row" in info:
+            self.hover_item.setData([info["site_x"]], [info["site_y"]])
+        else:
+            self.hover_item.setData([], [])
+        self.siteHovered.emit(info)

@@ -1,0 +1,1060 @@
+"""The main window: wires the image pane, the occupation view and the analysis panels to a Session.
+
+Views never compute: they show what the :class:`latticeread.session.Session` holds and send
+user actions back to it. Long work (calibration, reconstruction of a stack, PSF estimate,
+model image) runs in a :class:`latticeread.gui.workers.WorkerPool`; the session is changed
+only on the GUI thread.
+
+Redraws are coalesced: session signals mark parts of the window dirty and one timer tick
+redraws them, at most every ``REFRESH_INTERVAL_MS`` while a stack is being processed, so a
+fast stream of results cannot stall the GUI thread.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import traceback
+from pathlib import Path
+
+import numpy as np
+import pyqtgraph as pg
+from PySide6 import QtCore, QtGui, QtWidgets
+
+from latticeread import __version__
+from latticeread.errors import LatticeReadError
+from latticeread.gui import dialogs
+from latticeread.gui.image_pane import VIEW_MODES, ImagePane
+from latticeread.gui.occupation_view import OccupationView
+from latticeread.gui.settings import AppSettings
+from latticeread.gui.workers import WorkerPool
+from latticeread.session import Session
+
+__all__ = ["MainWindow", "FRAME_FILTER"]
+
+log = logging.getLogger(__name__)
+
+FRAME_FILTER = "Frames (*.tif *.tiff *.h5 *.hdf5 *.npy *.npz);;All files (*)"
+SESSION_FILTER = "latticeread session (*.json)"
+REFRESH_INTERVAL_MS = 200     # redraw period while a stack is processed
+AUTOSAVE_INTERVAL_S = 60
+ICON_DIR = Path(__file__).resolve().parents[2] / "icons"
+
+#: (attribute, class name in latticeread.gui.panels, dock title, dock area, tooltip)
+PANELS = (
+    ("geometry_panel", "GeometryPanel", "Lattice geometry", "left",
+     "Fourier spectrum, lattice vectors, fit quality, constraints, manual nudges and phase drift"),
+    ("psf_panel", "PSFPanel", "Point-spread function", "left",
+     "Image of one atom and its radial profile against the ideal Airy pattern"),
+    ("fidelity_panel", "FidelityPanel", "Imaging fidelity", "left",
+     "Loss and hopping between consecutive images, with confidence intervals"),
+    ("histogram_panel", "HistogramPanel", "Amplitude histogram", "right",
+     "Site amplitudes (photons), fitted components and the draggable threshold"),
+)
+
+
+def _icon(name: str) -> QtGui.QIcon:
+    path = ICON_DIR / f"{name}.svg"
+    return QtGui.QIcon(str(path)) if path.exists() else QtGui.QIcon()
+
+
+class MainWindow(QtWidgets.QMainWindow):
+    """The desktop program's window.
+
+    Parameters
+    ----------
+    session : Session, optional
+        Model to show (a new empty one by default).
+    settings : AppSettings, optional
+        Remembered settings; tests pass ``AppSettings(tmp_path / "s.ini")``.
+    synchronous : bool
+        Run background work in the GUI thread (tests).
+    autosave_interval_s : float
+        Period of the crash-recovery autosave; 0 disables it.
+    offer_restore : bool
+        On start, offer to restore an autosaved session left by a crash.
+    """
+
+    sessionReplaced = QtCore.Signal(object)
+
+    def __init__(self, *, session: Session | None = None, settings: AppSettings | None = None,
+                 synchronous: bool = False, autosave_interval_s: float = AUTOSAVE_INTERVAL_S,
+                 offer_restore: bool = True, parent=None):
+        super().__init__(parent)
+        self.setObjectName("latticeread_main")
+        self.app_settings = settings or AppSettings()
+        self.workers = WorkerPool(synchronous=synchronous, parent=self)
+        self.session: Session | None = None
+        self._connections: list = []
+        self._dirty: set[str] = set()
+        self._last_error: str | None = None
+        self._progress_total = 0
+        self._progress_done = 0
+        self._closing = False
+        self.setWindowTitle("latticeread")
+        self.setWindowIcon(_icon("latticeread"))
+        self.setAcceptDrops(True)
+        self.resize(1500, 940)
+
+        self.image_pane = ImagePane()
+        self.setCentralWidget(self.image_pane)
+        self.occupation_view = OccupationView()
+        self.docks: dict[str, QtWidgets.QDockWidget] = {}
+        self.panels: dict[str, QtWidgets.QWidget] = {}
+        self._build_docks()
+        self._build_status_bar()
+        self._build_actions()
+        self._build_menus()
+        self._build_toolbar()
+
+        self._refresh_timer = QtCore.QTimer(self)
+        self._refresh_timer.setSingleShot(True)
+        self._refresh_timer.timeout.connect(self._refresh)
+        self._undo_group_timer = QtCore.QTimer(self)
+        self._undo_group_timer.setSingleShot(True)
+        self._undo_group_timer.setInterval(1000)
+        self._undo_group_timer.timeout.connect(lambda: self.session and self.session.close_undo_group())
+        self._autosave_timer = QtCore.QTimer(self)
+        self._autosave_debounce = QtCore.QTimer(self)
+        self._autosave_debounce.setSingleShot(True)
+        self._autosave_debounce.setInterval(5000)
+        self._autosave_debounce.timeout.connect(self.autosave)
+        if autosave_interval_s and autosave_interval_s > 0:
+            self._autosave_timer.setInterval(int(autosave_interval_s * 1000))
+            self._autosave_timer.timeout.connect(self.autosave)
+            self._autosave_timer.start()
+
+        self._wire_views()
+        self.set_session(session or Session())
+        self.app_settings.restore_window(self)
+        self._restore_view_options()
+        if offer_restore:
+            QtCore.QTimer.singleShot(0, self._offer_restore)
+
+    # ================================================================== construction
+    def _build_docks(self) -> None:
+        from latticeread.gui import panels as panel_pkg
+
+        self.setDockNestingEnabled(True)
+        for attr, cls_name, title, area, tip in PANELS:
+            try:
+                widget = getattr(panel_pkg, cls_name)()
+            except (ImportError, AttributeError) as exc:  # a panel not built yet
+                log.warning("panel %s unavailable: %s", cls_name, exc)
+                widget = QtWidgets.QLabel(f"{title}: this panel is not available in this build")
+                widget.setAlignment(QtCore.Qt.AlignCenter)
+                widget.setToolTip("This panel could not be loaded")
+            self.panels[attr] = widget
+            setattr(self, attr, widget)
+            self._add_dock(attr, title, widget, area, tip)
+        self._add_dock("occupation", "Occupation", self.occupation_view, "right",
+                       "Occupation matrix of this frame and the mean over the reconstructed frames")
+        self.tabifyDockWidget(self.docks["geometry_panel"], self.docks["psf_panel"])
+        self.tabifyDockWidget(self.docks["psf_panel"], self.docks["fidelity_panel"])
+        self.docks["geometry_panel"].raise_()
+        self.resizeDocks([self.docks["geometry_panel"], self.docks["histogram_panel"]], [430, 430],
+                         QtCore.Qt.Horizontal)
+
+    def _add_dock(self, key: str, title: str, widget, area: str, tip: str) -> None:
+        dock = QtWidgets.QDockWidget(title, self)
+        dock.setObjectName(f"dock_{key}")
+        dock.setWidget(widget)
+        dock.setToolTip(tip)
+        dock.toggleViewAction().setToolTip(f"Show or hide the {title.lower()} panel")
+        dock.toggleViewAction().setStatusTip(tip)
+        self.addDockWidget(QtCore.Qt.LeftDockWidgetArea if area == "left" else QtCore.Qt.RightDockWidgetArea, dock)
+        self.docks[key] = dock
+
+    def _build_status_bar(self) -> None:
+        bar = self.statusBar()
+        self.status_label = QtWidgets.QLabel("ready: open a frame file (File > Open frames, or drop it here)")
+        self.status_label.setToolTip("What the program is doing")
+        self.hover_label = QtWidgets.QLabel("")
+        self.hover_label.setToolTip("Site under the cursor: indices (row along a1, col along a2), "
+                                    "amplitude in photons, posterior probability of an atom")
+        self.hover_label.setMinimumWidth(420)
+        self.progress = QtWidgets.QProgressBar()
+        self.progress.setMaximumWidth(220)
+        self.progress.setToolTip("Progress of the running analysis")
+        self.progress.setVisible(False)
+        self.cancel_button = QtWidgets.QPushButton("Cancel")
+        self.cancel_button.setToolTip("Stop the running analysis (Esc); results so far are kept")
+        self.cancel_button.setIcon(_icon("cancel"))
+        self.cancel_button.setVisible(False)
+        self.cancel_button.clicked.connect(self.cancel_work)
+        bar.addWidget(self.status_label, 1)
+        bar.addPermanentWidget(self.hover_label)
+        bar.addPermanentWidget(self.progress)
+        bar.addPermanentWidget(self.cancel_button)
+        self.workers.busy_changed.connect(self._busy_changed)
+
+    def _action(self, text: str, slot, *, tip: str, shortcut=None, icon: str | None = None,
+                checkable: bool = False) -> QtGui.QAction:
+        act = QtGui.QAction(text, self)
+        if shortcut is not None:
+            shortcuts = shortcut if isinstance(shortcut, (list, tuple)) else [shortcut]
+            act.setShortcuts([QtGui.QKeySequence(s) for s in shortcuts])
+            keys = ", ".join(QtGui.QKeySequence(s).toString(QtGui.QKeySequence.NativeText) for s in shortcuts)
+            tip = f"{tip} ({keys})"
+        act.setToolTip(tip)
+        act.setStatusTip(tip)
+        if icon:
+            act.setIcon(_icon(icon))
+        act.setCheckable(checkable)
+        if checkable:
+            act.toggled.connect(slot)
+        else:
+            act.triggered.connect(lambda _checked=False: slot())
+        self.addAction(act)
+        return act
+
+    def _build_actions(self) -> None:
+        K = QtGui.QKeySequence
+        a = self.actions_by_name = {}
+        a["open"] = self._action("&Open frames...", self._open_dialog, tip="Open a TIFF, HDF5 or NumPy frame file",
+                                 shortcut=K.Open, icon="open")
+        a["open_session"] = self._action("Open &session...", self._open_session_dialog,
+                                         tip="Reopen a saved session (frames, calibration, results)",
+                                         shortcut="Ctrl+Shift+O")
+        a["save_session"] = self._action("&Save session", self._save_session, tip="Save the session next to its "
+                                         "results file", shortcut=K.Save, icon="save")
+        a["save_session_as"] = self._action("Save session &as...", lambda: self._save_session(ask=True),
+                                            tip="Save the session under a new name", shortcut="Ctrl+Shift+S")
+        a["export_csv"] = self._action("Per-site table (CSV)...", lambda: self._export_dialog("csv"),
+                                       tip="Write frame,row,col,x,y,amplitude,occupied,p_occupied,flags for "
+                                       "every reconstructed frame", icon="export")
+        a["export_h5"] = self._action("Occupation matrices (HDF5)...", lambda: self._export_dialog("h5"),
+                                      tip="Write occupation matrices, amplitudes and settings to HDF5")
+        a["export_cal"] = self._action("Calibration (JSON)...", lambda: self._export_dialog("cal"),
+                                       tip="Write the lattice geometry, PSF, camera and threshold to JSON")
+        a["quit"] = self._action("&Quit", self.close, tip="Close the program", shortcut=K.Quit)
+        a["undo"] = self._action("&Undo", self._undo, tip="Undo the last calibration change", shortcut=K.Undo)
+        a["redo"] = self._action("&Redo", self._redo, tip="Redo the calibration change", shortcut=K.Redo)
+        a["settings"] = self._action("Analysis &settings...", self._settings_dialog,
+                                     tip="Optics, pixel size, images per shot and frames used for calibration")
+        a["calibrate"] = self._action("&Calibrate from frames", self.calibrate,
+                                      tip="Estimate lattice geometry, PSF and threshold from the frames",
+                                      shortcut="Ctrl+K", icon="estimate-geometry")
+        a["estimate_geometry"] = self._action("Re-estimate &geometry", self.estimate_geometry,
+                                              tip="Estimate the lattice vectors and phase again from the frames",
+                                              shortcut="Ctrl+E", icon="estimate-geometry")
+        a["estimate_psf"] = self._action("Estimate &PSF", self.estimate_psf,
+                                         tip="Measure the PSF from isolated atoms", shortcut="Ctrl+P",
+                                         icon="estimate-psf")
+        a["reconstruct"] = self._action("&Reconstruct all frames", self.reconstruct_all,
+                                        tip="Site amplitudes and occupations for every frame of the stack",
+                                        shortcut="Ctrl+R", icon="reconstruct")
+        a["fidelity"] = self._action("Estimate &fidelity", self.estimate_fidelity,
+                                     tip="Loss and hopping from consecutive images of the same atoms",
+                                     shortcut="Ctrl+Shift+F", icon="fidelity")
+        a["cancel"] = self._action("&Cancel", self.cancel_work, tip="Stop the running analysis",
+                                   shortcut="Esc", icon="cancel")
+        a["next"] = self._action("&Next frame", lambda: self.step_frame(+1), tip="Show the next frame",
+                                 shortcut=["Right", "PgDown"], icon="next-frame")
+        a["prev"] = self._action("&Previous frame", lambda: self.step_frame(-1), tip="Show the previous frame",
+                                 shortcut=["Left", "PgUp"], icon="previous-frame")
+        a["grid"] = self._action("Lattice &grid", self.image_pane.set_grid_visible,
+                                 tip="Show the lattice cell boundaries", shortcut="G", icon="toggle-grid",
+                                 checkable=True)
+        a["sites"] = self._action("Site &markers", self.image_pane.set_sites_visible,
+                                  tip="Show site centres coloured occupied / empty / uncertain", shortcut="S",
+                                  checkable=True)
+        a["grid"].setChecked(True)
+        a["sites"].setChecked(True)
+        a["reset_layout"] = self._action("Reset &layout", self.reset_layout,
+                                         tip="Put every panel back in its default place")
+        a["about"] = self._action("&About latticeread", lambda: dialogs.show_about(self),
+                                  tip="Version, purpose and the safety note")
+        a["safety"] = self._action("&Safety note", lambda: dialogs.show_info(self, "Safety", dialogs.SAFETY_TEXT),
+                                   tip="What this program does and does not do")
+        self.mode_actions = QtGui.QActionGroup(self)
+        for key, text in VIEW_MODES.items():
+            act = QtGui.QAction(text, self, checkable=True)
+            act.setData(key)
+            act.setToolTip(f"Image pane: {text.lower()}")
+            act.setStatusTip(f"Image pane: {text.lower()}")
+            act.setChecked(key == "raw")
+            act.triggered.connect(lambda _c=False, k=key: self.image_pane.set_view_mode(k))
+            self.mode_actions.addAction(act)
+
+    def _build_menus(self) -> None:
+        a = self.actions_by_name
+        menu = self.menuBar()
+        menu.setToolTip("Menus: File, Edit, Analysis, View, Help")
+        self.menuBar().setNativeMenuBar(False)
+        m = menu.addMenu("&File")
+        m.setToolTipsVisible(True)
+        m.addAction(a["open"])
+        self.recent_menu = m.addMenu("Open &recent")
+        self.recent_menu.setToolTipsVisible(True)
+        self._update_recent_menu()
+        m.addSeparator()
+        for k in ("open_session", "save_session", "save_session_as"):
+            m.addAction(a[k])
+        m.addSeparator()
+        exp = m.addMenu("&Export")
+        exp.setToolTipsVisible(True)
+        for k in ("export_csv", "export_h5", "export_cal"):
+            exp.addAction(a[k])
+        exp.addSeparator()
+        self.plot_menu = exp.addMenu("&Plot as PNG or SVG")
+        self.plot_menu.setToolTipsVisible(True)
+        for key, title in self._plot_targets().items():
+            act = self.plot_menu.addAction(f"{title}...")
+            act.setToolTip(f"Save the {title.lower()} as a PNG bitmap or an SVG vector file")
+            act.triggered.connect(lambda _c=False, k=key: self._export_plot_dialog(k))
+        m.addSeparator()
+        m.addAction(a["quit"])
+        m = menu.addMenu("&Edit")
+        m.setToolTipsVisible(True)
+        for k in ("undo", "redo"):
+            m.addAction(a[k])
+        m.addSeparator()
+        m.addAction(a["settings"])
+        m = menu.addMenu("&Analysis")
+        m.setToolTipsVisible(True)
+        for k in ("calibrate", "estimate_geometry", "estimate_psf", "reconstruct", "fidelity"):
+            m.addAction(a[k])
+        m.addSeparator()
+        m.addAction(a["cancel"])
+        m = menu.addMenu("&View")
+        m.setToolTipsVisible(True)
+        for k in ("prev", "next"):
+            m.addAction(a[k])
+        m.addSeparator()
+        m.addAction(a["grid"])
+        m.addAction(a["sites"])
+        modes = m.addMenu("&Raw or model")
+        modes.setToolTipsVisible(True)
+        for act in self.mode_actions.actions():
+            modes.addAction(act)
+        m.addSeparator()
+        for dock in self.docks.values():
+            m.addAction(dock.toggleViewAction())
+        m.addAction(a["reset_layout"])
+        m = menu.addMenu("&Help")
+        m.setToolTipsVisible(True)
+        m.addAction(a["about"])
+        m.addAction(a["safety"])
+
+    def _build_toolbar(self) -> None:
+        a = self.actions_by_name
+        tb = self.addToolBar("Main")
+        tb.setObjectName("toolbar_main")
+        tb.setToolTip("Frequent actions")
+        tb.setToolButtonStyle(QtCore.Qt.ToolButtonTextBesideIcon)
+        for k in ("open", "save_session", "calibrate", "reconstruct", "fidelity"):
+            tb.addAction(a[k])
+        tb.addSeparator()
+        for k in ("prev", "next", "grid"):
+            tb.addAction(a[k])
+
+    def _plot_targets(self) -> dict[str, str]:
+        return {"image": "Image pane", "occupation": "Occupation view", "histogram": "Amplitude histogram",
+                "geometry": "Lattice geometry panel", "psf": "PSF panel", "fidelity": "Fidelity panel"}
+
+    def _plot_widget(self, key: str) -> QtWidgets.QWidget:
+        return {"image": self.image_pane.graphics, "occupation": self.occupation_view.graphics,
+                "histogram": self.histogram_panel, "geometry": self.geometry_panel, "psf": self.psf_panel,
+                "fidelity": self.fidelity_panel}[key]
+
+    # ================================================================== wiring
+    def _wire_views(self) -> None:
+        self.image_pane.frameRequested.connect(self.set_frame_index)
+        self.image_pane.siteHovered.connect(self._show_hover)
+        self.image_pane.modelWanted.connect(self._compute_model)
+        self.image_pane.overlaysChanged.connect(self._overlays_changed)
+        self.occupation_view.siteHovered.connect(self._show_matrix_hover)
+        hp, gp, pp = self.histogram_panel, self.geometry_panel, self.psf_panel
+        if hasattr(hp, "thresholdDragged"):
+            hp.thresholdDragged.connect(self._threshold_dragged)
+            hp.thresholdCommitted.connect(self._threshold_committed)
+            hp.methodChanged.connect(self._method_changed)
+            hp.logScaleToggled.connect(lambda on: self.app_settings.set_value("view/histogram_log", bool(on)))
+        if hasattr(gp, "reestimateRequested"):
+            gp.reestimateRequested.connect(self.estimate_geometry)
+            gp.constraintsChanged.connect(self._constraints_changed)
+            gp.geometryEdited.connect(self._geometry_nudged)
+        if hasattr(pp, "estimateRequested"):
+            pp.estimateRequested.connect(self.estimate_psf)
+            pp.opticsChanged.connect(self._optics_changed)
+
+    def set_session(self, session: Session) -> None:
+        """Show ``session`` (disconnecting the previous one)."""
+        if self.session is not None:
+            for sig, slot in self._connections:
+                sig.disconnect(slot)
+            self.workers.cancel()
+        self._connections = []
+        self.session = session
+        for sig, slot in ((session.frames_changed, self._on_frames),
+                          (session.index_changed, lambda _i: self._mark("frame", "classification")),
+                          (session.calibration_changed, self._on_calibration),
+                          (session.amplitudes_changed, self._on_amplitudes),
+                          (session.classification_changed, lambda: self._mark("classification")),
+                          (session.threshold_result_changed, lambda _r: self._mark("threshold")),
+                          (session.fidelity_changed, lambda _r: self._mark("fidelity")),
+                          (session.settings_changed, lambda _s: self._mark("settings")),
+                          (session.undo_changed, self._on_undo_state),
+                          (session.modified_changed, self._on_modified),
+                          (session.message, self.show_status)):
+            sig.connect(slot)
+            self._connections.append((sig, slot))
+        self._on_undo_state(session.can_undo, session.can_redo)
+        self._on_modified(session.modified)
+        self.image_pane.clear()
+        self.occupation_view.clear()
+        for p in self.panels.values():
+            if hasattr(p, "clear"):
+                p.clear()
+        self._mark("frames", "frame", "calibration", "amplitudes", "classification", "threshold", "fidelity",
+                   "settings")
+        self._refresh()
+        self.sessionReplaced.emit(session)
+
+    # ================================================================== session -> views
+    def _mark(self, *parts: str) -> None:
+        self._dirty.update(parts)
+        if not self._refresh_timer.isActive():
+            self._refresh_timer.start(REFRESH_INTERVAL_MS if self.workers.running("reconstruct") else 0)
+
+    def flush(self) -> None:
+        """Redraw now whatever is pending (tests and benchmarks)."""
+        self._refresh_timer.stop()
+        self._refresh()
+
+    def _on_frames(self, _frames) -> None:
+        self.workers.cancel()
+        self._mark("frames", "frame", "amplitudes", "classification")
+        s = self.session
+        if s.source:
+            self.app_settings.add_recent(s.source)
+            self._update_recent_menu()
+        self._update_title()
+
+    def _on_calibration(self, _cal) -> None:
+        self._mark("calibration", "frame", "classification")
+        self._process_current_frame()
+
+    def _on_amplitudes(self, indices) -> None:
+        self._mark("amplitudes", "classification")
+        if not indices and self.session.calibration is not None:
+            self._process_current_frame()
+        self._schedule_autosave()
+
+    def _refresh(self) -> None:
+        dirty, self._dirty = self._dirty, set()
+        s = self.session
+        if s is None:
+            return
+        try:
+            if "frames" in dirty:
+                self.image_pane.set_frame_count(s.n_frames)
+                if s.frames is None:
+                    self.image_pane.clear()
+            if "calibration" in dirty or "settings" in dirty:
+                self._refresh_calibration()
+            if "frame" in dirty and s.frames is not None:
+                self._refresh_frame()
+            if "amplitudes" in dirty:
+                self._refresh_amplitudes()
+            if "threshold" in dirty and hasattr(self.histogram_panel, "set_threshold_result"):
+                tr = s.threshold_result
+                if tr is not None:
+                    self.histogram_panel.set_threshold_result(tr)
+                elif s.threshold is not None:
+                    self.histogram_panel.set_threshold(s.threshold)
+            if "classification" in dirty:
+                self._refresh_classification()
+            if "fidelity" in dirty and hasattr(self.fidelity_panel, "set_report"):
+                if s.fidelity is None:
+                    self.fidelity_panel.clear()
+                else:
+                    self.fidelity_panel.set_report(s.fidelity)
+        except Exception as exc:  # noqa: BLE001 - a drawing bug must not kill the window
+            log.exception("redraw failed")
+            self.show_status(f"display error: {type(exc).__name__}: {exc}")
+        self._update_actions()
+
+    def _refresh_calibration(self) -> None:
+        s = self.session
+        cal = s.calibration
+        st = s.settings
+        gp, pp, hp = self.geometry_panel, self.psf_panel, self.histogram_panel
+        if hasattr(gp, "set_geometry"):
+            gp.set_geometry(None if cal is None else cal.geometry, pixel_size_nm=st.get("pixel_size_nm")
+                            or (cal.pixel_size_nm if cal is not None else None))
+        if hasattr(pp, "set_psf"):
+            pp.set_psf(None if cal is None else cal.psf)
+            pp.set_optics(numerical_aperture=st["numerical_aperture"], wavelength_nm=st["wavelength_nm"],
+                          pixel_size_nm=st.get("pixel_size_nm"))
+        if hasattr(hp, "set_method") and cal is not None:
+            hp.set_method(cal.threshold_method)
+        self._update_spectrum()
+
+    def _current_geometry(self):
+        s = self.session
+        res = s.result()
+        if res is not None:
+            return res.geometry, res.sites
+        cal = s.calibration
+        if cal is None or s.sites is None:
+            return (None if cal is None else cal.geometry), None
+        return cal.geometry, None
+
+    def _refresh_frame(self) -> None:
+        s = self.session
+        try:
+            image = s.frame()
+        except LatticeReadError as exc:
+            self.show_status(str(exc))
+            return
+        cal = s.calibration
+        photons = None if cal is None else cal.camera.counts_to_photons(image)
+        self.image_pane.set_frame(image, index=s.index, n_frames=s.n_frames, photons=photons)
+        self._process_current_frame()
+
+    def _refresh_amplitudes(self) -> None:
+        s = self.session
+        hp = self.histogram_panel
+        if hasattr(hp, "set_amplitudes"):
+            amps = s.all_amplitudes()
+            if amps.size:
+                hp.set_amplitudes(amps)
+            else:
+                hp.clear()
+                if s.calibration is not None:
+                    hp.set_method(s.calibration.threshold_method)
+        gp = self.geometry_panel
+        if hasattr(gp, "set_drift"):
+            idx, offsets, trend = s.phase_drift()
+            if len(idx) >= 2:
+                gp.set_drift(idx, offsets, trend, units="px")
+
+    def _refresh_classification(self) -> None:
+        s = self.session
+        res = s.result()
+        if res is None:
+            geometry, sites = self._current_geometry()
+            self.image_pane.set_lattice(geometry, None)
+            self.occupation_view.set_current(None)
+        else:
+            self.image_pane.set_lattice(res.geometry, res.sites)
+            self.image_pane.set_site_states(res.occupied, res.p_occupied, res.amplitudes)
+            sites = res.sites
+            self.occupation_view.set_current(res.occupation_matrix(fill=255), frame_index=s.index,
+                                             row_min=sites.row_min, col_min=sites.col_min)
+        mean = s.mean_occupation()
+        if mean is None:
+            self.occupation_view.set_mean(None)
+        else:
+            sites = s.sites
+            self.occupation_view.set_mean(mean, n_frames=int(s.done.sum()))
+        hp = self.histogram_panel
+        if hasattr(hp, "set_counts"):
+            counts = s.pooled_counts()
+            if counts is not None:
+                hp.set_counts(counts["occupied"], counts["empty"], counts["uncertain"])
+        if self.image_pane.view_mode != "raw":
+            self._compute_model()
+
+    def _update_spectrum(self) -> None:
+        gp = self.geometry_panel
+        s = self.session
+        if not hasattr(gp, "set_spectrum") or s.frames is None:
+            return
+        try:
+            job = s.spectrum_job()
+        except LatticeReadError:
+            return
+        self.workers.submit("spectrum", job, on_result=lambda r: gp.set_spectrum(r[0], r[1]),
+                            on_error=lambda exc: log.info("no spectrum: %s", exc))
+
+    # ================================================================== frames
+    def set_frame_index(self, index: int) -> None:
+        if self.session.frames is not None:
+            self.session.set_index(index)
+            self.image_pane.set_frame_count(self.session.n_frames)
+
+    def step_frame(self, step: int) -> None:
+        self.set_frame_index(self.session.index + step)
+
+    def _process_current_frame(self) -> None:
+        """Reconstruct the shown frame in the background when it has no amplitudes yet."""
+        s = self.session
+        if s.calibration is None or s.frames is None or s.done[s.index]:
+            return
+        if self.workers.running("reconstruct"):
+            return
+        try:
+            job = s.reconstruct_job([s.index], batch_size=1)
+        except LatticeReadError as exc:
+            self.show_status(str(exc))
+            return
+        self.workers.submit("current", job, on_yield=s.store_batch, on_error=self._task_failed)
+
+    # ================================================================== user actions
+    def _threshold_dragged(self, value: float) -> None:
+        if self.session.calibration is None:
+            return
+        self.session.set_threshold(value, group="threshold")
+        self._undo_group_timer.start()
+
+    def _threshold_committed(self, value: float) -> None:
+        if self.session.calibration is None:
+            return
+        self.session.set_threshold(value, group="threshold")
+        self.session.close_undo_group()
+        self.show_status(f"threshold set to {value:.1f} photons")
+
+    def _method_changed(self, method: str) -> None:
+        if self.session.calibration is None:
+            return
+        self._guard(lambda: self.session.set_threshold_method(method))
+
+    def _geometry_nudged(self, geometry) -> None:
+        if self.session.calibration is None:
+            return
+        self.image_pane.set_lattice(geometry, None)
+        self._guard(lambda: self.session.set_geometry(geometry, group="nudge"))
+        self._undo_group_timer.start()
+
+    def _constraints_changed(self, constraints: dict) -> None:
+        self._constraints = dict(constraints)
+        self.estimate_geometry()
+
+    def _optics_changed(self, optics: dict) -> None:
+        changes = {k: v for k, v in optics.items() if k in ("numerical_aperture", "wavelength_nm", "pixel_size_nm")}
+        if changes.get("pixel_size_nm") is not None and changes["pixel_size_nm"] <= 0:
+            changes["pixel_size_nm"] = None
+        self._guard(lambda: self.session.update_settings(**changes))
+
+    def _overlays_changed(self, overlays: dict) -> None:
+        a = self.actions_by_name
+        for key in ("grid", "sites"):
+            a[key].blockSignals(True)
+            a[key].setChecked(overlays[key])
+            a[key].blockSignals(False)
+        for act in self.mode_actions.actions():
+            act.setChecked(act.data() == overlays["mode"])
+        for k, v in overlays.items():
+            self.app_settings.set_value(f"view/{k}", v)
+
+    def _restore_view_options(self) -> None:
+        st = self.app_settings
+        self.image_pane.set_grid_visible(st.value("view/grid", True, bool))
+        self.image_pane.set_sites_visible(st.value("view/sites", True, bool))
+        mode = st.value("view/mode", "raw", str)
+        if mode in VIEW_MODES:
+            self.image_pane.set_view_mode(mode)
+        if hasattr(self.histogram_panel, "set_log_scale"):
+            self.histogram_panel.set_log_scale(st.value("view/histogram_log", False, bool))
+
+    def _undo(self) -> None:
+        self.session.undo()
+
+    def _redo(self) -> None:
+        self.session.redo()
+
+    def _settings_dialog(self) -> None:
+        dlg = dialogs.AnalysisSettingsDialog({**self.session.settings,
+                                              "camera": self.session.camera_model().to_dict()}, self)
+        dlg.setAttribute(QtCore.Qt.WA_DeleteOnClose, True)
+        dlg.accepted.connect(lambda: self._guard(lambda: self.session.update_settings(**dlg.values())))
+        dlg.open()
+
+    def reset_layout(self) -> None:
+        for key, dock in self.docks.items():
+            dock.setFloating(False)
+            dock.setVisible(True)
+        for attr, _cls, _title, area, _tip in PANELS:
+            self.addDockWidget(QtCore.Qt.LeftDockWidgetArea if area == "left" else QtCore.Qt.RightDockWidgetArea,
+                               self.docks[attr])
+        self.addDockWidget(QtCore.Qt.RightDockWidgetArea, self.docks["occupation"])
+        self.tabifyDockWidget(self.docks["geometry_panel"], self.docks["psf_panel"])
+        self.tabifyDockWidget(self.docks["psf_panel"], self.docks["fidelity_panel"])
+        self.docks["geometry_panel"].raise_()
+
+    # ================================================================== analysis
+    def calibrate(self) -> None:
+        """Estimate geometry, PSF and threshold from the frames (background)."""
+        s = self.session
+        if s.frames is None:
+            self.show_status("open a frame file first")
+            return
+        self._start("calibrate", s.calibrate_job(), "calibrating: lattice, PSF and threshold",
+                    on_result=lambda cal: self._apply(lambda: s.set_calibration(cal), "calibration done"))
+
+    def estimate_geometry(self) -> None:
+        s = self.session
+        if s.frames is None:
+            self.show_status("open a frame file first")
+            return
+        if s.calibration is None:
+            self.calibrate()
+            return
+        job = s.estimate_geometry_job(constraints=getattr(self, "_constraints", None) or None)
+        self._start("geometry", job, "estimating the lattice geometry",
+                    on_result=lambda g: self._apply(lambda: s.set_geometry(g), "lattice geometry estimated"))
+
+    def estimate_psf(self) -> None:
+        s = self.session
+        if s.calibration is None:
+            self.show_status("calibrate first: the PSF is measured at the lattice sites")
+            return
+        self._start("psf", s.estimate_psf_job(), "estimating the PSF from isolated atoms",
+                    on_result=lambda psf: self._apply(lambda: s.set_psf(psf), "PSF estimated"))
+
+    def reconstruct_all(self) -> None:
+        """Reconstruct every frame not done yet, in the background, with progress and cancel."""
+        s = self.session
+        if s.frames is None:
+            self.show_status("open a frame file first")
+            return
+        if s.calibration is None:
+            self.show_status("calibrate first (Analysis > Calibrate from frames)")
+            return
+        self.workers.cancel("current")
+        job = s.reconstruct_job()
+        total = getattr(job, "n_frames", 0)
+        if total == 0:
+            self.show_status("every frame is already reconstructed")
+            return
+        self._progress_total, self._progress_done = total, 0
+
+        def on_yield(batch):
+            if s.store_batch(batch):
+                self._progress_done += len(batch.indices)
+                self.progress.setValue(self._progress_done)
+                self.show_status(f"reconstructing: {self._progress_done} of {total} frames")
+
+        def on_result(_value):
+            self._fit_threshold_background(f"reconstructed {self._progress_done} frames")
+
+        self._start("reconstruct", job, f"reconstructing {total} frames", on_yield=on_yield,
+                    on_result=on_result, total=total)
+
+    def _fit_threshold_background(self, done_message: str) -> None:
+        s = self.session
+        job = s.fit_threshold_job()
+        self.workers.submit("threshold", job,
+                            on_result=lambda r: self._apply(lambda: s.store_threshold_fit(r), done_message),
+                            on_error=self._task_failed)
+
+    def estimate_fidelity(self) -> None:
+        s = self.session
+        try:
+            job = s.fidelity_job()
+        except Exception as exc:  # noqa: BLE001
+            self._report(exc)
+            return
+
+        def done(output):
+            if self._guard(lambda: s.store_fidelity(output)) and s.fidelity is not None:
+                self.docks["fidelity_panel"].raise_()
+
+        self._start("fidelity", job, "estimating loss and hopping", on_result=done)
+
+    def _compute_model(self) -> None:
+        s = self.session
+        res = s.result()
+        if res is None or s.calibration is None or s.frames is None:
+            self.image_pane.set_model(None)
+            return
+        job = s.model_job()
+        self.workers.submit("model", job, on_result=self.image_pane.set_model, on_error=self._task_failed)
+
+    def _start(self, key: str, job, text: str, *, on_result, on_yield=None, total: int = 0) -> None:
+        self.show_status(text + " ...")
+        self.progress.setRange(0, total)  # 0, 0 = busy indicator
+        self.progress.setValue(0)
+        self.progress.setVisible(True)
+        self.cancel_button.setVisible(True)
+        self.workers.submit(key, job, on_yield=on_yield, on_result=on_result, on_error=self._task_failed)
+
+    def _apply(self, fn, message: str) -> None:
+        if self._guard(fn):
+            self.show_status(message)
+
+    def cancel_work(self) -> None:
+        if self.workers.busy:
+            self.workers.cancel()
+            self.show_status("cancelled; results computed so far are kept")
+
+    def _busy_changed(self, busy: bool) -> None:
+        if not busy:
+            self.progress.setVisible(False)
+            self.cancel_button.setVisible(False)
+            if self._dirty:
+                self._mark()
+
+    # ================================================================== errors / status
+    def show_status(self, text: str) -> None:
+        self.status_label.setText(text)
+
+    def _guard(self, fn) -> bool:
+        """Run ``fn``; show LatticeReadErrors (and bugs) in a dialog. True on success."""
+        try:
+            fn()
+            return True
+        except Exception as exc:  # noqa: BLE001 - every failure is shown, the window stays usable
+            self._report(exc)
+            return False
+
+    def _task_failed(self, exc: BaseException) -> None:
+        self._report(exc)
+
+    def _report(self, exc: BaseException) -> None:
+        if isinstance(exc, LatticeReadError):
+            text, details = str(exc), None
+        else:
+            log.error("unexpected error", exc_info=(type(exc), exc, exc.__traceback__))
+            text = f"{type(exc).__name__}: {exc}\n\nThis is a bug; please report it with the details below."
+            details = "".join(traceback.format_exception(type(exc), exc, exc.__traceback__))
+        self._last_error = text
+        self.show_status(f"error: {text.splitlines()[0]}")
+        if not self._closing:
+            dialogs.show_error(self, dialogs.error_title(exc), text, details=details)
+
+    @property
+    def last_error(self) -> str | None:
+        """Text of the last error shown to the user (tests)."""
+        return self._last_error
+
+    def _show_hover(self, info) -> None:
+        if not info:
+            self.hover_label.setText("")
+            return
+        parts = [f"x {info['x']:.1f}, y {info['y']:.1f} px"]
+        if "value" in info:
+            parts.append(f"{info['value']:.0f} counts")
+        if "row" in info:
+            parts.append(f"site ({info['row']}, {info['col']})")
+            if "amplitude" in info:
+                parts.append(f"{info['amplitude']:.0f} photons")
+            if "p_occupied" in info:
+                parts.append(f"P(atom) {info['p_occupied']:.3f}")
+            if "occupied" in info:
+                parts.append("occupied" if info["occupied"] else "empty")
+        self.hover_label.setText(" | ".join(parts))
+
+    def _show_matrix_hover(self, info) -> None:
+        if not info:
+            self.hover_label.setText("")
+            return
+        if info["which"] == "current":
+            value = {0: "empty", 1: "occupied"}.get(int(info["value"]), "outside the region")
+        else:
+            value = "outside the region" if not np.isfinite(info["value"]) else f"mean occupation {info['value']:.3f}"
+        self.hover_label.setText(f"site ({info['row']}, {info['col']}): {value}")
+
+    def _on_undo_state(self, can_undo: bool, can_redo: bool) -> None:
+        self.actions_by_name["undo"].setEnabled(can_undo)
+        self.actions_by_name["redo"].setEnabled(can_redo)
+
+    def _on_modified(self, _modified: bool) -> None:
+        self._update_title()
+        self._schedule_autosave()
+
+    def _update_title(self) -> None:
+        s = self.session
+        name = Path(s.source).name if s is not None and s.source else ("untitled" if s is None or s.frames is None
+                                                                        else "frames in memory")
+        star = "*" if s is not None and s.modified else ""
+        self.setWindowTitle(f"{name}{star} - latticeread")
+
+    def _update_actions(self) -> None:
+        s = self.session
+        a = self.actions_by_name
+        has_frames = s.frames is not None
+        has_cal = s.calibration is not None
+        has_results = bool(s.done.any()) if has_frames else False
+        for k in ("calibrate", "estimate_geometry", "save_session", "save_session_as"):
+            a[k].setEnabled(has_frames)
+        for k in ("estimate_psf", "reconstruct", "export_cal"):
+            a[k].setEnabled(has_cal)
+        for k in ("export_csv", "export_h5", "fidelity"):
+            a[k].setEnabled(has_results)
+        a["next"].setEnabled(has_frames and s.index < s.n_frames - 1)
+        a["prev"].setEnabled(has_frames and s.index > 0)
+
+    # ================================================================== files
+    def open_path(self, path) -> bool:
+        """Open frames (or a saved session, for .json) from ``path``; errors go to a dialog."""
+        path = Path(path)
+        if path.suffix.lower() == ".json":
+            return self.open_session(path)
+        self.show_status(f"opening {path.name} ...")
+        return self._guard(lambda: self.session.open_frames(path))
+
+    def open_session(self, path) -> bool:
+        try:
+            new = Session.open(path)
+        except Exception as exc:  # noqa: BLE001
+            self._report(exc)
+            return False
+        self.set_session(new)
+        self.app_settings.add_recent(path)
+        self._update_recent_menu()
+        self._session_path = Path(path)
+        return True
+
+    def save_session(self, path) -> bool:
+        ok = self._guard(lambda: self.session.save(path))
+        if ok:
+            self._session_path = Path(path).with_suffix(".json")
+        return ok
+
+    def _save_session(self, ask: bool = False) -> None:
+        path = getattr(self, "_session_path", None)
+        if ask or path is None:
+            start = str(self._default_dir() / "session.json")
+            name, _ = QtWidgets.QFileDialog.getSaveFileName(self, "Save session", start, SESSION_FILTER)
+            if not name:
+                return
+            path = Path(name)
+        self.save_session(path)
+
+    def _open_dialog(self) -> None:
+        names, _ = QtWidgets.QFileDialog.getOpenFileNames(self, "Open frames", str(self._default_dir()), FRAME_FILTER)
+        for name in names[:1]:
+            self.open_path(name)
+            self.app_settings.set_value("last_dir", str(Path(name).parent))
+
+    def _open_session_dialog(self) -> None:
+        name, _ = QtWidgets.QFileDialog.getOpenFileName(self, "Open session", str(self._default_dir()), SESSION_FILTER)
+        if name:
+            self.open_session(name)
+
+    def _default_dir(self) -> Path:
+        last = self.app_settings.value("last_dir", "", str)
+        if last and Path(last).is_dir():
+            return Path(last)
+        if self.session is not None and self.session.source:
+            return Path(self.session.source).parent
+        return Path.cwd()
+
+    def _update_recent_menu(self) -> None:
+        self.recent_menu.clear()
+        files = self.app_settings.recent_files()
+        for f in files:
+            act = self.recent_menu.addAction(Path(f).name)
+            act.setToolTip(f)
+            act.triggered.connect(lambda _c=False, p=f: self.open_path(p))
+        if not files:
+            act = self.recent_menu.addAction("(no recent files)")
+            act.setEnabled(False)
+        else:
+            self.recent_menu.addSeparator()
+            clear = self.recent_menu.addAction("Clear list")
+            clear.setToolTip("Forget the recent files")
+            clear.triggered.connect(lambda: (self.app_settings.clear_recent(), self._update_recent_menu()))
+
+    # ---------------------------------------------------------------- export
+    def export(self, kind: str, path) -> bool:
+        """Write ``kind`` ("csv", "h5", "cal") to ``path``; errors (read-only folder...) go to a dialog."""
+        fn = {"csv": self.session.export_sites_csv, "h5": self.session.export_occupation_hdf5,
+              "cal": self.session.export_calibration}[kind]
+        return self._guard(lambda: fn(path))
+
+    def export_plot(self, key: str, path) -> bool:
+        """Save one plot as PNG or SVG (by the file suffix)."""
+        from latticeread.gui import plot_export
+
+        widget = self._plot_widget(key)
+        path = Path(path)
+        protect = [self.session.source] if self.session.source else []
+
+        def write():
+            if protect and path.resolve() == Path(protect[0]).resolve():
+                from latticeread.errors import ExportError
+
+                raise ExportError(f"refusing to overwrite the input frames {path}; choose another file name")
+            if path.suffix.lower() == ".svg":
+                plot_export.export_svg(widget, path)
+            else:
+                plot_export.export_widget_png(widget, path)
+            self.show_status(f"{self._plot_targets()[key].lower()} saved to {path.name}")
+
+        return self._guard(write)
+
+    def _export_dialog(self, kind: str) -> None:
+        suffix, filt = {"csv": (".csv", "CSV table (*.csv)"), "h5": (".h5", "HDF5 (*.h5 *.hdf5)"),
+                        "cal": (".json", "Calibration (*.json)")}[kind]
+        stem = Path(self.session.source).stem if self.session.source else "latticeread"
+        start = str(self._default_dir() / f"{stem}_{ {'csv': 'sites', 'h5': 'occupation', 'cal': 'calibration'}[kind]}{suffix}")
+        name, _ = QtWidgets.QFileDialog.getSaveFileName(self, "Export", start, filt)
+        if name:
+            self.export(kind, name)
+
+    def _export_plot_dialog(self, key: str) -> None:
+        start = str(self._default_dir() / f"{key}.png")
+        name, _ = QtWidgets.QFileDialog.getSaveFileName(self, "Save plot", start, "PNG image (*.png);;SVG vector (*.svg)")
+        if name:
+            self.export_plot(key, name)
+
+    # ---------------------------------------------------------------- autosave
+    def autosave(self) -> None:
+        s = self.session
+        if s is None or not s.modified or s.frames is None or self.workers.running("reconstruct"):
+            return
+        path = self.app_settings.autosave_path()
+        try:
+            path.parent.mkdir(parents=True, exist_ok=True)
+            s.autosave(path)
+        except Exception as exc:  # noqa: BLE001 - autosave must never interrupt the user
+            log.warning("autosave failed: %s", exc)
+            self.show_status(f"autosave failed: {exc}")
+
+    def _schedule_autosave(self) -> None:
+        if self._autosave_timer.isActive():
+            self._autosave_debounce.start()
+
+    def _offer_restore(self) -> None:
+        path = self.app_settings.autosave_path()
+        if not path.exists() or self.session.frames is not None:
+            return
+        dialogs.ask_yes_no(self, "Restore the last session?",
+                           "latticeread did not close normally last time. Restore the automatically "
+                           f"saved session ({path})?",
+                           lambda yes: self._restore_answer(yes, path))
+
+    def _restore_answer(self, yes: bool, path: Path) -> None:
+        if yes:
+            if self.open_session(path):
+                self._session_path = None
+                self.show_status("restored the automatically saved session")
+        else:
+            self._remove_autosave()
+
+    def _remove_autosave(self) -> None:
+        path = self.app_settings.autosave_path()
+        for p in (path, path.with_suffix(".h5")):
+            try:
+                p.unlink()
+            except FileNotFoundError:
+                pass
+            except OSError as exc:
+                log.warning("cannot remove %s: %s", p, exc)
+
+    # ---------------------------------------------------------------- drag and drop
+    def dragEnterEvent(self, event: QtGui.QDragEnterEvent) -> None:
+        if event.mimeData().hasUrls() and any(u.isLocalFile() for u in event.mimeData().urls()):
+            event.acceptProposedAction()
+        else:
+            event.ignore()
+
+    def dropEvent(self, event: QtGui.QDropEvent) -> None:
+        files = [u.toLocalFile() for u in event.mimeData().urls() if u.isLocalFile()]
+        if files:
+            event.acceptProposedAction()
+            self.open_path(files[0])
+
+    # ---------------------------------------------------------------- close
+    def closeEvent(self, event: QtGui.QCloseEvent) -> None:
+        self._closing = True
+        self.workers.shutdown()
+        self.app_settings.save_window(self)
+        self.app_settings.sync()
+        self._remove_autosave()
+        super().closeEvent(event)
