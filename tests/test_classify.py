@@ -50,6 +50,20 @@ def test_otsu_agrees_with_scikit_image_within_a_bin():
     assert abs(select_threshold(None, method="otsu", hist=(counts, centres)).threshold - ref) <= binwidth
 
 
+def test_mixture_from_a_histogram_matches_the_raw_fit():
+    """A precomputed histogram (as the GUI keeps it) gives the raw-data mixture within a bin width."""
+    a, _ = draw_amplitudes(20000, photons=300.0, rng=15)
+    counts, edges = np.histogram(a, bins=256)
+    centres = 0.5 * (edges[1:] + edges[:-1])
+    raw = select_threshold(a)
+    binned = select_threshold(None, hist=(counts, centres))
+    width = edges[1] - edges[0]
+    assert binned.threshold == pytest.approx(raw.threshold, abs=width)
+    assert binned.occupied_mean == pytest.approx(raw.occupied_mean, abs=width)
+    assert binned.empty_std == pytest.approx(raw.empty_std, rel=0.02)
+    assert binned.n_sites == 20000
+
+
 def test_minimum_agrees_with_scikit_image():
     """Reference library: scikit-image ``filters.threshold_minimum`` (valley of the smoothed histogram).
 

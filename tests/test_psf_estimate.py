@@ -101,8 +101,10 @@ def test_pairs_with_per_frame_geometry():
     """
     psf = airy_psf(wavelength_nm=WAVELENGTH_NM, numerical_aperture=NA, pixel_size_nm=PIXEL_NM)
     frames, _, truth = _sparse_frames(psf, n_frames=12, rng=2)
+    frames[0, 40:44, 40:44] = np.nan  # a patch of bad pixels: atoms touching it are skipped
     est = estimate_psf(list(zip(frames, truth.geometries)), refit_offset=False, max_atoms=60)
     assert est.params["n_atoms"] <= 60
+    assert np.all(np.isfinite(est.kernel))
     assert est.fwhm == pytest.approx(0.514 * WAVELENGTH_NM / NA / PIXEL_NM, rel=0.04)
 
 
@@ -121,6 +123,13 @@ def test_too_few_isolated_atoms_says_how_many():
     frames, geo, _ = _sparse_frames(psf, n_frames=2, rng=3)
     with pytest.raises(ReconstructionError, match=r"found \d+ isolated atoms in 2 frames .*need at least 500"):
         estimate_psf(frames, geo, min_atoms=500)
+
+
+def test_saturated_atoms_are_skipped():
+    psf = airy_psf(wavelength_nm=WAVELENGTH_NM, numerical_aperture=NA, pixel_size_nm=PIXEL_NM)
+    frames, geo, _ = _sparse_frames(psf, n_frames=2, rng=3)
+    with pytest.raises(ReconstructionError, match=r"found 0 isolated atoms .* \d+ more were saturated"):
+        estimate_psf(frames, geo, saturation=50.0)  # every atom's peak pixel is above 50 photons
 
 
 def test_frames_without_atoms():

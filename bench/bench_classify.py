@@ -1,0 +1,123 @@
+"""Benchmark of occupancy classification and PSF estimation (run by hand; prints numbers).
+
+    .venv/bin/python bench/bench_classify.py [--quick]
+
+1. Interactive re-classification: ``with_threshold`` + ``classify`` on 10,000 sites
+   (target <= 5 ms).
+2. Threshold choice on amplitudes drawn from the noise model (EMCCD gamma gain register or
+   sCMOS Poisson + read noise): error rate of the mixture / Otsu / minimum thresholds against
+   the error-minimising oracle threshold that knows the truth, and the fitted error rates
+   against the counted ones.
+3. PSF estimation on forward-model frames (Airy PSF, sparse filling) at several lattice
+   spacing / FWHM ratios: FWHM error, atoms used, seconds.
+"""
+
+from __future__ import annotations
+
+import argparse
+import time
+
+import numpy as np
+
+from latticeread.core.camera import CameraModel
+from latticeread.core.classify import classify, oracle_threshold, select_threshold
+from latticeread.core.geometry import LatticeGeometry
+from latticeread.core.psf import airy_psf
+from latticeread.core.psf_estimate import estimate_psf
+from latticeread.core.simulate import simulate_frames
+
+EMCCD = CameraModel(kind="emccd", em_gain=150.0, counts_per_electron=0.05, bias=200.0, read_noise=3.0,
+                    quantum_efficiency=0.9, clock_induced_charge=0.005)
+SCMOS = CameraModel(kind="scmos", em_gain=1.0, counts_per_electron=0.5, bias=100.0, read_noise=0.8,
+                    quantum_efficiency=0.8)
+
+
+def draw(n, *, camera, photons, empty_std, spread=0.1, filling=0.4, rng=0):
+    """Site amplitudes (photons) from the camera noise model and the true occupation."""
+    rng = np.random.default_rng(rng)
+    truth = rng.random(n) < filling
+    mean = photons * rng.gamma(1 / spread**2, spread**2, n)
+    electrons = rng.poisson(mean * camera.quantum_efficiency)
+    if camera.kind == "emccd":
+        e = np.where(electrons > 0, rng.gamma(np.maximum(electrons, 1), camera.em_gain), 0.0) / camera.em_gain
+    else:
+        e = electrons.astype(float)
+    a = rng.normal(0, empty_std, n) + np.where(truth, e / camera.quantum_efficiency, 0.0)
+    return a, truth
+
+
+def bench_reclassify(n=10_000, repeats=200):
+    a, _ = draw(n, camera=EMCCD, photons=800.0, empty_std=40.0)
+    res = select_threshold(a, camera=EMCCD)
+    ts = np.linspace(res.threshold * 0.5, res.threshold * 1.5, repeats)
+    t0 = time.perf_counter()
+    for t in ts:
+        classify(a, res.with_threshold(t))
+    per = (time.perf_counter() - t0) / repeats * 1e3
+    t0 = time.perf_counter()
+    for _ in range(20):
+        select_threshold(a, camera=EMCCD)
+    fit = (time.perf_counter() - t0) / 20 * 1e3
+    print(f"re-classify {n} sites after a threshold change: {per:.3f} ms (target <= 5 ms); "
+          f"full mixture fit: {fit:.1f} ms")
+
+
+def bench_thresholds(n=20_000):
+    print("\nthreshold choice (error rate in %; oracle = error-minimising threshold given the truth)")
+    print(f"{'scenario':<28}{'oracle':>8}{'mixture':>9}{'otsu':>8}{'minimum':>9}"
+          f"{'FP fit/count':>16}{'FN fit/count':>16}")
+    for cam_name, camera in (("emccd", EMCCD), ("scmos", SCMOS)):
+        for photons, empty_std in ((2000.0, 60.0), (800.0, 60.0), (300.0, 60.0)):
+            a, truth = draw(n, camera=camera, photons=photons, empty_std=empty_std, rng=int(photons))
+            err = lambda t: 100 * np.mean((a > t) != truth)  # noqa: E731
+            row = [err(oracle_threshold(a, truth))]
+            res = None
+            for m in ("mixture", "otsu", "minimum"):
+                r = select_threshold(a, method=m, camera=camera)
+                res = r if m == "mixture" else res
+                row.append(err(r.threshold))
+            occ, _ = classify(a, res)
+            fp, fn = 100 * occ[~truth].mean(), 100 * (1 - occ[truth].mean())
+            name = f"{cam_name} {photons:.0f} ph, empty sd {empty_std:.0f}"
+            print(f"{name:<28}" + "".join(f"{v:8.3f} " for v in row)
+                  + f"{100 * res.false_positive_rate:7.3f}/{fp:<7.3f} {100 * res.false_negative_rate:7.3f}/{fn:<7.3f}")
+
+
+def bench_psf(quick=False):
+    print("\nPSF estimate on forward-model frames (potassium-39 at 767 nm, NA 0.75, EMCCD, 1500 photons/atom)")
+    print(f"{'spacing/FWHM':>13}{'pixel nm':>10}{'FWHM true':>11}{'FWHM est':>10}{'error %':>9}"
+          f"{'ellipt.':>9}{'atoms':>7}{'s':>7}")
+    for ratio in ((1.0,) if quick else (1.3, 1.0, 0.8, 0.65)):
+        # fix the FWHM at 3 pixels and change the lattice spacing
+        pixel_nm = 0.514 * 767.0 / 0.75 / 3.0
+        psf = airy_psf(wavelength_nm=767.0, numerical_aperture=0.75, pixel_size_nm=pixel_nm)
+        spacing = ratio * psf.fwhm
+        a = np.deg2rad(8.0)
+        geo = LatticeGeometry((spacing * np.cos(a), spacing * np.sin(a)), (-spacing * np.sin(a), spacing * np.cos(a)),
+                              offset=(64.3, 63.7))
+        frames, _ = simulate_frames(geometry=geo, frame_shape=(128, 128), psf=psf, camera=EMCCD,
+                                    region=("disk", 55 / spacing), filling=0.04 * ratio**2,
+                                    photons_per_atom=1500.0, brightness_spread=0.1, background=0.5,
+                                    n_shots=20, phase_jitter=0.4, rng=1)
+        t0 = time.perf_counter()
+        try:
+            est = estimate_psf(EMCCD.counts_to_photons(frames), geo)
+        except Exception as exc:  # report, do not hide
+            print(f"{ratio:13.2f}  failed: {exc}")
+            continue
+        dt = time.perf_counter() - t0
+        print(f"{ratio:13.2f}{pixel_nm:10.1f}{psf.fwhm:11.3f}{est.fwhm:10.3f}{100 * (est.fwhm / psf.fwhm - 1):9.2f}"
+              f"{est.params['ellipticity']:9.3f}{est.params['n_atoms']:7d}{dt:7.2f}")
+
+
+def main():
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--quick", action="store_true", help="one PSF scenario only")
+    args = parser.parse_args()
+    bench_reclassify()
+    bench_thresholds()
+    bench_psf(quick=args.quick)
+
+
+if __name__ == "__main__":
+    main()
