@@ -1,0 +1,121 @@
+"""``latticeread calibrate``: lattice geometry, PSF and threshold from a stack, saved as JSON.
+
+The lattice is estimated from the frames unless its spacing and angle are fixed; the PSF is
+the ideal Airy pattern (``--psf airy`` with ``--wavelength-nm --na --pixel-size-nm``), a
+Gaussian of given FWHM (``--psf gaussian --fwhm``) or measured from isolated atoms
+(``--psf estimate``, the default). The threshold is chosen on the pooled histogram of site
+amplitudes (photons, converted with the camera description).
+"""
+
+from __future__ import annotations
+
+import argparse
+import logging
+from pathlib import Path
+
+from latticeread.errors import CalibrationError, LatticeReadError
+
+log = logging.getLogger(__name__)
+
+
+def add_camera_arguments(parser: argparse.ArgumentParser) -> None:
+    """Camera options shared by ``calibrate`` and ``reconstruct``."""
+    cam = parser.add_argument_group("camera (counts to photons)")
+    cam.add_argument("--camera", type=Path, default=None, metavar="CAMERA.json",
+                     help="camera description from 'latticeread camera' (overrides the options below)")
+    cam.add_argument("--camera-kind", choices=["emccd", "scmos"], default="emccd", help="sensor type (default emccd)")
+    cam.add_argument("--em-gain", type=float, default=1.0, help="electron-multiplying gain (default 1)")
+    cam.add_argument("--counts-per-electron", type=float, default=1.0,
+                     help="read-out conversion gain, counts per electron (default 1)")
+    cam.add_argument("--bias", type=float, default=0.0, help="offset of every pixel, counts (default 0)")
+    cam.add_argument("--read-noise", type=float, default=0.0, help="RMS read noise, counts (default 0)")
+    cam.add_argument("--qe", type=float, default=1.0, help="quantum efficiency 0..1 (default 1)")
+    cam.add_argument("--saturation", type=int, default=65535, help="largest value the camera outputs (default 65535)")
+
+
+def camera_from_args(args):
+    """A CameraModel from ``--camera FILE`` or the individual options."""
+    from latticeread.core.camera import CameraModel
+
+    if getattr(args, "camera", None) is not None:
+        from latticeread.io import load_camera  # the I/O engineer's reader
+
+        return load_camera(args.camera)
+    try:
+        return CameraModel(kind=args.camera_kind, em_gain=args.em_gain, counts_per_electron=args.counts_per_electron,
+                           bias=args.bias, read_noise=args.read_noise, quantum_efficiency=args.qe,
+                           saturation=args.saturation)
+    except ValueError as exc:
+        raise CalibrationError(f"bad camera options: {exc}") from exc
+
+
+def add_parser(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("frames", type=Path, help="frame stack (TIFF, HDF5, .npy/.npz) with atoms")
+    parser.add_argument("--out", "-o", type=Path, required=True, help="calibration file to write (.json)")
+    parser.add_argument("--dataset", default=None, help="dataset inside an HDF5/.npz file")
+    parser.add_argument("--psf", choices=["estimate", "airy", "gaussian"], default="estimate",
+                        help="PSF: measured from isolated atoms (default), ideal Airy, or Gaussian")
+    parser.add_argument("--wavelength-nm", type=float, default=None, help="fluorescence wavelength, nm (--psf airy)")
+    parser.add_argument("--na", type=float, default=None, help="numerical aperture of the objective (--psf airy)")
+    parser.add_argument("--pixel-size-nm", type=float, default=None,
+                        help="camera pixel projected into the atom plane, nm (--psf airy; stored)")
+    parser.add_argument("--fwhm", type=float, default=None, help="PSF FWHM in pixels (--psf gaussian)")
+    parser.add_argument("--threshold-method", choices=["mixture", "otsu", "minimum"], default="mixture",
+                        help="threshold on the pooled histogram (default mixture)")
+    parser.add_argument("--method", choices=["linear", "nonlinear", "wiener", "richardson_lucy"], default=None,
+                        help="amplitude estimator (default: nonlinear below 0.7 FWHM spacing, else linear)")
+    parser.add_argument("--max-frames", type=int, default=50, help="use at most this many frames (default 50)")
+    parser.add_argument("--force", action="store_true", help="overwrite an existing output file")
+    add_camera_arguments(parser)
+
+
+def psf_from_args(args):
+    """The PSFModel asked for on the command line, or None for 'estimate'."""
+    from latticeread.core.psf import airy_psf, gaussian_psf
+
+    if args.psf == "airy":
+        missing = [f"--{n}" for n, v in (("wavelength-nm", args.wavelength_nm), ("na", args.na),
+                                          ("pixel-size-nm", args.pixel_size_nm)) if v is None]
+        if missing:
+            raise CalibrationError(f"--psf airy needs {', '.join(missing)}")
+        try:
+            return airy_psf(wavelength_nm=args.wavelength_nm, numerical_aperture=args.na,
+                            pixel_size_nm=args.pixel_size_nm)
+        except ValueError as exc:
+            raise CalibrationError(f"bad PSF options: {exc}") from exc
+    if args.psf == "gaussian":
+        if args.fwhm is None:
+            raise CalibrationError("--psf gaussian needs --fwhm (pixels)")
+        try:
+            return gaussian_psf(fwhm=args.fwhm)
+        except ValueError as exc:
+            raise CalibrationError(f"bad PSF options: {exc}") from exc
+    return None
+
+
+def run(args: argparse.Namespace) -> int:
+    from latticeread.core.pipeline import calibrate
+    from latticeread.io import save_calibration
+    from latticeread.io.frames import load_frames
+
+    out = Path(args.out)
+    if out.suffix.lower() != ".json":
+        raise LatticeReadError(f"the calibration file {out} must end in .json")
+    if out.exists() and not args.force:
+        raise LatticeReadError(f"{out} exists; pass --force to overwrite it")
+    camera = camera_from_args(args)
+    psf = psf_from_args(args)
+    stack = load_frames(args.frames, dataset=args.dataset, saturation=camera.saturation, nonfinite="keep")
+    try:
+        cal = calibrate(stack, psf=psf, camera=camera, pixel_size_nm=args.pixel_size_nm,
+                        threshold_method=args.threshold_method, method=args.method, max_frames=args.max_frames)
+    finally:
+        stack.close()
+    cal = cal.replace(notes=dict(cal.notes, source=str(args.frames)))
+    save_calibration(out, cal, protect=[args.frames])
+    a1, a2 = cal.geometry.spacings
+    print(f"wrote {out}: spacings {a1:.3f}, {a2:.3f} px, PSF {cal.psf.kind} FWHM {cal.psf.fwhm:.3f} px, "
+          f"{cal.amplitude_method} amplitudes, threshold {cal.threshold:.1f} photons")
+    for text in cal.notes.get("warnings", []):
+        print(f"warning: {text}")
+    return 0
