@@ -5,9 +5,9 @@
 1. Interactive re-classification: ``with_threshold`` + ``classify`` on 10,000 sites
    (target <= 5 ms).
 2. Threshold choice on amplitudes drawn from the noise model (EMCCD gamma gain register or
-   sCMOS Poisson + read noise): error rate of the mixture / Otsu / minimum thresholds against
-   the error-minimising oracle threshold that knows the truth, and the fitted error rates
-   against the counted ones.
+   sCMOS Poisson + read noise, gamma-distributed atom brightness): error rate of the mixture
+   (normal or skewed occupied peak) / Otsu / minimum thresholds against the error-minimising
+   oracle threshold that knows the truth, and the fitted error rates against the counted ones.
 3. PSF estimation on forward-model frames (Airy PSF, sparse filling) at several lattice
    spacing / FWHM ratios: FWHM error, atoms used, seconds.
 """
@@ -64,23 +64,31 @@ def bench_reclassify(n=10_000, repeats=200):
 
 def bench_thresholds(n=20_000):
     print("\nthreshold choice (error rate in %; oracle = error-minimising threshold given the truth)")
-    print(f"{'scenario':<28}{'oracle':>8}{'mixture':>9}{'otsu':>8}{'minimum':>9}"
-          f"{'FP fit/count':>16}{'FN fit/count':>16}")
+    print("mixture = normal occupied peak; gamma = skewed peak (occupied_model='gamma'); "
+          "FP/FN: fitted / counted, %")
+    print(f"{'scenario':<34}{'oracle':>8}{'mixture':>9}{'gamma':>8}{'otsu':>8}{'minimum':>9}"
+          f"{'FN normal':>16}{'FN gamma':>16}{'FP gamma':>16}")
     for cam_name, camera in (("emccd", EMCCD), ("scmos", SCMOS)):
-        for photons, empty_std in ((2000.0, 60.0), (800.0, 60.0), (300.0, 60.0)):
-            a, truth = draw(n, camera=camera, photons=photons, empty_std=empty_std, rng=int(photons))
+        for photons, empty_std, spread in ((2000.0, 60.0, 0.1), (800.0, 60.0, 0.1), (300.0, 60.0, 0.1),
+                                           (300.0, 60.0, 0.3)):
+            a, truth = draw(n, camera=camera, photons=photons, empty_std=empty_std, spread=spread,
+                            rng=int(photons))
             err = lambda t: 100 * np.mean((a > t) != truth)  # noqa: E731
             row = [err(oracle_threshold(a, truth))]
-            res = None
-            for m in ("mixture", "otsu", "minimum"):
-                r = select_threshold(a, method=m, camera=camera)
-                res = r if m == "mixture" else res
-                row.append(err(r.threshold))
-            occ, _ = classify(a, res)
-            fp, fn = 100 * occ[~truth].mean(), 100 * (1 - occ[truth].mean())
-            name = f"{cam_name} {photons:.0f} ph, empty sd {empty_std:.0f}"
-            print(f"{name:<28}" + "".join(f"{v:8.3f} " for v in row)
-                  + f"{100 * res.false_positive_rate:7.3f}/{fp:<7.3f} {100 * res.false_negative_rate:7.3f}/{fn:<7.3f}")
+            fits = {}
+            for key, m, om in (("mixture", "mixture", "normal"), ("gamma", "mixture", "gamma"),
+                               ("otsu", "otsu", "normal"), ("minimum", "minimum", "normal")):
+                fits[key] = select_threshold(a, method=m, camera=camera, occupied_model=om)
+                row.append(err(fits[key].threshold))
+            cells = []
+            for key in ("mixture", "gamma"):
+                occ, _ = classify(a, fits[key])
+                fn = 100 * (1 - occ[truth].mean())
+                cells.append(f"{100 * fits[key].false_negative_rate:7.3f}/{fn:<7.3f} ")
+            occ, _ = classify(a, fits["gamma"])
+            cells.append(f"{100 * fits['gamma'].false_positive_rate:7.3f}/{100 * occ[~truth].mean():<7.3f} ")
+            name = f"{cam_name} {photons:.0f} ph, sd {empty_std:.0f}, spread {spread:.0%}"
+            print(f"{name:<34}" + "".join(f"{v:8.3f} " for v in row) + " " + "".join(cells))
 
 
 def bench_psf(quick=False):

@@ -108,6 +108,47 @@ def test_mixture_error_rates_agree_with_truth_counts(camera):
     assert res.occupied_fraction == pytest.approx(truth.mean(), abs=0.01)
 
 
+@pytest.mark.parametrize("camera", [None, CAMERA], ids=["gaussian", "camera"])
+def test_skewed_peak_error_rates_agree_with_truth_counts(camera):
+    """A 30 % brightness spread skews the occupied peak; the gamma model follows it.
+
+    Outside check as above (scipy.stats.binomtest, 99.9 % interval). The normal model is off
+    by about a factor 2 in the false-negative rate here, so this test would fail with it.
+    """
+    a, truth = draw_amplitudes(40000, photons=260.0, empty_std=50.0, spread=0.3, rng=16)
+    res = select_threshold(a, camera=camera, occupied_model="gamma")
+    assert np.isfinite(res.occupied_gamma_shape) and res.is_gamma
+    occ, p = classify(a, res)
+    for k, n, rate in ((int(np.sum(occ[~truth])), int((~truth).sum()), res.false_positive_rate),
+                       (int(np.sum(1 - occ[truth])), int(truth.sum()), res.false_negative_rate)):
+        ci = stats.binomtest(k, n).proportion_ci(confidence_level=0.999)
+        assert ci.low <= rate <= ci.high, (k, n, rate)
+    normal = select_threshold(a, camera=camera)
+    fn_count = np.mean(1 - occ[truth])
+    assert abs(normal.false_negative_rate - fn_count) > 2 * abs(res.false_negative_rate - fn_count)
+    assert res.posterior([res.threshold])[0] == pytest.approx(0.5, abs=1e-6)
+    assert res.posterior([1e6])[0] == 1.0
+
+
+def test_skewed_peak_cdf_against_numerical_integration():
+    """FN of the gamma model = P(m0 + G + N < t), checked by quadrature.
+
+    Reference: scipy.stats.gamma and scipy.stats.norm integrated with scipy.integrate.quad.
+    """
+    from scipy import integrate
+
+    a, _ = draw_amplitudes(20000, photons=300.0, empty_std=50.0, spread=0.25, rng=17)
+    res = select_threshold(a, occupied_model="gamma").with_threshold(140.0)
+    k = res.occupied_gamma_shape
+    theta = (res.occupied_mean - res.empty_mean) / k
+    want, _ = integrate.quad(lambda u: stats.gamma.pdf(u, k, scale=theta)
+                             * stats.norm.cdf(140.0 - res.empty_mean - u, scale=res.empty_std),
+                             0, np.inf, limit=200)
+    assert res.false_negative_rate == pytest.approx(want, rel=2e-3, abs=1e-7)
+    back = ThresholdResult.from_dict(json.loads(json.dumps(res.to_dict(), allow_nan=False)))
+    assert back.occupied_gamma_shape == k and back.false_negative_rate == res.false_negative_rate
+
+
 def test_camera_model_sets_a_floor_on_the_occupied_width():
     """Occupied variance >= empty variance + F^2 mean / QE with F^2 = 2 for an EMCCD at high gain.
 
@@ -231,6 +272,11 @@ def test_dict_round_trip_through_json():
 def test_unknown_method():
     with pytest.raises(ReconstructionError, match="unknown threshold method 'median'"):
         select_threshold(np.arange(10.0), method="median")
+
+
+def test_unknown_occupied_model():
+    with pytest.raises(ReconstructionError, match="unknown occupied-peak model 'poisson'"):
+        select_threshold(np.arange(10.0), occupied_model="poisson")
 
 
 def test_too_few_finite_amplitudes():
