@@ -348,6 +348,9 @@ class MainWindow(QtWidgets.QMainWindow):
         tb.addSeparator()
         for k in ("prev", "next", "grid"):
             tb.addAction(a[k])
+        ext = tb.findChild(QtWidgets.QToolButton, "qt_toolbar_ext_button")
+        if ext is not None:  # shown when the window is too narrow for every button
+            ext.setToolTip("More toolbar actions")
 
     def _plot_targets(self) -> dict[str, str]:
         return {"image": "Image pane", "occupation": "Occupation view", "histogram": "Amplitude histogram",
@@ -729,7 +732,10 @@ class MainWindow(QtWidgets.QMainWindow):
                 self.show_status(f"reconstructing: {self._progress_done} of {total} frames")
 
         def on_result(_value):
-            self._fit_threshold_background(f"reconstructed {self._progress_done} frames")
+            n_done = int(s.done.sum())
+            text = (f"all {s.n_frames} frames reconstructed" if n_done == s.n_frames
+                    else f"{n_done} of {s.n_frames} frames reconstructed")
+            self._fit_threshold_background(text)
 
         self._start("reconstruct", job, f"reconstructing {total} frames", on_yield=on_yield,
                     on_result=on_result, total=total)
@@ -875,8 +881,8 @@ class MainWindow(QtWidgets.QMainWindow):
             a[k].setEnabled(has_cal)
         for k in ("export_csv", "export_h5", "fidelity"):
             a[k].setEnabled(has_results)
-        a["next"].setEnabled(has_frames and s.index < s.n_frames - 1)
-        a["prev"].setEnabled(has_frames and s.index > 0)
+        a["next"].setEnabled(has_frames)  # stepping past either end stays on the last/first frame
+        a["prev"].setEnabled(has_frames)
 
     # ================================================================== files
     def open_path(self, path) -> bool:
@@ -1015,8 +1021,8 @@ class MainWindow(QtWidgets.QMainWindow):
         if not path.exists() or self.session.frames is not None:
             return
         dialogs.ask_yes_no(self, "Restore the last session?",
-                           "latticeread did not close normally last time. Restore the automatically "
-                           f"saved session ({path})?",
+                           "An automatically saved session with unsaved work was found (the program was "
+                           f"closed without saving, or stopped unexpectedly). Restore it?\n\n{path}",
                            lambda yes: self._restore_answer(yes, path))
 
     def _restore_answer(self, yes: bool, path: Path) -> None:
@@ -1056,5 +1062,10 @@ class MainWindow(QtWidgets.QMainWindow):
         self.workers.shutdown()
         self.app_settings.save_window(self)
         self.app_settings.sync()
-        self._remove_autosave()
+        s = self.session
+        if s is not None and s.modified and s.frames is not None:
+            # unsaved work: keep it in the autosave file; the next start offers to restore it
+            self.autosave()
+        else:
+            self._remove_autosave()
         super().closeEvent(event)
