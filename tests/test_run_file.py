@@ -208,3 +208,9 @@ def test_empty_run_reads_as_zero_shots(tmp_path):
     RunWriter(path, calibration_json=CAL).close()
     run = read_run(path)
     assert len(run) == 0 and run.occupation.shape[0] == 0
+
+
+def test_reader_is_exported_from_the_io_package():
+    import latticeread.io
+
+    assert latticeread.io.read_run is read_run

@@ -16,6 +16,7 @@ from latticeread.io.export import (
     write_occupation_hdf5,
     write_sites_csv,
 )
+from latticeread.io.run_file import RunData, read_run
 
 __all__ = [
     "load_frames",
@@ -35,4 +36,6 @@ __all__ = [
     "write_occupation_hdf5",
     "read_occupation_hdf5",
     "OccupationFile",
+    "read_run",
+    "RunData",
 ]
