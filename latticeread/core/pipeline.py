@@ -465,8 +465,7 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
     if geometry is None:
         from latticeread.core.lattice import estimate_lattice  # the geometry engineer's module
 
-        # one frame, the brightest: summing a stack whose phase jitters would blur the peaks
-        geometry = estimate_lattice(clean[int(np.argmax(clean.reshape(len(clean), -1).sum(axis=1)))])
+        geometry = _estimate_geometry(clean, estimate_lattice)
         notes["geometry_estimated"] = True
     if psf is None:
         from latticeread.core.psf_estimate import estimate_psf  # the classification engineer's module
@@ -533,6 +532,25 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
     return Calibration(geometry=geometry, psf=psf, camera=camera, frame_shape=shape, threshold=float(tr.threshold),
                        threshold_method=threshold_method, amplitude_method=method, pixel_size_nm=pixel_size_nm,
                        notes=notes)
+
+
+def _estimate_geometry(stack, estimate_lattice) -> LatticeGeometry:
+    """Lattice from the summed stack and from a few single frames; the clearest Fourier peaks win.
+
+    The vectors are stable from shot to shot but the phase may jitter, which blurs the summed
+    stack's peaks; a single sparse frame can show stronger diagonal peaks than the primitive
+    ones. Trying both and keeping the largest peak-to-background ratio avoids either trap.
+    """
+    tries = [stack] + [stack[i] for i in np.unique(np.linspace(0, len(stack) - 1, 4).round().astype(int))]
+    found, failures = [], []
+    for image in tries:
+        try:
+            found.append(estimate_lattice(image))
+        except LatticeNotFound as exc:
+            failures.append(str(exc))
+    if not found:
+        raise LatticeNotFound(f"no lattice found in the calibration frames: {failures[0]}")
+    return max(found, key=lambda g: (g.quality.is_reliable, g.quality.peak_to_background))
 
 
 def _pooled(rec: Reconstructor, frames, *, atoms: bool = False):
