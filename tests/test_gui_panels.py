@@ -81,10 +81,15 @@ def test_histogram_counts_every_finite_site_and_scales_components(qtbot, tmp_pat
     rng = np.random.default_rng(7)
     amps = _bimodal(rng)
     amps[:25] = np.nan
+    amps[25:28] = [-5000.0, 9000.0, 12000.0]  # wild outliers must not squeeze the peaks
     panel.set_amplitudes(amps)
     edges, counts = panel._hist_curve.getData()
-    assert counts.sum() == pytest.approx(amps.size - 25)
+    assert edges[0] > -1000 and edges[-1] < 3000
+    n_outside = int(np.count_nonzero((amps < edges[0]) | (amps > edges[-1])))
+    assert n_outside >= 3
+    assert counts.sum() == pytest.approx(amps.size - 25 - n_outside)
     assert "25 non-finite ignored" in panel.summary_label.text()
+    assert f"{n_outside} outside the plotted range" in panel.summary_label.text()
     result = {"threshold": 480.0, "method": "mixture", "empty_mean": 0.0, "empty_std": 60.0,
               "occupied_mean": 1000.0, "occupied_std": 150.0, "occupied_fraction": 0.3,
               "false_positive_rate": 1e-4, "false_negative_rate": 0.0012, "warnings": ("few frames",)}

@@ -8,7 +8,8 @@ Methods (data in)
 -----------------
 ``set_amplitudes(amplitudes, *, unit="photons")``
     (N,) site amplitudes of the current frame or stack. Non-finite values are ignored and
-    counted in the summary. Re-histograms (the only expensive call).
+    counted in the summary; the plotted range is the central 99 % plus margins, and sites
+    outside it are counted in the summary. Re-histograms (the only expensive call).
 ``set_threshold_result(result)``
     A threshold result, duck-typed: an object or dict with ``threshold`` (same unit as the
     amplitudes) and, when available, ``method``, ``empty_mean``, ``empty_std``,
@@ -131,6 +132,23 @@ def _components(result):
             o_mu if has_occ else nan, o_sd if has_occ else nan, float(np.clip(frac, 0.0, 1.0)))
 
 
+def _display_range(values: np.ndarray) -> tuple[float, float]:
+    """Histogram range: the central 99 % of ``values`` plus 25 % margins, within min..max.
+
+    A few wild amplitudes (a cosmic ray, a site at the frame edge) would otherwise squeeze
+    both peaks into a handful of bins; the sites left out are counted in the summary.
+    """
+    vmin, vmax = float(values.min()), float(values.max())
+    if vmax <= vmin:
+        return vmin - 0.5, vmax + 0.5
+    lo, hi = (float(v) for v in np.percentile(values, [0.5, 99.5]))
+    pad = 0.25 * (hi - lo)
+    lo, hi = max(vmin, lo - pad), min(vmax, hi + pad)
+    if hi <= lo:
+        return vmin, vmax
+    return lo, hi
+
+
 def _same(a, b) -> bool:
     """Equal component tuples (NaN equal to NaN)."""
     if a is None or b is None:
@@ -158,6 +176,7 @@ class HistogramPanel(QtWidgets.QWidget):
         self._n_finite = 0
         self._components = None
         self._programmatic = False  # True while the owner moves the line
+        self._n_outside = 0
         self._last_dragged = None
 
         # --- plot -------------------------------------------------------------
@@ -266,12 +285,11 @@ class HistogramPanel(QtWidgets.QWidget):
             self._update_component_curves(force=True)
             self.summary_label.setText("no finite amplitudes" + (f" ({n_bad} non-finite ignored)" if n_bad else ""))
             return
-        lo, hi = float(finite.min()), float(finite.max())
-        if hi <= lo:
-            lo, hi = lo - 0.5, hi + 0.5
+        lo, hi = _display_range(finite)
         nbins = int(np.clip(np.sqrt(finite.size) * 1.5, 20, 200))
         counts, edges = np.histogram(finite, bins=nbins, range=(lo, hi))
         self._edges, self._counts = edges, counts.astype(float)
+        self._n_outside = int(finite.size - counts.sum())
         self._redraw_histogram()
         self._update_component_curves(force=True)
         self.plot_widget.getPlotItem().setXRange(lo, hi, padding=0.02)
@@ -411,6 +429,9 @@ class HistogramPanel(QtWidgets.QWidget):
         parts = [f"{self._n_finite} sites in histogram"]
         if getattr(self, "_n_bad", 0):
             parts.append(f"{self._n_bad} non-finite ignored")
+        if getattr(self, "_n_outside", 0) and self._edges is not None:
+            parts.append(f"{self._n_outside} outside the plotted range "
+                         f"{fmt(self._edges[0])} … {fmt(self._edges[-1])} {self._unit}")
         if self._components is not None:
             e_mu, e_sd, o_mu, o_sd, frac = self._components
             u = self._unit
