@@ -391,6 +391,7 @@ def test_fidelity_panel_shows_a_dict_report(qtbot, tmp_path):
     assert panel.warnings_label.isVisibleTo(panel) and "too dense" in panel.warnings_label.text()
     x, y = panel._loss_curve.getData()
     assert np.allclose(y, 100 * loss) and len(x) == 50
+    assert [label.text for _item, label in panel._legend.items] == ["loss"]  # only curves with data
     assert not _missing_tooltips(panel), _missing_tooltips(panel)
     _assert_render(panel, tmp_path, "fidelity")
     panel.set_report(None)

@@ -193,7 +193,8 @@ class FidelityPanel(QtWidgets.QWidget):
                                          orientation="horizontal", movable=False,
                                          brush=pg.mkBrush(80, 200, 80, 45), pen=pg.mkPen(None))
         tp.addItem(self._band)
-        tp.addLegend(offset=(-10, 10), labelTextColor=(40, 40, 40), brush=pg.mkBrush(255, 255, 255, 210))
+        self._legend = tp.addLegend(offset=(-10, 10), labelTextColor=(40, 40, 40),
+                                    brush=pg.mkBrush(255, 255, 255, 210))
         self._loss_curve = pg.PlotDataItem(pen=_LOSS_PEN, symbol="o", symbolSize=5,
                                            symbolBrush=(200, 40, 40), symbolPen=None, name="loss")
         self._hop_curve = pg.PlotDataItem(pen=_HOP_PEN, symbol="s", symbolSize=5,
@@ -330,4 +331,10 @@ class FidelityPanel(QtWidgets.QWidget):
         else:
             self._vanished_curve.setData([], [])
             self._vanished_bars.setData(x=np.zeros(0), y=np.zeros(0), top=np.zeros(0), bottom=np.zeros(0))
+        self._legend.clear()  # list only the curves that have data
+        for curve, name in ((self._vanished_curve, "vanished per shot (counted)"), (self._loss_curve, "loss"),
+                            (self._hop_curve, "hopping")):
+            x, _y = curve.getData()
+            if x is not None and len(x):
+                self._legend.addItem(curve, name)
         self.trend_plot.getPlotItem().autoRange()

@@ -88,8 +88,9 @@ class GeometryPanel(QtWidgets.QWidget):
         self.spectrum_plot = pg.PlotWidget(background="k")
         self.spectrum_plot.setToolTip(
             "Fourier spectrum of the frame(s), log magnitude, zero frequency in the centre. "
-            "Red crosses: detected reciprocal-lattice peaks; green circles: where the peaks of "
-            "the geometry shown here fall. Scroll to zoom, drag to pan.")
+            "Red crosses: detected reciprocal-lattice peaks; green circles: where the primitive "
+            "reciprocal vectors ±b1, ±b2 of the geometry shown here fall (they follow the manual "
+            "adjustments). Scroll to zoom, drag to pan.")
         self.spectrum_plot.setMinimumSize(240, 240)
         sp = self.spectrum_plot.getPlotItem()
         sp.setAspectLocked(True)
