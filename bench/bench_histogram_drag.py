@@ -9,6 +9,8 @@ Two ways of dragging are timed:
 * ``setValue``: the line is moved programmatically through the same signal path a drag uses;
 * ``mouse``: raw press / move / release events sent to the plot viewport (as a user's drag).
 
+Also timed: ``set_amplitudes`` (re-histogram) for 10^4 to 4x10^6 sites.
+
 Run by hand: ``QT_QPA_PLATFORM=offscreen .venv/bin/python bench/bench_histogram_drag.py``.
 The target of the issue is >= 20 updates/s.
 """
@@ -114,6 +116,15 @@ def main():
         n += 1
     dt = time.perf_counter() - t0
     print(f"panel only:    {n} updates in {dt:.3f} s = {n / dt:.0f} updates/s")
+
+    # 4) re-histogramming when the amplitudes change (whole stacks): set_amplitudes + repaint
+    for n_sites in (10_000, 1_000_000, 4_000_000):
+        big = np.concatenate([rng.normal(0, 60, n_sites - n_sites // 3), rng.normal(1000, 150, n_sites // 3)])
+        panel.set_amplitudes(big[:1000])  # not the first call of its kind
+        t0 = time.perf_counter()
+        panel.set_amplitudes(big)
+        panel.repaint()
+        print(f"set_amplitudes + repaint, {n_sites:>9,} sites: {1e3 * (time.perf_counter() - t0):.1f} ms")
 
 
 if __name__ == "__main__":
