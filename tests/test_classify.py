@@ -11,6 +11,8 @@ import warnings
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy import stats
 from skimage.filters import threshold_minimum, threshold_otsu
 
@@ -181,6 +183,19 @@ def test_with_threshold_keeps_components_and_recomputes_rates():
     occ, p = classify(a, moved)
     np.testing.assert_array_equal(occ, (a > 150.0).astype(np.uint8))
     np.testing.assert_allclose(p, res.posterior(a))
+
+
+@settings(max_examples=25, deadline=None)
+@given(scale=st.floats(0.01, 100.0), seed=st.integers(0, 2**16))
+def test_threshold_scales_with_the_amplitudes(scale, seed):
+    """Property: amplitudes in other units (x scale) give the same split and the same error rates."""
+    a, _ = draw_amplitudes(2000, photons=300.0, rng=seed)
+    ref = select_threshold(a)
+    got = select_threshold(a * scale)
+    # equal up to the EM stopping tolerance
+    assert got.threshold == pytest.approx(ref.threshold * scale, rel=1e-4)
+    assert got.false_negative_rate == pytest.approx(ref.false_negative_rate, rel=1e-3, abs=1e-12)
+    assert np.sum(classify(a * scale, got)[0] != classify(a, ref)[0]) <= 1
 
 
 def test_posterior_is_half_at_the_mixture_threshold():

@@ -50,6 +50,10 @@ SMOOTHING = 1.0
 #: A site within the isolation distance brighter than this fraction of the atom's cell sum
 #: counts as a second atom (light leaking from the atom gives much less).
 NEIGHBOUR_RATIO = 0.5
+#: Fewer atoms than this in the average give a warning.
+FEW_ATOMS = 50
+#: A re-centring shift larger than this (pixels) gives a warning.
+MAX_CENTRE_SHIFT = 0.25
 
 
 def estimate_psf(
@@ -112,7 +116,9 @@ def estimate_psf(
         ``params``: ``n_atoms``, ``n_frames``, ``n_saturated_skipped``, ``ellipticity`` (1 - minor/major FWHM),
         ``fwhm_major``, ``fwhm_minor`` (pixels), ``major_axis_angle`` (radians from +x
         towards +y), ``centre_shift_x``, ``centre_shift_y`` (pixels the kernel was moved
-        to centre it; a measure of the residual lattice-phase bias).
+        to centre it; a measure of the residual lattice-phase bias), the selection settings
+        ``threshold``, ``min_separation``, and ``warnings`` (list of str: few
+        atoms, many outliers, off-centre spot; empty when all is well).
 
     Raises
     ------
@@ -251,12 +257,22 @@ def estimate_psf(
     m = measure_kernel(kernel, supersample=s)
     logger.info("PSF from %d atoms in %d frames: FWHM %.3f px, ellipticity %.3f", n_used, n_frames,
                 m["fwhm"], m["ellipticity"])
+    warnings = []
+    if n_used < FEW_ATOMS:
+        warnings.append(f"only {n_used} atoms went into the PSF: its wings are noisy "
+                        f"({FEW_ATOMS} or more recommended)")
+    if n_used < 0.7 * len(atoms):
+        warnings.append(f"{len(atoms) - n_used} of {len(atoms)} isolated atoms were rejected as outliers: "
+                        f"check the threshold and the lattice geometry")
+    if math.hypot(*shift) > MAX_CENTRE_SHIFT:
+        warnings.append(f"the averaged spot sits {math.hypot(*shift):.2f} pixels away from the lattice "
+                        f"sites: the lattice offset may be biased")
     return empirical_psf(
         kernel, supersample=s, fwhm=m["fwhm"], radius=R,
         n_atoms=int(n_used), n_frames=int(n_frames), n_saturated_skipped=int(n_saturated), ellipticity=m["ellipticity"],
         fwhm_major=m["fwhm_major"], fwhm_minor=m["fwhm_minor"], major_axis_angle=m["major_axis_angle"],
         centre_shift_x=float(shift[0]), centre_shift_y=float(shift[1]), threshold=threshold,
-        min_separation=sep)
+        min_separation=sep, warnings=warnings)
 
 
 def measure_kernel(kernel, *, supersample: int, n_angles: int = 90) -> dict:
