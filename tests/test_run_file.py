@@ -33,7 +33,8 @@ def _record(i: int, *, shape=(3, 4), source="/data/shot.tif", file_hash="ab" * 1
         p_occupied=rng.random(shape), x=rng.random(shape) * 64, y=rng.random(shape) * 64,
         flags=rng.integers(0, 64, size=shape).astype(np.uint8),
         offset=(1.25 + i, 2.5), a1=(4.0, 0.0), a2=(0.0, 4.0), threshold=250.0 + i,
-        peak_to_background=12.0, lattice_residual=0.01, warnings=("few atoms", "poor fit") if i == 1 else ())
+        peak_to_background=12.0, lattice_residual=0.01, warnings=("few atoms", "poor fit") if i == 1 else (),
+        false_positive_rate=1e-3 * i, false_negative_rate=2e-3)
 
 
 def test_round_trip_is_exact(tmp_path):
@@ -52,6 +53,8 @@ def test_round_trip_is_exact(tmp_path):
     assert run.keys == [r.key for r in recs]
     np.testing.assert_array_equal(run.offset, [r.offset for r in recs])
     np.testing.assert_array_equal(run.threshold, [250.0, 251.0, 252.0])
+    np.testing.assert_array_equal(run.false_positive_rate, [0.0, 1e-3, 2e-3])
+    np.testing.assert_array_equal(run.false_negative_rate, [2e-3] * 3)
     assert run.warnings == ((), ("few atoms", "poor fit"), ())
     # n_sites / n_occupied / filling computed from the matrix, 255 = outside.
     assert run.n_sites[0] == 11
@@ -214,3 +217,20 @@ def test_reader_is_exported_from_the_io_package():
     import latticeread.io
 
     assert latticeread.io.read_run is read_run
+
+
+def test_read_only_some_matrices(tmp_path):
+    path = tmp_path / "run.h5"
+    with RunWriter(path, calibration_json=CAL) as w:
+        w.append(_record(0))
+    run = read_run(path, matrices=("occupation",))
+    np.testing.assert_array_equal(run.occupation[0], _record(0).occupation)
+    assert run.amplitude is None and run.flags is None
+    assert read_run(path, matrices=False).occupation is None
+
+
+def test_read_unknown_matrix(tmp_path):
+    path = tmp_path / "run.h5"
+    RunWriter(path, calibration_json=CAL).close()
+    with pytest.raises(ValueError, match="unknown run-file matrices"):
+        read_run(path, matrices=("occupancy",))

@@ -18,6 +18,16 @@ def _workers(text: str) -> int:
     return value
 
 
+def _images(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        value = 0
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"must be a whole number of at least 1, got {text!r}")
+    return value
+
+
 def add_parser(parser: argparse.ArgumentParser) -> None:
     parser.epilog = (
         "The run file is written shot by shot; an interrupted run keeps every shot written so far, and "
@@ -36,6 +46,12 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--scheduler", default=None, metavar="ADDRESS",
                         help="run on a Dask cluster: a scheduler address (tcp://host:8786) or 'local' to start "
                              "one on this machine; needs pip install 'latticeread[cluster]'")
+    parser.add_argument("--images-per-shot", type=_images, default=1, metavar="N",
+                        help="consecutive frames of each file that image the same atoms; with 2 or more the "
+                             "summary estimates loss and hopping between them (default 1)")
+    parser.add_argument("--fidelity-bootstrap", type=_workers, default=200, metavar="N",
+                        help="bootstrap replicates for the fidelity intervals (default 200; 0 = point estimates "
+                             "only, faster)")
     parser.add_argument("--retry-failed", action="store_true",
                         help="try again the shots that failed in an earlier run of this run file")
     parser.add_argument("--no-progress", action="store_true", help="no progress bar")
@@ -48,7 +64,8 @@ def run(args: argparse.Namespace) -> int:
     try:
         summary = run_batch(args.inputs, calibration=args.calibration, out=args.out, workers=args.workers,
                             scheduler=args.scheduler, retry_failed=args.retry_failed,
-                            progress=not args.no_progress, metadata={"command": "batch"})
+                            progress=not args.no_progress, metadata={"command": "batch"},
+                            images_per_shot=args.images_per_shot, fidelity_bootstrap=args.fidelity_bootstrap)
     except KeyboardInterrupt:
         print(f"latticeread batch: interrupted; every shot written so far is kept in {args.out}. "
               "Run the same command again to continue.", file=sys.stderr)

@@ -16,7 +16,9 @@ Root attributes
     ``source`` (str, absolute input path), ``file_hash`` (str, hex BLAKE2b-128 of the file
     bytes), ``frame_index`` (int64, frame inside that file), ``offset``, ``a1``, ``a2``
     ((n, 2) float64, lattice offset and vectors ``(x, y)`` in pixels used for that shot),
-    ``threshold`` (float64, photons), ``n_sites``, ``n_occupied`` (int64), ``filling``
+    ``threshold`` (float64, photons), ``false_positive_rate``, ``false_negative_rate``
+    (float64, misread probabilities per site from the threshold fit; NaN for a fixed
+    threshold without a fit), ``n_sites``, ``n_occupied`` (int64), ``filling``
     (float64, occupied / valid sites), ``peak_to_background``, ``lattice_residual``
     (float64, lattice fit diagnostics), ``warnings`` (str, one per line), ``written_at``
     (float64, Unix time of writing).
@@ -78,6 +80,8 @@ _SHOT_COLUMNS = {
     "a1": (np.float64, (2,)),
     "a2": (np.float64, (2,)),
     "threshold": (np.float64, ()),
+    "false_positive_rate": (np.float64, ()),
+    "false_negative_rate": (np.float64, ()),
     "n_sites": (np.int64, ()),
     "n_occupied": (np.int64, ()),
     "filling": (np.float64, ()),
@@ -148,6 +152,8 @@ class ShotRecord:
         Lattice fit diagnostics of the shot (NaN if not available).
     warnings : tuple of str
         Reasons the shot may mislead.
+    false_positive_rate, false_negative_rate : float
+        Misread probabilities per site from the threshold fit (NaN if not available).
     """
 
     key: ShotKey
@@ -164,6 +170,8 @@ class ShotRecord:
     peak_to_background: float = float("nan")
     lattice_residual: float = float("nan")
     warnings: tuple[str, ...] = ()
+    false_positive_rate: float = float("nan")
+    false_negative_rate: float = float("nan")
 
     @property
     def matrix_shape(self) -> tuple[int, int]:
@@ -403,6 +411,8 @@ class RunWriter:
                 "a1": record.a1,
                 "a2": record.a2,
                 "threshold": record.threshold,
+                "false_positive_rate": record.false_positive_rate,
+                "false_negative_rate": record.false_negative_rate,
                 "n_sites": record.n_sites,
                 "n_occupied": record.n_occupied,
                 "filling": record.filling,
@@ -516,6 +526,8 @@ class RunData:
         Lattice offset and vectors ``(x, y)`` in pixels per shot.
     threshold, filling, peak_to_background, lattice_residual, written_at : (n,) float64
         Threshold in photons, filling fraction, lattice diagnostics, Unix time of writing.
+    false_positive_rate, false_negative_rate : (n,) float64
+        Misread probabilities per site from each shot's threshold fit (NaN if none).
     n_sites, n_occupied : (n,) ndarray of int64
     warnings : tuple of tuple of str
         Warnings per shot.
@@ -545,6 +557,8 @@ class RunData:
     peak_to_background: np.ndarray
     lattice_residual: np.ndarray
     written_at: np.ndarray
+    false_positive_rate: np.ndarray
+    false_negative_rate: np.ndarray
     warnings: tuple
     failures: RunFailures
     calibration: dict = field(repr=False)
@@ -564,7 +578,8 @@ class RunData:
         return {
             "source": self.source, "file_hash": self.file_hash, "frame_index": self.frame_index,
             "offset_x": self.offset[:, 0], "offset_y": self.offset[:, 1],
-            "threshold": self.threshold, "n_sites": self.n_sites, "n_occupied": self.n_occupied,
+            "threshold": self.threshold, "false_positive_rate": self.false_positive_rate,
+            "false_negative_rate": self.false_negative_rate, "n_sites": self.n_sites, "n_occupied": self.n_occupied,
             "filling": self.filling, "peak_to_background": self.peak_to_background,
             "lattice_residual": self.lattice_residual,
         }
@@ -577,10 +592,10 @@ def read_run(path, *, matrices: bool = True) -> RunData:
     ----------
     path : str or Path
         The ``.h5`` run file.
-    matrices : bool
-        Read the per-site matrices (occupation, amplitude...). With False only the per-shot
-        table and failures are read (fast and small for long runs) and the matrix fields
-        are None.
+    matrices : bool or iterable of str
+        Read the per-site matrices (occupation, amplitude, p_occupied, x, y, flags). With
+        False only the per-shot table and failures are read (fast and small for long runs)
+        and the matrix fields are None; with names, only those matrices are read.
 
     Returns
     -------
@@ -606,12 +621,18 @@ def read_run(path, *, matrices: bool = True) -> RunData:
         n = int(f.attrs["n_shots"])
         nf = int(f.attrs["n_failures"])
         s = f["shots"]
-        if not matrices:
-            mats = {name: None for name in _MATRICES}
-        elif "occupation" in f:
-            mats = {name: f[name][:n] for name in _MATRICES}
-        else:
-            mats = {name: np.zeros((0, 0, 0), dtype=dtype) for name, (dtype, _fill) in _MATRICES.items()}
+        wanted = set(_MATRICES) if matrices is True else set(matrices or ())
+        unknown = wanted - set(_MATRICES)
+        if unknown:
+            raise ValueError(f"unknown run-file matrices {sorted(unknown)}; choose from {list(_MATRICES)}")
+        mats = {}
+        for name, (dtype, _fill) in _MATRICES.items():
+            if name not in wanted:
+                mats[name] = None
+            elif name in f:
+                mats[name] = f[name][:n]
+            else:
+                mats[name] = np.zeros((0, 0, 0), dtype=dtype)
         g = f["failures"]
         failures = RunFailures(
             source=np.asarray(g["source"].asstr()[:nf], dtype=object).astype(str),
@@ -631,6 +652,7 @@ def read_run(path, *, matrices: bool = True) -> RunData:
             threshold=s["threshold"][:n], n_sites=s["n_sites"][:n], n_occupied=s["n_occupied"][:n],
             filling=s["filling"][:n], peak_to_background=s["peak_to_background"][:n],
             lattice_residual=s["lattice_residual"][:n], written_at=s["written_at"][:n],
+            false_positive_rate=s["false_positive_rate"][:n], false_negative_rate=s["false_negative_rate"][:n],
             warnings=warnings, failures=failures,
             calibration=json.loads(str(f.attrs.get("calibration", "{}"))),
             program_version=str(f.attrs.get("program_version", "")),

@@ -51,6 +51,7 @@ __all__ = [
     "shot_record",
     "run_batch",
     "summarize_run",
+    "group_shots",
 ]
 
 log = logging.getLogger(__name__)
@@ -283,8 +284,11 @@ def shot_record(key: ShotKey, result) -> ShotRecord:
     threshold = result.threshold
     if threshold is not None and hasattr(threshold, "threshold"):
         threshold = threshold.threshold
+    fit = getattr(result, "threshold_result", None)
+    fp = float(getattr(fit, "false_positive_rate", float("nan"))) if fit is not None else float("nan")
+    fn = float(getattr(fit, "false_negative_rate", float("nan"))) if fit is not None else float("nan")
     warnings: list[str] = []
-    for source in (result, getattr(result, "threshold_result", None), geometry.quality):
+    for source in (result, fit, geometry.quality):
         for w in getattr(source, "warnings", ()) or ():
             if str(w) not in warnings:
                 warnings.append(str(w))
@@ -293,7 +297,8 @@ def shot_record(key: ShotKey, result) -> ShotRecord:
         offset=tuple(geometry.offset), a1=tuple(geometry.a1), a2=tuple(geometry.a2),
         threshold=float("nan") if threshold is None else float(threshold),
         peak_to_background=float(geometry.quality.peak_to_background),
-        lattice_residual=float(geometry.quality.residual), warnings=tuple(warnings))
+        lattice_residual=float(geometry.quality.residual), warnings=tuple(warnings),
+        false_positive_rate=fp, false_negative_rate=fn)
 
 
 class ShotReconstructor:
@@ -522,6 +527,9 @@ class BatchSummary:
         What ran the shots.
     warnings : tuple of str
         What the user should look at.
+    fidelity : FidelityReport or None
+        Loss and hopping between consecutive images, when the run was told that shots hold
+        several images (``images_per_shot`` > 1) and enough complete shots exist.
     """
 
     run_file: Path
@@ -542,6 +550,7 @@ class BatchSummary:
     failure_examples: tuple = ()
     workers: str = ""
     warnings: tuple = ()
+    fidelity: object = None
 
     def format(self) -> str:
         """Several lines of plain text for the terminal."""
@@ -561,14 +570,88 @@ class BatchSummary:
                 f"from the calibration, shot-to-shot scatter {self.phase_scatter_px:.3f} px rms, "
                 f"largest shift {self.phase_drift_max_sites:.3f} sites",
             ]
+        if self.fidelity is not None:
+            fid = self.fidelity
+
+            def pct(e):
+                if np.isfinite(e.low) and np.isfinite(e.high):
+                    return f"{100 * e.value:.2f} % [{100 * e.low:.2f}, {100 * e.high:.2f}]"
+                return f"{100 * e.value:.2f} %"
+
+            lines.append(f"fidelity      loss {pct(fid.loss)}, hopping {pct(fid.hop)}, read correctly "
+                         f"{pct(fid.read_correctly)} per atom and image ({fid.n_shots} shots of {fid.n_images} "
+                         "images)")
+            lines += [f"fidelity note {text}" for text in fid.warnings]
         lines += [f"failed        {text}" for text in self.failure_examples]
         lines += [f"warning       {text}" for text in self.warnings]
         return "\n".join(lines)
 
 
+def group_shots(run, images_per_shot: int) -> tuple[np.ndarray, np.ndarray]:
+    """Group consecutive frames of each input file into shots of ``images_per_shot`` images.
+
+    Frames ``k*n ... k*n + n - 1`` of one file form shot ``k``; a shot is kept only when all
+    its images are in the run (none failed).
+
+    Parameters
+    ----------
+    run : RunData
+        Read with at least the ``occupation`` matrices.
+    images_per_shot : int
+
+    Returns
+    -------
+    occupations : (n_shots, images_per_shot, rows, cols) ndarray of uint8
+    rows : (n_shots, images_per_shot) ndarray of int
+        Row of each image in the run file.
+    """
+    n = int(images_per_shot)
+    by_source: dict[str, dict[int, int]] = {}
+    for k, (s, i) in enumerate(zip(run.source, run.frame_index)):
+        by_source.setdefault(str(s), {})[int(i)] = k
+    groups = []
+    for frames in by_source.values():
+        for first in sorted({f - f % n for f in frames}):
+            rows = [frames.get(first + j) for j in range(n)]
+            if None not in rows:
+                groups.append(rows)
+    rows = np.array(groups, dtype=int).reshape(-1, n)
+    shape = run.occupation.shape[1:] if run.occupation is not None and run.occupation.ndim == 3 else (0, 0)
+    occupations = run.occupation[rows.ravel()].reshape(-1, n, *shape) if rows.size else \
+        np.zeros((0, n, *shape), np.uint8)
+    return occupations, rows
+
+
+def _fidelity(path, calibration: Calibration, images_per_shot: int, n_bootstrap: int):
+    from latticeread.core.fidelity import estimate_fidelity
+    from latticeread.errors import FidelityError
+
+    run = read_run(path, matrices=("occupation",))
+    occupations, rows = group_shots(run, images_per_shot)
+    if occupations.shape[0] == 0:
+        return None, (f"no complete shot of {images_per_shot} consecutive images: fidelity not estimated",)
+    fp = run.false_positive_rate[rows.ravel()]
+    fn = run.false_negative_rate[rows.ravel()]
+    rates = {}
+    if np.isfinite(fp).any():
+        rates["false_positive_rate"] = float(np.nanmedian(fp))
+    if np.isfinite(fn).any():
+        rates["false_negative_rate"] = float(np.nanmedian(fn))
+    try:
+        return estimate_fidelity(occupations, geometry=calibration.geometry, n_bootstrap=n_bootstrap, **rates), ()
+    except FidelityError as exc:
+        return None, (f"fidelity not estimated: {exc}",)
+
+
 def summarize_run(path, calibration: Calibration, *, counts: dict, seconds: float, workers: str = "",
-                  failure_examples=()) -> BatchSummary:
-    """Build a :class:`BatchSummary` from the run file's per-shot table and this run's counters."""
+                  failure_examples=(), images_per_shot: int = 1, fidelity_bootstrap: int = 200) -> BatchSummary:
+    """Build a :class:`BatchSummary` from the run file's per-shot table and this run's counters.
+
+    With ``images_per_shot`` > 1 the loss and hopping between consecutive images are
+    estimated (:func:`latticeread.core.fidelity.estimate_fidelity`) on every complete shot
+    in the run file, with the median misread rates of the shots' threshold fits and
+    ``fidelity_bootstrap`` bootstrap replicates for the intervals (0: no intervals).
+    """
     run = read_run(path, matrices=False)
     n = len(run)
     if n:
@@ -593,6 +676,10 @@ def summarize_run(path, calibration: Calibration, *, counts: dict, seconds: floa
     if n and np.isfinite(drift_max) and drift_max > 0.5:
         warnings.append(f"the lattice offset moved by up to {drift_max:.2f} sites from the calibration: "
                         "site indices may have jumped; check the lattice phase per shot")
+    fidelity = None
+    if images_per_shot > 1 and n:
+        fidelity, notes = _fidelity(path, calibration, images_per_shot, fidelity_bootstrap)
+        warnings.extend(notes)
     return BatchSummary(
         run_file=Path(path), n_files=counts.get("files", 0), n_new=new, n_failed=counts.get("failed", 0),
         n_skipped_done=counts.get("skipped_done", 0), n_skipped_failed=counts.get("skipped_failed", 0),
@@ -600,7 +687,8 @@ def summarize_run(path, calibration: Calibration, *, counts: dict, seconds: floa
         offset_shift_px=tuple(float(v) for v in mean_shift), phase_scatter_px=scatter,
         phase_drift_max_sites=drift_max, seconds=float(seconds),
         frames_per_second=new / seconds if new and seconds > 0 else float("nan"),
-        failure_examples=tuple(failure_examples)[:5], workers=workers, warnings=tuple(warnings))
+        failure_examples=tuple(failure_examples)[:5], workers=workers, warnings=tuple(warnings),
+        fidelity=fidelity)
 
 
 # --- the run ---------------------------------------------------------------------------------
@@ -627,7 +715,7 @@ def _progress_bar(total: int, enabled: bool, description: str):
 
 def run_batch(inputs, *, calibration, out, workers: int | None = None, scheduler: str | None = None,
               retry_failed: bool = False, progress: bool = True, metadata: dict | None = None,
-              window: int | None = None) -> BatchSummary:
+              window: int | None = None, images_per_shot: int = 1, fidelity_bootstrap: int = 200) -> BatchSummary:
     """Reconstruct every frame of ``inputs`` into the run file ``out`` (resumable).
 
     Parameters
@@ -652,6 +740,11 @@ def run_batch(inputs, *, calibration, out, workers: int | None = None, scheduler
         Stored with the run file when it is created.
     window : int, optional
         Shots in flight at once (default 4 per worker); bounds the memory of the main process.
+    images_per_shot : int
+        Consecutive frames of each file that image the same atoms (2 or more: the summary
+        estimates loss and hopping between them). Default 1: frames are independent.
+    fidelity_bootstrap : int
+        Bootstrap replicates for the fidelity intervals (0: point estimates only, faster).
 
     Returns
     -------
@@ -667,6 +760,8 @@ def run_batch(inputs, *, calibration, out, workers: int | None = None, scheduler
         The calibration file is unusable.
     """
     t_start = time.perf_counter()
+    if int(images_per_shot) < 1:
+        raise ValueError(f"images per shot must be at least 1, got {images_per_shot}")
     cal = _as_calibration(calibration)
     cal_json = calibration_to_json(cal)
     out = Path(os.fspath(out))
@@ -694,7 +789,8 @@ def run_batch(inputs, *, calibration, out, workers: int | None = None, scheduler
             finally:
                 runner.close(cancel=True)
     return summarize_run(out, cal, counts=counts, seconds=time.perf_counter() - t_start, workers=description,
-                         failure_examples=examples)
+                         failure_examples=examples, images_per_shot=images_per_shot,
+                         fidelity_bootstrap=fidelity_bootstrap)
 
 
 def _make_runner(cal_json: str, *, workers: int | None, scheduler: str | None):
@@ -748,6 +844,8 @@ def _drive(runner, tasks: list, writer: RunWriter, counts: dict, examples: list,
 
 def summary_dict(summary: BatchSummary) -> dict:
     """The summary as plain JSON-able values (for ``--json`` output or the GUI)."""
-    data = dataclasses.asdict(summary)
+    fidelity = summary.fidelity
+    data = dataclasses.asdict(dataclasses.replace(summary, fidelity=None))
     data["run_file"] = str(summary.run_file)
+    data["fidelity"] = None if fidelity is None else fidelity.to_dict()
     return data
