@@ -142,6 +142,11 @@ def test_frames_without_atoms():
         estimate_psf(frames, _geometry(offset=(32.0, 32.0)))
 
 
+def test_frames_of_different_sizes():
+    with pytest.raises(FrameError, match="frames differ in size"):
+        estimate_psf([np.zeros((8, 8)), np.zeros((9, 8))], _geometry())
+
+
 def test_wrong_dimensions():
     with pytest.raises(FrameError, match=r"expected one \(H, W\) image or an \(N, H, W\) stack"):
         estimate_psf(np.zeros((2, 2, 8, 8)), _geometry())

@@ -17,12 +17,17 @@ Steps (:func:`estimate_psf`):
    ``supersample x supersample`` cells of the unknown fine kernel. Atoms at different
    sub-pixel positions sample different sets of cells, so the fine kernel (a density, no
    pixel blur) follows from one sparse linear least-squares problem with a weak smoothness
-   penalty (squared Laplacian) that fixes the patterns pixel integration cannot see. Per-atom brightness is refitted and outlying pixels and atoms are
+   penalty (squared Laplacian) that fixes the patterns pixel integration cannot see.
+   Per-atom brightness is refitted and outlying pixels and atoms are
    clipped (``clip`` robust standard deviations) over a few rounds.
 5. **Normalise and measure.** The kernel is re-centred on its weighted centroid and
-   normalised (``kernel.sum() / supersample**2 == 1``); the FWHM along the two principal
-   axes of the core gives ``fwhm`` (their mean), ``ellipticity = 1 - minor/major`` and the
-   axis angle.
+   normalised (``kernel.sum() / supersample**2 == 1``); an ellipse fitted to the
+   half-maximum contour gives the FWHM along its two axes, ``fwhm`` (their mean),
+   ``ellipticity = 1 - minor/major`` and the axis angle (:func:`measure_kernel`).
+
+Scope: the frames must be sparse (a few % filling), so that atoms with empty
+surroundings exist; crowded frames raise :class:`~latticeread.errors.ReconstructionError`
+with the number of isolated atoms found.
 """
 
 from __future__ import annotations
@@ -76,8 +81,9 @@ def estimate_psf(
     Parameters
     ----------
     frames : (H, W) or (N, H, W) array_like, or sequence of (image, LatticeGeometry)
-        Sparse frames (counts or photons; only the shape of the spot matters). A stack is
-        used with the single ``geometry``; a sequence of pairs brings one geometry per
+        Sparse frames (counts or photons; only the shape of the spot matters). A stack (or
+        any sequence of 2-D frames, e.g. a lazy frame stack) is used with the single
+        ``geometry``; a sequence of pairs brings one geometry per
         frame. NaN/inf pixels are allowed: atoms whose window touches them are skipped.
     geometry : LatticeGeometry, optional
         Lattice vectors and offset (pixels) for a stack; None for a sequence of pairs.
@@ -357,6 +363,14 @@ def _as_pairs(frames, geometry):
         return pairs
     if not isinstance(geometry, LatticeGeometry):
         raise ReconstructionError("a stack of frames needs a LatticeGeometry (or pass (image, geometry) pairs)")
+    if not isinstance(frames, np.ndarray) and hasattr(frames, "__len__") and hasattr(frames, "__getitem__"):
+        # a list of images or a lazy stack that hands out one frame at a time
+        items = [np.asarray(frames[i]) for i in range(len(frames))]
+        if items and all(f.ndim == 2 for f in items):
+            if len({f.shape for f in items}) > 1:
+                raise FrameError(f"frames differ in size: {sorted({f.shape for f in items})}")
+            return [(f, geometry) for f in items]
+        frames = items[0] if len(items) == 1 else items
     arr = np.asarray(frames)
     if arr.ndim == 2:
         arr = arr[None]
@@ -471,7 +485,6 @@ def _fit_kernel(prepared, atoms, *, R, s, mask_radius, clip, n_rounds):
     size = 2 * R + 1
     oy, ox = np.mgrid[-R:R + 1, -R:R + 1]
     sub_y, sub_x = np.mgrid[0:s, 0:s]
-    rows_y, rows_data, rows_atom, col_idx = [], [], [], []
     n_atoms = len(atoms)
     obs = np.empty((n_atoms, size, size))
     keep = np.ones((n_atoms, size, size), bool)
