@@ -337,3 +337,113 @@ def test_nothing_read_out_is_refused():
 def test_no_atoms_is_refused():
     with pytest.raises(FidelityError, match="no atom is seen in the first image"):
         estimate_fidelity(_occ())
+
+
+# --------------------------------------------------------------------------- command line
+
+
+@pytest.fixture(scope="module")
+def pair_stack(tmp_path_factory):
+    """A small stack of repeated images of the square demo and a calibration made from its truth."""
+    import tifffile
+
+    from latticeread.core.calibration import Calibration
+    from latticeread.core.simulate import demo_scenario, simulate_frames
+    from latticeread.io import save_calibration
+
+    folder = tmp_path_factory.mktemp("fidelity_cli")
+    kw = demo_scenario("square", frame_shape=(72, 72))
+    kw.pop("pixel_size_nm")
+    kw.update(region=("rectangle", 12, 12), filling=0.3, loss_probability=0.05, hop_probability=0.0)
+    frames, truth = simulate_frames(**kw, n_shots=6, images_per_shot=2, rng=4)
+    stack = folder / "pairs.tif"
+    tifffile.imwrite(stack, frames, photometric="minisblack")
+    tifffile.imwrite(folder / "first.tif", frames[0::2], photometric="minisblack")
+    tifffile.imwrite(folder / "second.tif", frames[1::2], photometric="minisblack")
+    tifffile.imwrite(folder / "short.tif", frames[1:7:2], photometric="minisblack")
+    rows, cols = truth.sites.rows, truth.sites.cols
+    cal = Calibration(geometry=kw["geometry"], psf=kw["psf"], camera=kw["camera"], frame_shape=(72, 72),
+                      threshold=450.0, notes={"index_bounds": [int(rows.min()), int(rows.max()),
+                                                               int(cols.min()), int(cols.max())]})
+    save_calibration(folder / "cal.json", cal)
+    return folder, truth
+
+
+def test_command_writes_report_and_two_stacks_agree(pair_stack, capsys):
+    from latticeread.cli import main
+
+    folder, truth = pair_stack
+    out1, out2 = folder / "one.json", folder / "two.json"
+    common = ["--calibration", str(folder / "cal.json"), "--bootstrap", "20", "--no-progress",
+              "--false-negative", "0.001"]
+    assert main(["fidelity", str(folder / "pairs.tif"), "--out", str(out1), *common]) == 0
+    printed = capsys.readouterr().out
+    assert "P(site read correctly)" in printed and f"wrote {out1}" in printed
+    assert main(["fidelity", str(folder / "first.tif"), str(folder / "second.tif"), "--out", str(out2), *common]) == 0
+    one, two = json.loads(out1.read_text()), json.loads(out2.read_text())
+    assert one["n_shots"] == two["n_shots"] == 6 and one["n_images"] == 2
+    assert one["loss"] == two["loss"] and one["hop"] == two["hop"]
+    # the reconstruction sees the atoms the simulator put there (144 sites, filling 0.3)
+    atoms_true = int(truth.initial_occupation[0::2].sum())
+    assert abs(one["n_atom_images"] - atoms_true) <= 0.05 * atoms_true
+    assert one["inputs"] == [str(folder / "pairs.tif")]
+
+
+def test_command_refuses_a_report_name_without_json(pair_stack, capsys):
+    from latticeread.cli import main
+
+    folder, _ = pair_stack
+    assert main(["fidelity", str(folder / "pairs.tif"), "--out", str(folder / "r.txt")]) == 2
+    assert "must end in .json" in capsys.readouterr().err
+    assert not (folder / "r.txt").exists()
+
+
+def test_command_refuses_three_stacks(pair_stack, capsys):
+    from latticeread.cli import main
+
+    folder, _ = pair_stack
+    s = str(folder / "pairs.tif")
+    assert main(["fidelity", s, s, s]) == 2
+    assert "not 3 files" in capsys.readouterr().err
+
+
+def test_command_refuses_stacks_of_different_length(pair_stack, capsys):
+    from latticeread.cli import main
+
+    folder, _ = pair_stack
+    code = main(["fidelity", str(folder / "first.tif"), str(folder / "short.tif"),
+                 "--calibration", str(folder / "cal.json"), "--no-progress"])
+    assert code == 3
+    assert "first.tif has 6 frames but short.tif has 3" in capsys.readouterr().err
+
+
+def test_command_refuses_frames_not_a_multiple_of_images_per_shot(pair_stack, capsys):
+    from latticeread.cli import main
+
+    folder, _ = pair_stack
+    code = main(["fidelity", str(folder / "pairs.tif"), "--images-per-shot", "5",
+                 "--calibration", str(folder / "cal.json"), "--no-progress"])
+    assert code == 3
+    assert "has 12 frames, not a multiple of --images-per-shot 5" in capsys.readouterr().err
+
+
+def test_command_reads_an_occupation_file_without_reconstructing(pair_stack, capsys):
+    import tifffile
+
+    from latticeread.cli import main
+    from latticeread.core.pipeline import Reconstructor
+    from latticeread.io import load_calibration, write_occupation_hdf5
+
+    folder, _ = pair_stack
+    cal = load_calibration(folder / "cal.json")
+    rec = Reconstructor(cal)
+    results = [rec(f, frame_index=i) for i, f in enumerate(tifffile.imread(folder / "pairs.tif"))]
+    write_occupation_hdf5(folder / "occ.h5", results, calibration=cal)
+    out = folder / "from_h5.json"
+    assert main(["fidelity", str(folder / "occ.h5"), "--out", str(out), "--bootstrap", "10",
+                 "--false-negative", "0.001"]) == 0
+    got = json.loads(out.read_text())
+    occ = np.stack([r.occupation_matrix() for r in results]).reshape(6, 2, *results[0].sites.matrix_shape)
+    ref = estimate_fidelity(occ, false_negative_rate=0.001, geometry=cal.geometry, n_bootstrap=10, rng=0)
+    assert got["loss"]["value"] == pytest.approx(ref.loss.value, abs=1e-12)
+    assert got["n_atom_images"] == ref.n_atom_images
