@@ -231,6 +231,18 @@ class SiteBasis:
                                           f"{height}x{width}")
             weights = weights * mask
         self.mask = mask
+        # only pixels near the sites enter the fit (the sites' bounding box widened by the stamp
+        # radius and a lattice spacing): per-frame work does not grow with the frame size
+        allow = max(geometry.spacings) + 1.0
+        y0 = max(int(np.floor(self.sites.y.min() - allow)) - r - 4, -self.pad)
+        y1 = min(int(np.ceil(self.sites.y.max() + allow)) + r + 5, height + self.pad)
+        x0 = max(int(np.floor(self.sites.x.min() - allow)) - r - 4, -self.pad)
+        x1 = min(int(np.ceil(self.sites.x.max() + allow)) + r + 5, width + self.pad)
+        self._roi = (y0, y1, x0, x1)
+        self.crop = (slice(max(y0, 0), max(min(y1, height), 0)), slice(max(x0, 0), max(min(x1, width), 0)))
+        in_roi = np.zeros(self.frame_shape)
+        in_roi[self.crop] = 1.0
+        weights = weights * in_roi
         w = np.zeros(self.padded_shape)
         w[self.pad:self.pad + height, self.pad:self.pad + width] = weights
         self._weights = w.ravel()
@@ -292,18 +304,12 @@ class SiteBasis:
         # per-frame projections: correlation of the frame with the centred stamp on a region
         # around the sites, then cubic-spline interpolation at the (shifted) site centres
         self._kernel = self.psf.stamps([0.0], [0.0])[0][::-1, ::-1].copy()
-        allow = max(geometry.spacings) + 1.0
-        y0 = max(int(np.floor(self.sites.y.min() - allow)) - r - 4, -self.pad)
-        y1 = min(int(np.ceil(self.sites.y.max() + allow)) + r + 5, height + self.pad)
-        x0 = max(int(np.floor(self.sites.x.min() - allow)) - r - 4, -self.pad)
-        x1 = min(int(np.ceil(self.sites.x.max() + allow)) + r + 5, width + self.pad)
-        self._roi = (y0, y1, x0, x1)
-        self._wframe = None if self._uniform else weights
+        self._wcrop = None if self._uniform else weights[self.crop]
         bgf = [np.ones(self.frame_shape)] if background in ("constant", "plane") else []
         if background == "plane":
             yy, xx = np.mgrid[0:height, 0:width]
             bgf += [(xx - (width - 1) / 2) / max(width, 1), (yy - (height - 1) / 2) / max(height, 1)]
-        self._bg_frame = np.stack([b.ravel() for b in bgf]) if bgf else np.zeros((0, height * width))
+        self._bg_crop = np.stack([b[self.crop].ravel() for b in bgf]) if bgf else np.zeros((0, 0))
         self._frac_inside = self._spline(np.ones(self.frame_shape))
         self._frac_usable = self._spline(weights > 0) if mask is not None or pixel_weights is not None \
             else self._frac_inside
@@ -347,25 +353,38 @@ class SiteBasis:
     def _spline(self, image) -> np.ndarray:
         """Cubic-spline coefficients of ``image`` correlated with the centred stamp, on the region."""
         y0, y1, x0, x1 = self._roi
-        h, w = self.frame_shape
+        image = np.asarray(image, float)
+        if image.shape == self.frame_shape:
+            image = image[self.crop]
         buf = np.zeros((y1 - y0, x1 - x0))
-        fy0, fy1, fx0, fx1 = max(y0, 0), min(y1, h), max(x0, 0), min(x1, w)
-        buf[fy0 - y0:fy1 - y0, fx0 - x0:fx1 - x0] = np.asarray(image, float)[fy0:fy1, fx0:fx1]
-        corr = signal.fftconvolve(buf, self._kernel, mode="same")
+        ys, xs = self.crop
+        buf[ys.start - y0:ys.stop - y0, xs.start - x0:xs.stop - x0] = image
+        # linear correlation via one real FFT pair; the kernel's spectrum is computed once
+        k = self._kernel.shape[0]
+        shape = buf.shape
+        if getattr(self, "_kernel_fft_shape", None) != shape:
+            fshape = tuple(scipy.fft.next_fast_len(n + k - 1, real=True) for n in shape)
+            self._kernel_fft = scipy.fft.rfft2(self._kernel, s=fshape)
+            self._kernel_fft_shape, self._fshape = shape, fshape
+        full = scipy.fft.irfft2(scipy.fft.rfft2(buf, s=self._fshape) * self._kernel_fft, s=self._fshape)
+        h0 = (k - 1) // 2
+        corr = full[h0:h0 + shape[0], h0:h0 + shape[1]]
         return ndimage.spline_filter(corr, order=3, mode="mirror")
 
-    def _sample(self, coef, offset, extra=(0.0, 0.0)) -> np.ndarray:
+    def _sample(self, coef, offset, extra=(0.0, 0.0), every: int = 1) -> np.ndarray:
         """Spline ``coef`` sampled at the site centres for ``offset`` (+ ``extra``), pixels."""
         dx, dy = self._shift(offset)
         y0, _, x0, _ = self._roi
-        coords = np.stack([self.sites.y + dy + extra[1] - y0, self.sites.x + dx + extra[0] - x0])
+        sy, sx = self.sites.y[::every], self.sites.x[::every]
+        coords = np.stack([sy + dy + extra[1] - y0, sx + dx + extra[0] - x0])
         return ndimage.map_coordinates(coef, coords, order=3, prefilter=False, mode="mirror")
 
     def _weighted(self, image, bad_pixels=None) -> np.ndarray:
-        y = np.asarray(image, float)
+        """The fitted part of a frame (the region around the sites), bad pixels zeroed, weighted."""
+        y = np.asarray(image[self.crop], float)
         if bad_pixels is not None:
-            y = np.where(bad_pixels, 0.0, y)
-        return y if self._wframe is None else y * self._wframe
+            y = np.where(bad_pixels[self.crop], 0.0, y)
+        return y if self._wcrop is None else y * self._wcrop
 
     def project(self, image, *, offset=None, bad_pixels=None):
         """Right-hand side of the normal equations for one frame.
@@ -391,14 +410,19 @@ class SiteBasis:
         image = _as_image(image, self.frame_shape)
         y = self._weighted(image, bad_pixels)
         c = self._sample(self._spline(y), offset)
-        d = np.einsum("ij,j->i", self._bg_frame, y.ravel())
-        return c, d
+        return c, self._background_projection(y)
+
+    def _background_projection(self, y) -> np.ndarray:
+        if self.background_model == "constant":
+            return np.array([y.sum()])
+        return np.einsum("ij,j->i", self._bg_crop, y.ravel())
 
     def project_exact(self, image, *, offset=None):
         """``B^T W y`` from the explicit sparse basis (stamps at the exact positions); for checks."""
         image = _as_image(image, self.frame_shape)
-        y = self._padded(self._weighted(image))
-        return self._basis_t(self._shift(offset)) @ y
+        full = np.zeros(self.frame_shape)
+        full[self.crop] = self._weighted(image)
+        return self._basis_t(self._shift(offset)) @ self._padded(full)
 
     def solve(self, c, d, *, correction=None):
         """Solve the normal equations for site amplitudes and background coefficients.
@@ -424,7 +448,8 @@ class SiteBasis:
         a0 = self._factor.solve(c)
         if not self._bg.shape[1]:
             return a0, np.zeros((0,) + c.shape[1:])
-        b = scipy.linalg.cho_solve(self._schur, d - np.einsum("ij,i...->j...", self._v, a0))
+        rhs = d - np.einsum("ij,i...->j...", self._v, a0)
+        b = rhs / self._schur[0][0, 0] ** 2 if self._v.shape[1] == 1 else scipy.linalg.cho_solve(self._schur, rhs)
         return a0 - np.einsum("ij,j...->i...", self._z, b), b
 
     def _low_rank(self, bad_flat, offset):
@@ -494,14 +519,17 @@ class SiteBasis:
         image = _as_image(image, self.frame_shape).astype(float)
         ref = np.asarray(self.geometry.offset, float)
         best = ref.copy() if start is None else np.asarray(start, float).reshape(2).copy()
-        y = self._weighted(np.where(np.isfinite(image), image, 0.0))
+        y = self._weighted(image)
+        y = np.where(np.isfinite(y), y, 0.0)
         coef = self._spline(y)
-        d = np.einsum("ij,j->i", self._bg_frame, y.ravel())
+        d = self._background_projection(y)
         a1, a2 = np.asarray(self.geometry.a1), np.asarray(self.geometry.a2)
         if search:
+            # matched-filter energy on a 6 x 6 grid over one cell, from at most 1500 sites
+            step = max(1, len(self.sites) // 1500)
             grid = (np.arange(6) - 2.5) / 6
             trials = [best + u * a1 + v * a2 for u in grid for v in grid]
-            energy = [float(np.sum(self._sample(coef, t) ** 2)) for t in trials]
+            energy = [float(np.sum(self._sample(coef, t, every=step) ** 2)) for t in trials]
             best = trials[int(np.argmax(energy))]
         h = 0.05
         stencil = np.array([(0, 0), (1, 0), (-1, 0), (0, 1), (0, -1), (1, 1), (-1, -1)], float) * h
@@ -546,11 +574,16 @@ class SiteBasis:
     # --- flags ---------------------------------------------------------------------------
     def flags(self, *, offset=None, saturated=None, nonfinite=None) -> np.ndarray:
         """Per-site flags (uint8) for a frame with the given offset and bad pixels."""
-        inside = self._sample(self._frac_inside, offset)
-        usable = self._sample(self._frac_usable, offset) if self._frac_usable is not self._frac_inside else inside
-        out = np.zeros(len(self.sites), np.uint8)
-        out[inside < 1 - EDGE_FRACTION] |= site_flags.EDGE
-        out[inside - usable > EDGE_FRACTION] |= site_flags.MASKED
+        key = self._shift(offset)
+        if getattr(self, "_flags_key", None) != key:
+            inside = self._sample(self._frac_inside, offset)
+            usable = self._sample(self._frac_usable, offset) if self._frac_usable is not self._frac_inside \
+                else inside
+            base = np.zeros(len(self.sites), np.uint8)
+            base[inside < 1 - EDGE_FRACTION] |= site_flags.EDGE
+            base[inside - usable > EDGE_FRACTION] |= site_flags.MASKED
+            self._flags_key, self._flags_base = key, base
+        out = self._flags_base.copy()
         if saturated is not None:
             out[self._sample(self._spline(saturated), offset) > BAD_PIXEL_FRACTION] |= site_flags.SATURATED
         if nonfinite is not None:
@@ -597,6 +630,7 @@ class SiteBasis:
         Used to choose the photons of one atom: the true value minimises it (see :func:`calibrate`).
         """
         with self._one_thread():
+            image = np.asarray(image, float)
             c, d = self.project(np.where(np.isfinite(image), image, 0.0), offset=offset)
             a, b = self._solve_full(c, d)
             self._refine(c, d, a, b, atom=float(atom_photons), correction=None, max_iter=300, fit_atom=False)
@@ -610,13 +644,15 @@ class SiteBasis:
         image = _as_image(image, self.frame_shape)
         image = image.astype(float, copy=False)
         warnings = []
-        finite = np.isfinite(image)
-        nonfinite = None if finite.all() else ~finite
+        nonfinite = None
+        if not np.isfinite(image[self.crop]).all():
+            nonfinite = np.zeros(self.frame_shape, bool)
+            nonfinite[self.crop] = ~np.isfinite(image[self.crop])
         if saturated is not None:
             saturated = np.asarray(saturated, dtype=bool)
             if saturated.shape != self.frame_shape:
                 raise ReconstructionError(f"saturation mask is {saturated.shape} but the frame is {self.frame_shape}")
-            saturated = saturated if saturated.any() else None
+            saturated = saturated if saturated[self.crop].any() else None
         bad = None
         if nonfinite is not None or saturated is not None:
             bad = np.zeros(self.frame_shape, bool)
@@ -626,7 +662,7 @@ class SiteBasis:
             if saturated is not None:
                 bad |= saturated
                 warnings.append(f"{int(saturated.sum())} saturated pixel(s) were left out of the fit")
-            if bad.all():
+            if bad[self.crop].all():
                 raise ReconstructionError("every pixel of the frame is NaN, infinite or saturated")
         c, d = self.project(image, offset=offset, bad_pixels=bad)
         correction = None

@@ -240,19 +240,34 @@ class Reconstructor:
         return image
 
     def _saturated(self, image) -> np.ndarray | None:
-        if np.issubdtype(image.dtype, np.floating):
-            with np.errstate(invalid="ignore"):
-                sat = image >= self.camera.saturation
-        else:
-            sat = image >= self.camera.saturation
-        return sat if sat.any() else None
+        """Pixels at the camera's saturation value, looked for where the fit reads (None if none)."""
+        crop = self.basis.crop
+        with np.errstate(invalid="ignore"):
+            sat = image[crop] >= self.camera.saturation
+        if not sat.any():
+            return None
+        full = np.zeros(self.frame_shape, bool)
+        full[crop] = sat
+        return full
+
+    def _photons(self, image) -> np.ndarray:
+        """Counts -> photons where the fit reads (the region around the sites); zero elsewhere."""
+        if self.camera.offset_map is not None or self.camera.gain_map is not None:
+            return self.camera.counts_to_photons(image)
+        crop = self.basis.crop
+        out = np.zeros(self.frame_shape)
+        out[crop] = self.camera.counts_to_photons(image[crop])
+        return out
 
     def _frame_geometry(self, photons) -> tuple[LatticeGeometry, list[str], bool]:
         geometry = self.calibration.geometry
         if not self.refit_phase:
             return geometry, [], False
-        clean = photons if np.isfinite(photons).all() else np.where(np.isfinite(photons), photons,
-                                                                        np.nanmedian(photons))
+        crop = self.basis.crop
+        clean = photons
+        if not np.isfinite(photons[crop]).all():
+            clean = photons.copy()
+            clean[crop] = np.where(np.isfinite(photons[crop]), photons[crop], np.nanmedian(photons[crop]))
         warnings: list[str] = []
         poor = False
         start, search = None, True
@@ -284,7 +299,7 @@ class Reconstructor:
             Raw camera frame in counts.
         """
         image = self._check(image, where)
-        photons = self.camera.counts_to_photons(image)
+        photons = self._photons(image)
         saturated = self._saturated(image)
         geometry, warnings, poor = self._frame_geometry(photons)
         offset = geometry.offset
@@ -304,6 +319,7 @@ class Reconstructor:
             else:
                 amp = self.basis.nonlinear(photons, atom_photons=atom, offset=offset, saturated=saturated)
         else:
+            photons = self.camera.counts_to_photons(image)  # deconvolution works on the whole frame
             labels = cell_labels(geometry, _with_positions(self.sites, *self.basis.positions(offset)),
                                  self.frame_shape)
             amp = deconvolution_amplitudes(photons, basis=self.basis, method=self.method, offset=offset,
@@ -479,9 +495,14 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
         raise CalibrationError(f"unknown amplitude method {method!r}; use one of {', '.join(AMPLITUDE_METHODS)}")
     notes["spacing_over_fwhm"] = float(ratio)
 
+    first_notes = {}
+    if restrict_region:
+        bounds = _bright_region(clean, geometry=geometry, psf=psf)
+        if bounds is not None:
+            first_notes["index_bounds"] = list(bounds)
     draft = Calibration(geometry=geometry, psf=psf, camera=camera, frame_shape=shape, threshold=None,
                         threshold_method=threshold_method, amplitude_method="linear", pixel_size_nm=pixel_size_nm,
-                        notes={})
+                        notes=first_notes)
     rec = Reconstructor(draft, method="linear", mask=mask, refit_phase=True)
     pooled, pooled_flags, warnings = _pooled(rec, chosen)
     tr = select_threshold(pooled, method=threshold_method, camera=camera, flags=pooled_flags)
@@ -493,6 +514,8 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
             rec = Reconstructor(draft, method="linear", mask=mask, refit_phase=rec.refit_phase)
             pooled, pooled_flags, warnings = _pooled(rec, chosen)
             tr = select_threshold(pooled, method=threshold_method, camera=camera, flags=pooled_flags)
+        elif "index_bounds" in first_notes:
+            notes["index_bounds"] = first_notes["index_bounds"]
     atom = tr.occupied_mean
     if method == "nonlinear":
         if not np.isfinite(atom) or atom <= 0:
@@ -584,6 +607,31 @@ def _scan_atom(rec: Reconstructor, frames, atom: float) -> float:
         if denom > 0:
             return float(candidates[k] + 0.5 * step * (e0 - e2) / denom)
     return float(candidates[k])
+
+
+def _bright_region(stack, *, geometry: LatticeGeometry, psf: PSFModel):
+    """Index bounds of the sites under the bright part of the mean frame (a cheap first cut).
+
+    The mean frame (photons) is smoothed over one PSF FWHM; pixels more than 5 robust standard
+    deviations of the smoothed frame above its median count as lit. Without this cut a large
+    frame would put every site of the whole frame into the first least-squares fit.
+    """
+    from scipy import ndimage
+
+    mean = stack.mean(axis=0)
+    smooth = ndimage.gaussian_filter(mean, psf.fwhm / 2.355)
+    med = np.median(smooth)
+    mad = 1.4826 * np.median(np.abs(smooth - med))
+    if not np.isfinite(mad) or mad <= 0:
+        return None
+    lit = smooth > med + 5 * mad
+    if lit.sum() < 4:
+        return None
+    yy, xx = np.nonzero(lit)
+    r, c = geometry.fractional_indices(xx.astype(float), yy.astype(float))
+    m = REGION_MARGIN + 1
+    return (int(np.floor(r.min())) - m, int(np.ceil(r.max())) + m, int(np.floor(c.min())) - m,
+            int(np.ceil(c.max())) + m)
 
 
 def _atom_region(sites: SiteGrid, amplitudes, threshold: float):
