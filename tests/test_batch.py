@@ -357,3 +357,16 @@ def test_pairs_of_images_give_a_fidelity_estimate(tmp_path):
     assert fid.loss_counted.n_atoms == int(np.sum(run.occupation[0::2] == 1))
     truth_atoms = int(np.sum(truth.initial_occupation[0::2]))
     assert abs(fid.loss_counted.n_atoms - truth_atoms) <= 0.03 * truth_atoms
+
+
+@pytest.mark.parametrize("workers", [0, 1])
+def test_unusable_calibration_stops_the_run_with_its_reason(tmp_path, workers):
+    from latticeread.errors import CalibrationError
+    from latticeread.runs.batch import run_batch
+
+    cal, _, _ = make_dataset(tmp_path / "data", n_files=1, frames_per_file=2, seed=9)
+    with pytest.raises(CalibrationError, match="unknown amplitude method 'bogus'"):
+        run_batch([tmp_path / "data"], calibration=cal.replace(amplitude_method="bogus"), out=tmp_path / "r.h5",
+                  workers=workers, progress=False)
+    run = read_run(tmp_path / "r.h5")
+    assert len(run) == 0 and len(run.failures) == 0  # not recorded as a failure of every shot

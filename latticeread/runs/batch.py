@@ -25,6 +25,7 @@ import logging
 import multiprocessing
 import os
 import re
+import signal
 import sys
 import time
 from collections import OrderedDict, deque
@@ -36,7 +37,7 @@ from pathlib import Path
 import numpy as np
 
 from latticeread.core.calibration import Calibration
-from latticeread.errors import FrameFileError, LatticeReadError, ReconstructionError
+from latticeread.errors import CalibrationError, FrameFileError, LatticeReadError, ReconstructionError
 from latticeread.io.calibration_file import calibration_from_json, calibration_to_json, load_calibration
 from latticeread.io.run_file import RunWriter, ShotKey, ShotRecord, read_run
 
@@ -377,23 +378,43 @@ def calibration_digest(calibration_json: str) -> str:
 # Per-process cache of worker reconstructors. It is only filled inside worker processes
 # (pool initializer, Dask tasks): building the factorisation once per process is the point.
 _WORKER_CACHE: dict[str, ShotReconstructor] = {}
+_WORKER_INIT_ERROR: dict[str, str] = {}
 
 
 def worker_reconstructor(calibration_json: str | None, digest: str) -> ShotReconstructor:
-    """The worker process's reconstructor for a calibration, built on first use."""
+    """The worker process's reconstructor for a calibration, built on first use.
+
+    Raises
+    ------
+    CalibrationError
+        The reconstructor cannot be built from this calibration (the same message in every
+        worker; the run stops instead of failing every shot).
+    """
     rec = _WORKER_CACHE.get(digest)
     if rec is None:
+        if digest in _WORKER_INIT_ERROR:
+            raise CalibrationError(_WORKER_INIT_ERROR[digest])
         if calibration_json is None:
             raise ReconstructionError("this worker process was started without a calibration")
         for old in _WORKER_CACHE.values():
             old.close()
         _WORKER_CACHE.clear()
-        rec = _WORKER_CACHE[digest] = ShotReconstructor(calibration_json)
+        try:
+            rec = _WORKER_CACHE[digest] = ShotReconstructor(calibration_json)
+        except Exception as exc:  # noqa: BLE001 - reported to the main process by every task
+            _WORKER_INIT_ERROR[digest] = f"the calibration cannot be used for reconstruction: {exc}"
+            raise CalibrationError(_WORKER_INIT_ERROR[digest]) from exc
     return rec
 
 
 def _init_pool_worker(calibration_json: str, digest: str) -> None:
-    worker_reconstructor(calibration_json, digest)
+    # Ctrl-C in the terminal reaches the whole process group; the main process alone
+    # handles it (cancels pending shots, waits for running ones, closes the run file).
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    try:
+        worker_reconstructor(calibration_json, digest)
+    except CalibrationError:
+        pass  # remembered; every task raises it so the main process stops with the reason
 
 
 def _pool_task(digest: str, key: ShotKey) -> ShotRecord | ShotFailure:

@@ -17,7 +17,7 @@ from __future__ import annotations
 import logging
 import os
 
-from latticeread.errors import ClusterError
+from latticeread.errors import CalibrationError, ClusterError
 from latticeread.io.run_file import ShotKey, ShotRecord
 from latticeread.runs.batch import ShotFailure, calibration_digest, worker_reconstructor
 
@@ -113,6 +113,8 @@ class DaskRunner:
         index, key, _ = self._pending.pop(future.key)
         try:
             outcome = future.result()
+        except CalibrationError:
+            raise  # the same in every worker: stop the run with the reason
         except self._distributed.KilledWorker:
             outcome = ShotFailure(key, "KilledWorker", f"a Dask worker died while reconstructing frame "
                                   f"{key.frame_index} of {os.path.basename(key.source)} (out of memory?)")
