@@ -245,6 +245,14 @@ def test_warnings_for_few_atoms_dense_cloud_and_missing_rates():
     assert not rep.loss_is_typical
 
 
+def test_unknown_rates_from_a_failed_histogram_fit_count_as_not_given():
+    obs, _ = simulate_occupations(n_shots=10, shape=(20, 20), filling=0.3, loss=0.02, rng=2)
+    rep = estimate_fidelity(obs, false_positive_rate=float("nan"), false_negative_rate=float("nan"),
+                            n_bootstrap=0, n_blocks=0)
+    assert any("no false-negative rate given" in w for w in rep.warnings)
+    assert rep.false_negative_rate.value == 0 and rep.false_negative_rate.method == "assumed 0"
+
+
 def test_warning_when_the_histogram_misses_false_positives():
     obs, _ = simulate_occupations(n_shots=80, shape=(30, 30), filling=0.3, loss=0.01, false_positive=0.01, rng=4)
     rep = estimate_fidelity(obs, false_positive_rate=0.0001, false_negative_rate=0.0, n_bootstrap=40, n_blocks=0)
@@ -286,7 +294,7 @@ def _occ(n_shots=2, n_images=2, shape=(6, 6)):
 @pytest.mark.parametrize("kwargs, match", [
     ({"false_positive_rate": 0.7}, "false_positive_rate must be a probability between 0 and 0.5"),
     ({"false_negative_rate": -0.1}, "false_negative_rate must be a probability between 0 and 0.5"),
-    ({"false_negative_uncertainty": float("nan")}, "false_negative_uncertainty must be a probability"),
+    ({"false_negative_uncertainty": float("inf")}, "false_negative_uncertainty must be a probability"),
     ({"pair_loss": 1.5}, "pair_loss must be between 0 and 1 or None"),
     ({"confidence": 1.0}, "confidence must be between 0 and 1"),
     ({"n_bootstrap": -1}, "n_bootstrap must be 0 or more"),

@@ -431,12 +431,13 @@ class FidelityReport:
 
 
 # --------------------------------------------------------------------------- estimate
-def _check_rate(name, value, *, allow_none=True):
+def _check_rate(name, value):
+    """A probability in [0, 0.5), or None when unknown (None or NaN, e.g. a failed histogram fit)."""
     if value is None:
-        if allow_none:
-            return None
-        raise FidelityError(f"{name} is required")
+        return None
     v = float(value)
+    if math.isnan(v):
+        return None
     if not (math.isfinite(v) and 0 <= v < 0.5):
         raise FidelityError(f"{name} must be a probability between 0 and 0.5, got {value!r}")
     return v
@@ -566,7 +567,8 @@ def estimate_fidelity(
         out. Images of one shot must be consecutive images of the same atoms with the same
         site indices (phase re-fitted per frame).
     false_positive_rate : float, optional
-        Probability that an image reads an empty site as occupied, from the histogram fit.
+        Probability that an image reads an empty site as occupied, from the histogram fit
+        (None or NaN = unknown, for this and the two other rates).
         The model fits the false-positive rate the images really show (appearances away
         from any vacated site); the histogram value is the starting point and is compared
         with the fitted one (a warning when they disagree).
