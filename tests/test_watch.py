@@ -218,3 +218,19 @@ def test_watch_rejects_a_non_positive_interval(tmp_path, capsys):
         main(["watch", str(tmp_path), "-c", "cal.json", "-o", "live.h5", "--interval", "0"])
     assert exit_info.value.code == 2
     assert "must be a positive number" in capsys.readouterr().err
+
+
+def test_live_run_steps_keep_files_beyond_max_files_for_later(tmp_path):
+    from latticeread.runs.watch import LiveRun
+
+    from test_batch import make_dataset
+
+    cal, _, _ = make_dataset(tmp_path / "cam", n_files=2, frames_per_file=1, seed=14)
+    with LiveRun(tmp_path / "cam", calibration=cal, out=tmp_path / "live.h5") as live:
+        assert live.step() == []                              # first sight of both files
+        first = live.step(max_files=1)                        # both complete; only one handled
+        assert [Path(o.key.source).name for o in first] == ["shot_0.tif"]
+        second = live.step()                                  # the other was kept, not lost
+        assert [Path(o.key.source).name for o in second] == ["shot_1.tif"]
+        assert live.stats.n_shots == 2 and np.isfinite(live.stats.mean_filling)
+    assert live.summary().n_shots_total == 2

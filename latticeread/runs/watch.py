@@ -8,9 +8,10 @@ between two polls **and** it opens as a valid frame file whose last frame can be
 TIFF still being written fails that test). A file that stays unchanged but unreadable for
 ``give_up_polls`` polls is reported as broken, once.
 
-:func:`watch_folder` ties the watcher to a reconstructor (built once) and a run file: every
-new frame is reconstructed and appended (resumable like a batch run; files already in the
-run file are skipped), and a callback receives each result for running statistics.
+:class:`LiveRun` ties the watcher to a reconstructor (built once) and a run file, one poll
+per :meth:`LiveRun.step` (the GUI's timer or worker calls it); every new frame is
+reconstructed and appended (resumable like a batch run; files already in the run file are
+skipped). :func:`watch_folder` is the command-line loop around it.
 """
 
 from __future__ import annotations
@@ -18,7 +19,8 @@ from __future__ import annotations
 import logging
 import os
 import time
-from dataclasses import dataclass, field
+from collections import deque
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 import numpy as np
@@ -39,7 +41,7 @@ from latticeread.runs.batch import (
     summarize_run,
 )
 
-__all__ = ["WatchEvent", "FolderWatcher", "RunningStats", "watch_folder", "validate_frame_file"]
+__all__ = ["WatchEvent", "FolderWatcher", "RunningStats", "LiveRun", "watch_folder", "validate_frame_file"]
 
 log = logging.getLogger(__name__)
 
@@ -249,6 +251,126 @@ class RunningStats:
                 f"threshold {outcome.threshold:.0f} photons")
 
 
+class LiveRun:
+    """A watched folder, a reconstructor and a run file, advanced one poll at a time.
+
+    The command line calls :meth:`step` in a loop (:func:`watch_folder`); the GUI calls it
+    from a timer or a worker thread and reads :attr:`stats` for its trend plots. Each step
+    looks at the folder once, reconstructs every file that became complete and appends
+    the shots to the run file (files already in it are skipped).
+
+    Parameters
+    ----------
+    folder : str or PathLike
+        Folder the camera writes to.
+    calibration : Calibration or str or PathLike
+        The calibration, or its JSON file.
+    out : str or PathLike
+        The run file (created, or resumed).
+    include_existing : bool
+        Also reconstruct files present at the first step (default True).
+    retry_failed : bool
+        Try files again that failed in an earlier run of the same run file.
+    metadata : dict, optional
+        Stored with the run file when it is created.
+    give_up_polls : int
+        Polls after which an unchanged but unreadable file is recorded as a failure.
+    """
+
+    def __init__(self, folder, *, calibration, out, include_existing: bool = True, retry_failed: bool = False,
+                 metadata: dict | None = None, give_up_polls: int = 10):
+        self._t_start = time.perf_counter()
+        self.calibration = _as_calibration(calibration)
+        self.out = Path(os.fspath(out))
+        self.retry_failed = bool(retry_failed)
+        self.stats = RunningStats()
+        self.counts = {"files": 0, "new": 0, "failed": 0, "skipped_done": 0, "skipped_failed": 0}
+        self._examples: list[str] = []
+        self._queue: deque = deque()  # reported by the watcher, not handled yet
+        self.watcher = FolderWatcher(folder, exclude=[self.out], include_existing=include_existing,
+                                     give_up_polls=give_up_polls)
+        meta = {"watched_folder": str(self.watcher.folder), **(metadata or {})}
+        self._writer = RunWriter(self.out, calibration_json=calibration_to_json(self.calibration), metadata=meta)
+        try:
+            self._reconstruct = ShotReconstructor(self.calibration)
+        except BaseException:
+            self._writer.close()
+            raise
+
+    def _outcomes(self, event: WatchEvent) -> list:
+        writer = self._writer
+        if event.status == "broken":
+            try:
+                digest = hash_file(event.path)
+            except OSError:
+                digest = ""
+            failure = ShotFailure(ShotKey(str(event.path), digest, -1), "FrameFileError", event.reason)
+            if failure.key in writer.failed and not self.retry_failed:
+                self.counts["skipped_failed"] += 1
+                return []
+            return [failure]
+        plan = plan_shots([event.path], done=writer.done, failed=writer.failed, retry_failed=self.retry_failed)
+        self.counts["skipped_done"] += plan.n_done_before
+        self.counts["skipped_failed"] += plan.n_failed_before
+        return list(plan.failures) + [self._reconstruct(key) for key in plan.tasks]
+
+    def step(self, *, on_shot=None, max_files: int | None = None) -> list:
+        """Poll the folder once and handle the files that became complete.
+
+        Parameters
+        ----------
+        on_shot : callable, optional
+            ``on_shot(outcome, stats)`` after each shot is written.
+        max_files : int, optional
+            Stop handling files once this many were handled in total (the others stay
+            queued for the next step).
+
+        Returns
+        -------
+        list of ShotRecord or ShotFailure
+            What this step wrote, in order.
+        """
+        done = []
+        self._queue.extend(self.watcher.poll())
+        while self._queue and (max_files is None or self.counts["files"] < max_files):
+            event = self._queue.popleft()
+            self.counts["files"] += 1
+            for outcome in self._outcomes(event):
+                if isinstance(outcome, ShotFailure):
+                    self._writer.record_failure(outcome.key, error=outcome.error, reason=outcome.reason)
+                    self.counts["failed"] += 1
+                    self._examples.append(_describe_failure(outcome))
+                elif self._writer.append(outcome):
+                    self.counts["new"] += 1
+                else:
+                    continue
+                self.stats.add(outcome)
+                done.append(outcome)
+                if on_shot is not None:
+                    on_shot(outcome, self.stats)
+        return done
+
+    def close(self) -> None:
+        self._reconstruct.close()
+        self._writer.close()
+
+    def summary(self, *, interrupted: bool = False) -> BatchSummary:
+        """Summary of the run file and of this watch so far (call after :meth:`close`)."""
+        summary = summarize_run(self.out, self.calibration, counts=self.counts,
+                                seconds=time.perf_counter() - self._t_start, workers="this process",
+                                failure_examples=self._examples)
+        if interrupted:
+            summary = replace(summary, warnings=(*summary.warnings, "interrupted (Ctrl-C); every shot shown "
+                                                 "above is in the run file"))
+        return summary
+
+    def __enter__(self) -> "LiveRun":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+
 def watch_folder(folder, *, calibration, out, interval: float = 0.5, max_files: int | None = None,
                  timeout: float | None = None, include_existing: bool = True, on_shot=None,
                  retry_failed: bool = False, metadata: dict | None = None, sleep=time.sleep) -> BatchSummary:
@@ -286,65 +408,21 @@ def watch_folder(folder, *, calibration, out, interval: float = 0.5, max_files: 
         Also when stopped with Ctrl-C: the KeyboardInterrupt is caught, the run file closed
         and the summary returned with ``interrupted`` in its warnings.
     """
-    t_start = time.perf_counter()
-    cal = _as_calibration(calibration)
-    out = Path(os.fspath(out))
-    stats = RunningStats()
-    counts = {"files": 0, "new": 0, "failed": 0, "skipped_done": 0, "skipped_failed": 0}
-    examples: list[str] = []
     interrupted = False
-    watcher = FolderWatcher(folder, exclude=[out], include_existing=include_existing)
-    meta = {"watched_folder": str(watcher.folder), **(metadata or {})}
-    with RunWriter(out, calibration_json=calibration_to_json(cal), metadata=meta) as writer:
-        reconstruct = ShotReconstructor(cal)
+    with LiveRun(folder, calibration=calibration, out=out, include_existing=include_existing,
+                 retry_failed=retry_failed, metadata=metadata) as live:
         last_activity = time.monotonic()
         try:
             while True:
-                for event in watcher.poll():
-                    counts["files"] += 1
+                handled = live.counts["files"]
+                live.step(on_shot=on_shot, max_files=max_files)
+                if live.counts["files"] != handled:
                     last_activity = time.monotonic()
-                    if event.status == "broken":
-                        try:
-                            digest = hash_file(event.path)
-                        except OSError:
-                            digest = ""
-                        outcomes = [ShotFailure(ShotKey(str(event.path), digest, -1), "FrameFileError",
-                                                event.reason)]
-                        if outcomes[0].key in writer.failed and not retry_failed:
-                            counts["skipped_failed"] += 1
-                            outcomes = []
-                    else:
-                        plan = plan_shots([event.path], done=writer.done, failed=writer.failed,
-                                          retry_failed=retry_failed)
-                        counts["skipped_done"] += plan.n_done_before
-                        counts["skipped_failed"] += plan.n_failed_before
-                        outcomes = list(plan.failures) + [reconstruct(key) for key in plan.tasks]
-                    for outcome in outcomes:
-                        if isinstance(outcome, ShotFailure):
-                            writer.record_failure(outcome.key, error=outcome.error, reason=outcome.reason)
-                            counts["failed"] += 1
-                            examples.append(_describe_failure(outcome))
-                        elif writer.append(outcome):
-                            counts["new"] += 1
-                        stats.add(outcome)
-                        if on_shot is not None:
-                            on_shot(outcome, stats)
-                    if max_files is not None and counts["files"] >= max_files:
-                        break
-                if max_files is not None and counts["files"] >= max_files:
+                if max_files is not None and live.counts["files"] >= max_files:
                     break
                 if timeout is not None and time.monotonic() - last_activity > timeout:
                     break
                 sleep(interval)
         except KeyboardInterrupt:
             interrupted = True
-        finally:
-            reconstruct.close()
-    summary = summarize_run(out, cal, counts=counts, seconds=time.perf_counter() - t_start,
-                            workers="this process", failure_examples=examples)
-    if interrupted:
-        from dataclasses import replace
-
-        summary = replace(summary, warnings=(*summary.warnings, "interrupted (Ctrl-C); every shot shown above "
-                                             "is in the run file"))
-    return summary
+    return live.summary(interrupted=interrupted)
