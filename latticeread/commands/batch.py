@@ -44,8 +44,9 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--workers", "-j", type=_workers, default=None, metavar="N",
                         help="worker processes on this machine (default: all CPUs; 0 = this process only)")
     parser.add_argument("--scheduler", default=None, metavar="ADDRESS",
-                        help="run on a Dask cluster: a scheduler address (tcp://host:8786) or 'local' to start "
-                             "one on this machine; needs pip install 'latticeread[cluster]'")
+                        help="run on a Dask cluster: a scheduler address (tcp://host:8786; its workers must see "
+                             "the input files under the same paths) or 'local' to start one on this machine; "
+                             "needs pip install 'latticeread[cluster]'")
     parser.add_argument("--images-per-shot", type=_images, default=1, metavar="N",
                         help="consecutive frames of each file that image the same atoms; with 2 or more the "
                              "summary estimates loss and hopping between them (default 1)")

@@ -26,7 +26,7 @@ from pathlib import Path
 import numpy as np
 
 from latticeread.io.calibration_file import calibration_to_json
-from latticeread.io.run_file import RunWriter, ShotKey, ShotRecord
+from latticeread.io.run_file import RunWriter, ShotKey
 from latticeread.runs.batch import (
     FRAME_SUFFIXES,
     BatchSummary,
