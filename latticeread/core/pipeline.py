@@ -516,6 +516,15 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
             tr = select_threshold(pooled, method=threshold_method, camera=camera, flags=pooled_flags)
         elif "index_bounds" in first_notes:
             notes["index_bounds"] = first_notes["index_bounds"]
+    if np.isfinite(tr.threshold):
+        # the histogram of the sites where atoms occur: sites that never hold an atom (corners of
+        # the bounding box, the margin) have no neighbours' light and would make the empty peak
+        # look narrower than it is for the sites that matter, pulling the threshold down
+        active = _active_sites(rec.sites, pooled.reshape(len(chosen), -1), tr.threshold)
+        if active is not None:
+            keep = np.tile(active, len(chosen))
+            tr = select_threshold(pooled[keep], method=threshold_method, camera=camera, flags=pooled_flags[keep])
+            notes["threshold_sites"] = int(active.sum())
     atom = tr.occupied_mean
     if method == "nonlinear":
         if not np.isfinite(atom) or atom <= 0:
@@ -632,6 +641,18 @@ def _bright_region(stack, *, geometry: LatticeGeometry, psf: PSFModel):
     m = REGION_MARGIN + 1
     return (int(np.floor(r.min())) - m, int(np.ceil(r.max())) + m, int(np.floor(c.min())) - m,
             int(np.ceil(c.max())) + m)
+
+
+def _active_sites(sites: SiteGrid, amplitudes, threshold: float):
+    """Sites that held an atom in any frame, and their 8 neighbours (None if fewer than 50)."""
+    from scipy import ndimage
+
+    seen = sites.to_matrix(np.any(amplitudes > threshold, axis=0), fill=False, dtype=bool)
+    grown = ndimage.binary_dilation(seen, structure=np.ones((3, 3), bool))
+    active = sites.from_matrix(grown)
+    if active.sum() < 50 or active.all():
+        return None
+    return active
 
 
 def _atom_region(sites: SiteGrid, amplitudes, threshold: float):
