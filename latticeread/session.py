@@ -157,6 +157,7 @@ class Session:
         self._done: np.ndarray = np.zeros(0, dtype=bool)
         self._results: dict[int, Any] = {}           # classified FrameResult cache
         self._threshold_result = None
+        self._stats_cache: dict | None = None
         self._fidelity = None
         self._settings = {**DEFAULT_SETTINGS, **(settings or {})}
         self._undo: list = []
@@ -660,56 +661,101 @@ class Session:
         out[:, s.rows - s.row_min, s.cols - s.col_min] = occ
         return out
 
+    # --- pooled statistics, kept up to date incrementally -------------------------------
+    def _stats(self) -> dict | None:
+        """Per-site occupied sums and pooled counts over the reconstructed frames.
+
+        Cached for the threshold in force; frames stored since the last call are classified
+        and added (cost proportional to the new frames only), so a stream of results from a
+        long stack never re-classifies the whole stack on the GUI thread.
+        """
+        thr = self._classifier()
+        if self._amplitudes is None or thr is None:
+            return None
+        st = self._stats_cache
+        if st is None or st["generation"] != self._generation or not _same_classifier(st["classifier"], thr):
+            n = self._amplitudes.shape[1]
+            st = {"generation": self._generation, "classifier": thr, "included": np.zeros(self.n_frames, bool), "occ_sum": np.zeros(n),
+                  "n_frames_site": np.zeros(n, np.int64), "occupied": 0, "finite": 0, "uncertain": 0}
+            self._stats_cache = st
+        new = np.flatnonzero(self._done & ~st["included"])
+        if new.size:
+            _add_stats(st, self._amplitudes[new], thr)
+            st["included"][new] = True
+        return st
+
+    def store_stats(self, stats: dict) -> None:
+        """Adopt statistics computed elsewhere (e.g. by :meth:`fit_threshold_job` in a worker)."""
+        self._stats_cache = stats
+
     def mean_occupation(self) -> np.ndarray | None:
         """Mean occupation over the reconstructed frames, (n_rows, n_cols), NaN outside the region."""
-        stack = self.occupation_stack()
-        if stack is None:
+        st = self._stats()
+        if st is None or not st["included"].any():
             return None
-        inside = stack != 255
-        n = inside.sum(axis=0)
-        total = np.where(inside, stack, 0).sum(axis=0, dtype=float)
         with np.errstate(invalid="ignore", divide="ignore"):
-            return np.where(n > 0, total / n, np.nan)
+            mean = np.where(st["n_frames_site"] > 0, st["occ_sum"] / st["n_frames_site"], np.nan)
+        return self._sites.to_matrix(mean, fill=np.nan, dtype=float)
 
     def pooled_counts(self) -> dict | None:
         """Occupied / empty / uncertain counts over every reconstructed frame (as in the histogram)."""
-        amps = self.all_amplitudes()
-        thr = self._classifier()
-        if amps.size == 0 or thr is None:
+        st = self._stats()
+        if st is None or not st["included"].any():
             return None
-        occ, p = _classify_module().classify(amps, thr)
-        n_occ = int(np.count_nonzero(occ))
-        finite = int(np.count_nonzero(np.isfinite(amps)))
-        return {"occupied": n_occ, "empty": finite - n_occ,
-                "uncertain": int(np.count_nonzero((p >= 0.1) & (p <= 0.9)))}
+        return {"occupied": st["occupied"], "empty": st["finite"] - st["occupied"], "uncertain": st["uncertain"]}
+
+    def histogram_amplitudes(self, max_values: int = 1_000_000) -> np.ndarray:
+        """Amplitudes for drawing the histogram: all of them, or whole frames evenly spread
+        over the stack when there are more than ``max_values`` (display only; counts and
+        threshold fits always use every amplitude)."""
+        if self._amplitudes is None or not self._done.any():
+            return np.zeros(0)
+        idx = np.flatnonzero(self._done)
+        per = self._amplitudes.shape[1]
+        step = max(1, int(np.ceil(idx.size * per / max_values)))
+        return self._amplitudes[idx[::step]].ravel()
 
     def fit_threshold_job(self):
         """A function fitting the automatic threshold on a snapshot of all amplitudes (any thread).
 
         Returns ``(generation, ThresholdResult or None)`` for :meth:`store_threshold_fit`.
         """
-        amps = self.all_amplitudes().copy()
-        amps = amps[np.isfinite(amps)]
+        done = self._done.copy()
+        block = None if self._amplitudes is None else self._amplitudes[done]
         cal = self._calibration
         generation = self._generation
 
         def job(should_stop: Callable[[], bool] = lambda: False):
-            if amps.size == 0 or cal is None:
-                return generation, None
+            if block is None or cal is None:
+                return generation, None, None
+            amps = block.ravel()
+            amps = amps[np.isfinite(amps)]
+            if amps.size == 0:
+                return generation, None, None
             tr = _classify_module().select_threshold(amps, method=cal.threshold_method, camera=cal.camera)
-            return generation, tr
+            if cal.threshold is not None:
+                tr = tr.with_threshold(float(cal.threshold))
+            n = block.shape[1]
+            stats = {"generation": generation, "classifier": tr, "included": done, "occ_sum": np.zeros(n), "n_frames_site": np.zeros(n, np.int64),
+                     "occupied": 0, "finite": 0, "uncertain": 0}
+            _add_stats(stats, block, tr)
+            return generation, tr, stats
 
         return job
 
     def store_threshold_fit(self, fit) -> bool:
         """Use a threshold fit from :meth:`fit_threshold_job`; False when it is stale."""
-        generation, tr = fit
+        generation, tr, stats = fit
         if generation != self._generation or self._calibration is None:
             return False
-        if tr is not None and self._calibration.threshold is not None:
+        if tr is not None and self._calibration.threshold is not None and tr.threshold != self._calibration.threshold:
             tr = tr.with_threshold(float(self._calibration.threshold))
+            stats = None
         self._set_threshold_result(tr)
         self._reclassify()
+        if stats is not None and tr is not None:
+            stats["included"] = stats["included"].copy()
+            self._stats_cache = stats
         return True
 
     def phase_drift(self):
@@ -1154,6 +1200,25 @@ class Session:
     def _protected(self) -> list:
         """Input files that an output must never overwrite."""
         return [self._frames_source] if self._frames_source else []
+
+
+def _add_stats(stats: dict, block: np.ndarray, classifier) -> None:
+    """Classify a (n_frames, N) block of amplitudes and add it to pooled statistics."""
+    occ, p = _classify_module().classify(block, classifier)
+    finite = np.isfinite(block)
+    stats["occ_sum"] += occ.sum(axis=0)
+    stats["n_frames_site"] += finite.sum(axis=0)
+    stats["occupied"] += int(np.count_nonzero(occ))
+    stats["finite"] += int(np.count_nonzero(finite))
+    with np.errstate(invalid="ignore"):
+        stats["uncertain"] += int(np.count_nonzero((p >= 0.1) & (p <= 0.9)))
+
+
+def _same_classifier(a, b) -> bool:
+    """The same threshold object, or equal plain thresholds."""
+    if isinstance(a, float) or isinstance(b, float):
+        return isinstance(a, float) and isinstance(b, float) and a == b
+    return a is b
 
 
 def _differs(a, b) -> bool:

@@ -175,7 +175,7 @@ def test_threshold_drag_updates_histogram_and_occupation(window, sim_tif, qtbot,
     # the site markers follow: occupied markers = occupied sites of this frame minus uncertain ones
     res = s.result()
     unc = (res.p_occupied >= 0.1) & (res.p_occupied <= 0.9)
-    shown = window.image_pane.site_items["occupied"].data.size
+    shown = window.image_pane.marker_counts["occupied"]
     assert shown == int(np.count_nonzero(res.occupied.astype(bool) & ~unc))
     # one drag = one undo step, back to the automatic threshold
     window.actions_by_name["undo"].trigger()
@@ -431,3 +431,11 @@ def test_command_without_display_prints_a_clear_message():
     assert out.returncode == 1
     assert "no display found" in out.stderr
     assert "xcb" not in out.stderr
+
+
+def test_deferred_panels_are_built_after_show(qtbot, tmp_path, sim_tif):
+    w = _make_window(qtbot, tmp_path, defer_panels=True)
+    qtbot.waitUntil(lambda: hasattr(w.histogram_panel, "set_amplitudes"), timeout=5000)
+    s = _calibrated(w, sim_tif)
+    assert w.histogram_panel.counts_label.text().startswith(f"occupied {s.pooled_counts()['occupied']}")
+    assert w.docks["histogram_panel"].widget() is w.histogram_panel

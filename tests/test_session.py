@@ -363,3 +363,32 @@ def test_camera_setting_recomputes_in_photons(session):
     session.reconstruct([0])
     bright = a0 > 400
     np.testing.assert_allclose(session.amplitudes(0)[bright], a0[bright] / 2, rtol=1e-6)
+
+
+def test_incremental_pooled_statistics_equal_a_full_recount(session):
+    from latticeread.core.classify import classify
+
+    session.reconstruct([0, 1])
+    first = session.pooled_counts()  # statistics of two frames, then two more arrive
+    session.reconstruct([2, 3])
+    counts = session.pooled_counts()
+    assert counts["occupied"] > first["occupied"]
+    amps = session.all_amplitudes()
+    occ, p = classify(amps, session.threshold_result)
+    assert counts["occupied"] == int(occ.sum())
+    assert counts["empty"] == int(np.isfinite(amps).sum() - occ.sum())
+    assert counts["uncertain"] == int(((p >= 0.1) & (p <= 0.9)).sum())
+    stack = session.occupation_stack()
+    inside = stack[0] != 255
+    np.testing.assert_allclose(session.mean_occupation()[inside], stack[:, inside].mean(axis=0))
+    # the background threshold fit brings its own statistics: same numbers
+    session.store_threshold_fit(session.fit_threshold_job()())
+    occ2, _ = classify(amps, session.threshold_result)
+    assert session.pooled_counts()["occupied"] == int(occ2.sum())
+
+
+def test_histogram_amplitudes_are_bounded(session):
+    session.reconstruct()
+    n = session.amplitudes(0).size
+    assert session.histogram_amplitudes().size == 4 * n
+    assert session.histogram_amplitudes(max_values=2 * n).size == 2 * n  # every other frame

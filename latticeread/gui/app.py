@@ -34,7 +34,7 @@ def make_app(argv=None):
 
     import pyqtgraph as pg
 
-    pg.setConfigOptions(imageAxisOrder="row-major", antialias=True)
+    pg.setConfigOptions(imageAxisOrder="row-major")
     app = QtWidgets.QApplication.instance()
     if app is None:
         app = QtWidgets.QApplication(list(argv) if argv is not None else [sys.argv[0]])
@@ -54,7 +54,7 @@ def run_gui(files=(), *, settings_path=None, restore: bool = True) -> int:
     from latticeread.gui.settings import AppSettings
 
     window = MainWindow(settings=AppSettings(settings_path) if settings_path else None,
-                        offer_restore=restore and not files)
+                        offer_restore=restore and not files, defer_panels=True)
     window.show()
     for f in list(files)[:1]:
         window.open_path(f)

@@ -30,7 +30,7 @@ import numpy as np
 import pyqtgraph as pg
 from PySide6 import QtCore, QtWidgets
 
-__all__ = ["ImagePane", "VIEW_MODES", "grid_segments"]
+__all__ = ["ImagePane", "VIEW_MODES", "grid_segments", "ring_paths"]
 
 VIEW_MODES = {
     "raw": "Raw",
@@ -83,6 +83,28 @@ def grid_segments(geometry, frame_shape) -> tuple[np.ndarray, np.ndarray]:
     return x, y
 
 
+def ring_paths(x, y, *, radius: float, n_corners: int = 8) -> tuple[np.ndarray, np.ndarray]:
+    """Closed polygons of ``n_corners`` around every point, separated by NaN (for connect="finite").
+
+    Parameters
+    ----------
+    x, y : (N,) ndarray
+        Centres in pixels.
+    radius : float
+        Ring radius in pixels.
+
+    Returns
+    -------
+    rx, ry : (N * (n_corners + 2),) ndarray
+    """
+    x = np.asarray(x, float)
+    y = np.asarray(y, float)
+    phi = np.linspace(0, 2 * np.pi, n_corners + 1)
+    ox = np.append(radius * np.cos(phi), np.nan)
+    oy = np.append(radius * np.sin(phi), np.nan)
+    return (x[:, None] + ox[None, :]).ravel(), (y[:, None] + oy[None, :]).ravel()
+
+
 class ImagePane(QtWidgets.QWidget):
     """Frame view with histogram contrast, frame slider, grid/site overlays and a model view."""
 
@@ -102,6 +124,7 @@ class ImagePane(QtWidgets.QWidget):
         self._occupied = None
         self._p = None
         self._amplitudes = None
+        self._grid_shape = None
         self._mode = "raw"
 
         self.graphics = pg.GraphicsLayoutWidget()
@@ -120,19 +143,25 @@ class ImagePane(QtWidgets.QWidget):
         self.lut.gradient.loadPreset("inferno")
         self.graphics.addItem(self.lut, row=0, col=2)
 
-        self.grid_item = pg.PlotCurveItem(pen=pg.mkPen((120, 255, 120, 110), width=1), connect="pairs")
+        self.grid_item = pg.PlotCurveItem(pen=pg.mkPen((120, 255, 120, 110), width=1), connect="pairs",
+                                          antialias=False)
         self.grid_item.setZValue(5)
         self.view.addItem(self.grid_item)
         self.site_items = {}
-        # sizes in pixels of the frame (pxMode=False), set from the lattice spacing in set_lattice
+        # site markers: rings in frame pixels (they zoom with the image), one polyline per
+        # state with NaN breaks -- a single vectorised path, fast for tens of thousands of sites
+        self._marker_radius = {"occupied": 0.3, "uncertain": 0.3, "empty": 0.11}  # x lattice spacing
         for state, color in (("empty", EMPTY_COLOR), ("occupied", OCCUPIED_COLOR), ("uncertain", UNCERTAIN_COLOR)):
-            item = pg.ScatterPlotItem(size=1.0, pxMode=False, pen=pg.mkPen(color, width=1.5, cosmetic=True),
-                                      brush=pg.mkBrush(None), symbol="o")
+            item = pg.PlotCurveItem(pen=pg.mkPen(color, width=1), connect="finite", antialias=False)
             item.setZValue(6)
             self.view.addItem(item)
             self.site_items[state] = item
-        self.hover_item = pg.ScatterPlotItem(size=1.0, pxMode=False, pen=pg.mkPen("w", width=2, cosmetic=True),
+        self.hover_item = pg.ScatterPlotItem(size=10, pxMode=True, pen=pg.mkPen("w", width=2),
                                              brush=pg.mkBrush(None), symbol="s")
+        self._marker_px = None
+        self.view.sigRangeChanged.connect(lambda *_: self._rescale_markers())
+        self.view.sigResized.connect(lambda *_: self._rescale_markers())
+        self.marker_counts = {"occupied": 0, "empty": 0, "uncertain": 0}
         self.hover_item.setZValue(7)
         self.view.addItem(self.hover_item)
         self.graphics.scene().sigMouseMoved.connect(self._mouse_moved)
@@ -239,6 +268,10 @@ class ImagePane(QtWidgets.QWidget):
     # ------------------------------------------------------------------ overlays
     def set_lattice(self, geometry, sites) -> None:
         """Grid lines from ``geometry`` and the site set used for hover look-up (None clears)."""
+        same_grid = geometry is not None and geometry == self._geometry and self._grid_shape == (
+            None if self._image is None else self._image.shape)
+        if same_grid and sites is self._sites:
+            return
         self._geometry = geometry
         self._sites = sites
         self._site_lookup = None
@@ -246,20 +279,32 @@ class ImagePane(QtWidgets.QWidget):
             lut = np.full((sites.n_rows, sites.n_cols), -1, dtype=np.int64)
             lut[sites.rows - sites.row_min, sites.cols - sites.col_min] = np.arange(len(sites))
             self._site_lookup = lut
-        if geometry is not None:
-            spacing = min(geometry.spacings)
-            self.site_items["occupied"].setSize(0.55 * spacing)
-            self.site_items["uncertain"].setSize(0.55 * spacing)
-            self.site_items["empty"].setSize(0.22 * spacing)
-            self.hover_item.setSize(0.95 * spacing)
+        self._rescale_markers()
         if geometry is None or self._image is None:
             self.grid_item.setData([], [])
-        else:
+            self._grid_shape = None
+        elif not same_grid:
             x, y = grid_segments(geometry, self._image.shape)
             self.grid_item.setData(x, y, connect="pairs")
+            self._grid_shape = self._image.shape
         if sites is None:
             self.set_site_states(None, None, None)
         self.grid_item.setVisible(self.grid_check.isChecked())
+
+    def _rescale_markers(self) -> None:
+        """Marker sizes (screen pixels) = fraction of the lattice spacing at the current zoom."""
+        if self._geometry is None:
+            return
+        width = self.view.width()
+        x0, x1 = self.view.viewRange()[0]
+        if width <= 0 or x1 <= x0:
+            return
+        spacing_px = min(self._geometry.spacings) * width / (x1 - x0)
+        key = round(spacing_px, 1)
+        if key == self._marker_px:
+            return
+        self._marker_px = key
+        self.hover_item.setSize(float(np.clip(0.95 * spacing_px, 6.0, 100.0)))
 
     def set_site_states(self, occupied, p_occupied, amplitudes) -> None:
         """Colour the site markers (arrays over the current SiteGrid); None hides them."""
@@ -267,14 +312,20 @@ class ImagePane(QtWidgets.QWidget):
         self._p = None if p_occupied is None else np.asarray(p_occupied)
         self._amplitudes = None if amplitudes is None else np.asarray(amplitudes)
         if self._sites is None or self._occupied is None:
-            for item in self.site_items.values():
+            for state, item in self.site_items.items():
                 item.setData([], [])
+                self.marker_counts[state] = 0
             return
         x, y = self._sites.x, self._sites.y
         occ = self._occupied.astype(bool)
-        unc = np.zeros_like(occ) if self._p is None else (self._p >= 0.1) & (self._p <= 0.9)
+        with np.errstate(invalid="ignore"):
+            unc = np.zeros_like(occ) if self._p is None else (self._p >= 0.1) & (self._p <= 0.9)
+        spacing = min(self._geometry.spacings) if self._geometry is not None else 1.0
         for state, sel in (("occupied", occ & ~unc), ("empty", ~occ & ~unc), ("uncertain", unc)):
-            self.site_items[state].setData(x[sel], y[sel])
+            rx, ry = ring_paths(x[sel], y[sel], radius=self._marker_radius[state] * spacing,
+                                n_corners=6 if state != "empty" else 4)
+            self.site_items[state].setData(rx, ry, connect="finite")
+            self.marker_counts[state] = int(np.count_nonzero(sel))
         visible = self.sites_check.isChecked()
         for item in self.site_items.values():
             item.setVisible(visible)

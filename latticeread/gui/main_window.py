@@ -73,13 +73,16 @@ class MainWindow(QtWidgets.QMainWindow):
         Period of the crash-recovery autosave; 0 disables it.
     offer_restore : bool
         On start, offer to restore an autosaved session left by a crash.
+    defer_panels : bool
+        Build the analysis panels (and import what they need, e.g. scipy) right after the
+        window is shown instead of before, so the window appears sooner.
     """
 
     sessionReplaced = QtCore.Signal(object)
 
     def __init__(self, *, session: Session | None = None, settings: AppSettings | None = None,
                  synchronous: bool = False, autosave_interval_s: float = AUTOSAVE_INTERVAL_S,
-                 offer_restore: bool = True, parent=None):
+                 offer_restore: bool = True, defer_panels: bool = False, parent=None):
         super().__init__(parent)
         self.setObjectName("latticeread_main")
         self.app_settings = settings or AppSettings()
@@ -101,7 +104,7 @@ class MainWindow(QtWidgets.QMainWindow):
         self.occupation_view = OccupationView()
         self.docks: dict[str, QtWidgets.QDockWidget] = {}
         self.panels: dict[str, QtWidgets.QWidget] = {}
-        self._build_docks()
+        self._build_docks(defer=defer_panels)
         self._build_status_bar()
         self._build_actions()
         self._build_menus()
@@ -128,22 +131,22 @@ class MainWindow(QtWidgets.QMainWindow):
         self.set_session(session or Session())
         self.app_settings.restore_window(self)
         self._restore_view_options()
+        if defer_panels:
+            QtCore.QTimer.singleShot(0, self.load_panels)
         if offer_restore:
             QtCore.QTimer.singleShot(0, self._offer_restore)
 
     # ================================================================== construction
-    def _build_docks(self) -> None:
-        from latticeread.gui import panels as panel_pkg
-
+    def _build_docks(self, *, defer: bool = False) -> None:
         self.setDockNestingEnabled(True)
         for attr, cls_name, title, area, tip in PANELS:
-            try:
-                widget = getattr(panel_pkg, cls_name)()
-            except (ImportError, AttributeError) as exc:  # a panel not built yet
-                log.warning("panel %s unavailable: %s", cls_name, exc)
-                widget = QtWidgets.QLabel(f"{title}: this panel is not available in this build")
+            if defer:
+                widget = QtWidgets.QLabel(f"{title}: loading ...")
+                widget.setProperty("placeholder", True)
                 widget.setAlignment(QtCore.Qt.AlignCenter)
-                widget.setToolTip("This panel could not be loaded")
+                widget.setToolTip("The panel is being loaded")
+            else:
+                widget = self._make_panel(cls_name, title)
             self.panels[attr] = widget
             setattr(self, attr, widget)
             self._add_dock(attr, title, widget, area, tip)
@@ -154,6 +157,35 @@ class MainWindow(QtWidgets.QMainWindow):
         self.docks["geometry_panel"].raise_()
         self.resizeDocks([self.docks["geometry_panel"], self.docks["histogram_panel"]], [430, 430],
                          QtCore.Qt.Horizontal)
+
+    @staticmethod
+    def _make_panel(cls_name: str, title: str) -> QtWidgets.QWidget:
+        from latticeread.gui import panels as panel_pkg
+
+        try:
+            return getattr(panel_pkg, cls_name)()
+        except (ImportError, AttributeError) as exc:  # a panel missing from this build
+            log.warning("panel %s unavailable: %s", cls_name, exc)
+            widget = QtWidgets.QLabel(f"{title}: this panel is not available in this build")
+            widget.setAlignment(QtCore.Qt.AlignCenter)
+            widget.setToolTip("This panel could not be loaded")
+            return widget
+
+    def load_panels(self) -> None:
+        """Build the analysis panels that were deferred (see ``defer_panels``) and show the session."""
+        for attr, cls_name, title, _area, _tip in PANELS:
+            if not self.panels[attr].property("placeholder"):
+                continue  # already a real panel
+            widget = self._make_panel(cls_name, title)
+            old = self.panels[attr]
+            self.panels[attr] = widget
+            setattr(self, attr, widget)
+            self.docks[attr].setWidget(widget)
+            old.deleteLater()
+        self._wire_panels()
+        self._mark("frames", "frame", "calibration", "amplitudes", "classification", "threshold", "fidelity",
+                   "settings")
+        self._restore_view_options()
 
     def _add_dock(self, key: str, title: str, widget, area: str, tip: str) -> None:
         dock = QtWidgets.QDockWidget(title, self)
@@ -368,6 +400,9 @@ class MainWindow(QtWidgets.QMainWindow):
         self.image_pane.modelWanted.connect(self._compute_model)
         self.image_pane.overlaysChanged.connect(self._overlays_changed)
         self.occupation_view.siteHovered.connect(self._show_matrix_hover)
+        self._wire_panels()
+
+    def _wire_panels(self) -> None:
         hp, gp, pp = self.histogram_panel, self.geometry_panel, self.psf_panel
         if hasattr(hp, "thresholdDragged"):
             hp.thresholdDragged.connect(self._threshold_dragged)
@@ -408,7 +443,7 @@ class MainWindow(QtWidgets.QMainWindow):
         self.image_pane.clear()
         self.occupation_view.clear()
         for p in self.panels.values():
-            if hasattr(p, "clear"):
+            if hasattr(p, "clear") and not p.property("placeholder"):
                 p.clear()
         self._mark("frames", "frame", "calibration", "amplitudes", "classification", "threshold", "fidelity",
                    "settings")
@@ -435,7 +470,13 @@ class MainWindow(QtWidgets.QMainWindow):
             self._update_recent_menu()
         self._update_title()
 
-    def _on_calibration(self, _cal) -> None:
+    def _on_calibration(self, cal) -> None:
+        old, self._shown_calibration = getattr(self, "_shown_calibration", None), cal
+        fields = ("geometry", "psf", "camera", "frame_shape", "amplitude_method", "pixel_size_nm")
+        if old is not None and cal is not None and all(getattr(old, f) is getattr(cal, f) for f in fields):
+            # only the threshold or its method changed: re-classification, nothing else to redraw
+            self._mark("threshold", "classification", "method")
+            return
         self._mark("calibration", "frame", "classification")
         self._process_current_frame()
 
@@ -457,6 +498,8 @@ class MainWindow(QtWidgets.QMainWindow):
                     self.image_pane.clear()
             if "calibration" in dirty or "settings" in dirty:
                 self._refresh_calibration()
+            elif "method" in dirty and s.calibration is not None and hasattr(self.histogram_panel, "set_method"):
+                self.histogram_panel.set_method(s.calibration.threshold_method)
             if "frame" in dirty and s.frames is not None:
                 self._refresh_frame()
             if "amplitudes" in dirty:
@@ -521,7 +564,7 @@ class MainWindow(QtWidgets.QMainWindow):
         s = self.session
         hp = self.histogram_panel
         if hasattr(hp, "set_amplitudes"):
-            amps = s.all_amplitudes()
+            amps = s.histogram_amplitudes()
             if amps.size:
                 hp.set_amplitudes(amps)
             else:

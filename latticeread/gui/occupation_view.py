@@ -40,6 +40,8 @@ class OccupationView(QtWidgets.QWidget):
         self._mean = None
         self._row_min = 0
         self._col_min = 0
+        self._current_title = ""
+        self._mean_title = ""
         self.graphics = pg.GraphicsLayoutWidget()
         self.graphics.setToolTip("Occupation matrices: rows along lattice vector a1, columns along a2; "
                                  "scroll to zoom, drag to pan")
@@ -91,7 +93,10 @@ class OccupationView(QtWidgets.QWidget):
         inside = int(np.count_nonzero(m != 255))
         atoms = int(np.count_nonzero(m == 1))
         filling = atoms / inside if inside else float("nan")
-        self.current_plot.setTitle(f"Frame {frame_index}")
+        title = f"Frame {frame_index}"
+        if title != self._current_title:
+            self._current_title = title
+            self.current_plot.setTitle(title)
         self.summary.setText(f"frame {frame_index}: {atoms} atoms on {inside} sites "
                              f"(filling {filling:.3f})")
 
@@ -100,12 +105,16 @@ class OccupationView(QtWidgets.QWidget):
         if mean is None:
             self._mean = None
             self.mean_item.clear()
-            self.mean_plot.setTitle("Mean over frames")
+            self._mean_title = "Mean over frames"
+            self.mean_plot.setTitle(self._mean_title)
             return
         self._mean = np.asarray(mean, dtype=float)
         self.mean_item.setImage(self._mean, autoLevels=False, levels=(0.0, 1.0))
         self._place(self.mean_item, self._mean.shape)
-        self.mean_plot.setTitle(f"Mean over {n_frames} frame{'s' if n_frames != 1 else ''}")
+        title = f"Mean over {n_frames} frame{'s' if n_frames != 1 else ''}"
+        if title != self._mean_title:
+            self._mean_title = title
+            self.mean_plot.setTitle(title)
 
     def _place(self, item, shape) -> None:
         # pixel (i, j) of the matrix covers site (row_min + i, col_min + j), centred on the index

@@ -1,0 +1,201 @@
+"""Speed of the desktop program (run by hand; prints numbers, asserts nothing).
+
+    QT_QPA_PLATFORM=offscreen .venv/bin/python bench/bench_gui.py [--frames 1000] [--quick]
+
+1. Time from launching the program to the window being shown (fresh interpreter).
+2. Threshold-drag updates per second with 10,000 sites: the histogram panel's line is moved
+   (the drag path: panel signal -> session re-classifies -> every view redraws), with and
+   without a full repaint of the window.
+3. Longest GUI-thread stall while a stack is reconstructed in the background: a 5 ms timer
+   on the GUI thread records the longest gap between its ticks.
+
+Scenario (invented): square lattice of 5 pixels spacing rotated by 5 degrees, Gaussian PSF of
+3 pixels FWHM, 600 photons per atom, filling 0.4, sCMOS camera, 512x512 frames (about 10,000
+sites). The 1,000-frame stack cycles 20 distinct simulated frames.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import subprocess
+import sys
+import time
+
+os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
+
+import numpy as np  # noqa: E402
+
+SHOW_SCRIPT = r"""
+import os, sys, time
+from PySide6 import QtCore
+from latticeread.gui import app as A
+launched = float(os.environ["LR_BENCH_LAUNCH"])
+orig = A.make_app
+def patched(*args):
+    app = orig(*args)
+    def shown():
+        print(f"{time.time() - launched:.3f}")
+        app.quit()
+    QtCore.QTimer.singleShot(0, shown)
+    return app
+A.make_app = patched
+sys.argv = ["latticeread", "--no-restore", "--settings", os.environ["LR_BENCH_INI"]]
+from latticeread.cli import main
+main()
+"""
+
+
+def time_to_show(repeats: int = 3) -> list[float]:
+    import tempfile
+
+    out = []
+    with tempfile.TemporaryDirectory() as tmp:
+        for _ in range(repeats):
+            env = dict(os.environ, LR_BENCH_LAUNCH=repr(time.time()), LR_BENCH_INI=os.path.join(tmp, "s.ini"))
+            env["LR_BENCH_LAUNCH"] = repr(time.time())
+            res = subprocess.run([sys.executable, "-c", SHOW_SCRIPT], env=env, capture_output=True, text=True,
+                                 timeout=60)
+            lines = [ln for ln in res.stdout.splitlines() if ln.strip()]
+            if not lines:
+                raise RuntimeError(res.stderr)
+            out.append(float(lines[-1]))
+    return out
+
+
+def scenario(n_frames: int):
+    from latticeread.core.calibration import Calibration
+    from latticeread.core.camera import CameraModel
+    from latticeread.core.geometry import LatticeGeometry
+    from latticeread.core.psf import gaussian_psf
+    from latticeread.core.simulate import simulate_frames
+
+    a = 5.0
+    th = np.deg2rad(5.0)
+    geometry = LatticeGeometry(a1=(-a * np.sin(th), a * np.cos(th)), a2=(a * np.cos(th), a * np.sin(th)),
+                               offset=(256.3, 255.8))
+    psf = gaussian_psf(fwhm=3.0)
+    camera = CameraModel(kind="scmos", counts_per_electron=0.5, bias=100.0, read_noise=1.0,
+                         quantum_efficiency=0.8)
+    frames, _truth = simulate_frames(geometry=geometry, frame_shape=(512, 512), psf=psf, camera=camera,
+                                     filling=0.4, photons_per_atom=600.0, n_shots=min(n_frames, 20), rng=5)
+    cal = Calibration(geometry=geometry, psf=psf, camera=camera, frame_shape=(512, 512))
+    return frames, cal
+
+
+class Cycled:
+    """``n`` frames made by cycling a few distinct ones (a long stack without the memory)."""
+
+    def __init__(self, base, n):
+        self.base, self.n = base, n
+        self.shape = (n,) + base.shape[1:]
+
+    def __len__(self):
+        return self.n
+
+    def __getitem__(self, i):
+        return self.base[int(i) % len(self.base)]
+
+
+def drag_rate(frames, cal, n_updates: int = 100):
+    from latticeread.gui.app import make_app
+    from latticeread.gui.main_window import MainWindow
+    from latticeread.gui.settings import AppSettings
+    import tempfile
+
+    app = make_app()
+    with tempfile.TemporaryDirectory() as tmp:
+        w = MainWindow(settings=AppSettings(os.path.join(tmp, "s.ini")), synchronous=True, offer_restore=False,
+                       autosave_interval_s=0)
+        w.show()
+        app.processEvents()
+        s = w.session
+        s.set_frames(frames[:1].copy())
+        s.set_calibration(cal)
+        s.reconstruct()
+        s.finish_reconstruction()
+        w.flush()
+        app.processEvents()
+        n_sites = s.amplitudes(0).size
+        line = w.histogram_panel.threshold_line
+        t_lo, t_hi = 200.0, 400.0
+        results = {}
+        for label, paint in (("views updated", False), ("views updated + window repainted", True)):
+            ts = np.linspace(t_lo, t_hi, n_updates)
+            start = time.perf_counter()
+            for t in ts:
+                line.setValue(float(t))  # the panel emits thresholdDragged as during a mouse drag
+                app.processEvents()      # the coalescing timer fires and every view redraws
+                if paint:
+                    w.grab()
+            elapsed = time.perf_counter() - start
+            results[label] = n_updates / elapsed
+        line.sigPositionChangeFinished.emit(line)
+        w.close()
+    return n_sites, results
+
+
+def stall_during_stack(frames, cal, n_frames: int):
+    from PySide6 import QtCore
+
+    from latticeread.gui.app import make_app
+    from latticeread.gui.main_window import MainWindow
+    from latticeread.gui.settings import AppSettings
+    import tempfile
+
+    app = make_app()
+    with tempfile.TemporaryDirectory() as tmp:
+        w = MainWindow(settings=AppSettings(os.path.join(tmp, "s.ini")), synchronous=False, offer_restore=False,
+                       autosave_interval_s=0)
+        w.show()
+        s = w.session
+        s.set_frames(Cycled(frames, n_frames))
+        s.set_calibration(cal)
+        deadline = time.time() + 60
+        while w.workers.busy and time.time() < deadline:  # the shown frame
+            app.processEvents()
+        gaps = []
+        last = [time.perf_counter()]
+
+        def tick():
+            now = time.perf_counter()
+            gaps.append(now - last[0])
+            last[0] = now
+
+        timer = QtCore.QTimer()
+        timer.setInterval(5)
+        timer.timeout.connect(tick)
+        timer.start()
+        start = time.perf_counter()
+        w.reconstruct_all()
+        while (w.workers.busy or not s.done.all()) and time.perf_counter() - start < 3600:
+            app.processEvents(QtCore.QEventLoop.AllEvents, 5)
+        elapsed = time.perf_counter() - start
+        timer.stop()
+        w.close()
+    gaps = np.array(gaps[1:])
+    return elapsed, n_frames / elapsed, float(gaps.max()), float(np.percentile(gaps, 99))
+
+
+def main():
+    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    p.add_argument("--frames", type=int, default=1000, help="frames in the stack for the stall test")
+    p.add_argument("--quick", action="store_true", help="200 frames, fewer repeats")
+    args = p.parse_args()
+    n_frames = 200 if args.quick else args.frames
+
+    shows = time_to_show(2 if args.quick else 3)
+    print(f"time to show the window (launch -> shown): {', '.join(f'{t:.2f}' for t in shows)} s "
+          f"(best {min(shows):.2f} s)")
+    frames, cal = scenario(n_frames)
+    n_sites, rates = drag_rate(frames, cal)
+    for label, rate in rates.items():
+        print(f"threshold drag, {n_sites} sites: {rate:.1f} updates/s ({label})")
+    elapsed, fps, worst, p99 = stall_during_stack(frames, cal, n_frames)
+    print(f"background reconstruction of {n_frames} frames of 512x512 ({n_sites} sites): {elapsed:.1f} s, "
+          f"{fps:.1f} frames/s; GUI thread: longest stall {1000 * worst:.0f} ms, 99th percentile "
+          f"{1000 * p99:.0f} ms (5 ms timer)")
+
+
+if __name__ == "__main__":
+    main()
