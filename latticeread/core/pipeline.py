@@ -506,7 +506,7 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
     rec = Reconstructor(draft, method="linear", mask=mask, refit_phase=True)
     pooled, pooled_flags, warnings = _pooled(rec, chosen)
     tr = select_threshold(pooled, method=threshold_method, camera=camera, flags=pooled_flags)
-    if restrict_region and np.isfinite(tr.threshold):
+    if restrict_region and np.isfinite(tr.threshold) and "index_bounds" not in first_notes:
         bounds = _atom_region(rec.sites, pooled.reshape(len(chosen), -1), tr.threshold)
         if bounds is not None:
             notes["index_bounds"] = list(bounds)
@@ -514,8 +514,8 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
             rec = Reconstructor(draft, method="linear", mask=mask, refit_phase=rec.refit_phase)
             pooled, pooled_flags, warnings = _pooled(rec, chosen)
             tr = select_threshold(pooled, method=threshold_method, camera=camera, flags=pooled_flags)
-        elif "index_bounds" in first_notes:
-            notes["index_bounds"] = first_notes["index_bounds"]
+    elif "index_bounds" in first_notes:
+        notes["index_bounds"] = first_notes["index_bounds"]
     if np.isfinite(tr.threshold):
         # the histogram of the sites where atoms occur: sites that never hold an atom (corners of
         # the bounding box, the margin) have no neighbours' light and would make the empty peak
