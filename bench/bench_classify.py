@@ -58,14 +58,14 @@ def bench_reclassify(n=10_000, repeats=200):
     for _ in range(20):
         select_threshold(a, camera=EMCCD)
     fit = (time.perf_counter() - t0) / 20 * 1e3
-    skewed = select_threshold(a, camera=EMCCD, occupied_model="gamma")
+    skewed = select_threshold(a, camera=EMCCD, peak_shape="skewed")
     t0 = time.perf_counter()
     for t in ts:
         classify(a, skewed.with_threshold(t))
     per_g = (time.perf_counter() - t0) / repeats * 1e3
     t0 = time.perf_counter()
     for _ in range(5):
-        select_threshold(a, camera=EMCCD, occupied_model="gamma")
+        select_threshold(a, camera=EMCCD, peak_shape="skewed")
     fit_g = (time.perf_counter() - t0) / 5 * 1e3
     print(f"re-classify {n} sites after a threshold change: {per:.3f} ms normal peak, {per_g:.3f} ms skewed "
           f"peak (target <= 5 ms); full fit: {fit:.1f} ms normal, {fit_g:.0f} ms skewed")
@@ -73,10 +73,9 @@ def bench_reclassify(n=10_000, repeats=200):
 
 def bench_thresholds(n=20_000):
     print("\nthreshold choice (error rate in %; oracle = error-minimising threshold given the truth)")
-    print("mixture = normal occupied peak; gamma = skewed peak (occupied_model='gamma'); "
-          "FP/FN: fitted / counted, %")
-    print(f"{'scenario':<34}{'oracle':>8}{'mixture':>9}{'gamma':>8}{'otsu':>8}{'minimum':>9}"
-          f"{'FN normal':>16}{'FN gamma':>16}{'FP gamma':>16}")
+    print("mixture = normal peaks; skewed = peak_shape='skewed'; FP/FN: fitted / counted, %")
+    print(f"{'scenario':<34}{'oracle':>8}{'mixture':>9}{'skewed':>8}{'otsu':>8}{'minimum':>9}"
+          f"{'FN normal':>16}{'FN skewed':>16}{'FP normal':>16}{'FP skewed':>16}")
     for cam_name, camera in (("emccd", EMCCD), ("scmos", SCMOS)):
         for photons, empty_std, spread in ((2000.0, 60.0, 0.1), (800.0, 60.0, 0.1), (300.0, 60.0, 0.1),
                                            (300.0, 60.0, 0.3)):
@@ -85,17 +84,18 @@ def bench_thresholds(n=20_000):
             err = lambda t: 100 * np.mean((a > t) != truth)  # noqa: E731
             row = [err(oracle_threshold(a, truth))]
             fits = {}
-            for key, m, om in (("mixture", "mixture", "normal"), ("gamma", "mixture", "gamma"),
-                               ("otsu", "otsu", "normal"), ("minimum", "minimum", "normal")):
-                fits[key] = select_threshold(a, method=m, camera=camera, occupied_model=om)
+            for key, m, shape in (("mixture", "mixture", "normal"), ("skewed", "mixture", "skewed"),
+                                  ("otsu", "otsu", "normal"), ("minimum", "minimum", "normal")):
+                fits[key] = select_threshold(a, method=m, camera=camera, peak_shape=shape)
                 row.append(err(fits[key].threshold))
             cells = []
-            for key in ("mixture", "gamma"):
+            for key in ("mixture", "skewed"):
                 occ, _ = classify(a, fits[key])
                 fn = 100 * (1 - occ[truth].mean())
                 cells.append(f"{100 * fits[key].false_negative_rate:7.3f}/{fn:<7.3f} ")
-            occ, _ = classify(a, fits["gamma"])
-            cells.append(f"{100 * fits['gamma'].false_positive_rate:7.3f}/{100 * occ[~truth].mean():<7.3f} ")
+            for key in ("mixture", "skewed"):
+                occ, _ = classify(a, fits[key])
+                cells.append(f"{100 * fits[key].false_positive_rate:7.3f}/{100 * occ[~truth].mean():<7.3f} ")
             name = f"{cam_name} {photons:.0f} ph, sd {empty_std:.0f}, spread {spread:.0%}"
             print(f"{name:<34}" + "".join(f"{v:8.3f} " for v in row) + " " + "".join(cells))
 

@@ -18,11 +18,19 @@ occupied sites are rare:
   gain, Robbins & Hadwen, IEEE Trans. Electron Devices 50, 1227 (2003); 1 for sCMOS). Extra
   spread (atom-to-atom brightness variation) is fitted on top of that floor.
 
-A spread of atom brightness (and the gain register) makes the occupied peak skewed to the
-right; a normal peak then misjudges its left tail, i.e. the false-negative rate (by a factor
-~2 at a 30 % spread when the peaks overlap). ``occupied_model="gamma"`` refines the fit with
-an occupied amplitude = empty-site noise + gamma-distributed signal, by binned maximum
-likelihood; the error rates then follow the counts.
+Skewed peaks
+------------
+Real peaks are skewed to the right: the background photons of an EMCCD pass the gain
+register (an exponential-like output), and atoms differ in brightness. A normal fit then
+misjudges the tails that set the error rates (on site amplitudes of simulated EMCCD frames
+the false-positive rate came out 3-5 times too small). ``peak_shape="skewed"`` refines the
+normal fit by binned maximum likelihood with
+
+* empty    = empty level + normal noise + (gamma-distributed noise - its mean),
+* occupied = empty + gamma-distributed atom signal,
+
+so both peaks share the background noise and each can be skewed; error rates and
+posteriors then come from these shapes (tabulated numerically).
 
 The ``"mixture"`` threshold is where the two weighted component densities cross (posterior
 0.5): it minimises the expected number of misclassified sites. ``"otsu"`` maximises the
@@ -120,11 +128,13 @@ class ThresholdResult:
     model : str
         ``"gaussian"`` (free variances) or ``"camera"`` (occupied variance bounded below by
         the camera's shot-noise model).
-    occupied_gamma_shape : float
-        NaN for a normal occupied component. Otherwise the occupied amplitude is
-        ``empty_mean + G + N`` with ``G`` gamma-distributed with this shape (mean
-        ``occupied_mean - empty_mean``) and ``N`` the empty-site noise (normal, sd
-        ``empty_std``): a skewed peak (see ``occupied_model="gamma"``).
+    skew : tuple of float
+        Empty for normal peaks. For ``peak_shape="skewed"``: ``(noise_sd, noise_shape,
+        noise_scale, signal_shape, signal_scale)`` -- the empty amplitude is
+        ``empty_mean + N(0, noise_sd^2) + (Gamma(noise_shape, noise_scale) - mean)`` (a
+        ``noise_shape`` of inf means no gamma part) and the occupied one adds
+        ``Gamma(signal_shape, signal_scale)`` (photons). ``empty_std``, ``occupied_mean``
+        and ``occupied_std`` are the moments of these distributions.
     """
 
     threshold: float
@@ -139,7 +149,7 @@ class ThresholdResult:
     n_sites: int
     warnings: tuple[str, ...] = ()
     model: str = "gaussian"
-    occupied_gamma_shape: float = float("nan")
+    skew: tuple = ()
 
     # --- derived ---------------------------------------------------------------------
     @property
@@ -154,14 +164,17 @@ class ThresholdResult:
         return float((1 - w) * self.false_positive_rate + w * self.false_negative_rate)
 
     @property
-    def is_gamma(self) -> bool:
-        """True when the occupied component is the skewed (gamma + normal) one."""
-        return bool(np.isfinite(self.occupied_gamma_shape)) and self.has_components
+    def is_skewed(self) -> bool:
+        """True when the peaks are the skewed ones (see ``skew``)."""
+        return len(self.skew) == 5 and self.has_components
 
-    def _occupied_grid(self) -> "_SkewedPeak":
-        k = self.occupied_gamma_shape
-        theta = (self.occupied_mean - self.empty_mean) / k
-        return _SkewedPeak(self.empty_mean, self.empty_std, k, theta)
+    def _pair(self) -> "_SkewedPair":
+        # tabulated once per result (the dataclass is frozen; the cache is not a field)
+        pair = self.__dict__.get("_pair_cache")
+        if pair is None:
+            pair = _SkewedPair(self.empty_mean, *self.skew)
+            object.__setattr__(self, "_pair_cache", pair)
+        return pair
 
     @property
     def is_reliable(self) -> bool:
@@ -186,15 +199,15 @@ class ThresholdResult:
         a = np.asarray(amplitudes, dtype=float)
         if not self.has_components:
             p = (a > self.threshold).astype(float)
-        elif self.is_gamma:
+        elif self.is_skewed:
             w = min(max(self.occupied_fraction, 1e-300), 1 - 1e-16)
+            pair = self._pair()
+            occ = w * pair.pdf1(a)
+            total = occ + (1 - w) * pair.pdf0(a)
+            # outside the tabulated range both densities are 0: the nearer peak wins
+            mid = 0.5 * (self.empty_mean + self.occupied_mean)
             with np.errstate(divide="ignore", invalid="ignore"):
-                log0 = math.log(1 - w) + _log_normal_pdf(a, self.empty_mean, self.empty_std)
-                peak = self._occupied_grid()
-                log1 = math.log(w) + np.log(peak.pdf(a))
-                p = special.expit(log1 - log0)
-                # beyond the grid the gamma tail (exponential) always beats the normal one
-                p = np.where(a > peak.x[-1], 1.0, p)
+                p = np.where(total > 0, occ / total, (a > mid).astype(float))
         else:
             w = min(max(self.occupied_fraction, 1e-300), 1 - 1e-16)
             z0 = (a - self.empty_mean) / self.empty_std
@@ -217,9 +230,13 @@ class ThresholdResult:
         if not np.isfinite(t):
             raise ReconstructionError(f"the threshold must be a finite number of photons, got {threshold}")
         fp, fn = _error_rates(t, self.empty_mean, self.empty_std, self.occupied_mean, self.occupied_std)
-        if self.is_gamma:
-            fn = float(self._occupied_grid().cdf(t))
-        return dataclasses.replace(self, threshold=t, method="user", false_positive_rate=fp, false_negative_rate=fn)
+        if self.is_skewed:
+            pair = self._pair()
+            fp, fn = float(1.0 - pair.cdf0(t)), float(pair.cdf1(t))
+        moved = dataclasses.replace(self, threshold=t, method="user", false_positive_rate=fp, false_negative_rate=fn)
+        if "_pair_cache" in self.__dict__:  # same peaks: reuse the tabulation
+            object.__setattr__(moved, "_pair_cache", self.__dict__["_pair_cache"])
+        return moved
 
     def to_dict(self) -> dict:
         """Plain dict (NaN written as None so that it is valid JSON)."""
@@ -228,6 +245,8 @@ class ThresholdResult:
             v = getattr(self, f.name)
             if f.name == "warnings":
                 v = list(v)
+            elif f.name == "skew":
+                v = [None if not np.isfinite(x) else float(x) for x in v]
             elif isinstance(v, (float, np.floating)):
                 v = None if not np.isfinite(v) else float(v)
             elif isinstance(v, (np.integer,)):
@@ -239,7 +258,7 @@ class ThresholdResult:
     def from_dict(cls, data: dict) -> "ThresholdResult":
         """Inverse of :meth:`to_dict`; raises ReconstructionError on missing keys."""
         names = [f.name for f in dataclasses.fields(cls)]
-        required = [n for n in names if n not in ("warnings", "model", "occupied_gamma_shape")]
+        required = [n for n in names if n not in ("warnings", "model", "skew")]
         missing = [n for n in required if n not in data]
         if missing:
             raise ReconstructionError(f"threshold record is missing {', '.join(missing)}")
@@ -250,6 +269,8 @@ class ThresholdResult:
             v = data[n]
             if n == "warnings":
                 v = tuple(str(s) for s in v)
+            elif n == "skew":
+                v = tuple(float("inf") if x is None else float(x) for x in v)
             elif n in ("method", "model"):
                 v = str(v)
             elif n == "n_sites":
@@ -269,7 +290,7 @@ def select_threshold(
     nbins: int = 256,
     hist: tuple | None = None,
     flags=None,
-    occupied_model: str = "normal",
+    peak_shape: str = "normal",
     max_iter: int = 300,
 ) -> ThresholdResult:
     """Choose the occupancy threshold from the histogram of site amplitudes.
@@ -293,14 +314,12 @@ def select_threshold(
     flags : array_like of uint8, optional
         Per-site flags (:mod:`latticeread.core.flags`), same size as ``amplitudes``; sites
         flagged SATURATED produce a warning (their amplitude is underestimated).
-    occupied_model : {"normal", "gamma"}
-        Shape of the occupied peak. ``"normal"``: fitted by EM (fast, ~3 ms for 10,000
-        sites). ``"gamma"``: the EM result is refined by a maximum-likelihood fit of the
-        binned histogram in which the occupied amplitude is the empty-site noise plus a
-        gamma-distributed signal; this follows the right skew that a spread of atom
-        brightness and the gain register give, so the false-negative rate is not
-        over- or under-estimated (slower: 0.1-0.3 s; meant for calibration runs). With a camera model the
-        signal variance is kept >= ``F^2 / QE`` x its mean.
+    peak_shape : {"normal", "skewed"}
+        ``"normal"``: two normal peaks fitted by EM (fast: ~1-3 ms for 10,000 sites).
+        ``"skewed"``: the EM result is refined by binned maximum likelihood with skewed
+        peaks (see the module notes) so that the error rates follow the real tails
+        (slower: about a second; meant for calibration runs, not for every frame). With a
+        camera model the signal variance is kept >= ``F^2 / QE`` x its mean.
     max_iter : int
         Maximum number of EM iterations.
 
@@ -315,8 +334,8 @@ def select_threshold(
     """
     if method not in THRESHOLD_METHODS:
         raise ReconstructionError(f"unknown threshold method {method!r}; use one of {', '.join(THRESHOLD_METHODS)}")
-    if occupied_model not in ("normal", "gamma"):
-        raise ReconstructionError(f"unknown occupied-peak model {occupied_model!r}; use 'normal' or 'gamma'")
+    if peak_shape not in ("normal", "skewed"):
+        raise ReconstructionError(f"unknown peak shape {peak_shape!r}; use 'normal' or 'skewed'")
     nbins = int(nbins)
     if nbins < 8:
         raise ReconstructionError(f"the histogram needs at least 8 bins, got nbins={nbins}")
@@ -359,7 +378,7 @@ def select_threshold(
         kappa = camera.excess_noise_factor_squared / camera.quantum_efficiency
     model = "gaussian" if kappa is None else "camera"
 
-    gamma_k = float("nan")
+    skew: tuple = ()
     t_otsu = otsu_threshold(None, hist=(counts, centers))
     fit = _fit_two_normals(x, c, t_init=t_otsu, kappa=kappa, binwidth=binwidth, max_iter=max_iter)
     m0, s0, m1, s1, w1, converged = fit
@@ -409,16 +428,22 @@ def select_threshold(
         if w1 * n_sites > n_sites - MIN_ATOMS:
             warn.append(f"only about {n_sites - n_occ:.0f} sites look empty: the empty component is poorly "
                         f"determined")
-        if occupied_model == "gamma" and n_occ >= MIN_ATOMS:
-            gamma_fit = _fit_skewed(counts, centers, m0=m0, s0=s0, m1=m1, s1=s1, w1=w1, kappa=kappa)
-            if gamma_fit is None:
-                warn.append("the skewed occupied-peak fit failed; a normal peak was used")
+        pair = None
+        if peak_shape == "skewed" and n_occ >= MIN_ATOMS and n_sites - n_occ >= MIN_ATOMS:
+            fit = _fit_skewed(counts, centers, m0=m0, s0=s0, m1=m1, s1=s1, w1=w1, kappa=kappa)
+            if fit is None:
+                warn.append("the skewed-peak fit failed; normal peaks were used")
             else:
-                m0, s0, m1, s1, w1, gamma_k = gamma_fit
+                w1, params = fit
+                pair = _SkewedPair(*params)
+                skew = tuple(params[1:])
+                m0, s0, m1, s1 = pair.moments()
+        elif peak_shape == "skewed":
+            warn.append("too few sites in one of the peaks for skewed shapes; normal peaks were used")
         if method == "mixture":
             t = _crossing(m0, s0, m1, s1, w1)
-            if np.isfinite(gamma_k):
-                t = _crossing_skewed(m0, s0, m1, w1, gamma_k, t)
+            if pair is not None:
+                t = _crossing_skewed(pair, w1, t, m0, m1)
         elif method == "otsu":
             t = t_otsu
         else:
@@ -429,8 +454,9 @@ def select_threshold(
         method_used = method
 
     fp, fn = _error_rates(t, m0, s0, m1, s1)
-    if np.isfinite(gamma_k):
-        fn = float(_SkewedPeak(m0, s0, gamma_k, (m1 - m0) / gamma_k).cdf(t))
+    if skew:
+        pair = _SkewedPair(m0, *skew)
+        fp, fn = float(1.0 - pair.cdf0(t)), float(pair.cdf1(t))
     for text in warn:
         logger.info("threshold: %s", text)
     for text in warn:
@@ -440,7 +466,7 @@ def select_threshold(
         threshold=float(t), method=method_used, empty_mean=float(m0), empty_std=float(s0),
         occupied_mean=float(m1), occupied_std=float(s1), occupied_fraction=float(w1),
         false_positive_rate=fp, false_negative_rate=fn, n_sites=n_sites, warnings=tuple(warn), model=model,
-        occupied_gamma_shape=float(gamma_k))
+        skew=skew)
 
 
 def classify(amplitudes, threshold) -> tuple[np.ndarray, np.ndarray]:
@@ -757,115 +783,173 @@ def _error_rates(t, m0, s0, m1, s1):
     return fp, fn
 
 
-# --- skewed occupied peak: empty-site noise plus a gamma-distributed signal ---------------
+# --- skewed peaks: gamma-shaped background noise and gamma-shaped atom signal -------------
 def _log_normal_pdf(a, m, sd):
     z = (np.asarray(a, float) - m) / sd
     return -0.5 * z * z - math.log(sd) - 0.5 * math.log(2 * math.pi)
 
 
-class _SkewedPeak:
-    """Density and CDF of ``m0 + Gamma(k, theta) + Normal(0, s0^2)`` on a grid (photons)."""
+_MAX_GAMMA_SHAPE = 1e4  # above this a gamma distribution is treated as normal
 
-    def __init__(self, m0, s0, k, theta):
-        mean, sd = k * theta, math.sqrt(k) * theta
-        lo = m0 - 10.0 * s0
-        hi = m0 + mean + 12.0 * sd + 10.0 * s0
-        n = int(np.clip((hi - lo) / (0.1 * min(s0, sd + s0)), 512, 8192))
-        h = (hi - lo) / n
-        # gamma probability per grid cell of the signal (cell centres at 0, h, 2h, ...)
-        edges = (np.arange(n + 1) - 0.5) * h
-        pg = np.diff(special.gammainc(k, np.clip(edges, 0, None) / theta))
-        # normal probability per grid cell of the noise; the gamma mass sits at the cell
-        # centres, which adds a variance h^2/12, taken back from the normal part
-        m = int(math.ceil(10.0 * s0 / h))
-        s_eff = math.sqrt(max(s0 * s0 - h * h / 12.0, 0.25 * s0 * s0))
-        ze = (np.arange(-m, m + 2) - 0.5) * h / s_eff
-        pn = np.diff(special.ndtr(ze))
-        prob = np.convolve(pg, pn)  # cell probabilities on x = m0 + (j - m) h
-        self.x = m0 + (np.arange(prob.size) - m) * h
+
+def _gamma_cells(k, theta, h, n):
+    """Probabilities of Gamma(k, theta) in grid cells centred at 0, h, 2h, ... (n cells)."""
+    edges = (np.arange(n + 1) - 0.5) * h
+    return np.diff(special.gammainc(k, np.clip(edges, 0, None) / theta))
+
+
+class _SkewedPair:
+    """Empty and occupied amplitude distributions with skewed shapes, tabulated on a grid.
+
+    empty    = m0 + N(0, s^2) + (Ge - ke*te),   Ge ~ Gamma(ke, te)   (background noise)
+    occupied = empty + Gs,                       Gs ~ Gamma(k, ts)    (atom signal)
+
+    ``ke`` = inf means a normal background (no gamma part). Amplitudes in photons.
+    """
+
+    def __init__(self, m0, s, ke, te, k, ts):
+        self.params = (float(m0), float(s), float(ke), float(te), float(k), float(ts))
+        gauss_bg = not (np.isfinite(ke) and ke < _MAX_GAMMA_SHAPE)
+        mean_e, sd_e = (0.0, 0.0) if gauss_bg else (ke * te, math.sqrt(ke) * te)
+        mean_s, sd_s = k * ts, math.sqrt(k) * ts
+        sd_noise = math.sqrt(s * s + sd_e * sd_e)
+        h = 0.1 * min(s if gauss_bg else min(s, sd_noise), sd_noise)
+        h = max(h, (10 * sd_noise + 14 * sd_e + mean_s + 12 * sd_s + 10 * sd_noise) / 20000)
+        # background gamma part, centred on its mean: cells at (i - c) h - delta
+        if gauss_bg:
+            pe, c, delta = np.array([1.0]), 0, 0.0
+        else:
+            ne = int(math.ceil((mean_e + 14 * sd_e) / h)) + 2
+            pe = _gamma_cells(ke, te, h, ne)
+            c = int(math.floor(mean_e / h))
+            delta = mean_e - c * h
+        # normal part (its variance reduced by the h^2/12 that binning the gamma adds)
+        s_eff = math.sqrt(max(s * s - (0.0 if gauss_bg else h * h / 12.0), 0.25 * s * s))
+        m = int(math.ceil(10.0 * s_eff / h)) + 1
+        q = np.arange(-m, m + 1)
+        pn = special.ndtr(((q + 0.5) * h + delta) / s_eff) - special.ndtr(((q - 0.5) * h + delta) / s_eff)
+        noise = np.convolve(pe, pn)  # cells at m0 + (j - c - m) h
         self.h = h
-        self._pdf = prob / h
-        self._cdf_edges = np.concatenate([[0.0], np.cumsum(prob)])
-        self._x_edges = np.concatenate([self.x - 0.5 * h, [self.x[-1] + 0.5 * h]])
+        self.x0 = m0 + (np.arange(noise.size) - c - m) * h
+        self.p0 = noise / noise.sum()
+        ns = int(math.ceil((mean_s + 12 * sd_s) / h)) + 2
+        ps = _gamma_cells(k, ts, h, ns)
+        occ = np.convolve(self.p0, ps)
+        self.x1 = self.x0[0] + np.arange(occ.size) * h
+        self.p1 = occ / occ.sum()
 
-    def pdf(self, a):
-        return np.interp(np.asarray(a, float), self.x, self._pdf, left=0.0, right=0.0)
+        # densities at the cell centres, CDFs at the cell edges (for interpolation)
+        self._d0, self._d1 = self.p0 / h, self.p1 / h
+        self._e0 = np.concatenate([self.x0 - 0.5 * h, [self.x0[-1] + 0.5 * h]])
+        self._e1 = np.concatenate([self.x1 - 0.5 * h, [self.x1[-1] + 0.5 * h]])
+        self._c0 = np.concatenate([[0.0], np.cumsum(self.p0)])
+        self._c1 = np.concatenate([[0.0], np.cumsum(self.p1)])
 
-    def cdf(self, a):
-        return np.interp(np.asarray(a, float), self._x_edges, self._cdf_edges, left=0.0, right=1.0)
+    def pdf0(self, a):
+        return _interp_uniform(a, self.x0[0], self.h, self._d0, 0.0, 0.0)
+
+    def pdf1(self, a):
+        return _interp_uniform(a, self.x1[0], self.h, self._d1, 0.0, 0.0)
+
+    def cdf0(self, a):
+        return _interp_uniform(a, self._e0[0], self.h, self._c0, 0.0, 1.0)
+
+    def cdf1(self, a):
+        return _interp_uniform(a, self._e1[0], self.h, self._c1, 0.0, 1.0)
+
+    def moments(self):
+        """(empty mean, empty sd, occupied mean, occupied sd) in photons."""
+        m0, s, ke, te, k, ts = self.params
+        var_e = s * s + (ke * te * te if np.isfinite(ke) and ke < _MAX_GAMMA_SHAPE else 0.0)
+        return m0, math.sqrt(var_e), m0 + k * ts, math.sqrt(var_e + k * ts * ts)
+
+
+def _interp_uniform(a, start, h, values, left, right):
+    """Linear interpolation in a table sampled every ``h`` from ``start`` (fast for unsorted input)."""
+    a = np.asarray(a, dtype=float)
+    u = (a - start) / h
+    with np.errstate(invalid="ignore"):
+        i = np.clip(np.floor(u), 0, values.size - 2)
+    f = u - i
+    i = np.nan_to_num(i).astype(np.intp)
+    out = values[i] * (1.0 - f) + values[i + 1] * f
+    out = np.where(u < 0, left, out)
+    return np.where(u > values.size - 1, right, out)
 
 
 def _fit_skewed(counts, centers, *, m0, s0, m1, s1, w1, kappa):
-    """Binned maximum likelihood of (empty normal) + (normal noise + gamma signal).
+    """Binned maximum likelihood of the two skewed peaks, started from the normal fit.
 
-    Returns (m0, s0, occupied mean, occupied sd, w1, gamma shape) or None.
+    Returns (w1, (m0, s, ke, te, k, ts)) or None when the fit fails.
     """
     from scipy import optimize
 
     counts = np.asarray(counts, float)
     centers = np.asarray(centers, float)
-    if centers.size < 3:
+    if centers.size < 8 or not (m1 > m0):
         return None
     h = np.diff(centers)
     edges = np.concatenate([[centers[0] - 0.5 * h[0]], 0.5 * (centers[1:] + centers[:-1]),
                             [centers[-1] + 0.5 * h[-1]]])
-    edges[0], edges[-1] = -np.inf, np.inf
     mean_sig = m1 - m0
     var_sig = max(s1 * s1 - s0 * s0, 1e-4 * mean_sig * mean_sig)
-    if mean_sig <= 0:
-        return None
-    k0 = float(np.clip(mean_sig**2 / var_sig, 0.5, 1e4))
     theta_min = 0.0 if kappa is None else kappa
+    k0 = float(np.clip(mean_sig**2 / var_sig, 0.5, 1e4))
+    ts0 = max(var_sig / mean_sig - theta_min, 1e-3 * mean_sig / k0)
+    # start: background mostly normal with a mild gamma part (skewness ~0.3)
+    ke0, frac0 = 40.0, 0.3
+    te0 = math.sqrt(frac0 * s0 * s0 / ke0)
+    sn0 = math.sqrt((1 - frac0) * s0 * s0)
 
     def unpack(p):
-        w = special.expit(p[0])
-        k = math.exp(p[3])
-        theta = theta_min + math.exp(p[4])
-        return w, p[1], math.exp(p[2]), k, theta
+        return (special.expit(p[0]), p[1] * s0 + m0, s0 * math.exp(p[2]), math.exp(p[3]), s0 * math.exp(p[4]),
+                math.exp(p[5]), theta_min + mean_sig * math.exp(p[6]))
 
     def nll(p):
-        w, mm0, ss0, k, theta = unpack(p)
-        if not (np.isfinite([w, mm0, ss0, k, theta]).all() and 1e-6 < k < 1e6):
+        w, mm0, sn, ke, te, k, ts = unpack(p)
+        if not (np.isfinite([w, mm0, sn, ke, te, k, ts]).all() and 1e-3 < ke and 1e-3 < k < 1e6):
             return 1e300
-        peak = _SkewedPeak(mm0, ss0, k, theta)
-        c0 = special.ndtr((edges - mm0) / ss0)
-        c1 = peak.cdf(edges)
-        prob = (1 - w) * np.diff(c0) + w * np.diff(c1)
+        try:
+            pair = _SkewedPair(mm0, sn, ke, te, k, ts)
+        except (ValueError, MemoryError, OverflowError):
+            return 1e300
+        prob = (1 - w) * np.diff(pair.cdf0(edges)) + w * np.diff(pair.cdf1(edges))
+        # mass outside the histogram range goes to the two end bins
+        prob[0] += (1 - w) * pair.cdf0(edges[0]) + w * pair.cdf1(edges[0])
+        prob[-1] += (1 - w) * (1 - pair.cdf0(edges[-1])) + w * (1 - pair.cdf1(edges[-1]))
         return float(-np.sum(counts * np.log(np.clip(prob, 1e-300, None))))
 
-    start_theta = max(var_sig / mean_sig - theta_min, 1e-3 * max(mean_sig / k0, 1e-12))
-    p0 = np.array([special.logit(min(max(w1, 1e-6), 1 - 1e-6)), m0, math.log(s0), math.log(k0),
-                   math.log(start_theta)])
-    try:
+    p0 = np.array([special.logit(min(max(w1, 1e-6), 1 - 1e-6)), 0.0, math.log(sn0 / s0), math.log(ke0),
+                   math.log(te0 / s0), math.log(k0), math.log(max(ts0, 1e-12) / mean_sig)])
+    with np.errstate(all="ignore"):
+        start = nll(p0)
         res = optimize.minimize(nll, p0, method="Nelder-Mead",
-                                options={"xatol": 1e-4, "fatol": 1e-2, "maxiter": 2000, "maxfev": 4000})
-    except (ValueError, FloatingPointError, OverflowError):  # pragma: no cover - defensive
+                                options={"xatol": 1e-4, "fatol": 1e-2, "maxiter": 4000, "maxfev": 6000,
+                                         "adaptive": True})
+    if not (np.isfinite(res.fun) and res.fun <= start):
         return None
-    if not np.isfinite(res.fun) or res.fun >= nll(p0) + 1e-9 and not res.success:
-        return None
-    w, mm0, ss0, k, theta = unpack(res.x)
-    mean = mm0 + k * theta
-    sd = math.sqrt(ss0 * ss0 + k * theta * theta)
-    return mm0, ss0, mean, sd, w, k
+    w, mm0, sn, ke, te, k, ts = unpack(res.x)
+    if ke >= _MAX_GAMMA_SHAPE:
+        ke = float("inf")
+    return w, (mm0, sn, ke, te, k, ts)
 
 
-def _crossing_skewed(m0, s0, m1, w1, k, t_guess):
-    """Where (1 - w1) N(t; m0, s0) = w1 * skewed(t), searched between the means (photons)."""
+def _crossing_skewed(pair, w1, t_guess, lo, hi):
+    """Where (1 - w1) p_empty(t) = w1 p_occupied(t), searched between ``lo`` and ``hi`` (photons)."""
     from scipy import optimize
 
-    peak = _SkewedPeak(m0, s0, k, (m1 - m0) / k)
     w1 = min(max(w1, 1e-300), 1 - 1e-16)
 
     def f(t):
         with np.errstate(divide="ignore"):
-            return (math.log(1 - w1) + float(_log_normal_pdf(t, m0, s0))
-                    - math.log(w1) - float(np.log(peak.pdf(t))))
+            return (math.log(1 - w1) + float(np.log(pair.pdf0(t)))
+                    - math.log(w1) - float(np.log(pair.pdf1(t))))
 
-    grid = np.linspace(m0, m1, 201)
+    grid = np.linspace(lo, hi, 401)
     vals = np.array([f(t) for t in grid])
-    sign = np.flatnonzero(np.diff(np.sign(vals)) != 0)
+    ok = np.isfinite(vals)
+    sign = np.flatnonzero(ok[:-1] & ok[1:] & (np.diff(np.sign(vals)) != 0))
     if sign.size == 0:
         return t_guess
-    # the crossing nearest the normal-model guess
     i = sign[np.argmin(np.abs(grid[sign] - t_guess))]
-    return float(optimize.brentq(f, grid[i], grid[i + 1], xtol=1e-9 * max(1.0, abs(m1))))
+    return float(optimize.brentq(f, grid[i], grid[i + 1], xtol=1e-9 * max(1.0, abs(hi))))
