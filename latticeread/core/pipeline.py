@@ -528,6 +528,11 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
     atom = tr.occupied_mean
     if method == "nonlinear":
         if not np.isfinite(atom) or atom <= 0:
+            # below 0.7 FWHM the linear histogram need not be bimodal: start from a generous
+            # guess; the binary fit halves a too-bright guess until it finds atoms, then rescales
+            positive = pooled[np.isfinite(pooled) & (pooled > 0)]
+            atom = float(np.percentile(positive, 99)) if positive.size else float("nan")
+        if not np.isfinite(atom) or atom <= 0:
             warnings = warnings + ["no atoms were found, so the amplitude method fell back to linear"]
             method = "linear"
         else:
