@@ -136,9 +136,13 @@ class ImagePane(QtWidgets.QWidget):
         self.model_view = self.graphics.addViewBox(row=0, col=1, lockAspect=True, invertY=True)
         self.model_item = pg.ImageItem(axisOrder="row-major")
         self.model_view.addItem(self.model_item)
-        self.model_view.setXLink(self.view)
-        self.model_view.setYLink(self.view)
+        self.model_item.setColorMap(pg.colormap.get("inferno"))
         self.model_view.setVisible(False)
+        # the two views show the same region; synchronised by hand because pyqtgraph's axis
+        # links fight the locked aspect ratio when both axes are linked
+        self._syncing = False
+        self.view.sigRangeChanged.connect(lambda *_: self._sync_views(self.view, self.model_view))
+        self.model_view.sigRangeChanged.connect(lambda *_: self._sync_views(self.model_view, self.view))
         self.lut = pg.HistogramLUTItem(image=self.image_item)
         self.lut.gradient.loadPreset("inferno")
         self.graphics.addItem(self.lut, row=0, col=2)
@@ -197,6 +201,7 @@ class ImagePane(QtWidgets.QWidget):
         self.blend_slider = QtWidgets.QSlider(QtCore.Qt.Horizontal)
         self.blend_slider.setRange(0, 100)
         self.blend_slider.setValue(50)
+        self.blend_slider.setMinimumWidth(60)
         self.blend_slider.setMaximumWidth(90)
         self.blend_slider.setEnabled(False)
         self.blend_slider.setToolTip("Blend weight: left = raw frame (photons), right = model")
@@ -291,6 +296,15 @@ class ImagePane(QtWidgets.QWidget):
             self.set_site_states(None, None, None)
         self.grid_item.setVisible(self.grid_check.isChecked())
 
+    def _sync_views(self, source, target) -> None:
+        if self._syncing or not self.model_view.isVisible():
+            return
+        self._syncing = True
+        try:
+            target.setRange(source.viewRect(), padding=0)
+        finally:
+            self._syncing = False
+
     def _rescale_markers(self) -> None:
         """Marker sizes (screen pixels) = fraction of the lattice spacing at the current zoom."""
         if self._geometry is None:
@@ -367,6 +381,8 @@ class ImagePane(QtWidgets.QWidget):
         layout.setColumnStretchFactor(1, 1 if side else 0)
         layout.setColumnMaximumWidth(1, 1e6 if side else 0)
         self.graphics.ci.updateGeometry()
+        if side:
+            QtCore.QTimer.singleShot(0, lambda: self._sync_views(self.view, self.model_view))
         self.blend_slider.setEnabled(self._mode == "blend")
         self._update_display(auto_levels=True)
         if self._mode != "raw" and self._model is None and self._image is not None:
@@ -393,6 +409,7 @@ class ImagePane(QtWidgets.QWidget):
         elif mode == "side":
             shown = self._image
             self.model_item.setImage(self._model, autoLevels=True)
+            self._sync_views(self.view, self.model_view)
         else:  # blend in photons
             w = self.blend_slider.value() / 100.0
             raw = self._photons if self._photons is not None else self._image.astype(float)
