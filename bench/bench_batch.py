@@ -107,15 +107,15 @@ class _Sampler(threading.Thread):
     def __init__(self):
         super().__init__(daemon=True)
         self.peak_kib = 0
-        self._stop = threading.Event()
+        self._halt = threading.Event()
 
     def run(self):
         me = os.getpid()
-        while not self._stop.wait(0.1):
+        while not self._halt.wait(0.1):
             self.peak_kib = max(self.peak_kib, _rss_tree_kib(me))
 
     def stop(self):
-        self._stop.set()
+        self._halt.set()
         self.join()
 
 

@@ -258,9 +258,10 @@ def _n_shots_now(path: Path) -> int:
 
 
 def test_kill_in_the_middle_then_resume_gives_every_shot_once(tmp_path):
-    n_frames = 40
+    # 100 frames from 4 simulated ones (simulating is the slow part); each index is its own shot.
+    # The batch writes blocks of up to 32 shots, so the first commit comes well before the end.
+    n_frames = 100
     cal, paths, _ = make_dataset(tmp_path / "data", n_files=1, frames_per_file=4, seed=5)
-    # 40 frames from 4 simulated ones (simulating is the slow part); each index is its own shot.
     tifffile.imwrite(paths[0], np.tile(tifffile.imread(paths[0]), (n_frames // 4, 1, 1)), photometric="minisblack")
     save_calibration(tmp_path / "cal.json", cal)
     out = tmp_path / "run.h5"

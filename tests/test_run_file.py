@@ -234,3 +234,15 @@ def test_read_unknown_matrix(tmp_path):
     RunWriter(path, calibration_json=CAL).close()
     with pytest.raises(ValueError, match="unknown run-file matrices"):
         read_run(path, matrices=("occupancy",))
+
+
+def test_append_many_writes_a_block_once(tmp_path):
+    path = tmp_path / "run.h5"
+    with RunWriter(path, calibration_json=CAL) as w:
+        w.append(_record(0))
+        assert w.append_many([_record(1), _record(0), _record(2), _record(1)]) == 2  # 0 done, 1 repeated
+        with pytest.raises(ExportError, match="one calibration"):
+            w.append_many([_record(3), _record(4, shape=(5, 5))])  # nothing of a bad block is written
+    run = read_run(path)
+    assert run.frame_index.tolist() == [0, 1, 2]
+    np.testing.assert_array_equal(run.amplitude[2], _record(2).amplitude)

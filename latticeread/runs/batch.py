@@ -760,7 +760,8 @@ def run_batch(inputs, *, calibration, out, workers: int | None = None, scheduler
     metadata : dict, optional
         Stored with the run file when it is created.
     window : int, optional
-        Shots in flight at once (default 4 per worker); bounds the memory of the main process.
+        Shots in flight at once (default 4 per worker, at least 48 so that blocks of 32 shots
+        fill); bounds the memory of the main process.
     images_per_shot : int
         Consecutive frames of each file that image the same atoms (2 or more: the summary
         estimates loss and hopping between them). Default 1: frames are independent.
@@ -806,7 +807,7 @@ def run_batch(inputs, *, calibration, out, workers: int | None = None, scheduler
             description = runner.description
             try:
                 _drive(runner, plan.tasks, writer, counts, examples, progress=progress,
-                       window=window or max(4, 4 * runner.n_workers))
+                       window=window or max(48, 4 * runner.n_workers))
             finally:
                 runner.close(cancel=True)
     return summarize_run(out, cal, counts=counts, seconds=time.perf_counter() - t_start, workers=description,
@@ -827,21 +828,46 @@ def _make_runner(cal_json: str, *, workers: int | None, scheduler: str | None):
     return PoolRunner(cal_json, workers=n)
 
 
-def _write_outcome(writer: RunWriter, outcome, counts: dict, examples: list) -> None:
-    if isinstance(outcome, ShotFailure):
-        writer.record_failure(outcome.key, error=outcome.error, reason=outcome.reason)
-        counts["failed"] += 1
-        examples.append(_describe_failure(outcome))
-        log.warning("%s", _describe_failure(outcome))
-    elif writer.append(outcome):
-        counts["new"] += 1
+class _BlockWriter:
+    """Gather results in input order and write them to the run file in blocks.
+
+    A block is written when it holds ``block_size`` shots or ``max_wait`` seconds have
+    passed since the last write, before a failure is recorded, and at the end. Writing a
+    block costs about as much as writing one shot, so this keeps the main process light.
+    """
+
+    def __init__(self, writer: RunWriter, counts: dict, examples: list, *, block_size: int = 32,
+                 max_wait: float = 0.5):
+        self.writer, self.counts, self.examples = writer, counts, examples
+        self.block_size, self.max_wait = int(block_size), float(max_wait)
+        self._records: list[ShotRecord] = []
+        self._last = time.monotonic()
+
+    def add(self, outcome) -> None:
+        if isinstance(outcome, ShotFailure):
+            self.flush()
+            self.writer.record_failure(outcome.key, error=outcome.error, reason=outcome.reason)
+            self.counts["failed"] += 1
+            self.examples.append(_describe_failure(outcome))
+            log.warning("%s", _describe_failure(outcome))
+            return
+        self._records.append(outcome)
+        if len(self._records) >= self.block_size or time.monotonic() - self._last >= self.max_wait:
+            self.flush()
+
+    def flush(self) -> None:
+        records, self._records = self._records, []
+        if records:
+            self.counts["new"] += self.writer.append_many(records)
+        self._last = time.monotonic()
 
 
 def _drive(runner, tasks: list, writer: RunWriter, counts: dict, examples: list, *, progress: bool,
-           window: int) -> None:
+           window: int, block_size: int = 32) -> None:
     """Submit shots (at most ``window`` unwritten at once) and write them in input order."""
     buffered: dict[int, object] = {}
     next_submit = next_write = 0
+    out = _BlockWriter(writer, counts, examples, block_size=block_size)
     bar = _progress_bar(len(tasks), progress, "reconstructing")
     try:
         while next_write < len(tasks):
@@ -851,15 +877,16 @@ def _drive(runner, tasks: list, writer: RunWriter, counts: dict, examples: list,
             index, outcome = runner.next_done()
             buffered[index] = outcome
             while next_write in buffered:
-                _write_outcome(writer, buffered.pop(next_write), counts, examples)
+                out.add(buffered.pop(next_write))
                 next_write += 1
                 bar.update(1)
-                bar.set_postfix(failed=counts["failed"], refresh=False)
+            bar.set_postfix(failed=counts["failed"], refresh=False)
     finally:
         # On Ctrl-C or an error keep what already came back (order does not matter for keys).
-        for index in sorted(buffered):
-            with contextlib.suppress(Exception):
-                _write_outcome(writer, buffered[index], counts, examples)
+        with contextlib.suppress(Exception):
+            for index in sorted(buffered):
+                out.add(buffered[index])
+            out.flush()
         bar.close()
 
 
