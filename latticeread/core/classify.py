@@ -27,7 +27,7 @@ the false-positive rate came out 3-5 times too small). ``peak_shape="skewed"`` r
 normal fit by binned maximum likelihood with
 
 * empty    = empty level + normal noise + (gamma-distributed noise - its mean),
-* occupied = empty + gamma-distributed atom signal,
+* occupied = empty + gamma-distributed atom signal + normal spread of that signal,
 
 so both peaks share the background noise and each can be skewed; error rates and
 posteriors then come from these shapes (tabulated numerically).
@@ -130,10 +130,10 @@ class ThresholdResult:
         the camera's shot-noise model).
     skew : tuple of float
         Empty for normal peaks. For ``peak_shape="skewed"``: ``(noise_sd, noise_shape,
-        noise_scale, signal_shape, signal_scale)`` -- the empty amplitude is
+        noise_scale, signal_shape, signal_scale, signal_sd)`` -- the empty amplitude is
         ``empty_mean + N(0, noise_sd^2) + (Gamma(noise_shape, noise_scale) - mean)`` (a
         ``noise_shape`` of inf means no gamma part) and the occupied one adds
-        ``Gamma(signal_shape, signal_scale)`` (photons). ``empty_std``, ``occupied_mean``
+        ``Gamma(signal_shape, signal_scale) + N(0, signal_sd^2)`` (photons). ``empty_std``, ``occupied_mean``
         and ``occupied_std`` are the moments of these distributions.
     """
 
@@ -166,7 +166,7 @@ class ThresholdResult:
     @property
     def is_skewed(self) -> bool:
         """True when the peaks are the skewed ones (see ``skew``)."""
-        return len(self.skew) == 5 and self.has_components
+        return len(self.skew) == 6 and self.has_components
 
     def _pair(self) -> "_SkewedPair":
         # tabulated once per result (the dataclass is frozen; the cache is not a field)
@@ -318,7 +318,7 @@ def select_threshold(
         ``"normal"``: two normal peaks fitted by EM (fast: ~1-3 ms for 10,000 sites).
         ``"skewed"``: the EM result is refined by binned maximum likelihood with skewed
         peaks (see the module notes) so that the error rates follow the real tails
-        (slower: about a second; meant for calibration runs, not for every frame). With a
+        (slower: one to three seconds; meant for calibration runs, not for every frame). With a
         camera model the signal variance is kept >= ``F^2 / QE`` x its mean.
     max_iter : int
         Maximum number of EM iterations.
@@ -802,13 +802,13 @@ class _SkewedPair:
     """Empty and occupied amplitude distributions with skewed shapes, tabulated on a grid.
 
     empty    = m0 + N(0, s^2) + (Ge - ke*te),   Ge ~ Gamma(ke, te)   (background noise)
-    occupied = empty + Gs,                       Gs ~ Gamma(k, ts)    (atom signal)
+    occupied = empty + Gs + N(0, ss^2),          Gs ~ Gamma(k, ts)    (atom signal)
 
     ``ke`` = inf means a normal background (no gamma part). Amplitudes in photons.
     """
 
-    def __init__(self, m0, s, ke, te, k, ts):
-        self.params = (float(m0), float(s), float(ke), float(te), float(k), float(ts))
+    def __init__(self, m0, s, ke, te, k, ts, ss=0.0):
+        self.params = (float(m0), float(s), float(ke), float(te), float(k), float(ts), float(ss))
         gauss_bg = not (np.isfinite(ke) and ke < _MAX_GAMMA_SHAPE)
         mean_e, sd_e = (0.0, 0.0) if gauss_bg else (ke * te, math.sqrt(ke) * te)
         mean_s, sd_s = k * ts, math.sqrt(k) * ts
@@ -835,7 +835,14 @@ class _SkewedPair:
         ns = int(math.ceil((mean_s + 12 * sd_s) / h)) + 2
         ps = _gamma_cells(k, ts, h, ns)
         occ = np.convolve(self.p0, ps)
-        self.x1 = self.x0[0] + np.arange(occ.size) * h
+        if ss > 0:  # symmetric spread of the signal on top of its gamma shape
+            ms = int(math.ceil(8.0 * ss / h)) + 1
+            qs = np.arange(-ms, ms + 1)
+            occ = np.convolve(occ, special.ndtr((qs + 0.5) * h / ss) - special.ndtr((qs - 0.5) * h / ss))
+            self._occ_start = self.x0[0] - ms * h
+        else:
+            self._occ_start = self.x0[0]
+        self.x1 = self._occ_start + np.arange(occ.size) * h
         self.p1 = occ / occ.sum()
 
         # densities at the cell centres, CDFs at the cell edges (for interpolation)
@@ -859,9 +866,9 @@ class _SkewedPair:
 
     def moments(self):
         """(empty mean, empty sd, occupied mean, occupied sd) in photons."""
-        m0, s, ke, te, k, ts = self.params
+        m0, s, ke, te, k, ts, ss = self.params
         var_e = s * s + (ke * te * te if np.isfinite(ke) and ke < _MAX_GAMMA_SHAPE else 0.0)
-        return m0, math.sqrt(var_e), m0 + k * ts, math.sqrt(var_e + k * ts * ts)
+        return m0, math.sqrt(var_e), m0 + k * ts, math.sqrt(var_e + k * ts * ts + ss * ss)
 
 
 def _interp_uniform(a, start, h, values, left, right):
@@ -880,7 +887,7 @@ def _interp_uniform(a, start, h, values, left, right):
 def _fit_skewed(counts, centers, *, m0, s0, m1, s1, w1, kappa):
     """Binned maximum likelihood of the two skewed peaks, started from the normal fit.
 
-    Returns (w1, (m0, s, ke, te, k, ts)) or None when the fit fails.
+    Returns (w1, (m0, s, ke, te, k, ts, ss)) or None when the fit fails.
     """
     from scipy import optimize
 
@@ -903,14 +910,14 @@ def _fit_skewed(counts, centers, *, m0, s0, m1, s1, w1, kappa):
 
     def unpack(p):
         return (special.expit(p[0]), p[1] * s0 + m0, s0 * math.exp(p[2]), math.exp(p[3]), s0 * math.exp(p[4]),
-                math.exp(p[5]), theta_min + mean_sig * math.exp(p[6]))
+                math.exp(p[5]), theta_min + mean_sig * math.exp(p[6]), s0 * math.exp(p[7]))
 
     def nll(p):
-        w, mm0, sn, ke, te, k, ts = unpack(p)
-        if not (np.isfinite([w, mm0, sn, ke, te, k, ts]).all() and 1e-3 < ke and 1e-3 < k < 1e6):
+        w, mm0, sn, ke, te, k, ts, ss = unpack(p)
+        if not (np.isfinite([w, mm0, sn, ke, te, k, ts, ss]).all() and 1e-3 < ke and 1e-3 < k < 1e6):
             return 1e300
         try:
-            pair = _SkewedPair(mm0, sn, ke, te, k, ts)
+            pair = _SkewedPair(mm0, sn, ke, te, k, ts, ss)
         except (ValueError, MemoryError, OverflowError):
             return 1e300
         prob = (1 - w) * np.diff(pair.cdf0(edges)) + w * np.diff(pair.cdf1(edges))
@@ -920,7 +927,7 @@ def _fit_skewed(counts, centers, *, m0, s0, m1, s1, w1, kappa):
         return float(-np.sum(counts * np.log(np.clip(prob, 1e-300, None))))
 
     p0 = np.array([special.logit(min(max(w1, 1e-6), 1 - 1e-6)), 0.0, math.log(sn0 / s0), math.log(ke0),
-                   math.log(te0 / s0), math.log(k0), math.log(max(ts0, 1e-12) / mean_sig)])
+                   math.log(te0 / s0), math.log(k0), math.log(max(ts0, 1e-12) / mean_sig), math.log(0.1)])
     with np.errstate(all="ignore"):
         start = nll(p0)
         res = optimize.minimize(nll, p0, method="Nelder-Mead",
@@ -928,10 +935,10 @@ def _fit_skewed(counts, centers, *, m0, s0, m1, s1, w1, kappa):
                                          "adaptive": True})
     if not (np.isfinite(res.fun) and res.fun <= start):
         return None
-    w, mm0, sn, ke, te, k, ts = unpack(res.x)
+    w, mm0, sn, ke, te, k, ts, ss = unpack(res.x)
     if ke >= _MAX_GAMMA_SHAPE:
         ke = float("inf")
-    return w, (mm0, sn, ke, te, k, ts)
+    return w, (mm0, sn, ke, te, k, ts, ss)
 
 
 def _crossing_skewed(pair, w1, t_guess, lo, hi):
