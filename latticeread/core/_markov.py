@@ -28,18 +28,23 @@ The likelihood
 --------------
 The exact likelihood couples every site to its neighbours. We maximise a composite
 (conditional) likelihood instead: for every site ``s`` and image pair, the probability of
-its observed pattern ``(o_n, o_{n+1})`` given how many of its neighbours show each of the
-four patterns ``00, 01, 10, 11``. A neighbour ``j`` showing pattern ``y`` has sent its atom
-to ``s`` with probability
-
-    a(y) = f * hop / K * P(o_n = y_0 | atom) * P(o_{n+1} = y_1 | atom left j) / P(y),
-
-where ``f`` is the filling and ``P(y)`` the mean-field probability of pattern ``y`` for a
-site in the bulk. The number of atoms arriving at ``s`` is then a sum of independent
+its observed pattern ``(o_n, o_{n+1})`` given how many of its neighbours fall in each of six
+classes: the four patterns ``00, 01, 10, 11``, with ``01`` (appeared) and ``10``
+(vacated) split by whether another site next to that neighbour offers a competing
+explanation (see :data:`NEIGHBOUR_CLASSES`). A neighbour ``j`` of class ``c`` has sent its
+atom to ``s`` with probability ``a(c)``, and the atom of ``s`` hopping onto ``j`` makes
+``j``'s class ``r(c)`` times more likely (mean-field expressions for a site in the bulk, in
+:func:`pattern_probabilities`). The number of atoms arriving at ``s`` is a sum of independent
 Bernoulli variables (Poisson-binomial), which together with the fate of the atom of ``s``
-itself gives ``P(o_n, o_{n+1} | neighbours)``. Mixing neighbour information in this way
-is what separates a hop (an appearance next to a site that emptied) from a false positive
-(an appearance anywhere) and a loss (a disappearance with no appearance nearby).
+itself gives ``P(o_n, o_{n+1} | neighbours)``. Mixing neighbour information in this way is
+what separates a hop (an appearance next to a site that emptied) from a false positive (an
+appearance anywhere) and a loss (a disappearance with no appearance nearby).
+
+Approximations: neighbours of ``s`` are treated as independent given their classes, two
+events of one atom pair in one image (a swap) are neglected, and sites outside the region
+are taken as empty. With the figures of the issue (1 % loss, 0.5 % hopping, filling 0.3,
+200 shots of 40x40 sites) the remaining bias is a few thousandths of a percentage point
+(see bench/bench_fidelity.py); it grows at higher hopping rates and fillings.
 """
 
 from __future__ import annotations
@@ -50,6 +55,7 @@ __all__ = [
     "neighbour_offsets",
     "simulate_occupations",
     "PatternTable",
+    "NEIGHBOUR_CLASSES",
     "pattern_table",
     "negative_log_likelihood",
     "PARAMETERS",
@@ -198,6 +204,14 @@ def simulate_occupations(
     return observed, true
 
 
+#: Classes of a neighbour ``j`` of site ``s``: its pattern in the two images, and for the
+#: patterns 01 and 10 whether another site next to ``j`` offers a competing explanation
+#: ("shared": an appearance at ``j`` next to another vacated site, or a vacated ``j`` next to
+#: another appearance) or not ("clear").
+NEIGHBOUR_CLASSES = ("00", "01 clear", "01 shared", "10 clear", "10 shared", "11")
+C00, C01C, C01S, C10C, C10S, C11 = range(6)
+
+
 class PatternTable:
     """Counts of site patterns with their neighbourhood, per shot.
 
@@ -205,8 +219,8 @@ class PatternTable:
     ----------
     own : (M,) ndarray of int
         Pattern of the site itself: ``2 * o_n + o_{n+1}`` (0 = 00, 1 = 01, 2 = 10, 3 = 11).
-    neighbours : (M, 4) ndarray of int
-        Number of valid neighbours showing each of the four patterns.
+    neighbours : (M, 6) ndarray of int
+        Number of valid neighbours in each of the :data:`NEIGHBOUR_CLASSES`.
     counts : (n_shots, n_pairs, M) ndarray of int
         How often each distinct (own, neighbours) combination occurs, per shot and pair.
     n_neighbours : int
@@ -219,9 +233,14 @@ class PatternTable:
         self.counts = counts
         self.n_neighbours = int(n_neighbours)
 
+    @property
+    def vacated(self) -> np.ndarray:
+        """(M,) number of neighbours that read occupied then empty (pattern 10)."""
+        return self.neighbours[:, C10C] + self.neighbours[:, C10S]
+
 
 def pattern_table(observed: np.ndarray, *, valid: np.ndarray, offsets: np.ndarray) -> PatternTable:
-    """Tabulate the (own pattern, neighbour patterns) combinations of every site pair.
+    """Tabulate the (own pattern, neighbour classes) combinations of every site pair.
 
     Parameters
     ----------
@@ -230,7 +249,7 @@ def pattern_table(observed: np.ndarray, *, valid: np.ndarray, offsets: np.ndarra
     valid : same shape, bool
         True where the site was read out (inside the region, not masked).
     offsets : (K, 2) ndarray of int
-        Neighbour index offsets.
+        Neighbour index offsets (a symmetric set: ``d`` and ``-d``).
 
     Returns
     -------
@@ -239,36 +258,52 @@ def pattern_table(observed: np.ndarray, *, valid: np.ndarray, offsets: np.ndarra
     n_shots, n_images = observed.shape[:2]
     K = len(offsets)
     base = K + 1
+    nc = len(NEIGHBOUR_CLASSES)
     a, b = observed[:, :-1].astype(np.int64), observed[:, 1:].astype(np.int64)
     ok = valid[:, :-1] & valid[:, 1:]
     cls = np.where(ok, 2 * a + b, -1)
-    key = np.where(ok, cls * base ** 4, -1)
-    for c in range(4):
-        ind = (cls == c).astype(np.int64)
-        n_c = np.zeros_like(ind)
-        for dr, dc in offsets:
-            n_c += _shift(ind, int(dr), int(dc))
-        key = np.where(ok, key + n_c * base ** (3 - c), -1)
+    is01 = (cls == 1).astype(np.int64)
+    is10 = (cls == 2).astype(np.int64)
+    n01 = np.zeros_like(is01)
+    n10 = np.zeros_like(is10)
+    for dr, dc in offsets:
+        n01 += _shift(is01, int(dr), int(dc))
+        n10 += _shift(is10, int(dr), int(dc))
+    per_class = np.zeros(cls.shape + (nc,), np.int64)
+    for dr, dc in offsets:
+        cj = _shift(cls, int(dr), int(dc), fill=-1)
+        other10 = _shift(n10, int(dr), int(dc)) - is10     # vacated sites next to j, s excluded
+        other01 = _shift(n01, int(dr), int(dc)) - is01     # appearances next to j, s excluded
+        per_class[..., C00] += cj == 0
+        per_class[..., C01C] += (cj == 1) & (other10 == 0)
+        per_class[..., C01S] += (cj == 1) & (other10 > 0)
+        per_class[..., C10C] += (cj == 2) & (other01 == 0)
+        per_class[..., C10S] += (cj == 2) & (other01 > 0)
+        per_class[..., C11] += cj == 3
+    key = np.where(ok, cls, 0) * base ** nc
+    for c in range(nc):
+        key = key + per_class[..., c] * base ** (nc - 1 - c)
+    key = np.where(ok, key, -1)
     n_pairs = n_images - 1
     unit = np.broadcast_to(np.arange(n_shots * n_pairs).reshape(n_shots, n_pairs, 1, 1), key.shape)
     sel = key >= 0
     uniq, inv = np.unique(key[sel], return_inverse=True)
     M = uniq.size
     counts = np.bincount(unit[sel] * M + inv, minlength=n_shots * n_pairs * M).reshape(n_shots, n_pairs, M)
-    own = uniq // base ** 4
-    neighbours = np.stack([(uniq // base ** (3 - c)) % base for c in range(4)], axis=1)
+    own = uniq // base ** nc
+    neighbours = np.stack([(uniq // base ** (nc - 1 - c)) % base for c in range(nc)], axis=1)
     return PatternTable(own.astype(int), neighbours.astype(int), counts, K)
 
 
 def pattern_probabilities(theta, *, neighbours: np.ndarray, n_neighbours: int) -> np.ndarray:
-    """Model probability of each own pattern given the neighbour pattern counts.
+    """Model probability of each own pattern given the neighbour classes.
 
     Parameters
     ----------
     theta : sequence of float
         ``(filling, loss, hop, pair_loss, false_positive, false_negative)``, probabilities.
-    neighbours : (M, 4) ndarray of int
-        Neighbours showing patterns 00, 01, 10, 11.
+    neighbours : (M, 6) ndarray of int
+        Neighbours in each of the :data:`NEIGHBOUR_CLASSES`.
     n_neighbours : int
         ``K``.
 
@@ -276,65 +311,87 @@ def pattern_probabilities(theta, *, neighbours: np.ndarray, n_neighbours: int) -
     -------
     (M, 4) ndarray
         ``P(own pattern = 00, 01, 10, 11 | neighbours)``; rows sum to 1.
+
+    Notes
+    -----
+    Mean-field quantities of a bulk site ``j`` (``K`` neighbours, each occupied with
+    probability ``f``, so an atom arrives from a given neighbour with ``p = f hop / K``):
+
+    * ``P(y)``: probability of pattern ``y``;
+    * ``T(y)``: probability that ``j`` shows ``y`` and sent its atom to one given neighbour;
+    * ``R(y)``: probability that ``j`` shows ``y`` when one extra atom arrived.
+
+    For a neighbour of class ``c`` the chance that it sent its atom to ``s`` is
+    ``a(c) = T / P`` and the likelihood ratio of "the atom of ``s`` hopped onto it" is
+    ``r(c) = R / P``; for the split classes (01/10, clear/shared) numerator and denominator
+    are multiplied by the probability that no / some other site next to ``j`` shows the
+    competing pattern, with the neighbours of ``j`` taken as independent bulk sites.
     """
     f, L, H, beta, fp, fn = (float(v) for v in theta)
     K = int(n_neighbours)
-    # emission e[t, o] = P(read o | true t)
-    e = np.array([[1 - fp, fp], [fn, 1 - fn]])
-    g2 = 1.0 - beta                 # P(site ends occupied | two or more atoms met there)
-    stay = max(1.0 - L - H, 0.0)    # the site's own atom is still there
-
-    def final_occupied(p0, p1, p2):
-        """P(final occupied | own atom present) and (| own atom absent), arrivals p0/p1/p2+."""
-        with_atom = stay * (p0 + (p1 + p2) * g2) + (1 - stay) * (p1 + p2 * g2)
-        without = p1 + p2 * g2
-        return with_atom, without
-
-    # Mean-field pattern probabilities of a bulk neighbour j.
+    e = np.array([[1 - fp, fp], [fn, 1 - fn]])     # e[t, o] = P(read o | true t)
+    g2 = 1.0 - beta                                 # P(site ends occupied | two or more atoms met)
+    stay = max(1.0 - L - H, 0.0)                    # the site's own atom is still there
+    prior = np.array([1 - f, f])
     p = f * H / K
     q0 = (1 - p) ** K
     q1 = K * p * (1 - p) ** (K - 1)
     q2 = max(1.0 - q0 - q1, 0.0)
-    w1, w0 = final_occupied(q0, q1, q2)
-    prior = np.array([1 - f, f])
-    pf = np.array([w0, w1])          # P(final occupied | t)
-    py = np.empty(4)
-    for o1 in (0, 1):
-        for o2 in (0, 1):
-            py[2 * o1 + o2] = np.sum(prior * e[:, o1] * (pf * e[1, o2] + (1 - pf) * e[0, o2]))
-    # a(y): P(j sent its atom to s | j shows y)
-    a = np.empty(4)
-    for o1 in (0, 1):
-        for o2 in (0, 1):
-            after = w0 * e[1, o2] + (1 - w0) * e[0, o2]
-            a[2 * o1 + o2] = f * H / K * e[1, o1] * after / max(py[2 * o1 + o2], _EPS)
+
+    def pattern(o1, o2, occupied_at_end):
+        """P(read o1 then o2) given P(occupied at the end | t) for t = 0, 1."""
+        return float(np.sum(prior * e[:, o1] * (occupied_at_end * e[1, o2] + (1 - occupied_at_end) * e[0, o2])))
+
+    after_left = q1 + q2 * g2                       # j's own atom gone: occupied only by arrivals
+    end = np.array([after_left, stay * (q0 + (q1 + q2) * g2) + (1 - stay) * after_left])
+    end_plus_one = np.array([q0 + (1 - q0) * g2, stay * g2 + (1 - stay) * (q0 + (1 - q0) * g2)])
+    py = np.array([pattern(o1, o2, end) for o1 in (0, 1) for o2 in (0, 1)])
+    R = np.array([pattern(o1, o2, end_plus_one) for o1 in (0, 1) for o2 in (0, 1)])
+    T = np.array([f * H / K * e[1, o1] * (after_left * e[1, o2] + (1 - after_left) * e[0, o2])
+                  for o1 in (0, 1) for o2 in (0, 1)])
+    P01, P10 = py[1], py[2]
+    # Split of pattern 01 (appearance): "clear" = no other vacated site next to j.
+    p01_quiet = q0 * pattern(0, 1, np.array([0.0, stay]))       # appeared without an arrival (misread)
+    per_source = max(P01 - p01_quiet, 0.0) / K                  # appeared by an arrival from one neighbour
+    sender_vacated = T[2] / max(T.sum(), _EPS)                  # a sender reads 10
+    c0 = (1 - P10) ** (K - 1)
+    p01_clear = min(P01, (per_source + p01_quiet) * c0
+                    + (K - 1) * per_source * (1 - sender_vacated) * (1 - P10) ** max(K - 2, 0))
+    p01_shared = max(P01 - p01_clear, _EPS)
+    # Split of pattern 10 (vacated): "clear" = no other appearance next to j.
+    receiver_appears = (1 - f) * e[0, 0] * e[1, 1]              # an empty target reads 01 after a hop
+    d0 = (1 - P01) ** (K - 1)
+    p10_clear = min(P10, T[2] * d0 + (K - 1) * T[2] * (1 - receiver_appears) * (1 - P01) ** max(K - 2, 0)
+                    + max(P10 - K * T[2], 0.0) * d0)
+    p10_shared = max(P10 - p10_clear, _EPS)
+    a = np.empty(len(NEIGHBOUR_CLASSES))
+    r = np.empty(len(NEIGHBOUR_CLASSES))
+    for c, y in ((C00, 0), (C11, 3)):
+        a[c] = T[y] / max(py[y], _EPS)
+        r[c] = R[y] / max(py[y], _EPS)
+    a[C01C] = a[C01S] = T[1] / max(P01, _EPS)
+    r[C01C] = R[1] * c0 / max(p01_clear, _EPS)
+    r[C01S] = R[1] * (1 - c0) / p01_shared
+    a[C10C] = T[2] * d0 / max(p10_clear, _EPS)
+    a[C10S] = T[2] * (1 - d0) / p10_shared
+    r[C10C] = R[2] * d0 / max(p10_clear, _EPS)
+    r[C10S] = R[2] * (1 - d0) / p10_shared
     a = np.clip(a, 0.0, 1.0 - 1e-12)
-    # r(y): how much more likely j shows y when the atom of s hopped onto it.
-    v_with = stay * g2 + (1 - stay) * (q0 + (1 - q0) * g2)   # P(final occ | own atom, +1 arrival)
-    v_without = q0 + (1 - q0) * g2
-    pr = np.array([v_without, v_with])
-    r = np.empty(4)
-    for o1 in (0, 1):
-        for o2 in (0, 1):
-            r[2 * o1 + o2] = np.sum(prior * e[:, o1] * (pr * e[1, o2] + (1 - pr) * e[0, o2])) / max(
-                py[2 * o1 + o2], _EPS)
     n = np.asarray(neighbours, float)
-    logp0 = n @ np.log1p(-a)
-    p0 = np.exp(logp0)
+    # arrivals at s: Poisson-binomial over the neighbours
+    p0 = np.exp(n @ np.log1p(-a))
     p1 = p0 * (n @ (a / (1 - a)))
     p2 = np.clip(1.0 - p0 - p1, 0.0, 1.0)
-    k_in = n.sum(axis=1)
-    # Weight of "the atom of s hopped": the target is one of the K offsets; targets inside
-    # the region change that neighbour's pattern (factor r), targets outside are unseen.
-    hop_weight = H * ((n @ r) + (K - k_in)) / K
+    # weight of "the atom of s hopped": targets inside the region change that neighbour's
+    # pattern (factor r), targets outside the region (K - k_in of them) are unseen
+    hop_weight = H * ((n @ r) + (K - n.sum(axis=1))) / K
     with_atom = p0 + (p1 + p2) * g2          # own atom stayed
     without = p1 + p2 * g2                   # own atom gone (or never there)
-    branches_1 = ((stay, with_atom), (L, without), (hop_weight, without))
     out = np.zeros((n.shape[0], 4))
     for o1 in (0, 1):
         for o2 in (0, 1):
             col = (1 - f) * e[0, o1] * (without * e[1, o2] + (1 - without) * e[0, o2])
-            for w, occ in branches_1:
+            for w, occ in ((stay, with_atom), (L, without), (hop_weight, without)):
                 col = col + f * e[1, o1] * w * (occ * e[1, o2] + (1 - occ) * e[0, o2])
             out[:, 2 * o1 + o2] = col
     out /= out.sum(axis=1, keepdims=True)
@@ -350,8 +407,8 @@ def negative_log_likelihood(theta, *, own, neighbours, counts, n_neighbours) -> 
         Model parameters in the order of :data:`PARAMETERS`.
     own : (M,) ndarray of int
         Own pattern of each table entry.
-    neighbours : (M, 4) ndarray of int
-        Neighbour pattern counts of each table entry.
+    neighbours : (M, 6) ndarray of int
+        Neighbour class counts of each table entry.
     counts : (M,) ndarray
         Number of site pairs in each entry (may be bootstrap-weighted).
     n_neighbours : int

@@ -484,6 +484,7 @@ class _Fitter:
     def __init__(self, table, *, pair_loss):
         self.own = table.own
         self.neighbours = table.neighbours
+        self.vacated = table.vacated
         self.K = table.n_neighbours
         self.fit_beta = pair_loss is None
         self.beta = 1.0 if pair_loss is None else float(pair_loss)
@@ -510,19 +511,19 @@ class _Fitter:
         n_atoms = counts[self.own >= 2].sum()
         n_sites = max(counts.sum(), 1.0)
         vanished = counts[self.own == 2].sum()
-        near = counts[(self.own == 1) & (self.neighbours[:, 2] > 0)].sum()
+        near = counts[(self.own == 1) & (self.vacated > 0)].sum()
         f = min(max(n_atoms / n_sites, 1e-3), 0.999)
         hop = min(near / max(n_atoms, 1.0), 0.4) + 1e-4
         loss = min(max(vanished / max(n_atoms, 1.0) - hop, 0.0), 0.4) + 1e-4
         return [f, loss, hop, min(fp, 0.4) + 1e-4] + ([0.9] if self.fit_beta else [])
 
 
-def _counting(counts, own, neighbours):
+def _counting(counts, own, vacated):
     """Counting statistics from pattern counts (per unit in the last axis)."""
     n_atoms = counts[..., own >= 2].sum(-1)
     vanished = counts[..., own == 2].sum(-1)
     appeared = counts[..., own == 1].sum(-1)
-    near = counts[..., (own == 1) & (neighbours[:, 2] > 0)].sum(-1)
+    near = counts[..., (own == 1) & (vacated > 0)].sum(-1)
     return n_atoms, vanished, appeared, near
 
 
@@ -639,7 +640,7 @@ def estimate_fidelity(
     total = per_shot.sum(axis=0)
     if total.sum() == 0:
         raise FidelityError("no site is read out in two consecutive images: nothing to estimate")
-    own, nb = table.own, table.neighbours
+    own, nb = table.own, table.vacated
     n_atoms, vanished, appeared, near = (int(v) for v in _counting(total, own, nb))
     if n_atoms == 0:
         raise FidelityError("no atom is seen in the first image of any pair: loss and hopping cannot be estimated")
