@@ -192,7 +192,8 @@ def speed_1024(n_frames: int = 10):
             errors += int(np.sum(res.occupied[idx] != truth.initial_occupation[f]))
         print(f"1024x1024, {n_sites} sites ({len(truth.sites)} in the atom region): "
               f"{1e3 * wall / len(frames):.1f} ms/frame wall, {1e3 * cpu / len(frames):.1f} ms CPU, "
-              f"{'with' if refit else 'without'} phase fit; {errors} errors in {len(frames)} frames")
+              f"{'with' if refit else 'without'} phase fit; {errors} errors in {len(frames)} frames"
+              + ("" if refit else " (the lattice jitters from frame to frame: without the fit errors are expected)"))
     amps = res.amplitudes
     from latticeread.core.pipeline import reclassify
 

@@ -626,22 +626,30 @@ def _scan_atom(rec: Reconstructor, frames, atom: float) -> float:
 def _bright_region(stack, *, geometry: LatticeGeometry, psf: PSFModel):
     """Index bounds of the sites under the bright part of the mean frame (a cheap first cut).
 
-    The mean frame (photons) is smoothed over one PSF FWHM; pixels more than 5 robust standard
-    deviations of the smoothed frame above its median count as lit. Without this cut a large
-    frame would put every site of the whole frame into the first least-squares fit.
+    The mean frame (photons) is smoothed over a few sites; pixels more than 5 robust standard
+    deviations of the smoothed frame above its median count as lit, and patches of at least
+    ten lattice cells are kept. Without this cut a large frame would put every site of the
+    whole frame into the first least-squares fit.
     """
     from scipy import ndimage
 
     mean = stack.mean(axis=0)
-    smooth = ndimage.gaussian_filter(mean, psf.fwhm / 2.355)
+    # smooth over a few sites so that camera noise (heavy-tailed for an EMCCD) averages out
+    sigma = 1.5 * max(psf.fwhm, max(geometry.spacings))
+    smooth = ndimage.gaussian_filter(mean, sigma)
     med = np.median(smooth)
     mad = 1.4826 * np.median(np.abs(smooth - med))
     if not np.isfinite(mad) or mad <= 0:
         return None
     lit = smooth > med + 5 * mad
-    if lit.sum() < 4:
+    labels, n = ndimage.label(lit)
+    if n == 0:
         return None
-    yy, xx = np.nonzero(lit)
+    sizes = np.bincount(labels.ravel())[1:]
+    big = np.flatnonzero(sizes >= 10 * geometry.cell_area) + 1  # patches of at least ten sites
+    if big.size == 0:
+        return None
+    yy, xx = np.nonzero(np.isin(labels, big))
     r, c = geometry.fractional_indices(xx.astype(float), yy.astype(float))
     m = REGION_MARGIN + 1
     return (int(np.floor(r.min())) - m, int(np.ceil(r.max())) + m, int(np.floor(c.min())) - m,
