@@ -321,6 +321,17 @@ def test_spacing_hint_far_from_the_result_is_flagged():
     assert _errors(got, truth)[0] < 1e-3
 
 
+def test_spacing_hint_picks_the_lattice_under_a_checkerboard():
+    """A checkerboard of atoms is itself a lattice with a sqrt(2) larger cell (the documented
+    limit); the hint restores the sites' own lattice."""
+    truth = _geometry(angle=0.3, offset=(128.3, 127.6))
+    image, _ = _simulate(truth, shape=(256, 256), ratio=1.5, filling=0.95, pattern="checkerboard", seed=3)
+    plain = estimate_lattice(image[0])
+    np.testing.assert_allclose(plain.spacings, 9.8 * np.sqrt(2), rtol=1e-3)
+    hinted = estimate_lattice(image[0], spacing_hint=10.0)
+    assert _errors(hinted, truth)[0] < 1e-3 and not hinted.quality.warnings
+
+
 # --------------------------------------------------------------------------------------
 # bad input: one test per message
 # --------------------------------------------------------------------------------------
