@@ -436,6 +436,18 @@ def test_nan_pixels_are_replaced_with_a_warning(frame):
     assert _errors(est, truth)[0] < 2e-3
 
 
+def test_hot_pixels_do_not_hide_the_lattice():
+    """Twenty cosmic-ray hits at full scale in a 256^2 frame (common camera defect)."""
+    truth = _geometry(angle=0.6, offset=(128.3, 127.6))
+    image, _ = _simulate(truth, shape=(256, 256), ratio=1.2, seed=6)
+    image = image[0]
+    rng = np.random.default_rng(2)
+    image[rng.integers(0, 256, 20), rng.integers(0, 256, 20)] = 65535.0
+    est = _quiet(estimate_lattice, image)
+    assert _errors(est, truth)[0] < 2e-3
+    assert offset_error(refine_phase(image, truth), truth) < 0.1
+
+
 def test_mask_keeps_the_estimate(frame):
     image, truth = frame
     mask = np.zeros(image.shape, bool)
