@@ -47,6 +47,8 @@ NONLINEAR_BELOW = 0.7
 UNCERTAIN_RANGE = (0.1, 0.9)
 #: Sites of margin kept around the region where atoms were seen (see :func:`calibrate`).
 REGION_MARGIN = 3
+#: Largest side, in sites, of the central block on which the lattice phase is fitted.
+PHASE_BLOCK = 40
 
 
 @dataclass(frozen=True)
@@ -222,6 +224,18 @@ class Reconstructor:
             raise CalibrationError("no lattice site of the calibration lies inside the frame")
         self.basis = SiteBasis(calibration.geometry, frame_shape=shape, psf=calibration.psf, sites=self.sites,
                                mask=mask)
+        # the phase is one global number: fit it on a central block of at most PHASE_BLOCK^2 sites
+        # (its own, much narrower factorisation) instead of on every site
+        self.phase_basis = self.basis
+        if self.sites.n_rows > PHASE_BLOCK or self.sites.n_cols > PHASE_BLOCK:
+            rc, cc = int(np.median(self.sites.rows)), int(np.median(self.sites.cols))
+            h = PHASE_BLOCK // 2
+            block = lattice_sites(calibration.geometry, shape, index_bounds=(
+                max(rc - h, self.sites.row_min), min(rc + h - 1, self.sites.row_min + self.sites.n_rows - 1),
+                max(cc - h, self.sites.col_min), min(cc + h - 1, self.sites.col_min + self.sites.n_cols - 1)))
+            if len(block) >= 100:
+                self.phase_basis = SiteBasis(calibration.geometry, frame_shape=shape, psf=calibration.psf,
+                                             sites=block, mask=mask)
         self.threshold = _calibration_threshold(calibration)
         atom = calibration.notes.get("photons_per_atom") if isinstance(calibration.notes, dict) else None
         if atom is None and calibration.threshold is not None:
@@ -282,7 +296,7 @@ class Reconstructor:
                 warnings.append(f"the Fourier phase fit failed in this frame ({exc}); the model fit searched "
                                 "the whole unit cell instead")
         atom = self.atom_photons if self.method == "nonlinear" else None
-        offset, _ = self.basis.fit_offset(clean, start=start, search=search, atom_photons=atom)
+        offset, _ = self.phase_basis.fit_offset(clean, start=start, search=search, atom_photons=atom)
         shift = np.hypot(offset[0] - geometry.offset[0], offset[1] - geometry.offset[1])
         if shift > max(geometry.spacings):
             warnings.append(f"the re-fitted lattice moved by {shift:.2f} pixels, more than a lattice spacing; "
