@@ -107,6 +107,7 @@ def test_neighbour_offsets_square_and_triangular():
     assert {tuple(o) for o in neighbour_offsets(neighbour_radius=1)} == {(-1, 0), (1, 0), (0, -1), (0, 1)}
     tri = LatticeGeometry(a1=(4.0, 0.0), a2=(2.0, 2 * 3 ** 0.5))
     assert len(neighbour_offsets(neighbour_radius=1, geometry=tri)) == 6
+    assert len(neighbour_offsets(geometry=tri)) == 6                         # next-nearest at sqrt(3)
     assert len(neighbour_offsets(neighbour_radius=2, geometry=tri)) == 18   # 6 + 6 at sqrt(3) + 6 at 2
 
 

@@ -77,7 +77,9 @@ def neighbour_offsets(*, neighbour_radius: float = 2 ** 0.5, geometry=None) -> n
         (``sqrt(d_row**2 + d_col**2)``), so the default ``sqrt(2)`` gives the 4 nearest
         plus the 4 diagonal (next-nearest) neighbours of a square lattice. With
         ``geometry`` it is measured in real space in units of the shorter lattice spacing,
-        which gives the right neighbours for oblique or triangular lattices.
+        which gives the right neighbours for oblique or triangular lattices (the default
+        then keeps the 4 + 4 neighbours of a square lattice and the 6 nearest of a
+        triangular one, whose next-nearest sites lie at sqrt(3) spacings).
     geometry : LatticeGeometry, optional
         Lattice vectors (pixels) used to measure distances in real space.
 

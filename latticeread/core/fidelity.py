@@ -587,7 +587,8 @@ def estimate_fidelity(
         in index space) neighbours. See :func:`neighbour_offsets`.
     geometry : LatticeGeometry, optional
         When given, the radius is measured in real space (units of the shorter lattice
-        spacing) so oblique lattices get their true neighbours.
+        spacing) so oblique lattices get their true neighbours (a triangular lattice then
+        has 6 neighbours within the default radius).
     pair_loss : float or None, optional
         Probability that two atoms meeting on a site are both lost. Default 1 (parity
         projection); None fits it.
