@@ -148,6 +148,7 @@ class Session:
         self._generation = 0           # bumped whenever stored amplitudes become invalid
         self._reconstructor = None
         self._reconstructor_generation = -1
+        self._build_lock = threading.Lock()
         self._sites = None             # SiteGrid of the fixed site index set (from the Reconstructor)
         self._amplitudes: np.ndarray | None = None   # (n_frames, N) photons, NaN where not done
         self._flags: np.ndarray | None = None        # (n_frames, N) uint8
@@ -450,12 +451,24 @@ class Session:
             self.classification_changed.emit()
 
     def reconstructor(self):
-        """The :class:`latticeread.core.pipeline.Reconstructor` for the current calibration."""
+        """The :class:`latticeread.core.pipeline.Reconstructor` for the current calibration.
+
+        Building one factorises the site basis (seconds for large frames); reconstruct jobs
+        build it on their worker thread, so the GUI thread normally finds it ready.
+        """
         cal = self._require_calibration("reconstruct frames")
-        if self._reconstructor is None or self._reconstructor_generation != self._generation:
-            self._reconstructor = _pipeline().Reconstructor(cal)
-            self._reconstructor_generation = self._generation
-        return self._reconstructor
+        return self._reconstructor_for(cal, self._generation)
+
+    def _reconstructor_for(self, calibration, generation: int):
+        """Cached Reconstructor of ``calibration`` (thread safe; one build at a time)."""
+        with self._build_lock:
+            if self._reconstructor is None or self._reconstructor_generation != generation:
+                rec = _pipeline().Reconstructor(calibration)
+                if generation != self._generation:
+                    return rec  # stale: the session moved on while building, do not cache
+                self._reconstructor = rec
+                self._reconstructor_generation = generation
+            return self._reconstructor
 
     @property
     def done(self) -> np.ndarray:
@@ -480,14 +493,25 @@ class Session:
             return np.zeros(0)
         return self._amplitudes[self._done].ravel()
 
-    def reconstruct_job(self, indices=None, *, batch_size: int = 8) -> Callable[..., Iterator[ReconstructBatch]]:
+    def reconstruct_job(self, indices=None, *, batch_size: int = 8,
+                        processes: int = 0) -> Callable[..., Iterator[ReconstructBatch]]:
         """A generator function extracting amplitudes of ``indices`` (default: all not yet done).
 
         The returned function takes ``should_stop`` (a callable returning True to cancel) and
         yields :class:`ReconstructBatch` objects; pass each to :meth:`store_batch` on the
         session's thread. It reads frames through :meth:`frame` (thread safe).
+
+        Parameters
+        ----------
+        batch_size : int
+            Frames per batch (one batch = one call of :meth:`store_batch`).
+        processes : int
+            With ``processes >= 1`` and more than two batches of frames, the amplitudes are
+            computed in that many worker processes (started with "spawn"), so the Python
+            work of the reconstruction never competes with the GUI thread for the
+            interpreter lock; batches then arrive in completion order.
         """
-        rec = self.reconstructor()
+        cal = self._require_calibration("reconstruct frames")
         generation = self._generation
         if indices is None:
             indices = [int(i) for i in np.flatnonzero(~self._done)]
@@ -496,7 +520,16 @@ class Session:
 
         name = self._source_name()
 
+        chunks = [indices[k:k + batch_size] for k in range(0, len(indices), batch_size)]
+        if processes >= 1 and len(chunks) > 2:
+            def job(should_stop: Callable[[], bool] = lambda: False) -> Iterator[ReconstructBatch]:
+                yield from self._process_batches(cal, generation, chunks, frame, name, processes, should_stop)
+
+            job.n_frames = len(indices)  # type: ignore[attr-defined]
+            return job
+
         def job(should_stop: Callable[[], bool] = lambda: False) -> Iterator[ReconstructBatch]:
+            rec = self._reconstructor_for(cal, generation)
             for start in range(0, len(indices), batch_size):
                 if should_stop():
                     return
@@ -517,6 +550,39 @@ class Session:
 
         job.n_frames = len(indices)  # type: ignore[attr-defined]
         return job
+
+    def _process_batches(self, cal, generation, chunks, frame, name, processes, should_stop):
+        """Run chunks of frames through worker processes; yield batches as they complete."""
+        import concurrent.futures as cf
+        import multiprocessing
+
+        cal_key = json.dumps(cal.to_dict(), sort_keys=True, default=_json_default)
+        ctx = multiprocessing.get_context("spawn")
+        pool = cf.ProcessPoolExecutor(max_workers=int(processes), mp_context=ctx)
+        pending: set = set()
+        todo = list(chunks)
+        try:
+            while todo or pending:
+                while todo and len(pending) < 2 * int(processes):
+                    if should_stop():
+                        return
+                    chunk = todo.pop(0)
+                    images = np.stack([frame(i) for i in chunk])
+                    pending.add(pool.submit(_extract_in_process, cal_key, cal, chunk, images, name))
+                # while the workers run, this thread builds the session's own Reconstructor
+                # (site set and positions for the results); cached after the first pass
+                self._reconstructor_for(cal, generation)
+                done, pending = cf.wait(pending, timeout=0.5, return_when=cf.FIRST_COMPLETED)
+                if should_stop():
+                    return
+                for fut in done:
+                    rows = fut.result()
+                    yield ReconstructBatch(
+                        generation, tuple(r[0] for r in rows), tuple(r[1] for r in rows),
+                        np.stack([r[2] for r in rows]), np.stack([r[3] for r in rows]),
+                        np.asarray([r[4] for r in rows], dtype=float), tuple(r[5] for r in rows))
+        finally:
+            pool.shutdown(wait=False, cancel_futures=True)
 
     def store_batch(self, batch: ReconstructBatch) -> bool:
         """Store amplitudes from a reconstruct job; returns False for a stale batch (dropped)."""
@@ -1200,6 +1266,25 @@ class Session:
     def _protected(self) -> list:
         """Input files that an output must never overwrite."""
         return [self._frames_source] if self._frames_source else []
+
+
+#: Reconstructors built inside a worker process, by calibration (process-local cache so a
+#: worker factorises the site basis once per calibration, not once per chunk of frames).
+_WORKER_RECONSTRUCTORS: dict = {}
+
+
+def _extract_in_process(cal_key: str, calibration, indices, images, name: str) -> list:
+    """Amplitudes of a few frames, computed in a worker process (see Session.reconstruct_job)."""
+    rec = _WORKER_RECONSTRUCTORS.get(cal_key)
+    if rec is None:
+        _WORKER_RECONSTRUCTORS.clear()
+        rec = _WORKER_RECONSTRUCTORS[cal_key] = _pipeline().Reconstructor(calibration)
+    rows = []
+    for i, image in zip(indices, images):
+        g, amp, w = rec.extract_full(image, where=f"frame {i} of {name}")
+        rows.append((int(i), g, np.asarray(amp.amplitudes, dtype=float), np.asarray(amp.flags, dtype=np.uint8),
+                     float(np.mean(amp.background)), tuple(str(x) for x in w)))
+    return rows
 
 
 def _add_stats(stats: dict, block: np.ndarray, classifier) -> None:

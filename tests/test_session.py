@@ -392,3 +392,17 @@ def test_histogram_amplitudes_are_bounded(session):
     n = session.amplitudes(0).size
     assert session.histogram_amplitudes().size == 4 * n
     assert session.histogram_amplitudes(max_values=2 * n).size == 2 * n  # every other frame
+
+
+def test_worker_processes_give_the_same_amplitudes(session, simulated):
+    """Frames reconstructed in spawned worker processes equal those done in this thread."""
+    job = session.reconstruct_job(batch_size=1, processes=2)
+    for batch in job():
+        assert session.store_batch(batch)
+    assert session.done.all()
+    from latticeread.core.pipeline import Reconstructor
+
+    rec = Reconstructor(session.calibration)
+    for i in range(4):
+        _g, amp, _w = rec.extract_full(simulated[0][i])
+        np.testing.assert_array_equal(session.amplitudes(i), amp.amplitudes)

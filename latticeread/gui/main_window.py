@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import logging
 import os
+import time
 import traceback
 from pathlib import Path
 
@@ -37,6 +38,9 @@ log = logging.getLogger(__name__)
 FRAME_FILTER = "Frames (*.tif *.tiff *.h5 *.hdf5 *.npy *.npz);;All files (*)"
 SESSION_FILTER = "latticeread session (*.json)"
 REFRESH_INTERVAL_MS = 200     # redraw period while a stack is processed
+HISTOGRAM_INTERVAL_S = 1.0    # re-histogram period while a stack is processed
+#: worker processes for reconstructing a stack (keeps the interpreter lock free for the GUI)
+RECONSTRUCT_PROCESSES = max(1, min(4, (os.cpu_count() or 2)))
 AUTOSAVE_INTERVAL_S = 60
 ICON_DIR = Path(__file__).resolve().parents[2] / "icons"
 
@@ -94,6 +98,7 @@ class MainWindow(QtWidgets.QMainWindow):
         self._progress_total = 0
         self._progress_done = 0
         self._closing = False
+        self._last_histogram = 0.0
         self.setWindowTitle("latticeread")
         self.setWindowIcon(_icon("latticeread"))
         self.setAcceptDrops(True)
@@ -521,6 +526,8 @@ class MainWindow(QtWidgets.QMainWindow):
             log.exception("redraw failed")
             self.show_status(f"display error: {type(exc).__name__}: {exc}")
         self._update_actions()
+        if self._dirty and not self._refresh_timer.isActive():
+            self._refresh_timer.start(REFRESH_INTERVAL_MS)
 
     def _refresh_calibration(self) -> None:
         s = self.session
@@ -564,7 +571,14 @@ class MainWindow(QtWidgets.QMainWindow):
         s = self.session
         hp = self.histogram_panel
         if hasattr(hp, "set_amplitudes"):
-            amps = s.histogram_amplitudes()
+            busy = self.workers.running("reconstruct") is not None
+            now = time.perf_counter()
+            if busy and now - self._last_histogram < HISTOGRAM_INTERVAL_S:
+                self._dirty.add("amplitudes")  # redraw later; the stack is still growing
+                return
+            self._last_histogram = now
+            # while a stack is processed the histogram is drawn from fewer frames (display only)
+            amps = s.histogram_amplitudes(200_000 if busy else 1_000_000)
             if amps.size:
                 hp.set_amplitudes(amps)
             else:
@@ -761,7 +775,7 @@ class MainWindow(QtWidgets.QMainWindow):
             self.show_status("calibrate first (Analysis > Calibrate from frames)")
             return
         self.workers.cancel("current")
-        job = s.reconstruct_job()
+        job = s.reconstruct_job(processes=0 if self.workers.synchronous else RECONSTRUCT_PROCESSES)
         total = getattr(job, "n_frames", 0)
         if total == 0:
             self.show_status("every frame is already reconstructed")
