@@ -210,6 +210,8 @@ def test_run_stores_what_the_pipeline_gives_and_records_failures(tmp_path):
     assert run.occupation.shape == truth_occ.shape
     agree = np.mean(run.occupation == truth_occ)
     assert agree > 0.97, f"only {agree:.3f} of sites agree with the simulated truth"
+    # ... and each shot's stored lattice phase is the simulated (jittered) one.
+    np.testing.assert_allclose(run.offset, [g.offset for g in truth.geometries], rtol=0, atol=0.05)
     assert summary.mean_filling == pytest.approx(np.mean(run.filling))
     assert 0.3 < summary.mean_filling < 0.6  # simulated filling 0.45
     assert run.calibration["notes"]["index_bounds"] == cal.notes["index_bounds"]
