@@ -439,3 +439,21 @@ def test_deferred_panels_are_built_after_show(qtbot, tmp_path, sim_tif):
     s = _calibrated(w, sim_tif)
     assert w.histogram_panel.counts_label.text().startswith(f"occupied {s.pooled_counts()['occupied']}")
     assert w.docks["histogram_panel"].widget() is w.histogram_panel
+
+
+def test_analysis_settings_dialog_updates_the_session(window, sim_tif):
+    from latticeread.gui.dialogs import AnalysisSettingsDialog
+
+    _calibrated(window, sim_tif, reconstruct=False)
+    window.actions_by_name["settings"].trigger()
+    dlg = window.findChildren(AnalysisSettingsDialog)[-1]
+    controls = [w for w in dlg.findChildren(QtWidgets.QWidget)
+                if isinstance(w, (QtWidgets.QAbstractSpinBox, QtWidgets.QComboBox, QtWidgets.QPushButton))]
+    assert controls and all(w.toolTip().strip() for w in controls)
+    dlg.images_per_shot.setValue(2)
+    dlg.camera_boxes["counts_per_electron"][1].setValue(1.0)  # twice the counts per photon
+    dlg.accept()
+    s = window.session
+    assert s.settings["images_per_shot"] == 2
+    assert s.calibration.camera.counts_per_electron == 1.0
+    assert s.calibration.threshold is None  # photons changed: the threshold is chosen again
