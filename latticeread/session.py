@@ -42,7 +42,6 @@ from __future__ import annotations
 import dataclasses
 import json
 import logging
-import os
 import threading
 from pathlib import Path
 from typing import Any, Callable, Iterator

@@ -19,10 +19,8 @@ import traceback
 from pathlib import Path
 
 import numpy as np
-import pyqtgraph as pg
 from PySide6 import QtCore, QtGui, QtWidgets
 
-from latticeread import __version__
 from latticeread.errors import LatticeReadError
 from latticeread.gui import dialogs
 from latticeread.gui.image_pane import VIEW_MODES, ImagePane

@@ -15,7 +15,7 @@ from __future__ import annotations
 import inspect
 import logging
 import threading
-from typing import Any, Callable
+from typing import Callable
 
 from PySide6 import QtCore
 
