@@ -42,6 +42,7 @@ from __future__ import annotations
 import dataclasses
 import json
 import logging
+import os
 import threading
 from pathlib import Path
 from typing import Any, Callable, Iterator
@@ -557,7 +558,7 @@ class Session:
 
         cal_key = json.dumps(cal.to_dict(), sort_keys=True, default=_json_default)
         ctx = multiprocessing.get_context("spawn")
-        pool = cf.ProcessPoolExecutor(max_workers=int(processes), mp_context=ctx)
+        pool = cf.ProcessPoolExecutor(max_workers=int(processes), mp_context=ctx, initializer=_worker_priority)
         pending: set = set()
         todo = list(chunks)
         try:
@@ -1270,6 +1271,14 @@ class Session:
 #: Reconstructors built inside a worker process, by calibration (process-local cache so a
 #: worker factorises the site basis once per calibration, not once per chunk of frames).
 _WORKER_RECONSTRUCTORS: dict = {}
+
+
+def _worker_priority() -> None:
+    """Run reconstruction workers at a lower scheduling priority than the program's window."""
+    try:
+        os.nice(10)
+    except (AttributeError, OSError):  # not available on every platform
+        pass
 
 
 def _extract_in_process(cal_key: str, calibration, indices, images, name: str) -> list:
