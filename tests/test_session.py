@@ -406,3 +406,25 @@ def test_worker_processes_give_the_same_amplitudes(session, simulated):
     for i in range(4):
         _g, amp, _w = rec.extract_full(simulated[0][i])
         np.testing.assert_array_equal(session.amplitudes(i), amp.amplitudes)
+
+
+def test_psf_estimate_job_recovers_the_airy_width():
+    """Sparse frames of an ideal Airy PSF: the estimated FWHM is 0.514 lambda/NA (Born & Wolf,
+    Principles of Optics, 8.5.2) within 5 %; the estimate replaces the PSF and drops amplitudes."""
+    from latticeread.core.psf import airy_psf
+    from latticeread.core.simulate import simulate_frames
+
+    g = LatticeGeometry(a1=(0.3, 5.0), a2=(5.0, -0.3), offset=(64.2, 63.7))
+    true = airy_psf(wavelength_nm=767.0, numerical_aperture=0.75, pixel_size_nm=200.0)
+    frames, _ = simulate_frames(geometry=g, frame_shape=(128, 128), psf=true, camera=CAMERA, filling=0.05,
+                                photons_per_atom=2000.0, n_shots=6, rng=2)
+    s = Session()
+    s.set_frames(frames)
+    s.set_calibration(Calibration(geometry=g, psf=gaussian_psf(fwhm=4.0), camera=CAMERA, frame_shape=(128, 128)))
+    s.reconstruct([0])
+    psf = s.estimate_psf_job()()
+    assert psf.fwhm == pytest.approx(0.514 * 767.0 / 0.75 / 200.0, rel=0.05)
+    s.set_psf(psf)
+    assert s.calibration.psf.kind == "empirical" and s.amplitudes(0) is None
+    s.undo()
+    assert s.calibration.psf.kind == "gaussian"
