@@ -457,3 +457,24 @@ def test_analysis_settings_dialog_updates_the_session(window, sim_tif):
     assert s.settings["images_per_shot"] == 2
     assert s.calibration.camera.counts_per_electron == 1.0
     assert s.calibration.threshold is None  # photons changed: the threshold is chosen again
+
+
+def test_calibrate_from_frames_in_the_window(window, sim_tif):
+    """Analysis > Calibrate: geometry from the frames matches the forward model's lattice."""
+    assert window.open_path(sim_tif[0])
+    window.flush()  # actions are enabled by the redraw that follows loading
+    s = window.session
+    # ideal Airy PSF with the simulated width (3 px): 0.514 lambda/NA / pixel = 3 (Born & Wolf)
+    s.update_settings(camera=CAMERA.to_dict(), psf_source="airy", wavelength_nm=767.0, numerical_aperture=0.75,
+                      pixel_size_nm=0.514 * 767.0 / 0.75 / 3.0)
+    window.actions_by_name["calibrate"].trigger()
+    window.flush()
+    assert window.last_error is None and s.calibration is not None
+    assert "calibration done" in window.status_label.text()
+    frac = np.linalg.solve(GEOMETRY.basis, s.calibration.geometry.basis)
+    np.testing.assert_allclose(frac, np.round(frac), atol=0.01)
+    assert s.calibration.psf.kind == "airy" and s.calibration.psf.fwhm == pytest.approx(3.0, rel=0.01)
+    assert s.calibration.threshold is not None
+    window.reconstruct_all()
+    window.flush()
+    assert s.done.all() and window.occupation_view.summary.text().startswith("frame 0:")
