@@ -55,6 +55,22 @@ PANELS = (
 )
 
 
+#: Core modules the background tasks use. They are imported on the GUI thread before the first
+#: task starts: importing them (scipy...) in a worker thread while the Qt binding's import
+#: hook runs on another thread has crashed the process.
+CORE_MODULES = ("latticeread.core.pipeline", "latticeread.core.lattice", "latticeread.core.classify",
+                "latticeread.core.psf_estimate", "latticeread.core.fidelity", "latticeread.core.psf",
+                "latticeread.io")
+
+
+def import_core() -> None:
+    """Import every core module a background task may need (GUI thread, once)."""
+    import importlib
+
+    for name in CORE_MODULES:
+        importlib.import_module(name)
+
+
 def _icon(name: str) -> QtGui.QIcon:
     path = ICON_DIR / f"{name}.svg"
     return QtGui.QIcon(str(path)) if path.exists() else QtGui.QIcon()
@@ -88,7 +104,7 @@ class MainWindow(QtWidgets.QMainWindow):
         super().__init__(parent)
         self.setObjectName("latticeread_main")
         self.app_settings = settings or AppSettings()
-        self.workers = WorkerPool(synchronous=synchronous, parent=self)
+        self.workers = WorkerPool(synchronous=synchronous, parent=self, before_start=import_core)
         self.session: Session | None = None
         self._connections: list = []
         self._dirty: set[str] = set()
@@ -189,6 +205,7 @@ class MainWindow(QtWidgets.QMainWindow):
         self._mark("frames", "frame", "calibration", "amplitudes", "classification", "threshold", "fidelity",
                    "settings")
         self._restore_view_options()
+        import_core()  # now, while the user looks at the window, not when the first analysis starts
 
     def _add_dock(self, key: str, title: str, widget, area: str, tip: str) -> None:
         dock = QtWidgets.QDockWidget(title, self)

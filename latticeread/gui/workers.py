@@ -129,13 +129,17 @@ class WorkerPool(QtCore.QObject):
         Run every task immediately in the caller's thread (for tests).
     max_threads : int, optional
         Size of the private thread pool (default: 2).
+    before_start : callable, optional
+        Called once on the submitting (GUI) thread before the first task starts, e.g. to
+        import modules there rather than in a worker thread.
     """
 
     busy_changed = QtCore.Signal(bool)
 
-    def __init__(self, *, synchronous: bool = False, max_threads: int = 2, parent=None):
+    def __init__(self, *, synchronous: bool = False, max_threads: int = 2, before_start=None, parent=None):
         super().__init__(parent)
         self.synchronous = synchronous
+        self._before_start = before_start
         self._pool = QtCore.QThreadPool(self)
         self._pool.setMaxThreadCount(max(1, int(max_threads)))
         self._tasks: dict[str, Task] = {}
@@ -143,6 +147,9 @@ class WorkerPool(QtCore.QObject):
     def submit(self, key: str, fn: Callable, *, on_yield=None, on_result=None, on_error=None,
                on_end=None) -> Task:
         """Start ``fn(should_stop)`` under ``key``; cancels a running task with the same key."""
+        if self._before_start is not None:
+            hook, self._before_start = self._before_start, None
+            hook()
         old = self._tasks.get(key)
         if old is not None and not old.is_finished:
             old.cancel()
