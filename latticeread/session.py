@@ -1088,11 +1088,30 @@ class Session:
         the frames themselves when they came from memory rather than a file). Both files are
         written atomically; refuses to overwrite the frame file.
         """
-        path = Path(path)
-        if path.suffix.lower() != ".json":
-            path = path.with_suffix(".json")
-        h5_path = path.with_suffix(".h5")
-        self._write_results_h5(h5_path)
+        path = _write_session(path, self._snapshot())
+        self._set_modified(False)
+        self.message.emit(f"session saved to {path.name}")
+        return path
+
+    def autosave(self, path) -> Path | None:
+        """Save quietly for crash recovery (only when something changed since the last save)."""
+        job = self.autosave_job(path)
+        return None if job is None else job()
+
+    def autosave_job(self, path):
+        """A function writing a copy of the session for crash recovery (any thread), or None
+        when nothing changed since the last save. The copy is taken now, on this thread."""
+        if not self._modified or self._frames is None:
+            return None
+        snapshot = self._snapshot()
+
+        def job(should_stop: Callable[[], bool] = lambda: False):
+            return _write_session(path, snapshot)
+
+        return job
+
+    def _snapshot(self) -> dict:
+        """Everything :func:`_write_session` needs, copied so the session may change meanwhile."""
         doc = {
             "format": SESSION_FORMAT,
             "format_version": SESSION_FORMAT_VERSION,
@@ -1103,55 +1122,23 @@ class Session:
             "current_index": self._index,
             "calibration": None if self._calibration is None else self._calibration.to_dict(),
             "undo": [None if c is None else c.to_dict() for c in self._undo[-20:]],
-            "settings": self._settings,
-            "results_file": h5_path.name,
+            "settings": dict(self._settings),
         }
-        text = json.dumps(doc, indent=1, default=_json_default)
-        from latticeread.io import atomic_write
-
-        with atomic_write(path, "w", protect=self._protected()) as fh:
-            fh.write(text)
-        self._set_modified(False)
-        self.message.emit(f"session saved to {path.name}")
-        return path
-
-    def autosave(self, path) -> Path | None:
-        """Save quietly for crash recovery (only when something changed since the last save)."""
-        if not self._modified or self._frames is None:
-            return None
-        was = self._modified
-        path = self.save(path)
-        self._set_modified(was)
-        return path
-
-    def _write_results_h5(self, h5_path: Path) -> None:
-        import h5py
-
-        from latticeread.io import atomic_path
-
-        with atomic_path(h5_path, protect=self._protected()) as tmp:
-            with h5py.File(tmp, "w") as f:
-                f.attrs["format"] = SESSION_FORMAT
-                f.attrs["program_version"] = __version__
-                f.attrs["generation_calibration"] = json.dumps(
-                    None if self._calibration is None else self._calibration.to_dict(), default=_json_default)
-                if self._frames is not None and self._frames_source is None:
-                    frames = np.stack([self.frame(i) for i in range(self.n_frames)])
-                    f.create_dataset("frames", data=frames, compression="gzip")
-                if self._amplitudes is not None:
-                    s = self._sites
-                    f.create_dataset("rows", data=s.rows)
-                    f.create_dataset("cols", data=s.cols)
-                    f.create_dataset("done", data=self._done)
-                    f.create_dataset("amplitude", data=self._amplitudes, compression="gzip")
-                    f.create_dataset("flags", data=self._flags, compression="gzip")
-                    offsets = np.full((self.n_frames, 2), np.nan)
-                    for i, g in enumerate(self._geometries):
-                        if g is not None:
-                            offsets[i] = g.offset
-                    f.create_dataset("offset", data=offsets)
-                    f.create_dataset("background", data=self._backgrounds)
-                    f.attrs["frame_warnings"] = json.dumps([list(w) for w in self._warnings])
+        snap: dict[str, Any] = {"doc": doc, "protect": self._protected(), "frames": None, "results": None}
+        if self._frames is not None and self._frames_source is None:
+            snap["frames"] = (self._frame_reader(), self.n_frames)
+        if self._amplitudes is not None:
+            offsets = np.full((self.n_frames, 2), np.nan)
+            for i, g in enumerate(self._geometries):
+                if g is not None:
+                    offsets[i] = g.offset
+            snap["results"] = {
+                "rows": self._sites.rows, "cols": self._sites.cols, "done": self._done.copy(),
+                "amplitude": self._amplitudes.copy(), "flags": self._flags.copy(), "offset": offsets,
+                "background": self._backgrounds.copy(),
+                "frame_warnings": json.dumps([list(w) for w in self._warnings]),
+            }
+        return snap
 
     @classmethod
     def open(cls, path) -> "Session":
@@ -1293,6 +1280,42 @@ def _extract_in_process(cal_key: str, calibration, indices, images, name: str) -
         rows.append((int(i), g, np.asarray(amp.amplitudes, dtype=float), np.asarray(amp.flags, dtype=np.uint8),
                      float(np.mean(amp.background)), tuple(str(x) for x in w)))
     return rows
+
+
+def _write_session(path, snap: dict) -> Path:
+    """Write a session snapshot: the HDF5 results file first, then the JSON (both atomic)."""
+    import h5py
+
+    from latticeread.io import atomic_path, atomic_write
+
+    path = Path(path)
+    if path.suffix.lower() != ".json":
+        path = path.with_suffix(".json")
+    h5_path = path.with_suffix(".h5")
+    doc = dict(snap["doc"], results_file=h5_path.name)
+    with atomic_path(h5_path, protect=snap["protect"]) as tmp:
+        with h5py.File(tmp, "w") as f:
+            f.attrs["format"] = SESSION_FORMAT
+            f.attrs["program_version"] = __version__
+            if snap["frames"] is not None:
+                read, n = snap["frames"]
+                first = read(0)
+                ds = f.create_dataset("frames", shape=(n,) + first.shape, dtype=first.dtype,
+                                      chunks=(1,) + first.shape, compression="lzf")
+                for i in range(n):
+                    ds[i] = first if i == 0 else read(i)
+            res = snap["results"]
+            if res is not None:
+                for key in ("rows", "cols", "done", "offset", "background"):
+                    f.create_dataset(key, data=res[key])
+                # lzf: fast enough to autosave thousands of frames without a long pause
+                f.create_dataset("amplitude", data=res["amplitude"], compression="lzf")
+                f.create_dataset("flags", data=res["flags"], compression="lzf")
+                f.attrs["frame_warnings"] = res["frame_warnings"]
+    text = json.dumps(doc, indent=1, default=_json_default)
+    with atomic_write(path, "w", protect=snap["protect"]) as fh:
+        fh.write(text)
+    return path
 
 
 def _add_stats(stats: dict, block: np.ndarray, classifier) -> None:

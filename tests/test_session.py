@@ -428,3 +428,15 @@ def test_psf_estimate_job_recovers_the_airy_width():
     assert s.calibration.psf.kind == "empirical" and s.amplitudes(0) is None
     s.undo()
     assert s.calibration.psf.kind == "gaussian"
+
+
+def test_autosave_job_writes_the_state_of_when_it_was_made(session, tmp_path):
+    session.reconstruct([0, 1])
+    session.set_threshold(200.0)
+    job = session.autosave_job(tmp_path / "auto.json")  # snapshot taken here (GUI thread)
+    session.set_threshold(400.0)
+    session.reconstruct([2])
+    path = job()  # written later (worker thread in the program)
+    again = Session.open(path)
+    assert again.calibration.threshold == 200.0
+    assert list(again.done) == [True, True, False, False]

@@ -593,7 +593,7 @@ class MainWindow(QtWidgets.QMainWindow):
                 return
             self._last_histogram = now
             # while a stack is processed the histogram is drawn from fewer frames (display only)
-            amps = s.histogram_amplitudes(200_000 if busy else 1_000_000)
+            amps = s.histogram_amplitudes(200_000 if busy else 500_000)
             if amps.size:
                 hp.set_amplitudes(amps)
             else:
@@ -1077,12 +1077,26 @@ class MainWindow(QtWidgets.QMainWindow):
         if s is None or not s.modified or s.frames is None or self.workers.running("reconstruct"):
             return
         path = self.app_settings.autosave_path()
-        try:
-            path.parent.mkdir(parents=True, exist_ok=True)
-            s.autosave(path)
-        except Exception as exc:  # noqa: BLE001 - autosave must never interrupt the user
+
+        def failed(exc):  # autosave must never interrupt the user with a dialog
             log.warning("autosave failed: %s", exc)
             self.show_status(f"autosave failed: {exc}")
+
+        try:
+            path.parent.mkdir(parents=True, exist_ok=True)
+            job = s.autosave_job(path)
+        except Exception as exc:  # noqa: BLE001
+            failed(exc)
+            return
+        if job is None:
+            return
+        if self._closing:
+            try:
+                job()  # the window is going away: write it now
+            except Exception as exc:  # noqa: BLE001
+                failed(exc)
+            return
+        self.workers.submit("autosave", job, on_error=failed)
 
     def _schedule_autosave(self) -> None:
         if self._autosave_timer.isActive():
