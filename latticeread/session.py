@@ -223,6 +223,30 @@ class Session:
         stack = load_frames(path, dataset=dataset)
         self.set_frames(stack, source=str(Path(path).resolve()), dataset=dataset)
 
+    def load_calibration(self, path) -> None:
+        """Use the calibration saved in ``path`` (JSON from ``latticeread calibrate`` or an export).
+
+        Raises
+        ------
+        CalibrationError
+            The file is not a calibration, misses keys, or was made for another frame size.
+        """
+        from latticeread.io import load_calibration
+
+        self.set_calibration(load_calibration(path))
+        self.message.emit(f"calibration loaded from {Path(path).name}")
+
+    @staticmethod
+    def sidecar_calibration(frames_path) -> Path | None:
+        """A calibration file that belongs to ``frames_path``: ``<stem>.calibration.json`` beside it,
+        else ``calibration.json`` in the same folder; None when there is none."""
+        frames_path = Path(frames_path)
+        for candidate in (frames_path.with_name(frames_path.stem + ".calibration.json"),
+                          frames_path.with_name("calibration.json")):
+            if candidate.is_file():
+                return candidate
+        return None
+
     def set_frames(self, frames, *, source: str | None = None, dataset: str | None = None) -> None:
         """Use ``frames`` (a FrameStack or an (n, H, W) / (H, W) array) and drop stored results."""
         if isinstance(frames, np.ndarray):

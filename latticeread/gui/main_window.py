@@ -35,6 +35,19 @@ log = logging.getLogger(__name__)
 
 FRAME_FILTER = "Frames (*.tif *.tiff *.h5 *.hdf5 *.npy *.npz);;All files (*)"
 SESSION_FILTER = "latticeread session (*.json)"
+CALIBRATION_FILTER = "latticeread calibration (*.json);;All files (*)"
+
+
+def _is_calibration_file(path) -> bool:
+    """True when ``path`` is a calibration JSON (not a saved session)."""
+    import json
+
+    try:
+        with open(path, encoding="utf-8") as fh:
+            head = json.load(fh)
+    except (OSError, ValueError):
+        return False
+    return isinstance(head, dict) and head.get("format") == "latticeread-calibration"
 REFRESH_INTERVAL_MS = 200     # redraw period while a stack is processed
 HISTOGRAM_INTERVAL_S = 1.0    # re-histogram period while a stack is processed
 #: worker processes for reconstructing a stack (keeps the interpreter lock free for the GUI)
@@ -268,6 +281,9 @@ class MainWindow(QtWidgets.QMainWindow):
         a["open_session"] = self._action("Open &session...", self._open_session_dialog,
                                          tip="Reopen a saved session (frames, calibration, results)",
                                          shortcut="Ctrl+Shift+O")
+        a["load_calibration"] = self._action("&Load calibration...", self._load_calibration_dialog,
+                                             tip="Use a calibration JSON (from 'latticeread calibrate' or an "
+                                             "export) for the open frames", shortcut="Ctrl+L")
         a["save_session"] = self._action("&Save session", self._save_session, tip="Save the session next to its "
                                          "results file", shortcut=K.Save, icon="save")
         a["save_session_as"] = self._action("Save session &as...", lambda: self._save_session(ask=True),
@@ -341,6 +357,7 @@ class MainWindow(QtWidgets.QMainWindow):
         self.recent_menu.setToolTipsVisible(True)
         self._update_recent_menu()
         m.addSeparator()
+        m.addAction(a["load_calibration"])
         for k in ("open_session", "save_session", "save_session_as"):
             m.addAction(a[k])
         m.addSeparator()
@@ -961,9 +978,33 @@ class MainWindow(QtWidgets.QMainWindow):
         """Open frames (or a saved session, for .json) from ``path``; errors go to a dialog."""
         path = Path(path)
         if path.suffix.lower() == ".json":
+            if _is_calibration_file(path):
+                return self.load_calibration(path)
             return self.open_session(path)
         self.show_status(f"opening {path.name} ...")
-        return self._guard(lambda: self.session.open_frames(path))
+        if not self._guard(lambda: self.session.open_frames(path)):
+            return False
+        sidecar = Session.sidecar_calibration(path)
+        if sidecar is not None and self.session.calibration is None:
+            self.load_calibration(sidecar)
+        return True
+
+    def load_calibration(self, path) -> bool:
+        """Use a calibration JSON for the open frames; errors (wrong frame size...) go to a dialog."""
+        path = Path(path)
+        if self.session.frames is None:
+            self.show_status("open a frame file first, then load its calibration")
+            return False
+        ok = self._guard(lambda: self.session.load_calibration(path))
+        if ok:
+            self.show_status(f"calibration loaded from {path.name}")
+        return ok
+
+    def _load_calibration_dialog(self) -> None:
+        name, _ = QtWidgets.QFileDialog.getOpenFileName(self, "Load calibration", str(self._default_dir()),
+                                                        CALIBRATION_FILTER)
+        if name:
+            self.load_calibration(name)
 
     def open_session(self, path) -> bool:
         try:
