@@ -986,7 +986,9 @@ class MainWindow(QtWidgets.QMainWindow):
             return False
         sidecar = Session.sidecar_calibration(path)
         if sidecar is not None and self.session.calibration is None:
-            self.load_calibration(sidecar)
+            opened = self.status_label.text()
+            if self.load_calibration(sidecar):
+                self.show_status(f"{opened}; calibration loaded from {sidecar.name}")
         return True
 
     def load_calibration(self, path) -> bool:
