@@ -442,7 +442,10 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
     frames : (n, H, W) or (H, W) ndarray, FrameStack or sequence of (H, W) arrays
         Raw camera frames in counts; at most ``max_frames`` (evenly spread) are used.
     psf : PSFModel, optional
-        Known PSF; default: estimated from isolated atoms (:func:`estimate_psf`).
+        Known PSF; default: estimated from isolated atoms (:func:`estimate_psf`), or, when the
+        frames are too dense for that, a round Gaussian/Airy PSF whose width is fitted on the
+        frames (:func:`latticeread.core.psf_width.fit_psf_width`; noted in ``psf_width_fit``
+        and ``warnings``).
     camera : CameraModel, optional
         Counts-to-photons conversion; default: 1 count = 1 photon, no offset.
     pixel_size_nm : float, optional
@@ -497,10 +500,26 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
 
         geometry = _estimate_geometry(clean, estimate_lattice)
         notes["geometry_estimated"] = True
+    psf_warnings: list[str] = []
     if psf is None:
         from latticeread.core.psf_estimate import estimate_psf  # the classification engineer's module
 
-        psf = estimate_psf(clean, geometry)
+        try:
+            psf = estimate_psf(clean, geometry)
+        except ReconstructionError as exc:
+            # dense frames have no isolated atoms: fit the width of a round PSF on the frames
+            from latticeread.core.psf_width import fit_psf_width
+
+            try:
+                fitted = fit_psf_width(clean, geometry=geometry)
+            except ReconstructionError as fallback:
+                raise ReconstructionError(
+                    f"{exc}; a PSF width fit on the frames failed too ({fallback}); give the PSF from the optics "
+                    "instead (--psf airy --wavelength-nm --na --pixel-size-nm)") from fallback
+            psf = fitted.psf
+            notes["psf_width_fit"] = {"kind": fitted.kind, "fwhm": fitted.fwhm, "n_frames": fitted.n_frames,
+                                      "why": str(exc)}
+            psf_warnings.extend(fitted.warnings)
         notes["psf_estimated"] = True
     ratio = min(geometry.spacings) / psf.fwhm
     if method is None:
@@ -578,8 +597,8 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
     notes["threshold_result"] = tr.to_dict()
     if np.isfinite(atom) and atom > 0:
         notes["photons_per_atom"] = float(atom)
-    if warnings or tr.warnings:
-        notes["warnings"] = sorted(set(warnings) | set(tr.warnings))
+    if warnings or tr.warnings or psf_warnings:
+        notes["warnings"] = sorted(set(warnings) | set(tr.warnings) | set(psf_warnings))
     return Calibration(geometry=geometry, psf=psf, camera=camera, frame_shape=shape, threshold=float(tr.threshold),
                        threshold_method=threshold_method, amplitude_method=method, pixel_size_nm=pixel_size_nm,
                        notes=notes)
