@@ -579,7 +579,7 @@ class FrameStack:
 
     def _apply_policy(self, report: FrameReport) -> None:
         if report.n_nonfinite and self.nonfinite == "raise":
-            raise FrameError(report.problems[0] + "; pass nonfinite='keep' to mask them instead")
+            raise FrameError(report.problems[0] + " (such frames cannot be analysed; in a script, load_frames(..., nonfinite='keep') masks the pixels instead)")
         for text in report.problems:
             if "non-finite" in text:
                 continue
