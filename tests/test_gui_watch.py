@@ -160,3 +160,61 @@ def test_every_panel_control_has_a_tooltip(qtbot):
     labels = [w for w in panel.findChildren(QtWidgets.QLabel) if w.text()]
     missing = [w.text() if hasattr(w, "text") else type(w).__name__ for w in controls + labels if not w.toolTip()]
     assert not missing
+
+
+def _window(qtbot, tmp_path):
+    from latticeread.gui.app import make_app
+    from latticeread.gui.main_window import MainWindow
+    from latticeread.gui.settings import AppSettings
+
+    make_app()
+    window = MainWindow(settings=AppSettings(tmp_path / "settings.ini"), synchronous=True, offer_restore=False,
+                        autosave_interval_s=0)
+    qtbot.addWidget(window)
+    window.show()
+    qtbot.waitExposed(window)
+    return window
+
+
+def test_window_watch_needs_a_calibration(qtbot, tmp_path):
+    window = _window(qtbot, tmp_path)
+    action = window.actions_by_name["watch"]
+    assert action.toolTip()
+    from PySide6 import QtWidgets
+
+    analysis = [m for m in window.menuBar().findChildren(QtWidgets.QMenu) if m.title() == "&Analysis"][0]
+    assert action in analysis.actions()
+    action.trigger()  # no calibration: no dialog, a status message
+    assert window.status_label.text().startswith("calibrate first")
+    assert not window.start_watch(tmp_path, tmp_path / "run.h5")
+    assert "watch" not in window.docks
+
+
+def test_window_shows_each_new_file_in_the_image_pane(qtbot, tmp_path, demo, request):
+    frames, _calibration, _truth = demo
+    window = _window(qtbot, tmp_path)
+    assert window.open_path(STACK), window.last_error  # its calibration loads from the sidecar JSON
+    assert window.session.calibration is not None
+    window.flush()
+    folder = tmp_path / "camera"
+    folder.mkdir()
+    out = tmp_path / "live.h5"
+    assert window.start_watch(folder, out)
+    request.addfinalizer(window.stop_watch)
+    panel, controller = window.watch_panel, window.watch_controller
+    assert window.docks["watch"].isVisible()
+    qtbot.waitUntil(lambda: controller.timer_active, timeout=20000)
+
+    for n, index in enumerate((5, 2), start=1):
+        _write_atomically(folder / f"live_{n:03d}.tif", frames[index])
+        qtbot.waitUntil(lambda n=n: panel.shots_label.text() == str(n), timeout=1000)
+        qtbot.waitUntil(lambda i=index: window.image_pane._image is not None
+                        and np.array_equal(window.image_pane._image, frames[i]), timeout=1000)
+        assert window.status_label.text().startswith(f"live: live_{n:03d}.tif[0]")
+    assert len(panel.filling_curve.getData()[0]) == 2
+    # the grid follows the phase of the newest shot
+    assert window.image_pane._geometry.offset == pytest.approx(controller.last_shot.offset)
+
+    window.close()  # closing the window stops the watch and closes the run file
+    assert not controller.is_running and not controller.timer_active
+    assert len(read_run(out)) == 2

@@ -317,6 +317,9 @@ class MainWindow(QtWidgets.QMainWindow):
                                      shortcut="Ctrl+Shift+F", icon="fidelity")
         a["cancel"] = self._action("&Cancel", self.cancel_work, tip="Stop the running analysis",
                                    shortcut="Esc", icon="cancel")
+        a["watch"] = self._action("&Watch a folder...", self._watch_dialog,
+                                  tip="Reconstruct every new frame file written into a folder with the current "
+                                  "calibration and append it to a run file (HDF5)")
         a["next"] = self._action("&Next frame", lambda: self.step_frame(+1), tip="Show the next frame",
                                  shortcut=["Right", "PgDown"], icon="next-frame")
         a["prev"] = self._action("&Previous frame", lambda: self.step_frame(-1), tip="Show the previous frame",
@@ -384,6 +387,7 @@ class MainWindow(QtWidgets.QMainWindow):
         m.setToolTipsVisible(True)
         for k in ("calibrate", "estimate_geometry", "estimate_psf", "reconstruct", "fidelity"):
             m.addAction(a[k])
+        m.addAction(a["watch"])
         m.addSeparator()
         m.addAction(a["cancel"])
         m = menu.addMenu("&View")
@@ -1185,9 +1189,61 @@ class MainWindow(QtWidgets.QMainWindow):
             event.acceptProposedAction()
             self.open_path(files[0])
 
+    # ---------------------------------------------------------------- live watch
+    def _watch_dialog(self) -> None:
+        if self.session.calibration is None:
+            self.show_status("calibrate first: the watch reconstructs new files with the current calibration")
+            return
+        folder = QtWidgets.QFileDialog.getExistingDirectory(self, "Folder to watch", str(self._default_dir()))
+        if not folder:
+            return
+        out, _ = QtWidgets.QFileDialog.getSaveFileName(self, "Run file for the watched shots",
+                                                       str(Path(folder) / "run.h5"), "HDF5 run file (*.h5)")
+        if out:
+            self.start_watch(folder, out)
+
+    def start_watch(self, folder, out) -> bool:
+        """Watch ``folder`` with the session's calibration, appending shots to the run file ``out``."""
+        from latticeread.gui.watch_mode import LiveWatchController, LiveWatchPanel
+
+        cal = self.session.calibration
+        if cal is None:
+            self.show_status("calibrate first: the watch reconstructs new files with the current calibration")
+            return False
+        self.stop_watch()
+        if "watch" not in self.docks:
+            self.watch_panel = LiveWatchPanel()
+            self._add_dock("watch", "Live watch", self.watch_panel, "right",
+                           "Frame files reconstructed as they appear in a folder: counters and trends")
+        self.watch_controller = LiveWatchController(folder, calibration=cal, out=out, parent=self)
+        self.watch_panel.attach(self.watch_controller)
+        self.watch_controller.frameReady.connect(self._show_live_shot)
+        self.watch_controller.errorOccurred.connect(lambda msg: self.show_status(f"watch stopped: {msg}"))
+        self.docks["watch"].show()
+        self.docks["watch"].raise_()
+        self.watch_controller.start()
+        self.show_status(f"watching {folder} (run file {Path(out).name})")
+        return True
+
+    def stop_watch(self) -> None:
+        controller = getattr(self, "watch_controller", None)
+        if controller is not None and controller.is_running:
+            controller.stop()
+            self.show_status("watch stopped; the run file is closed")
+
+    def _show_live_shot(self, shot) -> None:
+        cal = self.session.calibration
+        photons = None if cal is None else cal.camera.counts_to_photons(shot.image)
+        self.image_pane.set_frame(shot.image, index=0, n_frames=1, photons=photons)
+        if cal is not None:
+            self.image_pane.set_lattice(cal.geometry.with_offset(shot.offset), None)
+        self.show_status(f"live: {Path(shot.source).name}[{shot.frame_index}] filling {shot.filling:.3f} "
+                         f"(shot {shot.shot_number})")
+
     # ---------------------------------------------------------------- close
     def closeEvent(self, event: QtGui.QCloseEvent) -> None:
         self._closing = True
+        self.stop_watch()
         self.workers.shutdown()
         self.app_settings.save_window(self)
         self.app_settings.sync()

@@ -451,15 +451,16 @@ class LiveWatchPanel(QtWidgets.QWidget):
         self.offset_plot = pg.PlotWidget()
         self.offset_plot.setToolTip("Lattice offset x and y (pixels) of every shot against the shot number: "
                                     "a drifting phase shows up here")
-        self.offset_plot.setLabel("left", "offset", units="px")
+        self.offset_plot.setLabel("left", "offset (px)")
         self.offset_plot.setLabel("bottom", "shot")
         self.offset_plot.showGrid(x=True, y=True, alpha=0.3)
-        self.offset_plot.addLegend(offset=(5, 5))
+        self.offset_plot.addLegend(offset=(-5, 5), colCount=2)
         self.offset_x_curve = self.offset_plot.plot([], [], pen=pg.mkPen("#d62728", width=1.5), symbol="o",
                                                     symbolSize=4, symbolBrush="#d62728", name="x")
         self.offset_y_curve = self.offset_plot.plot([], [], pen=pg.mkPen("#2ca02c", width=1.5), symbol="t",
                                                     symbolSize=4, symbolBrush="#2ca02c", name="y")
         for plot in (self.filling_plot, self.offset_plot):
+            plot.getAxis("left").enableAutoSIPrefix(False)  # fractions and pixels, never "x0.001"
             plot.setMinimumHeight(140)
             plot.setBackground("w")
             layout.addWidget(plot, 1)
