@@ -39,7 +39,7 @@ def _dense_frames(psf=None, *, shots=3, seed=0):
 
 @pytest.fixture(scope="module")
 def airy_frames():
-    return _dense_frames(seed=11)
+    return _dense_frames(shots=1, seed=11)
 
 
 def test_demo_optics_are_the_ones_this_test_assumes():
@@ -49,43 +49,33 @@ def test_demo_optics_are_the_ones_this_test_assumes():
     assert psf.params["pixel_size_nm"] == PIXEL_NM
 
 
-def test_airy_width_on_dense_frames_matches_born_wolf(airy_frames):
-    photons, kw = airy_frames
-    fit = fit_psf_width(photons, geometry=kw["geometry"])
-    assert fit.kind == "airy"  # the right shape wins over the Gaussian
-    assert fit.residual_by_kind["airy"] < fit.residual_by_kind["gaussian"]
-    assert abs(fit.fwhm / BORN_WOLF_FWHM - 1) < 0.03
-    assert fit.psf.fwhm == pytest.approx(fit.fwhm)
-    assert fit.psf.params["source"] == WIDTH_FIT_SOURCE
-    assert fit.psf.params["n_frames"] == 3
-    assert fit.psf.params["warnings"] and "not measured from isolated atoms" in fit.psf.params["warnings"][0]
-    assert fit.signal_ratio > 10
-
-
-def test_gaussian_width_on_dense_frames_is_recovered():
-    photons, kw = _dense_frames(gaussian_psf(fwhm=2.4), shots=2, seed=12)
-    fit = fit_psf_width(photons, geometry=kw["geometry"], n_frames=2)
-    assert fit.kind == "gaussian"
-    assert abs(fit.fwhm / 2.4 - 1) < 0.03
-    assert fit.psf.params["sigma"] == pytest.approx(fit.fwhm / (2 * np.sqrt(2 * np.log(2))))
-
-
-def test_calibrate_falls_back_to_the_width_fit_on_dense_frames(airy_frames):
-    photons, kw = airy_frames
-    cal = calibrate(photons, geometry=kw["geometry"])
-    assert cal.psf.params["source"] == WIDTH_FIT_SOURCE
-    assert abs(cal.psf.fwhm / BORN_WOLF_FWHM - 1) < 0.03
-    assert "isolated atoms" in cal.notes["psf_width_fit"]["why"]
-    assert any("width fit on dense frames" in w for w in cal.notes["warnings"])
-
-
-def test_cli_calibrate_on_the_bundled_dense_demo_succeeds(tmp_path):
+def test_cli_calibrate_on_the_dense_demo_fits_the_born_wolf_airy_width(tmp_path):
+    """The bundled demo: forward model of demo_scenario("square"), filling 0.45, no isolated atoms."""
     out = tmp_path / "cal.json"
     assert main(["calibrate", str(DEMO_SQUARE), "--out", str(out)]) == 0
     data = json.loads(out.read_text())
-    assert data["psf"]["params"]["source"] == WIDTH_FIT_SOURCE
-    # the demo README: Airy FWHM 2.70 pixels
-    assert abs(data["psf"]["fwhm"] / BORN_WOLF_FWHM - 1) < 0.03
+    psf = data["psf"]
+    assert psf["params"]["source"] == WIDTH_FIT_SOURCE
+    assert psf["params"]["n_frames"] == 2
+    assert psf["kind"] == "airy"  # the right shape wins over the Gaussian
+    assert psf["params"]["residual_airy"] < psf["params"]["residual_gaussian"]
+    assert abs(psf["fwhm"] / BORN_WOLF_FWHM - 1) < 0.03
+    assert abs(psf["params"]["lambda_over_na"] / (WAVELENGTH_NM / NA / PIXEL_NM) - 1) < 0.03
+    assert "not measured from isolated atoms" in psf["params"]["warnings"][0]
+    notes = data["notes"]
+    assert "isolated atoms" in notes["psf_width_fit"]["why"]
+    assert any("width fit on dense frames" in w for w in notes["warnings"])
+
+
+def test_gaussian_width_on_dense_frames_is_recovered():
+    photons, kw = _dense_frames(gaussian_psf(fwhm=2.4), shots=1, seed=12)
+    fit = fit_psf_width(photons, geometry=kw["geometry"])
+    assert fit.kind == "gaussian"
+    assert fit.residual_by_kind["gaussian"] < fit.residual_by_kind["airy"]
+    assert abs(fit.fwhm / 2.4 - 1) < 0.03
+    assert fit.psf.params["sigma"] == pytest.approx(fit.fwhm / (2 * np.sqrt(2 * np.log(2))))
+    assert fit.psf.params["source"] == WIDTH_FIT_SOURCE
+    assert fit.signal_ratio > 10
 
 
 def test_frames_without_atoms_keep_the_error_and_suggest_the_optics():
