@@ -251,7 +251,30 @@ class Reconstructor:
         if not np.issubdtype(image.dtype, np.number) or np.iscomplexobj(image):
             raise FrameError(f"{where} holds {image.dtype} values; expected real camera counts")
         self.calibration.check_frame_shape(image.shape, where=where)
+        self._check_camera(image, where)
         return image
+
+    def _check_camera(self, image, where: str) -> None:
+        """Refuse frames whose dark pixels lie far below the calibrated bias (another camera).
+
+        With the right camera, at least the darkest 5 % of pixels sit at the bias within the
+        read noise; a frame well below it was recorded with another camera, gain or offset
+        setting, and its photon numbers would be wrong. Checked on every 8th pixel per axis.
+        """
+        cam = self.camera
+        if cam.offset_map is not None or cam.bias <= 0:
+            return
+        sample = np.asarray(image[::8, ::8], dtype=float)
+        finite = sample[np.isfinite(sample)]
+        if finite.size < 16:
+            return
+        dark = float(np.percentile(finite, 5))
+        tolerance = max(5.0 * cam.read_noise, 0.05 * cam.bias) + 3.0
+        if dark < cam.bias - tolerance:
+            raise CalibrationError(
+                f"{where}: its darkest pixels ({dark:.0f} counts, 5th percentile) lie well below the camera bias "
+                f"of the calibration ({cam.bias:.0f} counts); the calibration was probably made for another "
+                "camera or other camera settings (bias, gain)")
 
     def _saturated(self, image) -> np.ndarray | None:
         """Pixels at the camera's saturation value, looked for where the fit reads (None if none)."""
