@@ -1215,6 +1215,8 @@ class MainWindow(QtWidgets.QMainWindow):
             self.watch_panel = LiveWatchPanel()
             self._add_dock("watch", "Live watch", self.watch_panel, "right",
                            "Frame files reconstructed as they appear in a folder: counters and trends")
+            if "occupation" in self.docks:  # share the occupation view's place instead of squeezing it
+                self.tabifyDockWidget(self.docks["occupation"], self.docks["watch"])
         self.watch_controller = LiveWatchController(folder, calibration=cal, out=out, parent=self)
         self.watch_panel.attach(self.watch_controller)
         self.watch_controller.frameReady.connect(self._show_live_shot)
