@@ -65,6 +65,9 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--method", choices=["linear", "nonlinear", "wiener", "richardson_lucy"], default=None,
                         help="amplitude estimator (default: nonlinear below 0.7 FWHM spacing, else linear)")
     parser.add_argument("--max-frames", type=int, default=50, help="use at most this many frames (default 50)")
+    parser.add_argument("--weighting", choices=["none", "camera"], default="none",
+                        help="pixel weights of the amplitude fit: none (default) or camera (inverse camera-noise "
+                             "variance of the mean frame, stored in the calibration)")
     parser.add_argument("--force", action="store_true", help="overwrite an existing output file")
     add_camera_arguments(parser)
 
@@ -94,7 +97,7 @@ def psf_from_args(args):
 
 
 def run(args: argparse.Namespace) -> int:
-    from latticeread.core.pipeline import calibrate
+    from latticeread.core.pipeline import calibrate, with_camera_weighting
     from latticeread.io import save_calibration
     from latticeread.io.frames import load_frames
 
@@ -109,13 +112,16 @@ def run(args: argparse.Namespace) -> int:
     try:
         cal = calibrate(stack, psf=psf, camera=camera, pixel_size_nm=args.pixel_size_nm,
                         threshold_method=args.threshold_method, method=args.method, max_frames=args.max_frames)
+        if getattr(args, "weighting", "none") == "camera":
+            cal = with_camera_weighting(cal, stack, max_frames=args.max_frames)
     finally:
         stack.close()
     cal = cal.replace(notes=dict(cal.notes, source=str(args.frames)))
     save_calibration(out, cal, protect=[args.frames])
     a1, a2 = cal.geometry.spacings
     print(f"wrote {out}: spacings {a1:.3f}, {a2:.3f} px, PSF {cal.psf.kind} FWHM {cal.psf.fwhm:.3f} px, "
-          f"{cal.amplitude_method} amplitudes, threshold {cal.threshold:.1f} photons")
+          f"{cal.amplitude_method} amplitudes, threshold {cal.threshold:.1f} photons"
+          + (", camera-noise weights" if cal.notes.get("weighting") == "camera" else ""))
     for text in cal.notes.get("warnings", []):
         print(f"warning: {text}")
     return 0

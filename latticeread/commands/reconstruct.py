@@ -31,6 +31,9 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--dataset", default=None, help="dataset inside an HDF5/.npz input file")
     parser.add_argument("--method", choices=["linear", "nonlinear", "wiener", "richardson_lucy"], default=None,
                         help="amplitude estimator (default: the calibration's)")
+    parser.add_argument("--weighting", choices=["none", "camera"], default=None,
+                        help="pixel weights of the amplitude fit: none, or camera (inverse camera-noise variance "
+                             "of the mean frame); default: the calibration's, else none")
     parser.add_argument("--threshold", type=float, default=None,
                         help="fixed threshold in photons (default: the calibration's)")
     parser.add_argument("--no-phase-refit", action="store_true",
@@ -53,7 +56,7 @@ def run(args: argparse.Namespace) -> int:
     import numpy as np
     from tqdm import tqdm
 
-    from latticeread.core.pipeline import calibrate, reconstruct_stack
+    from latticeread.core.pipeline import calibrate, reconstruct_stack, with_camera_weighting
     from latticeread.io import load_calibration, write_occupation_hdf5, write_sites_csv
     from latticeread.io.frames import load_frames, load_mask
 
@@ -74,6 +77,12 @@ def run(args: argparse.Namespace) -> int:
         log.info("no calibration given: estimating geometry, PSF and threshold from %s", args.frames)
         cal = calibrate(stack, psf=psf_from_args(args), camera=camera, pixel_size_nm=args.pixel_size_nm,
                         method=args.method)
+    weighting = getattr(args, "weighting", None)
+    if weighting == "camera" and cal.notes.get("weighting") != "camera":
+        # no stored mean frame (calibration made without it, or estimated here): average the input
+        cal = with_camera_weighting(cal, stack)
+    elif weighting == "none":
+        cal = cal.replace(notes=dict(cal.notes, weighting="none"))
     mask = None
     if args.bad_pixels is not None:
         mask = ~load_mask(args.bad_pixels, frame_shape=tuple(cal.frame_shape))
@@ -86,7 +95,8 @@ def run(args: argparse.Namespace) -> int:
     metadata = {"inputs": [str(args.frames)],
                 "command": "reconstruct",
                 "method": args.method or cal.amplitude_method,
-                "phase_refit": not args.no_phase_refit}
+                "phase_refit": not args.no_phase_refit,
+                "weighting": cal.notes.get("weighting", "none")}
     if args.calibration is not None:
         metadata["calibration_file"] = str(args.calibration)
     try:

@@ -86,7 +86,9 @@ from latticeread.errors import ReconstructionError
 
 __all__ = [
     "AMPLITUDE_METHODS",
+    "WEIGHTINGS",
     "AmplitudeResult",
+    "camera_weights",
     "SiteBasis",
     "extract_amplitudes",
     "wiener_deconvolve",
@@ -118,6 +120,9 @@ class _OneThread:
 
 #: Estimators understood by :func:`extract_amplitudes` and the pipeline.
 AMPLITUDE_METHODS = ("linear", "nonlinear", "wiener", "richardson_lucy")
+
+#: Pixel weightings of the linear fit understood by the pipeline (see :func:`camera_weights`).
+WEIGHTINGS = ("none", "camera")
 
 #: Fraction of a site's stamp outside the frame / on masked pixels that sets EDGE / MASKED.
 EDGE_FRACTION = 0.05
@@ -191,8 +196,12 @@ class SiteBasis:
     mask : (H, W) ndarray of bool, optional
         Pixels to use (True). Excluded pixels carry no weight in the fit.
     pixel_weights : (H, W) ndarray of float, optional
-        Inverse noise variance per pixel (1/photons^2), e.g. from a per-pixel read-noise map.
-        Default: uniform weights (unweighted least squares).
+        Inverse noise variance per pixel (1/photons^2), e.g. from a per-pixel read-noise map or
+        :func:`camera_weights`. Default: uniform weights (unweighted least squares). Weights fixed
+        on the pixels make the normal matrix depend on the frame's lattice phase; the linear
+        estimator corrects for that per frame by iterative refinement (:meth:`_phase_corrected`),
+        which converges when the weights vary little within a stamp. The binary refinement and
+        the offset fit use the reference-phase matrix as they are.
     background : {"constant", "plane", "none"}
         Background model fitted together with the sites.
     ridge : float
@@ -259,6 +268,7 @@ class SiteBasis:
         self._weights = w.ravel()
         self._usable = (w > 0).astype(float).ravel()
         self._uniform = pixel_weights is None and mask is None
+        self._weighted_pixels = pixel_weights is not None
 
         self._stamps = _StampSampler(psf)
         oy, ox = np.mgrid[-r:r + 1, -r:r + 1]
@@ -692,6 +702,12 @@ class SiteBasis:
             if flat.size:
                 correction = self._low_rank(flat, offset)
         amps, bg = self.solve(c, d, correction=correction)
+        if self._weighted_pixels and self._shift(offset) != (0.0, 0.0):
+            amps, bg, converged = self._phase_corrected(c, d, amps, bg, offset=offset, bad=bad,
+                                                        correction=correction)
+            if not converged:
+                warnings.append("the pixel weights vary too much within a site for this frame's lattice phase; "
+                                "its amplitudes use the normal matrix of the reference phase (approximate)")
         iterations = 0
         if refine_level is not None:
             amps, iterations = self._refine(c, d, amps, bg, atom=refine_level, correction=correction,
@@ -701,6 +717,44 @@ class SiteBasis:
         return AmplitudeResult(amplitudes=amps, background=self.background_level(bg), flags=flags, x=x, y=y,
                                method="linear" if refine_level is None else "nonlinear",
                                iterations=iterations, warnings=tuple(warnings))
+
+    def _phase_corrected(self, c, d, amps, bg, *, offset, bad, correction, max_steps: int = 6, rtol: float = 1e-7):
+        """Iterative refinement of the linear solution with the normal matrix of this frame's phase.
+
+        With non-uniform pixel weights the normal matrix ``B(delta)^T W B(delta)`` depends on
+        where the sites sit on the weight map, so the factor made at the reference offset is
+        only approximately that of a shifted frame. Each step computes the exact residual of the
+        normal equations at this frame's offset (the model image rendered from the explicit
+        sparse basis, weighted, projected back: sparse products only) and corrects the solution
+        with the reference factor as preconditioner; it converges fast because smoothed weights
+        change the matrix little. Without this the error grows with the atoms' brightness.
+
+        Returns ``(amplitudes, background, converged)``; when the corrections grow instead of
+        shrinking (weights varying strongly within a stamp) the uncorrected solution is returned
+        with ``converged=False``.
+        """
+        bt = self._basis_t(self._shift(offset))
+        w = self._weights
+        if bad is not None:
+            yy, xx = np.nonzero(bad)
+            w = w.copy()
+            w[(yy + self.pad) * self.padded_shape[1] + (xx + self.pad)] = 0.0
+        start = (amps, bg)
+        scale = float(np.linalg.norm(amps)) + 1e-12
+        previous = np.inf
+        for _ in range(max_steps):
+            wm = w * (bt.T @ amps + (self._bg @ bg if self._bg.shape[1] else 0.0))
+            rc = c - bt @ wm
+            rd = d - (self._bg.T @ wm if self._bg.shape[1] else 0.0)
+            da, db = self.solve(rc, rd, correction=correction)
+            step = float(np.linalg.norm(da))
+            if not np.isfinite(step) or step > previous:
+                return start[0], start[1], False
+            amps, bg = amps + da, bg + db
+            previous = step
+            if step < rtol * scale:
+                break
+        return amps, bg, True
 
     # --- binary refinement ---------------------------------------------------------------
     def _refine(self, c, d, amps, bg, *, atom, correction, max_iter, starts=None, fit_atom=True):
@@ -1142,3 +1196,64 @@ def _shifted_sites(basis: SiteBasis, offset) -> SiteGrid:
     s = basis.sites
     return SiteGrid(rows=s.rows, cols=s.cols, x=x, y=y, row_min=s.row_min, col_min=s.col_min,
                     n_rows=s.n_rows, n_cols=s.n_cols)
+
+
+def camera_weights(reference, *, camera, smoothing: float = 0.0, floor: float = 1e-3) -> np.ndarray:
+    """Fixed per-pixel weights of the linear fit: the inverse camera-noise variance of a reference image.
+
+    Parameters
+    ----------
+    reference : (H, W) ndarray of float
+        Mean photons per pixel expected in the frames (e.g. the mean photon image of the
+        calibration frames), photons. Negative values (noise around a zero background) count as 0.
+    camera : CameraModel
+        Noise model; :meth:`CameraModel.photon_variance` gives the variance (photons^2) of a
+        pixel holding a mean number of photons: excess noise factor F^2 (2 for an EMCCD at
+        high gain) times the photoelectrons and clock-induced charge, plus read noise.
+    smoothing : float
+        RMS width (pixels) of a Gaussian the reference is smoothed with first (0: none). The
+        pipeline smooths over the larger of the lattice spacing and the PSF FWHM, so that the
+        weights carry no structure on the scale of one site (see Notes).
+    floor : float
+        The variance is kept above ``floor`` times its largest value, so that a pixel with no
+        light, no read noise and no clock-induced charge does not get an infinite weight.
+
+    Returns
+    -------
+    (H, W) ndarray of float
+        ``1 / photon_variance(reference)``, 1/photons^2.
+
+    Raises
+    ------
+    ReconstructionError
+        The reference is not a finite 2-D image, or the camera model gives no noise at all.
+
+    Notes
+    -----
+    The weight that makes least squares the maximum-likelihood fit under Gaussian noise is the
+    inverse variance of each pixel *in the frame being fitted*; for photon shot noise that
+    depends on the frame's own atoms. Using it would change the normal matrix ``B^T W B`` in
+    every frame and need a new banded factorisation per frame. A fixed weight from the mean
+    image keeps one factorisation for every frame; it follows the slowly varying part of the
+    noise (stray-light background, the mean light of the atom cloud against its empty
+    margin, the read noise in the photon scale) but not the shot noise of an individual atom.
+    Because the lattice phase moves from frame to frame while the weights stay put on the
+    pixels, the normal matrix factorised at the reference offset is only valid for every
+    frame if the weights are nearly constant over a stamp: hence the smoothing.
+    """
+    reference = np.asarray(reference, dtype=float)
+    if reference.ndim != 2:
+        raise ReconstructionError(f"the reference image for camera weights must be 2-D, got shape {reference.shape}")
+    if not np.all(np.isfinite(reference)):
+        raise ReconstructionError("the reference image for camera weights holds NaN or infinite pixels")
+    if smoothing < 0 or not np.isfinite(smoothing):
+        raise ReconstructionError(f"the smoothing width must be >= 0 pixels, got {smoothing}")
+    ref = np.clip(reference, 0.0, None)
+    if smoothing > 0:
+        ref = ndimage.gaussian_filter(ref, smoothing, mode="nearest")
+    variance = np.asarray(camera.photon_variance(ref), dtype=float)
+    top = float(variance.max())
+    if not np.isfinite(top) or top <= 0:
+        raise ReconstructionError("the camera model gives zero noise for the reference image (no light, no read "
+                                  "noise, no clock-induced charge); camera weights are undefined, use no weighting")
+    return 1.0 / np.maximum(variance, floor * top)

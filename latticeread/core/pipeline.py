@@ -24,8 +24,10 @@ import numpy as np
 from latticeread.core import flags as site_flags
 from latticeread.core.amplitudes import (
     AMPLITUDE_METHODS,
+    WEIGHTINGS,
     AmplitudeResult,
     SiteBasis,
+    camera_weights,
     cell_labels,
     deconvolution_amplitudes,
 )
@@ -37,7 +39,7 @@ from latticeread.core.psf import PSFModel
 from latticeread.errors import CalibrationError, FrameError, LatticeNotFound, ReconstructionError
 
 __all__ = ["FrameResult", "Reconstructor", "calibrate", "reconstruct_stack", "reclassify",
-           "NONLINEAR_BELOW", "UNCERTAIN_RANGE"]
+           "with_camera_weighting", "NONLINEAR_BELOW", "UNCERTAIN_RANGE"]
 
 log = logging.getLogger(__name__)
 
@@ -183,15 +185,31 @@ class Reconstructor:
     index_bounds : (row_min, row_max, col_min, col_max), optional
         Restrict the sites to these indices (default: ``calibration.notes["index_bounds"]``
         when present, else every site whose centre lies in the frame).
+    weighting : {"none", "camera"}, optional
+        Pixel weights of the least-squares fit (default: ``calibration.notes["weighting"]``,
+        else ``"none"``). ``"none"``: every pixel counts the same. ``"camera"``: each pixel is
+        weighted by the inverse of its camera-noise variance (photons^2,
+        :meth:`CameraModel.photon_variance`) evaluated at a fixed reference image, smoothed
+        over the larger of the lattice spacing and the PSF FWHM (:func:`camera_weights`).
+        The weights are fixed, so the normal matrix is still factorised once and reused for
+        every frame; a weight from each frame's own Poisson variance would need a new
+        factorisation per frame. The fixed weight approximates the mean noise of each
+        region of the frame (stray-light background, the cloud's mean light against its
+        empty margin, read noise), not the shot noise of each individual atom.
+    reference : (H, W) ndarray of float, optional
+        Mean photons per pixel for ``weighting="camera"`` (default: the calibration's stored
+        mean image, ``calibration.notes["reference_photons"]``, written by
+        :func:`with_camera_weighting`).
 
     Raises
     ------
     CalibrationError
-        The calibration is not usable (no frame shape, unknown method, mask of another size).
+        The calibration is not usable (no frame shape, unknown method or weighting, mask of
+        another size, camera weighting without a reference image).
     """
 
     def __init__(self, calibration: Calibration, *, method: str | None = None, mask=None, refit_phase: bool = True,
-                 index_bounds=None, phase_method: str = "model"):
+                 index_bounds=None, phase_method: str = "model", weighting: str | None = None, reference=None):
         if not isinstance(calibration, Calibration):
             raise CalibrationError(f"expected a Calibration, got {type(calibration).__name__}")
         shape = tuple(int(s) for s in calibration.frame_shape)
@@ -210,6 +228,12 @@ class Reconstructor:
                 raise CalibrationError("the mask excludes every pixel")
         if phase_method not in ("model", "fourier"):
             raise CalibrationError(f"unknown phase method {phase_method!r}; use 'model' or 'fourier'")
+        if weighting is None:
+            weighting = calibration.notes.get("weighting", "none") if isinstance(calibration.notes, dict) else "none"
+        if weighting not in WEIGHTINGS:
+            raise CalibrationError(f"unknown pixel weighting {weighting!r}; use 'none' (every pixel counts the same) "
+                                   "or 'camera' (inverse camera-noise variance)")
+        self.weighting = weighting
         self.calibration = calibration
         self.method = method
         self.phase_method = phase_method
@@ -222,8 +246,11 @@ class Reconstructor:
         self.sites = lattice_sites(calibration.geometry, shape, index_bounds=self.index_bounds)
         if len(self.sites) == 0:
             raise CalibrationError("no lattice site of the calibration lies inside the frame")
+        self.pixel_weights = None
+        if weighting == "camera":
+            self.pixel_weights = _camera_pixel_weights(calibration, shape, reference)
         self.basis = SiteBasis(calibration.geometry, frame_shape=shape, psf=calibration.psf, sites=self.sites,
-                               mask=mask)
+                               mask=mask, pixel_weights=self.pixel_weights)
         # the phase is one global number: fit it on a central block of at most PHASE_BLOCK^2 sites
         # (its own, much narrower factorisation) instead of on every site
         self.phase_basis = self.basis
@@ -235,7 +262,7 @@ class Reconstructor:
                 max(cc - h, self.sites.col_min), min(cc + h - 1, self.sites.col_min + self.sites.n_cols - 1)))
             if len(block) >= 100:
                 self.phase_basis = SiteBasis(calibration.geometry, frame_shape=shape, psf=calibration.psf,
-                                             sites=block, mask=mask)
+                                             sites=block, mask=mask, pixel_weights=self.pixel_weights)
         self.threshold = _calibration_threshold(calibration)
         atom = calibration.notes.get("photons_per_atom") if isinstance(calibration.notes, dict) else None
         if atom is None and calibration.threshold is not None:
@@ -399,6 +426,104 @@ class Reconstructor:
                              threshold_result=None, background=amp.background, method=amp.method,
                              warnings=tuple(warnings))
         return reclassify(result, threshold)
+
+
+def _camera_pixel_weights(calibration: Calibration, shape, reference) -> np.ndarray:
+    """Per-pixel weights (1/photons^2) of ``weighting="camera"``; see :class:`Reconstructor`."""
+    if reference is None:
+        stored = calibration.notes.get("reference_photons") if isinstance(calibration.notes, dict) else None
+        if not stored:
+            raise CalibrationError("camera weighting needs the mean photon image of the calibration frames; "
+                                   "recalibrate with --weighting camera")
+        reference = _reference_from_notes(stored, shape)
+    reference = np.asarray(reference, dtype=float)
+    if reference.shape != tuple(shape):
+        raise CalibrationError(f"the reference image for camera weighting is {reference.shape[0]}x"
+                               f"{reference.shape[1]} pixels but the calibration was made for {shape[0]}x{shape[1]}")
+    smoothing = max(max(calibration.geometry.spacings), float(calibration.psf.fwhm))
+    try:
+        return camera_weights(reference, camera=calibration.camera, smoothing=smoothing)
+    except ReconstructionError as exc:
+        raise CalibrationError(f"camera weighting: {exc}") from exc
+
+
+def _reference_from_notes(stored, shape) -> np.ndarray:
+    """Full-size mean photon image from the block means stored by :func:`with_camera_weighting`."""
+    try:
+        block = int(stored["block"])
+        values = np.asarray(stored["values"], dtype=float)
+        full_shape = tuple(int(v) for v in stored["shape"])
+    except (KeyError, TypeError, ValueError) as exc:
+        raise CalibrationError(f"the calibration's reference image for camera weighting is malformed ({exc}); "
+                               "recalibrate with --weighting camera") from exc
+    if full_shape != tuple(shape) or values.ndim != 2 or block < 1 or \
+            values.shape != (-(-shape[0] // block), -(-shape[1] // block)):
+        raise CalibrationError("the calibration's reference image for camera weighting does not match its frame "
+                               "shape; recalibrate with --weighting camera")
+    return np.repeat(np.repeat(values, block, axis=0), block, axis=1)[:shape[0], :shape[1]]
+
+
+def with_camera_weighting(calibration: Calibration, frames, *, max_frames: int = 50) -> Calibration:
+    """The calibration set up for ``weighting="camera"``: mean photon image of ``frames`` stored in its notes.
+
+    Parameters
+    ----------
+    calibration : Calibration
+        Made from (some of) ``frames``, e.g. by :func:`calibrate`.
+    frames : (n, H, W) ndarray, FrameStack or sequence of (H, W) arrays
+        Raw camera frames in counts; at most ``max_frames`` (evenly spread) are averaged.
+    max_frames : int
+        Largest number of frames averaged.
+
+    Returns
+    -------
+    Calibration
+        ``notes["weighting"] = "camera"`` and ``notes["reference_photons"]``: the mean photon
+        image (non-finite and saturated pixels left out) as block means over squares of
+        ``block`` pixels (the largest whole number of pixels not above the smaller lattice
+        spacing; the weights are smoothed over more than that anyway), so the calibration
+        file stays small. The threshold is left as it is: the weighted amplitudes have the
+        same mean as the unweighted ones.
+
+    Raises
+    ------
+    FrameError
+        No frames, or frames of another size than the calibration's.
+    """
+    n_total = _n_frames(frames)
+    if n_total < 0:
+        frames = list(frames)
+        n_total = len(frames)
+    if n_total == 0:
+        raise FrameError("no frames to average for the camera weighting")
+    shape = tuple(int(s) for s in calibration.frame_shape)
+    pick = np.unique(np.linspace(0, n_total - 1, min(n_total, int(max_frames))).round().astype(int))
+    total = np.zeros(shape)
+    count = np.zeros(shape)
+    camera = calibration.camera
+    for i in pick:
+        frame = np.asarray(frames[int(i)])
+        if frame.shape != shape:
+            raise FrameError(f"frame {i} is {frame.shape[0]}x{frame.shape[1]} pixels but the calibration was made "
+                             f"for {shape[0]}x{shape[1]}" if frame.ndim == 2 else
+                             f"frame {i} has shape {frame.shape}; expected 2-D frames")
+        with np.errstate(invalid="ignore"):
+            good = np.isfinite(frame) & (frame < camera.saturation)
+        photons = camera.counts_to_photons(np.where(good, frame, 0))
+        total += np.where(good, photons, 0.0)
+        count += good
+    mean = np.where(count > 0, total / np.maximum(count, 1), np.nan)
+    fill = np.nanmedian(mean) if np.isfinite(mean).any() else 0.0
+    mean = np.where(np.isfinite(mean), mean, fill)
+    block = max(1, int(np.floor(min(calibration.geometry.spacings))))
+    h, w = shape
+    hb, wb = -(-h // block), -(-w // block)
+    padded = np.pad(mean, ((0, hb * block - h), (0, wb * block - w)), mode="edge")
+    values = padded.reshape(hb, block, wb, block).mean(axis=(1, 3))
+    notes = dict(calibration.notes, weighting="camera",
+                 reference_photons={"block": block, "shape": [h, w],
+                                    "values": np.round(values, 4).tolist(), "n_frames": int(len(pick))})
+    return calibration.replace(notes=notes)
 
 
 def _with_positions(sites: SiteGrid, x, y) -> SiteGrid:
