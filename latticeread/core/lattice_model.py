@@ -1,0 +1,479 @@
+"""Lattice vectors and offset by fitting the full image model (variable projection).
+
+Where the Fourier estimate (:func:`latticeread.core.lattice.estimate_lattice`) reads the lattice
+from a few spectral peaks, this module fits every pixel: the frame (photons per pixel) is modelled
+as
+
+    image(p) = background + sum_k A_k * s(p - r_k),    r_k = offset + row_k * a1 + col_k * a2,
+
+with ``s`` the pixel-integrated PSF stamp (window-normalised exactly as the forward model
+:func:`latticeread.core.psf.render_sites` draws it). The six geometric parameters
+``(a1, a2, offset)`` enter non-linearly, the amplitudes ``A_k`` and the background linearly.
+
+Method
+------
+Each iteration
+
+1. solves the linear part exactly at the current geometry (weighted least squares on the
+   sparse site basis, :class:`latticeread.core.amplitudes.SiteBasis`), which gives the
+   amplitudes and the residual sum of squares ``RSS(a1, a2, offset)`` -- the variable-projection
+   objective;
+2. linearises the model in the geometric parameters with the amplitudes held at their
+   optimum: the derivative of the image with respect to site ``k``'s position is
+   ``-A_k * grad s(p - r_k)``, and the chain rule gives the columns for ``a1`` (times row_k),
+   ``a2`` (times col_k) and the offset (times 1). The PSF gradient is read from a cubic-spline
+   table of the pixel-integrated PSF and its analytic-on-the-table derivative;
+3. takes the Gauss-Newton step ``(J^T J + mu D) dp = J^T r`` (Levenberg damping ``mu`` raised
+   when the step does not lower ``RSS`` at the re-solved amplitudes).
+
+With a stack the vectors are shared and every frame has its own offset (2 + 2 per frame more
+parameters). Holding the amplitudes fixed in step 2 drops the amplitude-geometry coupling from
+the Jacobian; for a symmetric PSF that coupling vanishes for isolated sites, so the iteration
+still converges in a few steps (measured: bench/bench_lattice_model.py).
+
+A starting geometry within roughly a tenth of a site over the fitted region is needed. When the
+start is only a prior (spacing known to ~1 %, angle to ~10 mrad, e.g. where the lattice's
+Fourier peaks are invisible below a spacing of ~0.97 FWHM for an Airy PSF),
+:func:`lattice_from_prior` first fits a small disk of sites around the frame centre and grows it
+(the displacement caused by a vector error grows linearly with the distance from the centre).
+
+Units: positions and vectors in pixels (x = column, y = row, centre of pixel (0, 0) at (0, 0));
+images in photons per pixel (counts are converted with the camera model when one is given).
+"""
+
+from __future__ import annotations
+
+import logging
+import warnings as _warnings
+
+import numpy as np
+from scipy import ndimage
+
+from latticeread.core.amplitudes import SiteBasis
+from latticeread.core.camera import CameraModel
+from latticeread.core.geometry import LatticeGeometry, LatticeQuality, SiteGrid, lattice_sites
+from latticeread.core.psf import PSFModel
+from latticeread.errors import FrameError, LatticeNotFound, LatticeReadWarning
+
+__all__ = ["refine_lattice_model", "lattice_from_prior", "MIN_MODEL_ATOMS"]
+
+log = logging.getLogger(__name__)
+
+#: Fewer bright sites than this in the fit add a warning to the quality.
+MIN_MODEL_ATOMS = 30
+#: The fit stops when a step lowers the chi-square (RSS over the per-pixel noise variance) by
+#: less than this: further steps are statistically insignificant.
+CHI2_GAIN = 1.0
+
+
+class _PSFTable:
+    """Pixel-integrated PSF and its x/y derivatives on a fine grid, read by cubic splines.
+
+    The pixel integral is the same ``s x s`` sub-sample average as :meth:`PSFModel.stamps`;
+    it is tabulated every ``1 / (4 s)`` pixel (sub-sample offsets fall on the grid) and
+    differentiated on the table by central differences before spline filtering.
+    """
+
+    def __init__(self, psf: PSFModel, oversample: int = 4):
+        s, r = int(psf.supersample), int(psf.radius)
+        k = int(oversample) * s
+        sub = np.rint(((np.arange(s) + 0.5) / s - 0.5) * k).astype(int)
+        half = (r + 2) * k
+        margin = int(np.abs(sub).max())
+        u = np.arange(-half - margin, half + margin + 1) / k
+        dens = psf.density(u[None, :], u[:, None])
+        n = 2 * half + 1
+        acc = np.zeros((n, n))
+        for oy in sub:
+            for ox in sub:
+                acc += dens[margin + oy:margin + oy + n, margin + ox:margin + ox + n]
+        acc /= s * s
+        gy, gx = np.gradient(acc, 1.0 / k)
+        self.coef = [ndimage.spline_filter(t, order=3, mode="mirror") for t in (acc, gx, gy)]
+        self.k, self.origin, self.radius = k, half, r
+
+    def __call__(self, dx, dy):
+        """Normalised stamps and their derivatives with respect to the emitter position.
+
+        Returns ``(stamp, d_stamp/d_x_emitter, d_stamp/d_y_emitter)``, each (N, S, S).
+        """
+        p = np.arange(-self.radius, self.radius + 1, dtype=float)
+        cy = (p[None, :, None] - dy[:, None, None]) * self.k + self.origin
+        cx = (p[None, None, :] - dx[:, None, None]) * self.k + self.origin
+        cy, cx = np.broadcast_arrays(cy, cx)
+        coords = [cy.ravel(), cx.ravel()]
+        shape = cy.shape
+        u, ux, uy = (ndimage.map_coordinates(c, coords, order=3, prefilter=False, mode="mirror").reshape(shape)
+                     for c in self.coef)
+        # the emitter moving by +dx samples the table at p - dx: derivative flips sign
+        ux, uy = -ux, -uy
+        norm = u.sum(axis=(1, 2), keepdims=True)
+        s = u / norm
+        dsx = (ux - s * ux.sum(axis=(1, 2), keepdims=True)) / norm
+        dsy = (uy - s * uy.sum(axis=(1, 2), keepdims=True)) / norm
+        return s, dsx, dsy
+
+
+def _to_photons(data, camera):
+    if camera is None:
+        return data
+    return np.asarray(camera.counts_to_photons(data), float)
+
+
+def _prepare_frames(image_or_stack, camera) -> np.ndarray:
+    arr = np.asarray(image_or_stack)
+    if arr.dtype == object or np.iscomplexobj(arr) or arr.dtype.kind not in "biuf":
+        raise FrameError(f"the frame must hold real pixel values, got dtype {arr.dtype}")
+    if arr.ndim == 2:
+        arr = arr[None]
+    if arr.ndim != 3 or arr.shape[0] == 0:
+        raise FrameError(f"expected a 2-D frame (height, width) or a 3-D stack (frames, height, width), "
+                         f"got an array of shape {arr.shape}")
+    data = _to_photons(arr.astype(float), camera)
+    if not np.all(np.isfinite(data)):
+        raise FrameError("the frame holds NaN or infinite pixels; the lattice model fit needs finite pixels "
+                         "(mask or repair them first)")
+    return data
+
+
+def _site_grid(geometry: LatticeGeometry, rows, cols, offset=None) -> SiteGrid:
+    g = geometry if offset is None else geometry.with_offset(tuple(offset))
+    x, y = g.site_positions(rows, cols)
+    r0, c0 = int(rows.min()), int(cols.min())
+    return SiteGrid(rows=rows, cols=cols, x=np.asarray(x, float), y=np.asarray(y, float), row_min=r0, col_min=c0,
+                    n_rows=int(rows.max()) - r0 + 1, n_cols=int(cols.max()) - c0 + 1)
+
+
+class _Problem:
+    """The image model of a stack on a fixed set of site indices."""
+
+    def __init__(self, frames, *, psf, rows, cols):
+        self.frames = frames
+        self.psf = psf
+        self.rows, self.cols = rows, cols
+        self.table = _PSFTable(psf)
+        self.shape = frames.shape[1:]
+
+    def solve_linear(self, a1, a2, offsets):
+        """Amplitudes, backgrounds and RSS (photons^2) at one geometry."""
+        geom = LatticeGeometry(a1=tuple(a1), a2=tuple(a2), offset=tuple(offsets[0]))
+        sites = _site_grid(geom, self.rows, self.cols)
+        basis = SiteBasis(geom, frame_shape=self.shape, psf=self.psf, sites=sites)
+        amps, bgs = [], []
+        for frame, off in zip(self.frames, offsets):
+            res = basis.linear(frame, offset=tuple(off))
+            amps.append(res.amplitudes)
+            bgs.append(res.background)
+        return amps, bgs, basis
+
+    def jacobian(self, a1, a2, offsets, amps, bgs, basis, *, crop):
+        """Normal matrix J^T J, gradient J^T r and RSS on the crop, with the amplitudes held."""
+        n_f = len(self.frames)
+        n_p = 4 + 2 * n_f
+        jtj = np.zeros((n_p, n_p))
+        jtr = np.zeros(n_p)
+        rss = 0.0
+        height, width = self.shape
+        r = self.table.radius
+        size = 2 * r + 1
+        pad = size
+        oy, ox = np.mgrid[0:size, 0:size]
+        for f, (frame, off, amp, bg) in enumerate(zip(self.frames, offsets, amps, bgs)):
+            x = off[0] + self.rows * a1[0] + self.cols * a2[0]
+            y = off[1] + self.rows * a1[1] + self.cols * a2[1]
+            xi, yi = np.rint(x).astype(int), np.rint(y).astype(int)
+            full = (height + 2 * pad, width + 2 * pad)
+            n_full = full[0] * full[1]
+            model = np.zeros(n_full)
+            dm = np.zeros((6, n_full))  # d model / d (a1x, a1y, a2x, a2y, ox, oy)
+            # sites with little light hardly move the image: leave them out of the derivative
+            top = np.percentile(amp, 99) if amp.size else 0.0
+            use = np.abs(amp) > 0.1 * max(top, 1e-12)
+            for start in range(0, int(use.sum()), 256):
+                idx = np.flatnonzero(use)[start:start + 256]
+                s, sx, sy = self.table(x[idx] - xi[idx], y[idx] - yi[idx])
+                flat = ((yi[idx, None, None] + pad - r + oy[None]) * full[1]
+                        + (xi[idx, None, None] + pad - r + ox[None])).ravel()
+                a = amp[idx, None, None]
+                model += np.bincount(flat, weights=(a * s).ravel(), minlength=n_full)
+                gx, gy = a * sx, a * sy
+                rw = self.rows[idx, None, None]
+                cl = self.cols[idx, None, None]
+                for j, val in enumerate((gx * rw, gy * rw, gx * cl, gy * cl, gx, gy)):
+                    dm[j] += np.bincount(flat, weights=val.ravel(), minlength=n_full)
+            sl = (slice(pad + crop[0].start, pad + crop[0].stop), slice(pad + crop[1].start, pad + crop[1].stop))
+            model = model.reshape(full)
+            res = (frame[crop] - bg - model[sl]).ravel()
+            cols = np.stack([d.reshape(full)[sl].ravel() for d in dm], axis=1)
+            cols -= cols.mean(axis=0)  # the constant background absorbs any mean change
+            idx = np.r_[0:4, 4 + 2 * f, 5 + 2 * f]
+            jtr[idx] += cols.T @ (res - res.mean())
+            # Gauss-Newton matrix of the variable-projection objective: J^T (I - P) J with P the
+            # projector on the site basis and background (the amplitudes re-adjust when the
+            # lattice moves), J^T J - (B^T J)^T (B^T B)^-1 (B^T J), on the basis' own pixels
+            frame_cols = [d.reshape(full)[pad:pad + height, pad:pad + width] for d in dm]
+            roi = basis.crop
+            raw = np.stack([c[roi].ravel() for c in frame_cols], axis=1)
+            proj = [basis.project(c, offset=tuple(off)) for c in frame_cols]
+            sols = [basis.solve(c, d) for c, d in proj]
+            schur = np.array([[float(proj[i][0] @ sols[j][0] + np.dot(proj[i][1], sols[j][1]))
+                               for j in range(6)] for i in range(6)])
+            schur = 0.5 * (schur + schur.T)
+            jtj[np.ix_(idx, idx)] += raw.T @ raw - schur
+            rss += float(np.sum((res - res.mean()) ** 2))
+        return jtj, jtr, rss
+
+
+def _far_uncertainty(jtj, rss, n_frames, crop, rows, cols, n_sites) -> float:
+    """1-sigma uncertainty (pixels) of the outermost site of frame 0 from the Gauss-Newton covariance."""
+    n_pix = n_frames * (crop[0].stop - crop[0].start) * (crop[1].stop - crop[1].start)
+    sigma2 = rss / max(n_pix - n_sites * n_frames - jtj.shape[0], 1)
+    try:
+        cov = np.linalg.inv(jtj) * sigma2
+    except np.linalg.LinAlgError:
+        return float("nan")
+    far = int(np.argmax(np.hypot(rows, cols)))
+    g = np.array([[rows[far], 0, cols[far], 0, 1, 0], [0, rows[far], 0, cols[far], 0, 1]], float)
+    sub = cov[:6, :6]
+    val = float(np.max(np.linalg.eigvalsh(g @ sub @ g.T)))
+    return float(np.sqrt(val)) if val >= 0 else float("nan")
+
+
+def refine_lattice_model(image_or_stack, geometry: LatticeGeometry, *, psf: PSFModel,
+                         camera: CameraModel | None = None, offsets=None, max_sites_radius: float | None = None,
+                         max_iter: int = 8, tol: float = 2e-3) -> LatticeGeometry:
+    """Refine lattice vectors and offset by a least-squares fit of the full image model.
+
+    Parameters
+    ----------
+    image_or_stack : (H, W) or (n_frames, H, W) array_like
+        Frame(s) in photons per pixel, or camera counts when ``camera`` is given. All frames
+        share the lattice vectors; each has its own offset.
+    geometry : LatticeGeometry
+        Starting geometry (pixels), accurate to about a tenth of a site over the fitted region.
+    psf : PSFModel
+        Image of one atom (its window radius also bounds the stamps, as in the forward model).
+    camera : CameraModel, optional
+        Converts counts to photons. Without it the data are taken to be photons already (a
+        constant offset does not matter: a background is fitted).
+    offsets : sequence of (float, float), optional
+        Starting offset of every frame (pixels); default ``geometry.offset`` for all.
+    max_sites_radius : float, optional
+        Fit only the sites within this many lattice spacings of the site nearest the frame
+        centre (default: every site whose centre is in the frame).
+    max_iter : int
+        Largest number of Gauss-Newton steps.
+    tol : float
+        Stop when no site of the fitted region moves by more than this, pixels.
+
+    Returns
+    -------
+    LatticeGeometry
+        Refined ``a1``, ``a2`` and the offset of the first frame (pixels), with a
+        :class:`LatticeQuality`: ``peak_to_background`` copied from ``geometry``;
+        ``residual`` = 1-sigma statistical uncertainty, in pixels, of the position of the
+        farthest fitted site (from the Gauss-Newton covariance scaled by the residual
+        variance); ``n_sites_used`` = sites brighter than half the 99th-percentile
+        amplitude; ``warnings``. With a stack only the first frame's offset is returned (the
+        other offsets are fitted alongside but not reported; re-find them with the shared
+        vectors by :func:`latticeread.core.lattice.refine_phase`).
+
+    Raises
+    ------
+    FrameError
+        Not a 2-D frame or 3-D stack, non-finite pixels, or offsets of the wrong length.
+    LatticeNotFound
+        No lattice site in the frame, or the fit runs away (vectors changed by more than 5 %).
+    """
+    frames = _prepare_frames(image_or_stack, camera)
+    n_f = frames.shape[0]
+    shape = frames.shape[1:]
+    if offsets is None:
+        offs = np.tile(np.asarray(geometry.offset, float), (n_f, 1))
+    else:
+        offs = np.asarray(offsets, float).reshape(-1, 2).copy()
+        if offs.shape[0] != n_f:
+            raise FrameError(f"got {offs.shape[0]} starting offsets for {n_f} frames")
+    a1 = np.asarray(geometry.a1, float).copy()
+    a2 = np.asarray(geometry.a2, float).copy()
+    start_a = np.concatenate([a1, a2])
+    sites = lattice_sites(geometry, shape)
+    if len(sites) == 0:
+        raise LatticeNotFound("no lattice site lies inside the frame; check the starting geometry")
+    rows, cols = np.asarray(sites.rows), np.asarray(sites.cols)
+    if max_sites_radius is not None:
+        centre = np.array([(shape[1] - 1) / 2, (shape[0] - 1) / 2])
+        fr, fc = geometry.fractional_indices(centre[0], centre[1])
+        r0, c0 = np.rint(fr), np.rint(fc)
+        dist = np.hypot(rows - r0, cols - c0)
+        core = dist <= max_sites_radius
+        if np.count_nonzero(core) < 9:
+            raise LatticeNotFound(f"only {int(np.count_nonzero(core))} sites within {max_sites_radius} spacings "
+                                  f"of the frame centre")
+        # the residual is taken on the pixels of the core disk only, but every site whose light
+        # reaches them (a ring of one PSF radius around it) is part of the model
+        ring = max_sites_radius + psf.radius / min(geometry.spacings) + 1.0
+        keep = dist <= ring
+        core_rows, core_cols = rows[core], cols[core]
+        rows, cols = rows[keep], cols[keep]
+    else:
+        core_rows, core_cols = rows, cols
+    problem = _Problem(frames, psf=psf, rows=rows, cols=cols)
+    r = int(psf.radius)
+
+    def crop_for(a1, a2, offs):
+        xs = offs[:, 0][:, None] + core_rows[None] * a1[0] + core_cols[None] * a2[0]
+        ys = offs[:, 1][:, None] + core_rows[None] * a1[1] + core_cols[None] * a2[1]
+        pad = r if max_sites_radius is None else 0
+        y0, y1 = max(int(ys.min()) - pad, 0), min(int(np.ceil(ys.max())) + pad + 1, shape[0])
+        x0, x1 = max(int(xs.min()) - pad, 0), min(int(np.ceil(xs.max())) + pad + 1, shape[1])
+        return slice(y0, y1), slice(x0, x1)
+
+    def evaluate(a1, a2, offs):
+        return problem.solve_linear(a1, a2, offs)
+
+    crop = crop_for(a1, a2, offs)
+    amps, bgs, basis = evaluate(a1, a2, offs)
+    jtj, jtr, rss = problem.jacobian(a1, a2, offs, amps, bgs, basis, crop=crop)
+    mu = 1e-3
+    n_iter = 0
+    extent = float(np.max(np.hypot(core_rows, core_cols)))
+    converged = False
+    for n_iter in range(1, max_iter + 1):
+        diag = np.diag(jtj).copy()
+        diag[diag <= 0] = 1.0
+        try:
+            step = np.linalg.solve(jtj + mu * np.diag(diag), jtr)
+        except np.linalg.LinAlgError:
+            break
+        na1, na2 = a1 + step[0:2], a2 + step[2:4]
+        noffs = offs + step[4:].reshape(n_f, 2)
+        n_amps, n_bgs, n_basis = evaluate(na1, na2, noffs)
+        n_jtj, n_jtr, n_rss = problem.jacobian(na1, na2, noffs, n_amps, n_bgs, n_basis, crop=crop)
+        move = (np.max(np.abs(step[:4])) * (extent + 1)) + np.max(np.abs(step[4:]))
+        # a step well inside the statistical uncertainty of the outermost site is noise-limited
+        sigma_far = _far_uncertainty(jtj, rss, n_f, crop, core_rows, core_cols, len(rows))
+        if move < max(tol, 0.25 * sigma_far):  # a step this small changes nothing that matters: done either way
+            if n_rss <= rss:
+                a1, a2, offs, amps, bgs = na1, na2, noffs, n_amps, n_bgs
+                jtj, jtr, rss = n_jtj, n_jtr, n_rss
+            converged = True
+            break
+        if n_rss <= rss:
+            # chi-square gain of the step (RSS drop over the per-pixel noise variance)
+            n_pix = n_f * (crop[0].stop - crop[0].start) * (crop[1].stop - crop[1].start)
+            gain = (rss - n_rss) / max(rss / max(n_pix - len(rows) * n_f, 1), 1e-300)
+            a1, a2, offs, amps, bgs = na1, na2, noffs, n_amps, n_bgs
+            jtj, jtr, rss = n_jtj, n_jtr, n_rss
+            mu = max(mu / 10, 1e-9)
+            if gain < CHI2_GAIN:
+                converged = True
+                break
+            log.debug("lattice model step %d: rss %.6g, largest site move %.2g px", n_iter, rss, move)
+        else:
+            mu *= 10
+            if mu > 1e6:
+                break
+        if np.max(np.abs(np.concatenate([a1, a2]) - start_a)) > 0.05 * np.max(np.abs(start_a)):
+            raise LatticeNotFound("the image-model fit ran away from the starting lattice (vectors changed by "
+                                  "more than 5 %): the starting geometry or the PSF is wrong")
+    warn = []
+    if not converged:
+        warn.append(f"the image-model fit of the lattice did not converge in {n_iter} steps")
+    uncertainty = _far_uncertainty(jtj, rss, n_f, crop, core_rows, core_cols, len(rows))
+    if not np.isfinite(uncertainty):
+        warn.append("the lattice parameters are not determined by this image (singular normal matrix)")
+    top = np.percentile(amps[0], 99)
+    n_bright = int(np.count_nonzero(amps[0] > 0.5 * top)) if top > 0 else 0
+    if n_bright < MIN_MODEL_ATOMS:
+        warn.append(f"only {n_bright} bright sites in the image-model fit: the lattice vectors rest on few atoms")
+    if geometry.quality is not None:
+        ratio = geometry.quality.peak_to_background
+    else:
+        ratio = float("nan")
+    quality = LatticeQuality(peak_to_background=ratio, residual=uncertainty, n_sites_used=n_bright,
+                             warnings=tuple(warn))
+    return LatticeGeometry(a1=tuple(a1), a2=tuple(a2), offset=tuple(offs[0]), quality=quality)
+
+
+def lattice_from_prior(image_or_stack, *, psf: PSFModel, spacing, angle: float, angle_between: float = np.pi / 2,
+                       camera: CameraModel | None = None, radii=(10.0, None)) -> LatticeGeometry:
+    """Lattice geometry from a prior on its vectors, for frames whose Fourier peaks are invisible.
+
+    Below a spacing of about 0.97 FWHM (Airy PSF) the lattice frequency lies beyond the optical
+    cut-off and :func:`latticeread.core.lattice.estimate_lattice` raises
+    :class:`~latticeread.errors.LatticeNotFound`. When the spacing and orientation are known
+    roughly (from the optics, or from a calibration at a larger magnification), this function
+
+    1. builds the prior lattice (``a2`` at ``angle``, ``a1`` at ``angle + angle_between``);
+    2. finds the offset on a disk of sites around the frame centre: a coarse 6 x 6 grid search
+       over one unit cell of the matched-filter energy, then a Newton fit of the image model
+       (:meth:`latticeread.core.amplitudes.SiteBasis.fit_offset`);
+    3. refines vectors and offset with :func:`refine_lattice_model` on disks of ``radii``
+       lattice spacings (``None``: every site), each fit starting from the previous one, so a
+       vector error that would displace the outer sites by half a spacing is removed first
+       where it displaces them little.
+
+    Parameters
+    ----------
+    image_or_stack : (H, W) or (n_frames, H, W) array_like
+        Frame(s) in photons per pixel, or counts with ``camera``. A stack is summed for the
+        offset search (its phase must not drift).
+    psf : PSFModel
+        Image of one atom.
+    spacing : float or (float, float)
+        Prior lattice spacing(s) |a1|, |a2| in pixels (about 1 % accuracy is enough for a
+        50-site frame).
+    angle : float
+        Prior direction of ``a2`` in radians from +x towards +y (about 10 mrad is enough).
+    angle_between : float
+        Angle from ``a2`` to ``a1``, radians (pi/2 for a square lattice).
+    camera : CameraModel, optional
+        Converts counts to photons.
+    radii : sequence of float or None
+        Disk radii of the successive fits, lattice spacings.
+
+    Returns
+    -------
+    LatticeGeometry
+        As :func:`refine_lattice_model` (the offset is the site nearest the frame centre).
+
+    Raises
+    ------
+    ValueError
+        Non-positive spacing or a collinear prior.
+    FrameError, LatticeNotFound
+        As :func:`refine_lattice_model`.
+    """
+    sp = np.atleast_1d(np.asarray(spacing, float))
+    if sp.size == 1:
+        sp = np.repeat(sp, 2)
+    if sp.shape != (2,) or not np.all(np.isfinite(sp)) or np.any(sp <= 0):
+        raise ValueError(f"spacing must be one positive number or a pair (pixels), got {spacing!r}")
+    if abs(np.sin(angle_between)) < 0.1:
+        raise ValueError(f"angle_between {angle_between!r} rad makes the prior lattice vectors nearly collinear")
+    frames = _prepare_frames(image_or_stack, camera)
+    shape = frames.shape[1:]
+    a2 = sp[1] * np.array([np.cos(angle), np.sin(angle)])
+    a1 = sp[0] * np.array([np.cos(angle + angle_between), np.sin(angle + angle_between)])
+    centre = ((shape[1] - 1) / 2.0, (shape[0] - 1) / 2.0)
+    prior = LatticeGeometry(a1=tuple(a1), a2=tuple(a2), offset=centre)
+    first = next((rad for rad in radii if rad is not None), None)
+    all_sites = lattice_sites(prior, shape)
+    if len(all_sites) == 0:
+        raise LatticeNotFound("no lattice site of the prior lies inside the frame")
+    rows, cols = np.asarray(all_sites.rows), np.asarray(all_sites.cols)
+    if first is not None:
+        keep = np.hypot(rows, cols) <= first
+        rows, cols = rows[keep], cols[keep]
+    basis = SiteBasis(prior, frame_shape=shape, psf=psf, sites=_site_grid(prior, rows, cols))
+    offset, _ = basis.fit_offset(frames.sum(axis=0), search=True)
+    geometry = prior.with_offset(tuple(offset))
+    for rad in radii:
+        with _warnings.catch_warnings():
+            _warnings.simplefilter("ignore", LatticeReadWarning)
+            geometry = refine_lattice_model(frames, geometry, psf=psf, max_sites_radius=rad)
+    # keep the site nearest the frame centre as site (0, 0)
+    fr, fc = geometry.fractional_indices(centre[0], centre[1])
+    shift = np.rint(fr) * np.asarray(geometry.a1) + np.rint(fc) * np.asarray(geometry.a2)
+    return geometry.with_offset(tuple(np.asarray(geometry.offset) + shift), quality=geometry.quality)
