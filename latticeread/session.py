@@ -811,13 +811,18 @@ class Session:
         Returns ``(generation, ThresholdResult or None)`` for :meth:`store_threshold_fit`.
         """
         done = self._done.copy()
-        block = None if self._amplitudes is None else self._amplitudes[done]
+        # No copy here (it would pause the GUI thread for a long stack): rows of frames marked
+        # done are never rewritten within a generation (store_batch only fills frames not done
+        # when the job was made, and a new generation replaces the whole array), so the worker
+        # can read them from the live array.
+        amplitudes = self._amplitudes
         cal = self._calibration
         generation = self._generation
 
         def job(should_stop: Callable[[], bool] = lambda: False):
-            if block is None or cal is None:
+            if amplitudes is None or cal is None:
                 return generation, None, None
+            block = amplitudes if done.all() else amplitudes[done]
             amps = block.ravel()
             amps = amps[np.isfinite(amps)]
             if amps.size == 0:

@@ -126,6 +126,7 @@ class ImagePane(QtWidgets.QWidget):
         self._amplitudes = None
         self._grid_shape = None
         self._mode = "raw"
+        self._drawn_markers: dict = {}  # state -> (radius, selection, x, y) of the path drawn last
 
         self.graphics = pg.GraphicsLayoutWidget()
         self.graphics.setToolTip("Camera frame: scroll to zoom, drag to pan, right-click for view options")
@@ -329,20 +330,31 @@ class ImagePane(QtWidgets.QWidget):
             for state, item in self.site_items.items():
                 item.setData([], [])
                 self.marker_counts[state] = 0
+            self._drawn_markers.clear()
             return
         x, y = self._sites.x, self._sites.y
         occ = self._occupied.astype(bool)
         with np.errstate(invalid="ignore"):
             unc = np.zeros_like(occ) if self._p is None else (self._p >= 0.1) & (self._p <= 0.9)
         spacing = min(self._geometry.spacings) if self._geometry is not None else 1.0
+        drawn = self._drawn_markers
         for state, sel in (("occupied", occ & ~unc), ("empty", ~occ & ~unc), ("uncertain", unc)):
-            rx, ry = ring_paths(x[sel], y[sel], radius=self._marker_radius[state] * spacing,
-                                n_corners=6 if state != "empty" else 4)
+            radius = self._marker_radius[state] * spacing
+            key = drawn.get(state)
+            if (key is not None and key[0] == radius and np.array_equal(key[1], sel) and np.array_equal(key[2], x)
+                    and np.array_equal(key[3], y)):
+                continue  # same sites in this state (e.g. a small threshold step): keep the drawn path
+            rx, ry = ring_paths(x[sel], y[sel], radius=radius, n_corners=6 if state != "empty" else 4)
             self.site_items[state].setData(rx, ry, connect="finite")
             self.marker_counts[state] = int(np.count_nonzero(sel))
+            drawn[state] = (radius, sel, np.array(x, copy=True), np.array(y, copy=True))
         visible = self.sites_check.isChecked()
         for item in self.site_items.values():
             item.setVisible(visible)
+
+    def shows_result(self, sites, occupied) -> bool:
+        """True when the markers already show exactly these (identical) site and occupation arrays."""
+        return sites is not None and sites is self._sites and occupied is not None and occupied is self._occupied
 
     def set_grid_visible(self, visible: bool) -> None:
         self.grid_check.setChecked(bool(visible))

@@ -160,6 +160,7 @@ class MainWindow(QtWidgets.QMainWindow):
             self._autosave_timer.start()
 
         self._wire_views()
+        self._cache_axes()
         self.set_session(session or Session())
         self.app_settings.restore_window(self)
         self._restore_view_options()
@@ -215,10 +216,25 @@ class MainWindow(QtWidgets.QMainWindow):
             self.docks[attr].setWidget(widget)
             old.deleteLater()
         self._wire_panels()
+        self._cache_axes()
         self._mark("frames", "frame", "calibration", "amplitudes", "classification", "threshold", "fidelity",
                    "settings")
         self._restore_view_options()
         import_core()  # now, while the user looks at the window, not when the first analysis starts
+
+    def _cache_axes(self) -> None:
+        """Keep every plot axis as a pixmap that is redrawn only when the axis itself changes.
+
+        Drawing the tick labels is the largest part of a repaint; while the threshold is
+        dragged or a stack is processed most axes stay the same, so they are copied, not
+        redrawn (same pixels: the cache is in device coordinates).
+        """
+        import pyqtgraph as pg
+
+        for view in self.findChildren(pg.GraphicsView):
+            for item in view.scene().items():
+                if isinstance(item, pg.AxisItem):
+                    item.setCacheMode(QtWidgets.QGraphicsItem.DeviceCoordinateCache)
 
     def _add_dock(self, key: str, title: str, widget, area: str, tip: str) -> None:
         dock = QtWidgets.QDockWidget(title, self)
@@ -634,6 +650,10 @@ class MainWindow(QtWidgets.QMainWindow):
             geometry, sites = self._current_geometry()
             self.image_pane.set_lattice(geometry, None)
             self.occupation_view.set_current(None)
+        elif self.image_pane.shows_result(res.sites, res.occupied) and self.occupation_view.has_current:
+            # the shown frame's cached result did not change (e.g. another frame of a running
+            # stack was stored): markers and matrix are up to date, skip rebuilding them
+            pass
         else:
             self.image_pane.set_lattice(res.geometry, res.sites)
             self.image_pane.set_site_states(res.occupied, res.p_occupied, res.amplitudes)

@@ -100,6 +100,11 @@ class OccupationView(QtWidgets.QWidget):
         self.summary.setText(f"frame {frame_index}: {atoms} atoms on {inside} sites "
                              f"(filling {filling:.3f})")
 
+    @property
+    def has_current(self) -> bool:
+        """True when a frame's occupation matrix is shown."""
+        return self._current is not None
+
     def set_mean(self, mean, *, n_frames: int = 0) -> None:
         """Show the mean occupation over ``n_frames`` reconstructed frames (NaN outside)."""
         if mean is None:
