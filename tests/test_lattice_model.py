@@ -123,3 +123,23 @@ def test_refuses_a_non_positive_prior_spacing():
 def test_refuses_a_collinear_prior():
     with pytest.raises(ValueError, match="nearly collinear"):
         lattice_from_prior(np.ones((64, 64)), psf=gaussian_psf(fwhm=8.0), spacing=9.8, angle=0.0, angle_between=0.0)
+
+
+def test_calibrate_can_refine_the_vectors_by_the_model_fit():
+    """calibrate(refine_vectors=True) keeps the model-fit vectors (three 256x256 frames, Airy, 1.2 FWHM)."""
+    from latticeread.core.pipeline import calibrate
+
+    psf = _psf("airy", 1.2)
+    truth = LatticeGeometry(a1=(0.9, 9.76), a2=(9.76, -0.9), offset=(128.3, 127.6))
+    frames, _ = simulate_frames(geometry=truth, frame_shape=(256, 256), psf=psf, filling=0.3,
+                                photons_per_atom=600.0, background=2.0, n_shots=3, rng=7, margin=0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", LatticeReadWarning)
+        plain = calibrate(frames, psf=psf, restrict_region=False)
+        refined = calibrate(frames, psf=psf, restrict_region=False, refine_vectors=True)
+    assert "vectors_model_fit" in refined.notes
+    assert "vectors_model_fit" not in plain.notes
+    # half the lever arm and a quarter of the atoms of the 512x512 case: a looser bound
+    spacing, angle, phase = _errors(refined.geometry, truth)
+    assert spacing < 6e-4
+    assert angle < 1.5e-3

@@ -582,7 +582,7 @@ def reconstruct_stack(frames: Iterable, calibration: Calibration, *, method: str
 def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None = None,
               pixel_size_nm: float | None = None, geometry: LatticeGeometry | None = None,
               threshold_method: str = "mixture", method: str | None = None, mask=None,
-              restrict_region: bool = True, max_frames: int = 50) -> Calibration:
+              restrict_region: bool = True, max_frames: int = 50, refine_vectors: bool = False) -> Calibration:
     """Make a calibration from a stack of frames.
 
     Parameters
@@ -612,6 +612,12 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
         sites where atoms were seen (fewer unknowns: faster and better conditioned).
     max_frames : int
         Largest number of frames used.
+    refine_vectors : bool
+        Once the PSF is known, refit the lattice vectors and offset to the full image model of
+        the first frame (:func:`latticeread.core.lattice_model.refine_lattice_model`; several
+        seconds per 512x512 frame) and keep them when the fit converged without warnings
+        (noted in ``vectors_model_fit``). Worth it when the spacing is near or below the PSF
+        FWHM, where the Fourier estimate is least precise.
 
     Returns
     -------
@@ -669,6 +675,21 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
                                       "why": str(exc)}
             psf_warnings.extend(fitted.warnings)
         notes["psf_estimated"] = True
+    if refine_vectors:
+        from latticeread.core.lattice_model import refine_lattice_model
+
+        try:
+            fitted_geometry = refine_lattice_model(clean[0], geometry, psf=psf)
+        except (LatticeNotFound, ReconstructionError, FrameError) as exc:
+            psf_warnings.append(f"the image-model fit of the lattice vectors failed ({exc}); kept the first estimate")
+        else:
+            if fitted_geometry.quality.warnings:
+                psf_warnings.extend(fitted_geometry.quality.warnings)
+                psf_warnings.append("kept the first lattice estimate: the image-model fit was not clean")
+            else:
+                notes["vectors_model_fit"] = {"before": [list(geometry.a1), list(geometry.a2)],
+                                              "sigma_px": float(fitted_geometry.quality.residual)}
+                geometry = fitted_geometry
     ratio = min(geometry.spacings) / psf.fwhm
     if method is None:
         method = "nonlinear" if ratio < NONLINEAR_BELOW else "linear"
