@@ -184,6 +184,8 @@ def main():
     args = p.parse_args()
     n_frames = 200 if args.quick else args.frames
 
+    # 2-core machines shared with other jobs: stalls include time the GUI process was not scheduled
+    print(f"load average before: {os.getloadavg()[0]:.1f} (cores: {os.cpu_count()})")
     shows = time_to_show(2 if args.quick else 3)
     print(f"time to show the window (launch -> shown): {', '.join(f'{t:.2f}' for t in shows)} s "
           f"(best {min(shows):.2f} s)")
@@ -195,6 +197,7 @@ def main():
     print(f"background reconstruction of {n_frames} frames of 512x512 ({n_sites} sites): {elapsed:.1f} s, "
           f"{fps:.1f} frames/s; GUI thread: longest stall {1000 * worst:.0f} ms, 99th percentile "
           f"{1000 * p99:.0f} ms (5 ms timer)")
+    print(f"load average after: {os.getloadavg()[0]:.1f}")
 
 
 if __name__ == "__main__":
