@@ -166,8 +166,11 @@ class _Problem:
             bgs.append(res.background)
         return amps, bgs, basis
 
-    def jacobian(self, a1, a2, offsets, amps, bgs, basis, *, crop):
-        """Normal matrix J^T J, gradient J^T r and RSS on the crop, with the amplitudes held."""
+    def jacobian(self, a1, a2, offsets, amps, bgs, basis, *, crop, rss_only=False):
+        """Normal matrix J^T J, gradient J^T r and RSS on the crop, with the amplitudes held.
+
+        With ``rss_only`` only the RSS is computed (the matrices are returned as None).
+        """
         n_f = len(self.frames)
         n_p = 4 + 2 * n_f
         jtj = np.zeros((n_p, n_p))
@@ -196,6 +199,8 @@ class _Problem:
                         + (xi[idx, None, None] + pad - r + ox[None])).ravel()
                 a = amp[idx, None, None]
                 model += np.bincount(flat, weights=(a * s).ravel(), minlength=n_full)
+                if rss_only:
+                    continue
                 gx, gy = a * sx, a * sy
                 rw = self.rows[idx, None, None]
                 cl = self.cols[idx, None, None]
@@ -204,6 +209,9 @@ class _Problem:
             sl = (slice(pad + crop[0].start, pad + crop[0].stop), slice(pad + crop[1].start, pad + crop[1].stop))
             model = model.reshape(full)
             res = (frame[crop] - bg - model[sl]).ravel()
+            if rss_only:
+                rss += float(np.sum((res - res.mean()) ** 2))
+                continue
             cols = np.stack([d.reshape(full)[sl].ravel() for d in dm], axis=1)
             cols -= cols.mean(axis=0)  # the constant background absorbs any mean change
             idx = np.r_[0:4, 4 + 2 * f, 5 + 2 * f]
@@ -221,6 +229,8 @@ class _Problem:
             schur = 0.5 * (schur + schur.T)
             jtj[np.ix_(idx, idx)] += raw.T @ raw - schur
             rss += float(np.sum((res - res.mean()) ** 2))
+        if rss_only:
+            return None, None, rss
         return jtj, jtr, rss
 
 
@@ -349,14 +359,14 @@ def refine_lattice_model(image_or_stack, geometry: LatticeGeometry, *, psf: PSFM
         na1, na2 = a1 + step[0:2], a2 + step[2:4]
         noffs = offs + step[4:].reshape(n_f, 2)
         n_amps, n_bgs, n_basis = evaluate(na1, na2, noffs)
-        n_jtj, n_jtr, n_rss = problem.jacobian(na1, na2, noffs, n_amps, n_bgs, n_basis, crop=crop)
+        _, _, n_rss = problem.jacobian(na1, na2, noffs, n_amps, n_bgs, n_basis, crop=crop, rss_only=True)
         move = (np.max(np.abs(step[:4])) * (extent + 1)) + np.max(np.abs(step[4:]))
         # a step well inside the statistical uncertainty of the outermost site is noise-limited
         sigma_far = _far_uncertainty(jtj, rss, n_f, crop, core_rows, core_cols, len(rows))
         if move < max(tol, 0.25 * sigma_far):  # a step this small changes nothing that matters: done either way
             if n_rss <= rss:
                 a1, a2, offs, amps, bgs = na1, na2, noffs, n_amps, n_bgs
-                jtj, jtr, rss = n_jtj, n_jtr, n_rss
+                jtj, jtr, rss = problem.jacobian(a1, a2, offs, amps, bgs, n_basis, crop=crop)
             converged = True
             break
         if n_rss <= rss:
@@ -364,7 +374,7 @@ def refine_lattice_model(image_or_stack, geometry: LatticeGeometry, *, psf: PSFM
             n_pix = n_f * (crop[0].stop - crop[0].start) * (crop[1].stop - crop[1].start)
             gain = (rss - n_rss) / max(rss / max(n_pix - len(rows) * n_f, 1), 1e-300)
             a1, a2, offs, amps, bgs = na1, na2, noffs, n_amps, n_bgs
-            jtj, jtr, rss = n_jtj, n_jtr, n_rss
+            jtj, jtr, rss = problem.jacobian(a1, a2, offs, amps, bgs, n_basis, crop=crop)
             mu = max(mu / 10, 1e-9)
             if gain < CHI2_GAIN:
                 converged = True
@@ -472,7 +482,9 @@ def lattice_from_prior(image_or_stack, *, psf: PSFModel, spacing, angle: float, 
     for rad in radii:
         with _warnings.catch_warnings():
             _warnings.simplefilter("ignore", LatticeReadWarning)
-            geometry = refine_lattice_model(frames, geometry, psf=psf, max_sites_radius=rad)
+            # the inner disks only need to bring the start within reach of the next one
+            geometry = refine_lattice_model(frames, geometry, psf=psf, max_sites_radius=rad,
+                                            max_iter=8 if rad is None else 4)
     # keep the site nearest the frame centre as site (0, 0)
     fr, fc = geometry.fractional_indices(centre[0], centre[1])
     shift = np.rint(fr) * np.asarray(geometry.a1) + np.rint(fc) * np.asarray(geometry.a2)
