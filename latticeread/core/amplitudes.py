@@ -898,6 +898,37 @@ class SiteBasis:
             g -= atom * (gram[l].T @ np.ones(l.size) - gram[k].T @ np.ones(k.size))
         return n, g, passes
 
+def pixel_integrated_table(psf: PSFModel, *, oversample: int = 4) -> tuple[np.ndarray, int, int]:
+    """The PSF averaged over one pixel, tabulated every ``1 / (oversample * s)`` pixel.
+
+    Each table value is the same ``s x s`` sub-sample average that :meth:`PSFModel.stamps`
+    takes over a pixel centred there (``s = psf.supersample``); the sub-sample offsets fall
+    exactly on the grid.
+
+    Returns
+    -------
+    table : (2 half + 1, 2 half + 1) ndarray
+        Pixel-integrated density (per pixel, unit flux), centre at ``[half, half]``.
+    k : int
+        Grid points per pixel.
+    half : int
+        Grid points from the centre to the edge, covering ``psf.radius + 2`` pixels.
+    """
+    s, r = int(psf.supersample), int(psf.radius)
+    k = int(oversample) * s  # grid points per pixel
+    sub = np.rint(((np.arange(s) + 0.5) / s - 0.5) * k).astype(int)  # sub-sample offsets in grid steps
+    half = (r + 2) * k
+    margin = int(np.abs(sub).max())
+    u = np.arange(-half - margin, half + margin + 1) / k
+    dens = psf.density(u[None, :], u[:, None])
+    n = 2 * half + 1
+    acc = np.zeros((n, n))
+    for oy in sub:
+        for ox in sub:
+            acc += dens[margin + oy:margin + oy + n, margin + ox:margin + ox + n]
+    return acc / (s * s), k, half
+
+
 class _StampSampler:
     """Pixel-integrated, window-normalised PSF stamps at any sub-pixel position, fast.
 
@@ -909,20 +940,9 @@ class _StampSampler:
     """
 
     def __init__(self, psf: PSFModel, oversample: int = 4):
-        s, r = int(psf.supersample), int(psf.radius)
-        k = int(oversample) * s  # grid points per pixel
-        sub = np.rint(((np.arange(s) + 0.5) / s - 0.5) * k).astype(int)  # sub-sample offsets in grid steps
-        half = (r + 2) * k
-        margin = int(np.abs(sub).max())
-        u = np.arange(-half - margin, half + margin + 1) / k
-        dens = psf.density(u[None, :], u[:, None])
-        n = 2 * half + 1
-        acc = np.zeros((n, n))
-        for oy in sub:
-            for ox in sub:
-                acc += dens[margin + oy:margin + oy + n, margin + ox:margin + ox + n]
-        self.coef = ndimage.spline_filter(acc / (s * s), order=3, mode="mirror")
-        self.k, self.origin, self.radius = k, half, r
+        table, k, half = pixel_integrated_table(psf, oversample=oversample)
+        self.coef = ndimage.spline_filter(table, order=3, mode="mirror")
+        self.k, self.origin, self.radius = k, half, int(psf.radius)
 
     def __call__(self, dx, dy) -> np.ndarray:
         """(N, 2r+1, 2r+1) stamps of emitters at offsets ``(dx, dy)`` pixels from the middle pixel."""

@@ -67,7 +67,7 @@ import warnings as _warnings
 import numpy as np
 from scipy import ndimage
 
-from latticeread.core.amplitudes import SiteBasis
+from latticeread.core.amplitudes import SiteBasis, pixel_integrated_table
 from latticeread.core.camera import CameraModel
 from latticeread.core.geometry import LatticeGeometry, LatticeQuality, SiteGrid, lattice_sites
 from latticeread.core.psf import PSFModel
@@ -93,22 +93,10 @@ class _PSFTable:
     """
 
     def __init__(self, psf: PSFModel, oversample: int = 4):
-        s, r = int(psf.supersample), int(psf.radius)
-        k = int(oversample) * s
-        sub = np.rint(((np.arange(s) + 0.5) / s - 0.5) * k).astype(int)
-        half = (r + 2) * k
-        margin = int(np.abs(sub).max())
-        u = np.arange(-half - margin, half + margin + 1) / k
-        dens = psf.density(u[None, :], u[:, None])
-        n = 2 * half + 1
-        acc = np.zeros((n, n))
-        for oy in sub:
-            for ox in sub:
-                acc += dens[margin + oy:margin + oy + n, margin + ox:margin + ox + n]
-        acc /= s * s
+        acc, k, half = pixel_integrated_table(psf, oversample=oversample)
         gy, gx = np.gradient(acc, 1.0 / k)
         self.coef = [ndimage.spline_filter(t, order=3, mode="mirror") for t in (acc, gx, gy)]
-        self.k, self.origin, self.radius = k, half, r
+        self.k, self.origin, self.radius = k, half, int(psf.radius)
 
     def __call__(self, dx, dy):
         """Normalised stamps and their derivatives with respect to the emitter position.
