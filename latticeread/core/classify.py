@@ -568,16 +568,7 @@ def otsu_threshold(amplitudes=None, *, nbins: int = 256, hist: tuple | None = No
     up to and after ``k``, the split maximises ``w0 w1 (m0 - m1)^2`` (Otsu, IEEE Trans.
     Syst. Man Cybern. 9, 62 (1979)).
     """
-    if hist is None:
-        a = np.asarray(amplitudes, dtype=float).ravel()
-        a = a[np.isfinite(a)]
-        if a.size == 0:
-            raise ReconstructionError("no finite amplitudes for Otsu's threshold")
-        counts, edges = np.histogram(a, bins=int(nbins))
-        centers = 0.5 * (edges[1:] + edges[:-1])
-    else:
-        centers, counts = _check_hist(hist)
-    counts = counts.astype(float)
+    centers, counts = _histogram(amplitudes, nbins=nbins, hist=hist, what="Otsu's threshold")
     if centers.size == 1:
         return float(centers[0])
     w0 = np.cumsum(counts)[:-1]
@@ -614,16 +605,7 @@ def minimum_threshold(amplitudes=None, *, nbins: int = 256, hist: tuple | None =
     float or None
         Threshold in photons, or None when no smoothing gives two peaks.
     """
-    if hist is None:
-        a = np.asarray(amplitudes, dtype=float).ravel()
-        a = a[np.isfinite(a)]
-        if a.size == 0:
-            raise ReconstructionError("no finite amplitudes for the minimum threshold")
-        counts, edges = np.histogram(a, bins=int(nbins))
-        centers = 0.5 * (edges[1:] + edges[:-1])
-    else:
-        centers, counts = _check_hist(hist)
-    counts = counts.astype(float)
+    centers, counts = _histogram(amplitudes, nbins=nbins, hist=hist, what="the minimum threshold")
     top = counts.size / 8 if max_smoothing is None else float(max_smoothing)
     sigma = 0.5
     while sigma <= top:
@@ -648,6 +630,19 @@ def minimum_threshold(amplitudes=None, *, nbins: int = 256, hist: tuple | None =
 
 
 # --- helpers ----------------------------------------------------------------------------
+def _histogram(amplitudes, *, nbins: int, hist, what: str) -> tuple[np.ndarray, np.ndarray]:
+    """(bin centres, float counts) of the finite amplitudes, or of a precomputed ``hist``."""
+    if hist is not None:
+        centers, counts = _check_hist(hist)
+        return centers, counts.astype(float)
+    a = np.asarray(amplitudes, dtype=float).ravel()
+    a = a[np.isfinite(a)]
+    if a.size == 0:
+        raise ReconstructionError(f"no finite amplitudes for {what}")
+    counts, edges = np.histogram(a, bins=int(nbins))
+    return 0.5 * (edges[1:] + edges[:-1]), counts.astype(float)
+
+
 def _check_hist(hist):
     try:
         counts, centers = hist
