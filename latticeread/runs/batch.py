@@ -760,8 +760,8 @@ def run_batch(inputs, *, calibration, out, workers: int | None = None, scheduler
     metadata : dict, optional
         Stored with the run file when it is created.
     window : int, optional
-        Shots in flight at once (default 4 per worker, at least 48 so that blocks of 32 shots
-        fill); bounds the memory of the main process.
+        Shots in flight at once (default about three tasks per worker, at least 48 so that
+        blocks of 32 shots fill); bounds the memory of the main process.
     images_per_shot : int
         Consecutive frames of each file that image the same atoms (2 or more: the summary
         estimates loss and hopping between them). Default 1: frames are independent.
@@ -807,12 +807,17 @@ def run_batch(inputs, *, calibration, out, workers: int | None = None, scheduler
             description = runner.description
             try:
                 _drive(runner, plan.tasks, writer, counts, examples, progress=progress,
-                       window=window or max(48, 4 * runner.n_workers))
+                       window=window or _default_window(runner))
             finally:
                 runner.close(cancel=True)
     return summarize_run(out, cal, counts=counts, seconds=time.perf_counter() - t_start, workers=description,
                          failure_examples=examples, images_per_shot=images_per_shot,
                          fidelity_bootstrap=fidelity_bootstrap)
+
+
+def _default_window(runner) -> int:
+    """Shots in flight: about three tasks per worker, at least 48 so that blocks of 32 fill."""
+    return max(48, 3 * runner.n_workers * getattr(runner, "shots_per_task", 1))
 
 
 def _make_runner(cal_json: str, *, workers: int | None, scheduler: str | None):
