@@ -440,3 +440,62 @@ def test_autosave_job_writes_the_state_of_when_it_was_made(session, tmp_path):
     again = Session.open(path)
     assert again.calibration.threshold == 200.0
     assert list(again.done) == [True, True, False, False]
+
+
+def _direct_pooled(session):
+    """Pooled counts and per-site mean occupation straight from the stored amplitudes.
+
+    The outside reference: ``amplitude > threshold`` over every stored amplitude with numpy
+    (strictly above, the rule of latticeread.core.classify; common practice, no source).
+    """
+    amps = np.stack([session.amplitudes(i) for i in np.flatnonzero(session.done)])
+    t = session.threshold
+    finite = np.isfinite(amps)
+    occ = amps > t
+    mean = session.sites.to_matrix(occ.sum(axis=0) / finite.sum(axis=0), fill=np.nan, dtype=float)
+    return int(occ.sum()), int(finite.sum() - occ.sum()), mean
+
+
+def test_threshold_drag_recounts_pooled_statistics_without_posteriors(session, monkeypatch):
+    from latticeread.core.classify import ThresholdResult
+
+    session.reconstruct()
+    session.finish_reconstruction()
+    tr = session.threshold_result
+    p = tr.posterior(session.all_amplitudes())
+    uncertain = int(((p >= 0.1) & (p <= 0.9)).sum())
+    assert session.pooled_counts()["uncertain"] == uncertain
+    sizes = []
+    original = ThresholdResult.posterior
+    monkeypatch.setattr(ThresholdResult, "posterior", lambda self, a: sizes.append(np.size(a)) or original(self, a))
+    n_sites = session.amplitudes(0).size
+    for t in np.linspace(150.0, 650.0, 9):  # one drag across the gap between the peaks
+        session.set_threshold(float(t), group="threshold")
+        occupied, empty, mean = _direct_pooled(session)
+        counts = session.pooled_counts()
+        assert (counts["occupied"], counts["empty"]) == (occupied, empty)
+        assert counts["uncertain"] == uncertain  # the posterior does not move with the threshold
+        np.testing.assert_array_equal(session.mean_occupation(), mean)
+    assert max(sizes, default=0) <= n_sites  # no posterior over the pooled amplitudes during the drag
+    session.close_undo_group()
+    for step in (session.undo, session.redo, session.undo):
+        assert step()
+        occupied, empty, mean = _direct_pooled(session)
+        assert session.pooled_counts()["occupied"] == occupied and session.pooled_counts()["empty"] == empty
+        np.testing.assert_array_equal(session.mean_occupation(), mean)
+    assert session.calibration.threshold is None
+
+
+def test_replaced_frame_is_counted_again(session):
+    session.reconstruct()
+    session.finish_reconstruction()
+    before = session.pooled_counts()
+    res = session.result(0)
+    brighter = np.where(np.isfinite(res.amplitudes), res.amplitudes + 5000.0, np.nan)[None]
+    assert session.store_batch(ReconstructBatch(session.generation, (0,), (res.geometry,), brighter,
+                                                res.flags[None], np.array([res.background]), ((),)))
+    occupied, empty, mean = _direct_pooled(session)
+    counts = session.pooled_counts()
+    assert counts["occupied"] > before["occupied"]
+    assert (counts["occupied"], counts["empty"]) == (occupied, empty)
+    np.testing.assert_array_equal(session.mean_occupation(), mean)
