@@ -26,7 +26,7 @@ from latticeread.gui.panels import FidelityPanel, GeometryPanel, HistogramPanel,
 from latticeread.gui.panels.fidelity_panel import loss_note
 from latticeread.gui.plot_export import export_svg, export_widget_png
 
-ICON_DIR = Path(__file__).resolve().parents[1] / "icons"
+ICON_DIR = Path(__file__).resolve().parents[1] / "latticeread" / "gui" / "icons"
 ICON_NAMES = ("latticeread", "open", "save", "export", "estimate-geometry", "estimate-psf", "reconstruct",
               "fidelity", "previous-frame", "next-frame", "toggle-grid", "cancel")
 CONTROL_TYPES = (QtWidgets.QAbstractButton, QtWidgets.QAbstractSpinBox, QtWidgets.QComboBox,
