@@ -60,6 +60,9 @@ log = logging.getLogger(__name__)
 
 SESSION_FORMAT = "latticeread-session"
 SESSION_FORMAT_VERSION = 1
+#: Largest number of pooled amplitudes for which the background threshold fit also keeps a
+#: per-site sorted copy (float64, 8 bytes each) so a threshold drag re-counts by binary search.
+SORTED_INDEX_MAX_AMPLITUDES = 50_000_000
 
 #: User settings with their defaults (optics in nanometres, counts for the camera).
 DEFAULT_SETTINGS: dict[str, Any] = {
@@ -842,6 +845,8 @@ class Session:
                 tr = tr.with_threshold(float(cal.threshold))
             stats = _new_stats(generation, tr, done, block.shape[1])
             _add_stats(stats, block, tr)
+            if block.size <= SORTED_INDEX_MAX_AMPLITUDES:
+                _add_sorted_index(stats, block)
             return generation, tr, stats
 
         return job
@@ -852,8 +857,7 @@ class Session:
         if generation != self._generation or self._calibration is None:
             return False
         if tr is not None and self._calibration.threshold is not None and tr.threshold != self._calibration.threshold:
-            tr = tr.with_threshold(float(self._calibration.threshold))
-            stats = None
+            tr = tr.with_threshold(float(self._calibration.threshold))  # same components: _stats re-counts
         self._set_threshold_result(tr)
         self._reclassify()
         if stats is not None and tr is not None:
@@ -1381,6 +1385,8 @@ def _new_stats(generation: int, classifier, included: np.ndarray, n_sites: int) 
 
 def _add_stats(stats: dict, block: np.ndarray, classifier) -> None:
     """Classify a (n_frames, N) block of amplitudes and add it to pooled statistics."""
+    stats.pop("sorted", None)  # the sorted copy no longer covers every included frame
+    stats.pop("n_not_nan", None)
     occ, p = _classify_module().classify(block, classifier)
     finite = np.isfinite(block)
     stats["occ_sum"] += occ.sum(axis=0, dtype=np.int64)
@@ -1395,26 +1401,63 @@ def _recount_occupied(stats: dict, amplitudes: np.ndarray, classifier) -> None:
     """Re-count occupied sites of the included frames for a new threshold, same components.
 
     The same rule as :func:`latticeread.core.classify.classify` (occupied: amplitude strictly
-    above the threshold, compared in float64; NaN is never occupied), vectorised over the
-    (n_frames, N) array without computing posteriors. The uncertain count is kept: the
-    posterior does not depend on the threshold (see :func:`_posterior_key`).
+    above the threshold, compared in float64; NaN is never occupied), without computing
+    posteriors: by binary search on the per-site sorted copy when the background threshold
+    fit made one, else one vectorised comparison over the (n_frames, N) array. The
+    uncertain count is kept: the posterior does not depend on the threshold (see
+    :func:`_posterior_key`).
     """
-    included = stats["included"]
     t = _threshold_value(classifier)
-    if included.all():
-        block = amplitudes
-    elif included.any():
-        block = amplitudes[included]
+    if stats.get("sorted") is not None:
+        stats["occ_sum"] = _count_above_sorted(stats["sorted"], stats["n_not_nan"], t)
     else:
-        block = amplitudes[:0]
-    if block.dtype != np.float64:
-        block = block.astype(np.float64)
-    with np.errstate(invalid="ignore"):
-        occ = block > t
-    stats["occ_sum"] = occ.sum(axis=0, dtype=np.int64)
+        included = stats["included"]
+        block = amplitudes if included.all() else amplitudes[included]
+        if block.dtype != np.float64:
+            block = block.astype(np.float64)
+        with np.errstate(invalid="ignore"):
+            occ = block > t
+        stats["occ_sum"] = occ.sum(axis=0, dtype=np.int64)
     stats["occupied"] = int(stats["occ_sum"].sum())
     stats["threshold"] = t
     stats["classifier"] = classifier
+
+
+def _add_sorted_index(stats: dict, block: np.ndarray) -> None:
+    """Keep each site's amplitudes over the included frames sorted, for :func:`_count_above_sorted`.
+
+    ``stats["sorted"]``: (N, n_frames) float64, ascending, NaN last; ``stats["n_not_nan"]``:
+    (N,) number of non-NaN amplitudes per site. Made once (about 0.3 s for 10 million
+    amplitudes; a worker does it after a stack is reconstructed); dropped by :func:`_add_stats`.
+    """
+    ordered = np.array(block, dtype=np.float64, order="C").T.copy()
+    ordered.sort(axis=1)
+    stats["sorted"] = ordered
+    stats["n_not_nan"] = (~np.isnan(ordered)).sum(axis=1, dtype=np.int64)
+
+
+def _count_above_sorted(ordered: np.ndarray, n_not_nan: np.ndarray, threshold: float) -> np.ndarray:
+    """Per site, how many amplitudes are strictly above ``threshold`` (photons).
+
+    The same count as ``(amplitudes > threshold).sum(axis=0)`` (NaN never above; +-inf
+    compare as numbers), by a binary search on every site's sorted row at once: about
+    log2(n_frames) steps over N sites, under 1 ms for 10,000 sites and 1,000 frames.
+    """
+    n_sites, n = ordered.shape
+    lo = np.zeros(n_sites, np.int64)   # first position whose value may be > threshold
+    hi = n_not_nan.astype(np.int64)    # NaN sit at the end of each row, beyond hi
+    if n == 0:
+        return hi
+    rows = np.arange(n_sites)
+    for _ in range(int(n).bit_length() + 1):
+        active = lo < hi
+        if not active.any():
+            break
+        mid = (lo + hi) // 2
+        at_or_below = ordered[rows, np.minimum(mid, n - 1)] <= threshold
+        lo = np.where(active & at_or_below, mid + 1, lo)
+        hi = np.where(active & ~at_or_below, mid, hi)
+    return n_not_nan - lo
 
 
 def _differs(a, b) -> bool:
