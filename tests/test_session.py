@@ -484,6 +484,10 @@ def test_threshold_drag_recounts_pooled_statistics_without_posteriors(session, m
         assert session.pooled_counts()["occupied"] == occupied and session.pooled_counts()["empty"] == empty
         np.testing.assert_array_equal(session.mean_occupation(), mean)
     assert session.calibration.threshold is None
+    session.set_threshold_method("otsu")  # other components: the uncertain count is made again
+    p = session.threshold_result.posterior(session.all_amplitudes())
+    assert session.pooled_counts()["uncertain"] == int(((p >= 0.1) & (p <= 0.9)).sum())
+    assert session.pooled_counts()["occupied"] == _direct_pooled(session)[0]
 
 
 def test_replaced_frame_is_counted_again(session):
