@@ -32,12 +32,16 @@ class LatticeQuality:
         Number of bright sites that entered the phase/vector fit.
     warnings : tuple of str
         Human-readable reasons why the estimate may mislead; empty when all is well.
+    spacing_sigma : float
+        1-sigma statistical uncertainty of the lattice spacings, relative (dimensionless),
+        where the method provides one (the image-model fit); NaN otherwise.
     """
 
     peak_to_background: float = float("nan")
     residual: float = float("nan")
     n_sites_used: int = 0
     warnings: tuple[str, ...] = ()
+    spacing_sigma: float = float("nan")
 
     @property
     def is_reliable(self) -> bool:
@@ -50,6 +54,7 @@ class LatticeQuality:
             "residual": float(self.residual),
             "n_sites_used": int(self.n_sites_used),
             "warnings": list(self.warnings),
+            "spacing_sigma": float(self.spacing_sigma),
         }
 
     @classmethod
@@ -59,6 +64,7 @@ class LatticeQuality:
             residual=float(data.get("residual", float("nan"))),
             n_sites_used=int(data.get("n_sites_used", 0)),
             warnings=tuple(data.get("warnings", ())),
+            spacing_sigma=float(data.get("spacing_sigma", float("nan"))),
         )
 
 

@@ -26,10 +26,15 @@ Each iteration
 3. takes the Gauss-Newton step ``(J^T J + mu D) dp = J^T r`` (Levenberg damping ``mu`` raised
    when the step does not lower ``RSS`` at the re-solved amplitudes).
 
-With a stack the vectors are shared and every frame has its own offset (2 + 2 per frame more
-parameters). Holding the amplitudes fixed in step 2 drops the amplitude-geometry coupling from
-the Jacobian; for a symmetric PSF that coupling vanishes for isolated sites, so the iteration
-still converges in a few steps (measured: bench/bench_lattice_model.py).
+Holding the amplitudes fixed in step 2 drops the amplitude-geometry coupling from the Jacobian;
+for a symmetric PSF that coupling vanishes for isolated sites, so the iteration still converges
+in a few steps (measured: bench/bench_lattice_model.py).
+
+With a stack the vectors are shared and every frame has its own offset and amplitudes: each
+frame is fitted alone and the vectors are combined by their information (inverse covariance),
+which for Gaussian errors is the joint fit's answer; a single Gauss-Newton iteration over all
+frames at once converged slowly when the frames' offsets differed (shot-to-shot jitter).
+How precise the result can be at best is :mod:`latticeread.core.lattice_bound`.
 
 A starting geometry within roughly a tenth of a site over the fitted region is needed. When the
 start is only a prior (spacing known to ~1 %, angle to ~10 mrad, e.g. where the lattice's
@@ -51,9 +56,10 @@ spacing/FWHM   start    spacing    angle (mrad)  offset (spacings)  sigma px  CP
 1.5            Fourier  1.1e-4     0.06          0.002              0.013     3
 =============  =======  =========  ============  =================  ========  =======
 
-At 0.8 FWHM the 2e-4 spacing target is beyond what one such frame holds (sigma over the
-distance of the outermost site, ~350 pixels, is ~2.5e-4); fit a few frames together (a stack
-shares the vectors) for more.
+At 0.8 FWHM the 2e-4 spacing target is beyond what one such frame holds: the Cramer-Rao bound
+for any estimator with free amplitudes is 2.3e-4 (1 sigma; 1.4e-4 even with every atom's
+occupation and brightness known; bench/bench_lattice_bound.py). Fit several frames together
+(a stack shares the vectors); the error falls as one over the square root of their number.
 
 Units: positions and vectors in pixels (x = column, y = row, centre of pixel (0, 0) at (0, 0));
 images in photons per pixel (counts are converted with the camera model when one is given).
@@ -73,7 +79,7 @@ from latticeread.core.geometry import LatticeGeometry, LatticeQuality, SiteGrid,
 from latticeread.core.psf import PSFModel
 from latticeread.errors import FrameError, LatticeNotFound, LatticeReadWarning
 
-__all__ = ["refine_lattice_model", "lattice_from_prior", "MIN_MODEL_ATOMS"]
+__all__ = ["refine_lattice_model", "lattice_from_prior", "MIN_MODEL_ATOMS", "SPACING_SIGMA_WARN", "PRECISION_WARNING"]
 
 log = logging.getLogger(__name__)
 
@@ -161,18 +167,24 @@ class _Problem:
         self.shape = frames.shape[1:]
 
     def solve_linear(self, a1, a2, offsets):
-        """Amplitudes, backgrounds and RSS (photons^2) at one geometry."""
-        geom = LatticeGeometry(a1=tuple(a1), a2=tuple(a2), offset=tuple(offsets[0]))
-        sites = _site_grid(geom, self.rows, self.cols)
-        basis = SiteBasis(geom, frame_shape=self.shape, psf=self.psf, sites=sites)
-        amps, bgs = [], []
+        """Amplitudes, backgrounds and the site bases of every frame at one geometry.
+
+        Every frame gets a basis built at its own offset: a basis reused at a shifted offset
+        keeps the reference offset's normal matrix, which is wrong for the sites whose stamps
+        the frame edge cuts (by tens of photons, leaking into the background and from there
+        into every amplitude, for a shift of one pixel).
+        """
+        amps, bgs, bases = [], [], []
         for frame, off in zip(self.frames, offsets):
-            res = basis.linear(frame, offset=tuple(off))
+            geom = LatticeGeometry(a1=tuple(a1), a2=tuple(a2), offset=tuple(off))
+            basis = SiteBasis(geom, frame_shape=self.shape, psf=self.psf, sites=_site_grid(geom, self.rows, self.cols))
+            res = basis.linear(frame)
             amps.append(res.amplitudes)
             bgs.append(res.background)
-        return amps, bgs, basis
+            bases.append(basis)
+        return amps, bgs, bases
 
-    def jacobian(self, a1, a2, offsets, amps, bgs, basis, *, crop, rss_only=False):
+    def jacobian(self, a1, a2, offsets, amps, bgs, bases, *, crop, rss_only=False):
         """Normal matrix J^T J, gradient J^T r and RSS on the crop, with the amplitudes held.
 
         With ``rss_only`` only the RSS is computed (the matrices are returned as None).
@@ -187,7 +199,7 @@ class _Problem:
         size = 2 * r + 1
         pad = size
         oy, ox = np.mgrid[0:size, 0:size]
-        for f, (frame, off, amp, bg) in enumerate(zip(self.frames, offsets, amps, bgs)):
+        for f, (frame, off, amp, bg, basis) in enumerate(zip(self.frames, offsets, amps, bgs, bases)):
             x = off[0] + self.rows * a1[0] + self.cols * a2[0]
             y = off[1] + self.rows * a1[1] + self.cols * a2[1]
             xi, yi = np.rint(x).astype(int), np.rint(y).astype(int)
@@ -228,7 +240,7 @@ class _Problem:
             frame_cols = [d.reshape(full)[pad:pad + height, pad:pad + width] for d in dm]
             roi = basis.crop
             raw = np.stack([c[roi].ravel() for c in frame_cols], axis=1)
-            proj = [basis.project(c, offset=tuple(off)) for c in frame_cols]
+            proj = [basis.project(c) for c in frame_cols]
             sols = [basis.solve(c, d) for c, d in proj]
             schur = np.array([[float(proj[i][0] @ sols[j][0] + np.dot(proj[i][1], sols[j][1]))
                                for j in range(6)] for i in range(6)])
@@ -255,9 +267,32 @@ def _far_uncertainty(jtj, rss, n_frames, crop, rows, cols, n_sites) -> float:
     return float(np.sqrt(val)) if val >= 0 else float("nan")
 
 
+def _spacing_sigma(jtj, rss, n_frames, crop, n_sites, a1, a2) -> float:
+    """Larger of the 1-sigma relative uncertainties of |a1| and |a2| from the Gauss-Newton covariance."""
+    n_pix = n_frames * (crop[0].stop - crop[0].start) * (crop[1].stop - crop[1].start)
+    sigma2 = rss / max(n_pix - n_sites * n_frames - jtj.shape[0], 1)
+    try:
+        cov = np.linalg.inv(jtj)[:4, :4] * sigma2
+    except np.linalg.LinAlgError:
+        return float("nan")
+    worst = 0.0
+    for k, a in enumerate((np.asarray(a1, float), np.asarray(a2, float))):
+        g = np.zeros(4)
+        g[2 * k:2 * k + 2] = a / (a @ a)  # d|a| / |a|
+        worst = max(worst, float(g @ cov @ g))
+    return float(np.sqrt(worst))
+
+
+#: Above this 1-sigma relative spacing uncertainty the fit adds a warning (at 1e-4, about one
+#: estimate in twenty is off by more than 2e-4 for normal errors; the level is our choice).
+SPACING_SIGMA_WARN = 1e-4
+#: Start of that warning (callers tell a precise-enough fit from a failed one by it).
+PRECISION_WARNING = "the lattice spacing from this fit is uncertain to"
+
+
 def refine_lattice_model(image_or_stack, geometry: LatticeGeometry, *, psf: PSFModel,
                          camera: CameraModel | None = None, offsets=None, max_sites_radius: float | None = None,
-                         max_iter: int = 8, tol: float = 2e-3) -> LatticeGeometry:
+                         max_iter: int = 20, tol: float = 2e-3) -> LatticeGeometry:
     """Refine lattice vectors and offset by a least-squares fit of the full image model.
 
     Parameters
@@ -290,9 +325,12 @@ def refine_lattice_model(image_or_stack, geometry: LatticeGeometry, *, psf: PSFM
         ``residual`` = 1-sigma statistical uncertainty, in pixels, of the position of the
         farthest fitted site (from the Gauss-Newton covariance scaled by the residual
         variance); ``n_sites_used`` = sites brighter than half the 99th-percentile
-        amplitude; ``warnings``. With a stack only the first frame's offset is returned (the
-        other offsets are fitted alongside but not reported; re-find them with the shared
-        vectors by :func:`latticeread.core.lattice.refine_phase`).
+        amplitude; ``spacing_sigma`` = 1-sigma relative uncertainty of the spacings (a
+        warning starting with :data:`PRECISION_WARNING` is added above
+        :data:`SPACING_SIGMA_WARN`); ``warnings``. With a stack the vectors are the
+        information-weighted combination of the frames' own fits (see the module notes) and
+        only the first frame's offset is returned; re-find the others with the shared vectors
+        by :func:`latticeread.core.lattice.refine_phase`.
 
     Raises
     ------
@@ -301,6 +339,21 @@ def refine_lattice_model(image_or_stack, geometry: LatticeGeometry, *, psf: PSFM
     LatticeNotFound
         No lattice site in the frame, or the fit runs away (vectors changed by more than 5 %).
     """
+    frames = _prepare_frames(image_or_stack, camera)
+    if offsets is None:
+        offs = np.tile(np.asarray(geometry.offset, float), (frames.shape[0], 1))
+    else:
+        offs = np.asarray(offsets, float).reshape(-1, 2)
+        if offs.shape[0] != frames.shape[0]:
+            raise FrameError(f"got {offs.shape[0]} starting offsets for {frames.shape[0]} frames")
+    fit, _ = _refine_stack(frames, geometry, psf=psf, offsets=offs, max_sites_radius=max_sites_radius,
+                           max_iter=max_iter, tol=tol)
+    return fit
+
+
+def _refine_model(image_or_stack, geometry, *, psf, camera=None, offsets=None, max_sites_radius=None, max_iter=20,
+                  tol=2e-3):
+    """:func:`refine_lattice_model`, also returning every frame's fitted offset, (n_frames, 2) pixels."""
     frames = _prepare_frames(image_or_stack, camera)
     n_f = frames.shape[0]
     shape = frames.shape[1:]
@@ -353,6 +406,7 @@ def refine_lattice_model(image_or_stack, geometry: LatticeGeometry, *, psf: PSFM
     jtj, jtr, rss = problem.jacobian(a1, a2, offs, amps, bgs, basis, crop=crop)
     mu = 1e-3
     n_iter = 0
+    small_gains = 0
     extent = float(np.max(np.hypot(core_rows, core_cols)))
     converged = False
     for n_iter in range(1, max_iter + 1):
@@ -382,7 +436,10 @@ def refine_lattice_model(image_or_stack, geometry: LatticeGeometry, *, psf: PSFM
             a1, a2, offs, amps, bgs = na1, na2, noffs, n_amps, n_bgs
             jtj, jtr, rss = problem.jacobian(a1, a2, offs, amps, bgs, n_basis, crop=crop)
             mu = max(mu / 10, 1e-9)
-            if gain < CHI2_GAIN:
+            # two small gains in a row: one alone can be a short step in a flat valley (bright,
+            # well-resolved atoms make the Gauss-Newton direction converge only linearly)
+            small_gains = small_gains + 1 if gain < CHI2_GAIN else 0
+            if small_gains >= 2:
                 converged = True
                 break
             log.debug("lattice model step %d: rss %.6g, largest site move %.2g px", n_iter, rss, move)
@@ -407,9 +464,90 @@ def refine_lattice_model(image_or_stack, geometry: LatticeGeometry, *, psf: PSFM
         ratio = geometry.quality.peak_to_background
     else:
         ratio = float("nan")
+    spacing_sigma = _spacing_sigma(jtj, rss, n_f, crop, len(rows), a1, a2)
+    if np.isfinite(spacing_sigma) and spacing_sigma > SPACING_SIGMA_WARN:
+        warn.append(_precision_warning(spacing_sigma, n_f))
     quality = LatticeQuality(peak_to_background=ratio, residual=uncertainty, n_sites_used=n_bright,
-                             warnings=tuple(warn))
-    return LatticeGeometry(a1=tuple(a1), a2=tuple(a2), offset=tuple(offs[0]), quality=quality)
+                             warnings=tuple(warn), spacing_sigma=spacing_sigma)
+    n_pix = n_f * (crop[0].stop - crop[0].start) * (crop[1].stop - crop[1].start)
+    try:
+        cov = np.linalg.inv(jtj) * (rss / max(n_pix - len(rows) * n_f - jtj.shape[0], 1))
+    except np.linalg.LinAlgError:
+        cov = None
+    fit = LatticeGeometry(a1=tuple(a1), a2=tuple(a2), offset=tuple(offs[0]), quality=quality)
+    return fit, offs, cov, (core_rows, core_cols)
+
+
+def _precision_warning(spacing_sigma: float, n_frames: int) -> str:
+    return (f"{PRECISION_WARNING} {spacing_sigma:.1e} (relative, 1 sigma) from {n_frames} "
+            f"frame{'s' if n_frames > 1 else ''}: fit more frames together (or use brighter frames) where a "
+            f"better spacing matters")
+
+
+def _refine_stack(frames, geometry, *, psf, offsets, max_sites_radius=None, max_iter=20, tol=2e-3):
+    """Shared vectors of a stack: every frame fitted alone, the vectors combined by information.
+
+    With Gaussian errors the joint fit of shared vectors and per-frame offsets and amplitudes
+    equals the information-weighted mean of the per-frame estimates (each frame's covariance
+    of ``(a1, a2)`` with its own offset and amplitudes profiled out): ``a = C sum_f C_f^-1 a_f``,
+    ``C = (sum_f C_f^-1)^-1``. Fitting frame by frame keeps every Gauss-Newton problem small
+    and well converging. Each frame's offset is then moved so that the centre of its fitted
+    region stays where its own fit put it. Returns the geometry (offset of frame 0) and every
+    frame's offset, pixels.
+    """
+    n_f = frames.shape[0]
+    offsets = np.asarray(offsets, float).reshape(n_f, 2)
+    if n_f == 1:
+        fit, offs, _, _ = _refine_model(frames, geometry, psf=psf, offsets=offsets, max_sites_radius=max_sites_radius,
+                                        max_iter=max_iter, tol=tol)
+        return fit, offs
+    fits = [_refine_model(frames[f:f + 1], geometry.with_offset(tuple(offsets[f])), psf=psf, offsets=offsets[f:f + 1],
+                          max_sites_radius=max_sites_radius, max_iter=max_iter, tol=tol) for f in range(n_f)]
+    info = np.zeros((4, 4))
+    weighted = np.zeros(4)
+    used, warn = [], []
+    for f, (fit, _, cov, _) in enumerate(fits):
+        problems = [w for w in fit.quality.warnings if not w.startswith(PRECISION_WARNING)]
+        ok = cov is not None and np.all(np.isfinite(cov[:4, :4]))
+        if ok:
+            try:
+                frame_info = np.linalg.inv(cov[:4, :4])
+            except np.linalg.LinAlgError:
+                ok = False
+        if not ok:
+            warn.append(f"frame {f} does not determine the lattice vectors and was left out of the combined fit")
+            continue
+        warn.extend(f"frame {f}: {w}" for w in problems)
+        info += frame_info
+        weighted += frame_info @ np.concatenate([fit.a1, fit.a2])
+        used.append(f)
+    if not used:
+        raise LatticeNotFound("no frame of the stack determines the lattice vectors")
+    combined_cov = np.linalg.inv(info)
+    vec = combined_cov @ weighted
+    a1, a2 = vec[:2], vec[2:]
+    offs = np.empty((n_f, 2))
+    for f, (fit, own, _, (core_rows, core_cols)) in enumerate(fits):
+        r_mid, c_mid = float(np.mean(core_rows)), float(np.mean(core_cols))
+        offs[f] = own[0] + r_mid * (np.asarray(fit.a1) - a1) + c_mid * (np.asarray(fit.a2) - a2)
+    worst = 0.0
+    for k, a in enumerate((a1, a2)):
+        g = np.zeros(4)
+        g[2 * k:2 * k + 2] = a / (a @ a)
+        worst = max(worst, float(g @ combined_cov @ g))
+    spacing_sigma = float(np.sqrt(worst))
+    if spacing_sigma > SPACING_SIGMA_WARN:
+        warn.append(_precision_warning(spacing_sigma, len(used)))
+    # far-site uncertainty of frame 0: combined vectors, frame 0's own offset variance
+    first, _, cov0, (core_rows, core_cols) = fits[0]
+    far = int(np.argmax(np.hypot(core_rows, core_cols)))
+    g = np.array([[core_rows[far], 0, core_cols[far], 0], [0, core_rows[far], 0, core_cols[far]]], float)
+    pos = g @ combined_cov @ g.T + (cov0[4:6, 4:6] if cov0 is not None else np.full((2, 2), np.nan))
+    uncertainty = float(np.sqrt(np.max(np.linalg.eigvalsh(pos)))) if np.all(np.isfinite(pos)) else float("nan")
+    quality = LatticeQuality(peak_to_background=first.quality.peak_to_background, residual=uncertainty,
+                             n_sites_used=sum(fits[f][0].quality.n_sites_used for f in used), warnings=tuple(warn),
+                             spacing_sigma=spacing_sigma)
+    return LatticeGeometry(a1=tuple(a1), a2=tuple(a2), offset=tuple(offs[0]), quality=quality), offs
 
 
 def lattice_from_prior(image_or_stack, *, psf: PSFModel, spacing, angle: float, angle_between: float = np.pi / 2,
@@ -422,7 +560,7 @@ def lattice_from_prior(image_or_stack, *, psf: PSFModel, spacing, angle: float, 
     roughly (from the optics, or from a calibration at a larger magnification), this function
 
     1. builds the prior lattice (``a2`` at ``angle``, ``a1`` at ``angle + angle_between``);
-    2. finds the offset on a disk of sites around the frame centre: a coarse 6 x 6 grid search
+    2. finds the offset of every frame on a disk of sites around the frame centre: a coarse 6 x 6 grid search
        over one unit cell of the matched-filter energy, then a Newton fit of the image model
        (:meth:`latticeread.core.amplitudes.SiteBasis.fit_offset`);
     3. refines vectors and offset with :func:`refine_lattice_model` on disks of ``radii``
@@ -433,8 +571,8 @@ def lattice_from_prior(image_or_stack, *, psf: PSFModel, spacing, angle: float, 
     Parameters
     ----------
     image_or_stack : (H, W) or (n_frames, H, W) array_like
-        Frame(s) in photons per pixel, or counts with ``camera``. A stack is summed for the
-        offset search (its phase must not drift).
+        Frame(s) in photons per pixel, or counts with ``camera``. Every frame of a stack gets
+        its own offset (the phase may jitter from shot to shot); the vectors are shared.
     psf : PSFModel
         Image of one atom.
     spacing : float or (float, float)
@@ -483,14 +621,15 @@ def lattice_from_prior(image_or_stack, *, psf: PSFModel, spacing, angle: float, 
         keep = np.hypot(rows, cols) <= first
         rows, cols = rows[keep], cols[keep]
     basis = SiteBasis(prior, frame_shape=shape, psf=psf, sites=_site_grid(prior, rows, cols))
-    offset, _ = basis.fit_offset(frames.sum(axis=0), search=True)
-    geometry = prior.with_offset(tuple(offset))
+    # every frame its own offset (shots jitter); each is the translate nearest the prior's offset
+    offsets = np.array([basis.fit_offset(frame, search=True)[0] for frame in frames], float)
+    geometry = prior.with_offset(tuple(offsets[0]))
     for rad in radii:
         with _warnings.catch_warnings():
             _warnings.simplefilter("ignore", LatticeReadWarning)
             # the inner disks only need to bring the start within reach of the next one
-            geometry = refine_lattice_model(frames, geometry, psf=psf, max_sites_radius=rad,
-                                            max_iter=8 if rad is None else 4)
+            geometry, offsets = _refine_stack(frames, geometry, psf=psf, offsets=offsets, max_sites_radius=rad,
+                                              max_iter=20 if rad is None else 10)
     # keep the site nearest the frame centre as site (0, 0)
     fr, fc = geometry.fractional_indices(centre[0], centre[1])
     shift = np.rint(fr) * np.asarray(geometry.a1) + np.rint(fc) * np.asarray(geometry.a2)
