@@ -1,6 +1,10 @@
 """``latticeread calibrate``: lattice geometry, PSF and threshold from a stack, saved as JSON.
 
-The lattice is estimated from the frames unless its spacing and angle are fixed; the PSF is
+The lattice is estimated from the Fourier peaks of the frames, with the spacing and angle held
+at the lab's values when ``--lattice-spacing`` / ``--lattice-angle`` are given; when the peaks
+are invisible (spacing below about one PSF FWHM) and both values and the PSF are given, the
+lattice is fitted to the image model from them instead. ``--refine-vectors`` refits the
+vectors to the image model of ``--refine-frames`` frames together. The PSF is
 the ideal Airy pattern (``--psf airy`` with ``--wavelength-nm --na --pixel-size-nm``), a
 Gaussian of given FWHM (``--psf gaussian --fwhm``) or measured from isolated atoms
 (``--psf estimate``, the default). The threshold is chosen on the pooled histogram of site
@@ -68,8 +72,39 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--weighting", choices=["none", "camera"], default="none",
                         help="pixel weights of the amplitude fit: none (default) or camera (inverse camera-noise "
                              "variance of the mean frame, stored in the calibration)")
+    lat = parser.add_argument_group("lattice (the lab's own knowledge, optional)")
+    lat.add_argument("--lattice-spacing", type=float, nargs="+", default=None, metavar="PX",
+                     help="lattice spacing in pixels (one value, or one per vector): held fixed by the estimate, "
+                          "and the prior of the image-model fit when the Fourier peaks are invisible")
+    lat.add_argument("--lattice-angle", type=float, default=None, metavar="DEG",
+                     help="direction of the first lattice vector, degrees from +x towards +y (image rows down)")
+    lat.add_argument("--lattice-angle-between", type=float, default=None, metavar="DEG",
+                     help="angle from the second to the first vector, degrees (default 90; 60 or 120 for "
+                          "triangular lattices)")
+    lat.add_argument("--refine-vectors", action="store_true",
+                     help="refit the lattice vectors to the full image model (seconds to minutes; most useful "
+                          "near or below one PSF FWHM); prints the 1-sigma spacing uncertainty")
+    lat.add_argument("--refine-frames", type=int, default=4, metavar="N",
+                     help="frames fitted together by the image-model fit (default 4; the spacing error falls "
+                          "as 1/sqrt(N))")
     parser.add_argument("--force", action="store_true", help="overwrite an existing output file")
     add_camera_arguments(parser)
+
+
+def lattice_prior_from_args(args) -> dict | None:
+    """The ``lattice_prior`` of :func:`latticeread.core.pipeline.calibrate` from the options."""
+    spacing = getattr(args, "lattice_spacing", None)
+    angle = getattr(args, "lattice_angle", None)
+    between = getattr(args, "lattice_angle_between", None)
+    if spacing is None and angle is None and between is None:
+        return None
+    if spacing is not None:
+        if len(spacing) > 2 or any(not v > 0 for v in spacing):
+            raise CalibrationError(f"--lattice-spacing takes one or two positive values in pixels, got {spacing}")
+        spacing = spacing[0] if len(spacing) == 1 else list(spacing)
+    if between is not None and angle is None:
+        raise CalibrationError("--lattice-angle-between needs --lattice-angle (the direction of the first vector)")
+    return {"spacing_px": spacing, "angle_deg": angle, "angle_between_deg": between}
 
 
 def psf_from_args(args):
@@ -108,10 +143,15 @@ def run(args: argparse.Namespace) -> int:
         raise LatticeReadError(f"{out} exists; pass --force to overwrite it")
     camera = camera_from_args(args)
     psf = psf_from_args(args)
+    prior = lattice_prior_from_args(args)
+    if getattr(args, "refine_frames", 4) < 1:
+        raise CalibrationError(f"--refine-frames must be at least 1, got {args.refine_frames}")
     stack = load_frames(args.frames, dataset=args.dataset, saturation=camera.saturation, nonfinite="keep")
     try:
         cal = calibrate(stack, psf=psf, camera=camera, pixel_size_nm=args.pixel_size_nm,
-                        threshold_method=args.threshold_method, method=args.method, max_frames=args.max_frames)
+                        threshold_method=args.threshold_method, method=args.method, max_frames=args.max_frames,
+                        refine_vectors=getattr(args, "refine_vectors", False),
+                        refine_frames=getattr(args, "refine_frames", 4), lattice_prior=prior)
         if getattr(args, "weighting", "none") == "camera":
             cal = with_camera_weighting(cal, stack, max_frames=args.max_frames)
     finally:
@@ -122,6 +162,12 @@ def run(args: argparse.Namespace) -> int:
     print(f"wrote {out}: spacings {a1:.3f}, {a2:.3f} px, PSF {cal.psf.kind} FWHM {cal.psf.fwhm:.3f} px, "
           f"{cal.amplitude_method} amplitudes, threshold {cal.threshold:.1f} photons"
           + (", camera-noise weights" if cal.notes.get("weighting") == "camera" else ""))
+    for key, what in (("geometry_from_prior", "lattice fitted from the given spacing and angle"),
+                      ("vectors_model_fit", "lattice vectors refined by the image-model fit")):
+        fit = cal.notes.get(key)
+        if fit:
+            print(f"{what} on {fit['n_frames']} frame(s): spacing uncertain to {fit['spacing_sigma']:.1e} "
+                  f"(relative, 1 sigma)")
     for text in cal.notes.get("warnings", []):
         print(f"warning: {text}")
     return 0

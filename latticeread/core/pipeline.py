@@ -582,7 +582,8 @@ def reconstruct_stack(frames: Iterable, calibration: Calibration, *, method: str
 def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None = None,
               pixel_size_nm: float | None = None, geometry: LatticeGeometry | None = None,
               threshold_method: str = "mixture", method: str | None = None, mask=None,
-              restrict_region: bool = True, max_frames: int = 50, refine_vectors: bool = False) -> Calibration:
+              restrict_region: bool = True, max_frames: int = 50, refine_vectors: bool = False,
+              refine_frames: int = 4, lattice_prior: dict | None = None) -> Calibration:
     """Make a calibration from a stack of frames.
 
     Parameters
@@ -613,11 +614,24 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
     max_frames : int
         Largest number of frames used.
     refine_vectors : bool
-        Once the PSF is known, refit the lattice vectors and offset to the full image model of
-        the first frame (:func:`latticeread.core.lattice_model.refine_lattice_model`; several
-        seconds per 512x512 frame) and keep them when the fit converged without warnings
-        (noted in ``vectors_model_fit``). Worth it when the spacing is near or below the PSF
-        FWHM, where the Fourier estimate is least precise.
+        Once the PSF is known, refit the lattice vectors to the full image model of the first
+        ``refine_frames`` frames together (shared vectors, an offset per frame;
+        :func:`latticeread.core.lattice_model.refine_lattice_model`; several seconds per
+        512x512 frame, about a minute below 0.9 FWHM) and keep them when the fit converged
+        (noted in ``vectors_model_fit`` with its 1-sigma ``spacing_sigma``; a warning when that
+        exceeds :data:`latticeread.core.lattice_model.SPACING_SIGMA_WARN`). Worth it when the
+        spacing is near or below the PSF FWHM, where the Fourier estimate is least precise.
+    refine_frames : int
+        Frames in the joint model fit (``refine_vectors`` and the prior path): the statistical
+        error of the spacing falls as one over the square root of their number.
+    lattice_prior : dict, optional
+        The lab's own knowledge of the lattice: ``spacing_px`` (pixels, one number or one per
+        vector), ``angle_deg`` (direction of a1 from +x towards +y, degrees) and optionally
+        ``angle_between_deg`` (from a2 to a1, default 90). Used as fixed values by the Fourier
+        estimate; when that finds no lattice (below about one PSF FWHM the lattice's Fourier
+        peaks vanish) and ``psf`` is given, the geometry is fitted from this prior by
+        :func:`latticeread.core.lattice_model.lattice_from_prior` instead (noted in
+        ``geometry_from_prior``).
 
     Returns
     -------
@@ -650,9 +664,7 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
     clean = np.where(finite, photons, np.nanmedian(photons)) if not finite.all() else photons
     notes: dict = {"n_frames_used": int(len(chosen))}
     if geometry is None:
-        from latticeread.core.lattice import estimate_lattice  # the geometry engineer's module
-
-        geometry = _estimate_geometry(clean, estimate_lattice)
+        geometry = _geometry_from_frames(clean, psf=psf, prior=lattice_prior, n_fit=refine_frames, notes=notes)
         notes["geometry_estimated"] = True
     psf_warnings: list[str] = []
     if psf is None:
@@ -675,21 +687,11 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
                                       "why": str(exc)}
             psf_warnings.extend(fitted.warnings)
         notes["psf_estimated"] = True
-    if refine_vectors:
-        from latticeread.core.lattice_model import refine_lattice_model
-
-        try:
-            fitted_geometry = refine_lattice_model(clean[0], geometry, psf=psf)
-        except (LatticeNotFound, ReconstructionError, FrameError) as exc:
-            psf_warnings.append(f"the image-model fit of the lattice vectors failed ({exc}); kept the first estimate")
-        else:
-            if fitted_geometry.quality.warnings:
-                psf_warnings.extend(fitted_geometry.quality.warnings)
-                psf_warnings.append("kept the first lattice estimate: the image-model fit was not clean")
-            else:
-                notes["vectors_model_fit"] = {"before": [list(geometry.a1), list(geometry.a2)],
-                                              "sigma_px": float(fitted_geometry.quality.residual)}
-                geometry = fitted_geometry
+    if refine_vectors and "geometry_from_prior" not in notes:  # the prior path is a model fit already
+        geometry = _refine_vectors(clean, geometry, psf=psf, n_fit=refine_frames, notes=notes,
+                                   warnings=psf_warnings)
+    elif "geometry_from_prior" in notes:
+        psf_warnings.extend(w for w in geometry.quality.warnings)
     ratio = min(geometry.spacings) / psf.fwhm
     if method is None:
         method = "nonlinear" if ratio < NONLINEAR_BELOW else "linear"
@@ -771,6 +773,73 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
     return Calibration(geometry=geometry, psf=psf, camera=camera, frame_shape=shape, threshold=float(tr.threshold),
                        threshold_method=threshold_method, amplitude_method=method, pixel_size_nm=pixel_size_nm,
                        notes=notes)
+
+
+def _prior_kwargs(prior: dict | None) -> dict:
+    """``lattice_prior`` (see :func:`calibrate`) as keyword arguments of ``estimate_lattice``."""
+    prior = prior or {}
+    unknown = set(prior) - {"spacing_px", "angle_deg", "angle_between_deg"}
+    if unknown:
+        raise CalibrationError(f"unknown lattice prior entries {sorted(unknown)}; use spacing_px, angle_deg, "
+                               "angle_between_deg")
+    kwargs: dict = {}
+    if prior.get("spacing_px") is not None:
+        kwargs["fixed_spacing"] = prior["spacing_px"]
+    if prior.get("angle_deg") is not None:
+        a1_dir = np.deg2rad(float(prior["angle_deg"]))
+        between = np.deg2rad(float(prior.get("angle_between_deg") or 90.0))
+        kwargs["fixed_angle"] = (float(a1_dir), float(a1_dir - between))  # canonical: a2 = a1 - between
+    return kwargs
+
+
+def _geometry_from_frames(clean, *, psf, prior, n_fit, notes) -> LatticeGeometry:
+    """The Fourier estimate (with the prior's fixed values), or a model fit from the prior."""
+    from latticeread.core.lattice import estimate_lattice
+
+    kwargs = _prior_kwargs(prior)
+    try:
+        return _estimate_geometry(clean, lambda image: estimate_lattice(image, **kwargs))
+    except LatticeNotFound as exc:
+        if kwargs.get("fixed_spacing") is None or "fixed_angle" not in kwargs:
+            raise LatticeNotFound(f"{exc}. Below about one PSF FWHM the lattice's Fourier peaks vanish: give the "
+                                  "spacing and angle of the lattice and the PSF to fit it from that prior") from exc
+        if psf is None:
+            raise LatticeNotFound(f"{exc}. Fitting the lattice from the spacing and angle needs the PSF: give it "
+                                  "from the optics (e.g. --psf airy --wavelength-nm --na --pixel-size-nm)") from exc
+    from latticeread.core.lattice_model import lattice_from_prior
+
+    a1_dir, a2_dir = kwargs["fixed_angle"]
+    k = max(1, min(int(n_fit), len(clean)))
+    geometry = lattice_from_prior(clean[:k], psf=psf, spacing=kwargs["fixed_spacing"], angle=a2_dir,
+                                  angle_between=a1_dir - a2_dir)
+    notes["geometry_from_prior"] = {"prior": dict(prior), "n_frames": k,
+                                    "spacing_sigma": float(geometry.quality.spacing_sigma),
+                                    "sigma_px": float(geometry.quality.residual)}
+    return geometry
+
+
+def _refine_vectors(clean, geometry, *, psf, n_fit, notes, warnings: list) -> LatticeGeometry:
+    """Vectors from a joint image-model fit of the first frames; the start when it fails."""
+    from latticeread.core.lattice import refine_phase
+    from latticeread.core.lattice_model import PRECISION_WARNING, refine_lattice_model
+
+    k = max(1, min(int(n_fit), len(clean)))
+    try:
+        offsets = [refine_phase(frame, geometry).offset for frame in clean[:k]]
+        fitted = refine_lattice_model(clean[:k], geometry.with_offset(offsets[0]), psf=psf, offsets=offsets)
+    except (LatticeNotFound, ReconstructionError, FrameError) as exc:
+        warnings.append(f"the image-model fit of the lattice vectors failed ({exc}); kept the first estimate")
+        return geometry
+    problems = [w for w in fitted.quality.warnings if not w.startswith(PRECISION_WARNING)]
+    if problems:
+        warnings.extend(problems)
+        warnings.append("kept the first lattice estimate: the image-model fit was not clean")
+        return geometry
+    warnings.extend(w for w in fitted.quality.warnings if w.startswith(PRECISION_WARNING))
+    notes["vectors_model_fit"] = {"before": [list(geometry.a1), list(geometry.a2)], "n_frames": k,
+                                  "sigma_px": float(fitted.quality.residual),
+                                  "spacing_sigma": float(fitted.quality.spacing_sigma)}
+    return fitted
 
 
 def _estimate_geometry(stack, estimate_lattice) -> LatticeGeometry:
