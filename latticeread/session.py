@@ -986,8 +986,17 @@ class Session:
 
         return job
 
-    def calibrate_job(self):
-        """A function returning a full Calibration (geometry, PSF, threshold) from the frames."""
+    def calibrate_job(self, *, constraints: dict | None = None):
+        """A function returning a full Calibration (geometry, PSF, threshold) from the frames.
+
+        Parameters
+        ----------
+        constraints : dict, optional
+            As for :meth:`estimate_geometry_job`. With both the spacing and the direction of
+            a1 and the ideal Airy PSF chosen, a lattice whose Fourier peaks are invisible
+            (spacing below about one FWHM) is fitted to the image model from them instead
+            (``lattice_prior`` of :func:`latticeread.core.pipeline.calibrate`).
+        """
         if self._frames is None:
             raise FrameError("no frames are loaded; open a file first")
         n = min(self.n_frames, int(self._settings["geometry_frames"]))
@@ -1001,6 +1010,9 @@ class Session:
             kwargs: dict[str, Any] = {"pixel_size_nm": settings["pixel_size_nm"], "camera": camera}
             if old is not None:
                 kwargs["threshold_method"] = old.threshold_method
+            prior = {key: (constraints or {}).get(key) for key in ("spacing_px", "angle_deg", "angle_between_deg")}
+            if any(value is not None for value in prior.values()):
+                kwargs["lattice_prior"] = prior
             if settings["psf_source"] == "airy" and settings["pixel_size_nm"]:
                 from latticeread.core.psf import airy_psf
 

@@ -805,7 +805,8 @@ class MainWindow(QtWidgets.QMainWindow):
         if s.frames is None:
             self.show_status("open a frame file first")
             return
-        self._start("calibrate", s.calibrate_job(), "calibrating: lattice, PSF and threshold",
+        job = s.calibrate_job(constraints=getattr(self, "_constraints", None) or None)
+        self._start("calibrate", job, "calibrating: lattice, PSF and threshold",
                     on_result=lambda cal: self._apply(lambda: s.set_calibration(cal), "calibration done"))
 
     def estimate_geometry(self) -> None:
