@@ -38,21 +38,31 @@ from latticeread.errors import LatticeNotFound, LatticeReadWarning  # noqa: E402
 SPACING = 9.8
 
 
-def make_frame(ratio, seed, *, kind="gaussian", shape=(512, 512), filling=0.3, photons=500.0):
-    fwhm = SPACING / ratio
-    if kind == "gaussian":
-        psf = gaussian_psf(fwhm=fwhm)
-    else:  # Airy of 767 nm light through NA 0.75, pixel size chosen to give this FWHM
-        psf = airy_psf(wavelength_nm=767.0, numerical_aperture=0.75,
-                       pixel_size_nm=0.5145 * 767.0 / 0.75 / fwhm)
+def true_geometry(seed, shape=(512, 512)):
+    """The lattice of a seed: spacing SPACING, random angle, offset within 5 pixels of the centre."""
     rng = np.random.default_rng(10_000 + seed)
     theta = rng.uniform(0, np.pi)
     a1 = SPACING * np.array([np.cos(theta), np.sin(theta)])
     a2 = SPACING * np.array([-np.sin(theta), np.cos(theta)])
     centre = np.array([shape[1], shape[0]]) / 2.0
-    truth = LatticeGeometry(a1=a1, a2=a2, offset=tuple(centre + rng.uniform(-5, 5, 2)))
-    frames, _ = simulate_frames(geometry=truth, frame_shape=shape, psf=psf, filling=filling,
-                                photons_per_atom=photons, background=2.0, rng=seed, margin=0)
+    return LatticeGeometry(a1=a1, a2=a2, offset=tuple(centre + rng.uniform(-5, 5, 2)))
+
+
+def psf_for(kind, ratio):
+    """Gaussian, or Airy of 767 nm light through NA 0.75 with the pixel size giving this spacing/FWHM."""
+    fwhm = SPACING / ratio
+    if kind == "gaussian":
+        return gaussian_psf(fwhm=fwhm)
+    return airy_psf(wavelength_nm=767.0, numerical_aperture=0.75, pixel_size_nm=0.5145 * 767.0 / 0.75 / fwhm)
+
+
+def make_frame(ratio, seed, *, kind="gaussian", shape=(512, 512), filling=0.3, photons=500.0, return_sim=False):
+    psf = psf_for(kind, ratio)
+    truth = true_geometry(seed, shape)
+    frames, sim = simulate_frames(geometry=truth, frame_shape=shape, psf=psf, filling=filling,
+                                  photons_per_atom=photons, background=2.0, rng=seed, margin=0)
+    if return_sim:
+        return frames[0].astype(float), truth, sim
     return frames[0].astype(float), truth
 
 

@@ -44,12 +44,9 @@ import sys  # noqa: E402
 import numpy as np  # noqa: E402
 
 sys.path.insert(0, os.path.dirname(__file__))
-from bench_lattice import SPACING  # noqa: E402
-from bench_lattice_model import psf_for  # noqa: E402
+from bench_lattice import SPACING, make_frame  # noqa: E402
 
-from latticeread.core.geometry import LatticeGeometry  # noqa: E402
 from latticeread.core.lattice_bound import lattice_precision_bound  # noqa: E402
-from latticeread.core.simulate import simulate_frames  # noqa: E402
 
 SHAPE = (512, 512)
 BACKGROUND = 2.0
@@ -57,16 +54,8 @@ BACKGROUND = 2.0
 
 def scenario(ratio, seed, kind):
     """Truth of the bench_lattice frame for this seed: geometry, site indices, mean photons, PSF."""
-    psf = psf_for(kind, ratio)
-    rng = np.random.default_rng(10_000 + seed)
-    theta = rng.uniform(0, np.pi)
-    a1 = SPACING * np.array([np.cos(theta), np.sin(theta)])
-    a2 = SPACING * np.array([-np.sin(theta), np.cos(theta)])
-    centre = np.array([SHAPE[1], SHAPE[0]]) / 2.0
-    truth = LatticeGeometry(a1=a1, a2=a2, offset=tuple(centre + rng.uniform(-5, 5, 2)))
-    _, sim = simulate_frames(geometry=truth, frame_shape=SHAPE, psf=psf, filling=0.3, photons_per_atom=500.0,
-                             background=BACKGROUND, rng=seed, margin=0)
-    return truth, sim.sites.rows.astype(float), sim.sites.cols.astype(float), sim.photons[0], psf
+    _, truth, sim = make_frame(ratio, seed, kind=kind, shape=SHAPE, return_sim=True)
+    return truth, sim.sites.rows.astype(float), sim.sites.cols.astype(float), sim.photons[0], sim.psf
 
 
 def main():

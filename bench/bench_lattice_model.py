@@ -29,19 +29,11 @@ import warnings  # noqa: E402
 import numpy as np  # noqa: E402
 
 sys.path.insert(0, os.path.dirname(__file__))
-from bench_lattice import SPACING, errors, make_frame  # noqa: E402
+from bench_lattice import errors, make_frame, psf_for  # noqa: E402
 
 from latticeread.core.lattice import estimate_lattice  # noqa: E402
 from latticeread.core.lattice_model import lattice_from_prior, refine_lattice_model  # noqa: E402
-from latticeread.core.psf import airy_psf, gaussian_psf  # noqa: E402
 from latticeread.errors import LatticeNotFound, LatticeReadWarning  # noqa: E402
-
-
-def psf_for(kind, ratio):
-    fwhm = SPACING / ratio
-    if kind == "gaussian":
-        return gaussian_psf(fwhm=fwhm)
-    return airy_psf(wavelength_nm=767.0, numerical_aperture=0.75, pixel_size_nm=0.5145 * 767.0 / 0.75 / fwhm)
 
 
 def main():

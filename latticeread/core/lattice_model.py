@@ -267,20 +267,25 @@ def _far_uncertainty(jtj, rss, n_frames, crop, rows, cols, n_sites) -> float:
     return float(np.sqrt(val)) if val >= 0 else float("nan")
 
 
+def _relative_spacing_sigma(cov, a1, a2) -> float:
+    """Larger 1-sigma relative uncertainty of |a1| and |a2| from the covariance of (a1, a2) (4 x 4, px^2)."""
+    worst = 0.0
+    for k, a in enumerate((np.asarray(a1, float), np.asarray(a2, float))):
+        g = np.zeros(4)
+        g[2 * k:2 * k + 2] = a / (a @ a)  # d|a| / |a|
+        worst = max(worst, float(g @ np.asarray(cov)[:4, :4] @ g))
+    return float(np.sqrt(worst))
+
+
 def _spacing_sigma(jtj, rss, n_frames, crop, n_sites, a1, a2) -> float:
-    """Larger of the 1-sigma relative uncertainties of |a1| and |a2| from the Gauss-Newton covariance."""
+    """:func:`_relative_spacing_sigma` from the Gauss-Newton covariance scaled by the residual variance."""
     n_pix = n_frames * (crop[0].stop - crop[0].start) * (crop[1].stop - crop[1].start)
     sigma2 = rss / max(n_pix - n_sites * n_frames - jtj.shape[0], 1)
     try:
         cov = np.linalg.inv(jtj)[:4, :4] * sigma2
     except np.linalg.LinAlgError:
         return float("nan")
-    worst = 0.0
-    for k, a in enumerate((np.asarray(a1, float), np.asarray(a2, float))):
-        g = np.zeros(4)
-        g[2 * k:2 * k + 2] = a / (a @ a)  # d|a| / |a|
-        worst = max(worst, float(g @ cov @ g))
-    return float(np.sqrt(worst))
+    return _relative_spacing_sigma(cov, a1, a2)
 
 
 #: Above this 1-sigma relative spacing uncertainty the fit adds a warning (at 1e-4, about one
@@ -530,12 +535,7 @@ def _refine_stack(frames, geometry, *, psf, offsets, max_sites_radius=None, max_
     for f, (fit, own, _, (core_rows, core_cols)) in enumerate(fits):
         r_mid, c_mid = float(np.mean(core_rows)), float(np.mean(core_cols))
         offs[f] = own[0] + r_mid * (np.asarray(fit.a1) - a1) + c_mid * (np.asarray(fit.a2) - a2)
-    worst = 0.0
-    for k, a in enumerate((a1, a2)):
-        g = np.zeros(4)
-        g[2 * k:2 * k + 2] = a / (a @ a)
-        worst = max(worst, float(g @ combined_cov @ g))
-    spacing_sigma = float(np.sqrt(worst))
+    spacing_sigma = _relative_spacing_sigma(combined_cov, a1, a2)
     if spacing_sigma > SPACING_SIGMA_WARN:
         warn.append(_precision_warning(spacing_sigma, len(used)))
     # far-site uncertainty of frame 0: combined vectors, frame 0's own offset variance
