@@ -122,10 +122,12 @@ class GeometryPanel(QtWidgets.QWidget):
             "the atom plane when the pixel size is known), direction from +x towards +y (image "
             "down), and the angle between them")
         self.quality_label = QtWidgets.QLabel("")
+        self.quality_label.setWordWrap(True)
         self.quality_label.setToolTip(
             "Fit quality: height of the weaker Fourier peak over the spectral background "
-            "(below ~5 the lattice is doubtful), RMS residual of the refinement, and the "
-            "number of bright sites used")
+            "(below ~5 the lattice is doubtful), RMS residual of the refinement, the "
+            "number of bright sites used and, after an image-model fit, the statistical "
+            "uncertainty of the spacing")
         self.warnings_label = QtWidgets.QLabel()
         self.warnings_label.setStyleSheet(WARNING_STYLE)
         self.warnings_label.setWordWrap(True)
@@ -155,7 +157,9 @@ class GeometryPanel(QtWidgets.QWidget):
         # --- constraints -------------------------------------------------------------
         cons = QtWidgets.QGroupBox("Constraints from the lab calibration")
         cons.setToolTip("Fix quantities known from the optical set-up; the estimate then only "
-                        "fits what is left free")
+                        "fits what is left free. With spacing and direction both fixed, Calibrate can "
+                        "also fit a lattice finer than the PSF (no visible Fourier peaks) from them, "
+                        "given the ideal Airy PSF in Analysis settings")
         grid = QtWidgets.QGridLayout(cons)
         self.fix_spacing = QtWidgets.QCheckBox("spacing")
         self.fix_spacing.setToolTip("Fix the length of both lattice vectors")
@@ -452,9 +456,11 @@ class GeometryPanel(QtWidgets.QWidget):
             html.append(f"<br>cell area {area:.3f} px²")
         self.vectors_label.setText("".join(html))
         q = g.quality
+        precision = (f" · spacing ±{q.spacing_sigma:.1e} (1σ, relative)"
+                     if np.isfinite(getattr(q, "spacing_sigma", float("nan"))) else "")
         self.quality_label.setText(
             f"peak/background {fmt(q.peak_to_background)} · residual {fmt(q.residual)} · "
-            f"sites used {int(q.n_sites_used)}")
+            f"sites used {int(q.n_sites_used)}{precision}")
         show_warnings(self.warnings_label, q.warnings)
         edited = self._reference is not None and g != self._reference
         self.edited_label.setText("adjusted by hand (Revert to undo)" if edited else "")
