@@ -44,17 +44,19 @@ Fourier peaks are invisible below a spacing of ~0.97 FWHM for an Airy PSF),
 
 Measured (bench/bench_lattice_model.py: 512x512 frames, ~52x52 sites of 9.8 pixels, filling
 0.3, 500 photons per atom, 2 photons/pixel background, Airy PSF, largest error over 4 seeds;
-"sigma" = the fit's own 1-sigma position error of the outermost site; CPU seconds per fit on a
-shared machine, before rejected steps were made cheaper):
+"sigma" = the fit's own 1-sigma position error of the outermost site; "bound" = the Cramer-Rao
+bound on the relative spacing with free amplitudes, 1 sigma; CPU seconds per fit on a shared
+machine; the last row fits 4 frames together, 3 seeds):
 
-=============  =======  =========  ============  =================  ========  =======
-spacing/FWHM   start    spacing    angle (mrad)  offset (spacings)  sigma px  CPU s
-=============  =======  =========  ============  =================  ========  =======
-0.8            prior    3.3e-4     0.75          0.005              0.088     65
-1.0            Fourier  1.4e-4     0.15          0.002              0.040     11
-1.2            Fourier  1.4e-4     0.08          0.002              0.023     4
-1.5            Fourier  1.1e-4     0.06          0.002              0.013     3
-=============  =======  =========  ============  =================  ========  =======
+=============  =======  =========  ============  =================  ========  =======  =======
+spacing/FWHM   start    spacing    angle (mrad)  offset (spacings)  sigma px  bound    CPU s
+=============  =======  =========  ============  =================  ========  =======  =======
+0.8            prior    3.6e-4     0.48          0.006              0.092     2.3e-4   66
+1.0            Fourier  1.9e-4     0.15          0.002              0.044     1.1e-4   12
+1.2            Fourier  1.5e-4     0.07          0.002              0.028     7.0e-5   9
+1.5            Fourier  1.1e-4     0.06          0.002              0.018     4.4e-5   5
+0.8, 4 frames  prior    1.1e-4     0.21          0.007              0.054     1.2e-4   220
+=============  =======  =========  ============  =================  ========  =======  =======
 
 At 0.8 FWHM the 2e-4 spacing target is beyond what one such frame holds: the Cramer-Rao bound
 for any estimator with free amplitudes is 2.3e-4 (1 sigma; 1.4e-4 even with every atom's
@@ -509,8 +511,7 @@ def _refine_model(image_or_stack, geometry, *, psf, camera=None, offsets=None, m
             a1, a2, offs, amps, bgs, basis = na1, na2, noffs, n_amps, n_bgs, n_basis
             jtj, jtr, rss = problem.jacobian(a1, a2, offs, amps, bgs, n_basis, crop=crop)
             mu = max(mu / 10, 1e-9)
-            # two small gains in a row: one alone can be a short step in a flat valley (bright,
-            # well-resolved atoms make the Gauss-Newton direction converge only linearly)
+            # two small gains in a row: one alone can be a short, damped step
             small_gains = small_gains + 1 if gain < CHI2_GAIN else 0
             if small_gains >= 2:
                 converged = True
