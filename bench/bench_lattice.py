@@ -56,14 +56,17 @@ def psf_for(kind, ratio):
     return airy_psf(wavelength_nm=767.0, numerical_aperture=0.75, pixel_size_nm=0.5145 * 767.0 / 0.75 / fwhm)
 
 
-def make_frame(ratio, seed, *, kind="gaussian", shape=(512, 512), filling=0.3, photons=500.0, return_sim=False):
+def make_frame(ratio, seed, *, kind="gaussian", shape=(512, 512), filling=0.3, photons=500.0, return_sim=False,
+               n_frames=1):
+    """One frame (or, with ``n_frames`` > 1, a stack of shots of the same lattice) and its truth."""
     psf = psf_for(kind, ratio)
     truth = true_geometry(seed, shape)
     frames, sim = simulate_frames(geometry=truth, frame_shape=shape, psf=psf, filling=filling,
-                                  photons_per_atom=photons, background=2.0, rng=seed, margin=0)
+                                  photons_per_atom=photons, background=2.0, rng=seed, margin=0, n_shots=n_frames)
+    image = frames[0].astype(float) if n_frames == 1 else frames.astype(float)
     if return_sim:
-        return frames[0].astype(float), truth, sim
-    return frames[0].astype(float), truth
+        return image, truth, sim
+    return image, truth
 
 
 def errors(estimate, truth):
