@@ -99,3 +99,24 @@ def test_lattice_fitted_from_a_rough_prior_below_the_cut_off(stack, tmp_path, ca
     assert spacing < max(4 * fit["spacing_sigma"], 5e-4)
     assert angle < 5e-3
     assert found.quality.spacing_sigma == pytest.approx(fit["spacing_sigma"])
+
+
+def test_one_frame_at_0_7_fwhm_is_flagged_and_four_are_not():
+    """Below 0.75 FWHM one frame can lead the prior path to a wrong lattice: the result says so."""
+    import warnings
+
+    from latticeread.core.lattice_model import FEW_FRAMES, lattice_from_prior
+    from latticeread.errors import LatticeReadWarning
+
+    spacing = 0.7 * PSF.fwhm
+    geo = LatticeGeometry(a1=(spacing * np.cos(ANGLE), spacing * np.sin(ANGLE)),
+                          a2=(spacing * np.sin(ANGLE), -spacing * np.cos(ANGLE)), offset=(48.3, 47.8))
+    frames, _ = simulate_frames(geometry=geo, frame_shape=(96, 96), psf=PSF, region=("disk", 9), filling=0.35,
+                                photons_per_atom=1500.0, background=1.0, n_shots=FEW_FRAMES, rng=12)
+    kw = dict(psf=PSF, spacing=spacing, angle=ANGLE - np.pi / 2, angle_between=np.pi / 2)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", LatticeReadWarning)
+        one = lattice_from_prior(frames[:1].astype(float), **kw)
+        four = lattice_from_prior(frames.astype(float), **kw)
+    assert any("wrong lattice" in w for w in one.quality.warnings)
+    assert not any("wrong lattice" in w for w in four.quality.warnings)
