@@ -1,6 +1,8 @@
 """Toolbar and window icons ship inside the package, so a wheel install shows them too.
 
-Every icon the window asks for must be a file in latticeread/gui/icons/ (found through
+The SVGs live in the top-level icons/ folder (the project's layout); latticeread/gui/icons is a
+symbolic link to it, which setuptools follows when it builds a wheel. Every icon the window asks
+for must be a file in latticeread/gui/icons/ (found through
 importlib.resources, as an installed package would be), load as a non-null QIcon that draws
 something, and be matched by the package-data patterns in pyproject.toml (what setuptools
 copies into the wheel; checked by hand with ``pip wheel . --no-deps`` and ``unzip -l``).
@@ -54,7 +56,7 @@ def test_every_requested_icon_is_package_data_and_loads(requested):
     names, _w = requested
     assert {"latticeread", "open", "save", "reconstruct", "cancel"} <= set(names)
     icons = resources.files("latticeread.gui").joinpath("icons")
-    assert Path(str(mw.ICON_DIR)).resolve().is_relative_to(PACKAGE)
+    assert Path(str(mw.ICON_DIR)).is_relative_to(PACKAGE.resolve())  # the package path, link not followed
     for name in sorted(set(names)):
         assert icons.joinpath(f"{name}.svg").is_file(), f"icon {name}.svg is not in latticeread/gui/icons"
         icon = mw._icon(name)
@@ -83,7 +85,8 @@ def test_icons_are_matched_by_the_package_data_patterns():
     for svg in svgs:
         rel = svg.relative_to(PACKAGE).as_posix()
         assert any(fnmatch.fnmatch(rel, p) for p in patterns), f"{rel} would be missing from the wheel"
-    assert not (ROOT / "icons").exists()  # one copy only: the package's
+    # one copy only: the package's folder is the top-level icons/ itself
+    assert (PACKAGE / "gui" / "icons").resolve() == (ROOT / "icons").resolve()
 
 
 def test_a_missing_icon_gives_a_null_icon_not_an_error():

@@ -53,7 +53,8 @@ HISTOGRAM_INTERVAL_S = 1.0    # re-histogram period while a stack is processed
 #: worker processes for reconstructing a stack (keeps the interpreter lock free for the GUI)
 RECONSTRUCT_PROCESSES = max(1, min(4, (os.cpu_count() or 2)))
 AUTOSAVE_INTERVAL_S = 60
-#: toolbar and window icons: package data (pyproject.toml), so wheel installs have them too
+#: toolbar and window icons: top-level icons/, linked here as package data (pyproject.toml), so
+#: wheel installs have them too
 ICON_DIR = Path(__file__).resolve().parent / "icons"
 
 #: (attribute, class name in latticeread.gui.panels, dock title, dock area, tooltip)
