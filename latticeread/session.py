@@ -940,22 +940,11 @@ class Session:
         return job
 
     def _constraint_kwargs(self, constraints: dict) -> dict:
-        kwargs: dict[str, Any] = {}
-        if constraints.get("spacing_px") is not None:
-            kwargs["fixed_spacing"] = float(constraints["spacing_px"])
-        if constraints.get("angle_deg") is not None:
-            a1_dir = np.deg2rad(float(constraints["angle_deg"]))
-            if constraints.get("angle_between_deg") is not None:
-                between = np.deg2rad(float(constraints["angle_between_deg"]))
-            elif self._calibration is not None:
-                between = self._calibration.geometry.angle_between
-            else:
-                between = np.pi / 2
-            # canonical basis: a1 follows a2 towards +y, so a2 = a1 - angle between
-            kwargs["fixed_angle"] = (float(a1_dir), float(a1_dir - between))
-        elif constraints.get("angle_between_deg") is not None:
+        if constraints.get("angle_between_deg") is not None and constraints.get("angle_deg") is None:
             self.message.emit("an angle between the vectors needs the direction of a1 too; it was ignored")
-        return kwargs
+        between = self._calibration.geometry.angle_between if self._calibration is not None else np.pi / 2
+        known = {key: constraints.get(key) for key in ("spacing_px", "angle_deg", "angle_between_deg")}
+        return _pipeline().lattice_constraint_kwargs(known, angle_between=between)
 
     def spectrum_job(self):
         """A function returning the Fourier magnitude of the summed frames and the lattice peaks.

@@ -48,3 +48,19 @@ def test_constraints_become_the_prior_of_the_model_fit(tight):
     assert spacing < max(4 * fit["spacing_sigma"], 5e-4)
     assert angle < 5e-3
     assert any("uncertain to" in w for w in cal.notes["warnings"])  # 2 frames cannot give 1e-4
+
+
+def test_geometry_estimate_holds_the_panel_constraints():
+    """Spacing and direction from the panel are held fixed (extra keys such as spacing_nm ignored)."""
+    spacing, angle = 1.3 * PSF.fwhm, 0.2
+    geo = LatticeGeometry(a1=(spacing * np.cos(angle), spacing * np.sin(angle)),
+                          a2=(spacing * np.sin(angle), -spacing * np.cos(angle)), offset=(48.3, 47.8))
+    frames, _ = simulate_frames(geometry=geo, frame_shape=(96, 96), psf=PSF, region=("disk", 6), filling=0.4,
+                                photons_per_atom=1500.0, background=1.0, n_shots=3, rng=4)
+    session = Session()
+    session.set_frames(frames)
+    fixed = {"spacing_px": 1.01 * spacing, "spacing_nm": 1.01 * spacing * 90.0, "angle_deg": np.degrees(angle)}
+    found = session.estimate_geometry_job(constraints=fixed)()
+    np.testing.assert_allclose(found.spacings, [1.01 * spacing] * 2, rtol=1e-9)
+    directions = np.degrees(np.arctan2(found.basis[1], found.basis[0]))
+    assert np.min(np.abs((directions - np.degrees(angle) + 180) % 360 - 180)) < 1e-6  # a1 or a2 along it

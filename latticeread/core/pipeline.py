@@ -775,8 +775,24 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
                        notes=notes)
 
 
-def _prior_kwargs(prior: dict | None) -> dict:
-    """``lattice_prior`` (see :func:`calibrate`) as keyword arguments of ``estimate_lattice``."""
+def lattice_constraint_kwargs(prior: dict | None, *, angle_between: float = np.pi / 2) -> dict:
+    """The lab's knowledge of the lattice as keyword arguments of ``estimate_lattice``.
+
+    Parameters
+    ----------
+    prior : dict or None
+        ``spacing_px`` (pixels, one number or one per vector), ``angle_deg`` (direction of a1
+        from +x towards +y, degrees), ``angle_between_deg`` (from a2 to a1, degrees); any may
+        be missing or None.
+    angle_between : float
+        Angle between the vectors (radians) used when ``angle_deg`` is given without
+        ``angle_between_deg``.
+
+    Returns
+    -------
+    dict
+        ``fixed_spacing`` and/or ``fixed_angle`` (radians, canonical order: a2 = a1 - between).
+    """
     prior = prior or {}
     unknown = set(prior) - {"spacing_px", "angle_deg", "angle_between_deg"}
     if unknown:
@@ -787,8 +803,9 @@ def _prior_kwargs(prior: dict | None) -> dict:
         kwargs["fixed_spacing"] = prior["spacing_px"]
     if prior.get("angle_deg") is not None:
         a1_dir = np.deg2rad(float(prior["angle_deg"]))
-        between = np.deg2rad(float(prior.get("angle_between_deg") or 90.0))
-        kwargs["fixed_angle"] = (float(a1_dir), float(a1_dir - between))  # canonical: a2 = a1 - between
+        between = (np.deg2rad(float(prior["angle_between_deg"])) if prior.get("angle_between_deg") is not None
+                   else float(angle_between))
+        kwargs["fixed_angle"] = (float(a1_dir), float(a1_dir - between))
     return kwargs
 
 
@@ -796,7 +813,7 @@ def _geometry_from_frames(clean, *, psf, prior, n_fit, notes) -> LatticeGeometry
     """The Fourier estimate (with the prior's fixed values), or a model fit from the prior."""
     from latticeread.core.lattice import estimate_lattice
 
-    kwargs = _prior_kwargs(prior)
+    kwargs = lattice_constraint_kwargs(prior)
     try:
         return _estimate_geometry(clean, lambda image: estimate_lattice(image, **kwargs))
     except LatticeNotFound as exc:
