@@ -191,6 +191,47 @@ class _Problem:
             bases.append(basis)
         return amps, bgs, bases
 
+    @property
+    def pad(self) -> int:
+        """Padding (pixels) of the rendered images around the frame: one stamp width."""
+        return 2 * self.table.radius + 1
+
+    def render(self, a1, a2, offset, coefficients) -> list[np.ndarray]:
+        """Images ``sum_k c_k * part_k`` on the padded frame, one per ``(c, part)`` pair.
+
+        ``part`` 0 is the site's stamp, 1 and 2 its derivatives with respect to the site's x
+        and y (pixels). Every site is drawn, dim ones too: leaving them out made the residual
+        (and its gradient) disagree with the amplitudes' own fit, and the iteration crawl.
+        """
+        height, width = self.shape
+        r, pad = self.table.radius, self.pad
+        full = (height + 2 * pad, width + 2 * pad)
+        n_full = full[0] * full[1]
+        oy, ox = np.mgrid[0:2 * r + 1, 0:2 * r + 1]
+        x = offset[0] + self.rows * a1[0] + self.cols * a2[0]
+        y = offset[1] + self.rows * a1[1] + self.cols * a2[1]
+        xi, yi = np.rint(x).astype(int), np.rint(y).astype(int)
+        out = [np.zeros(n_full) for _ in coefficients]
+        need = any(part for _, part in coefficients)
+        for start in range(0, len(x), 256):
+            idx = np.arange(start, min(start + 256, len(x)))
+            parts = self.table(x[idx] - xi[idx], y[idx] - yi[idx], derivatives=need)
+            flat = ((yi[idx, None, None] + pad - r + oy[None]) * full[1]
+                    + (xi[idx, None, None] + pad - r + ox[None])).ravel()
+            for image, (c, part) in zip(out, coefficients):
+                image += np.bincount(flat, weights=(np.asarray(c, float)[idx, None, None] * parts[part]).ravel(),
+                                     minlength=n_full)
+        return [image.reshape(full) for image in out]
+
+    def model_and_derivatives(self, a1, a2, offset, amp, *, derivatives: bool = True):
+        """The sites' image and its derivatives by (a1x, a1y, a2x, a2y, offset x, offset y)."""
+        rows, cols = self.rows.astype(float), self.cols.astype(float)
+        wanted = [(amp, 0)]
+        if derivatives:
+            wanted += [(amp * rows, 1), (amp * rows, 2), (amp * cols, 1), (amp * cols, 2), (amp, 1), (amp, 2)]
+        images = self.render(a1, a2, offset, wanted)
+        return images[0], images[1:]
+
     def jacobian(self, a1, a2, offsets, amps, bgs, bases, *, crop, rss_only=False):
         """Normal matrix J^T J, gradient J^T r and RSS on the crop, with the amplitudes held.
 
@@ -202,48 +243,22 @@ class _Problem:
         jtr = np.zeros(n_p)
         rss = 0.0
         height, width = self.shape
-        r = self.table.radius
-        size = 2 * r + 1
-        pad = size
-        oy, ox = np.mgrid[0:size, 0:size]
+        pad = self.pad
         for f, (frame, off, amp, bg, basis) in enumerate(zip(self.frames, offsets, amps, bgs, bases)):
-            x = off[0] + self.rows * a1[0] + self.cols * a2[0]
-            y = off[1] + self.rows * a1[1] + self.cols * a2[1]
-            xi, yi = np.rint(x).astype(int), np.rint(y).astype(int)
-            full = (height + 2 * pad, width + 2 * pad)
-            n_full = full[0] * full[1]
-            model = np.zeros(n_full)
-            dm = np.zeros((6, n_full))  # d model / d (a1x, a1y, a2x, a2y, ox, oy)
-            # every site, dim ones too: leaving them out of the model made the residual (and its
-            # gradient) disagree with the amplitudes' own fit, and the iteration crawl
-            for start in range(0, len(amp), 256):
-                idx = np.arange(start, min(start + 256, len(amp)))
-                s, sx, sy = self.table(x[idx] - xi[idx], y[idx] - yi[idx], derivatives=not rss_only)
-                flat = ((yi[idx, None, None] + pad - r + oy[None]) * full[1]
-                        + (xi[idx, None, None] + pad - r + ox[None])).ravel()
-                a = amp[idx, None, None]
-                model += np.bincount(flat, weights=(a * s).ravel(), minlength=n_full)
-                if rss_only:
-                    continue
-                gx, gy = a * sx, a * sy
-                rw = self.rows[idx, None, None]
-                cl = self.cols[idx, None, None]
-                for j, val in enumerate((gx * rw, gy * rw, gx * cl, gy * cl, gx, gy)):
-                    dm[j] += np.bincount(flat, weights=val.ravel(), minlength=n_full)
+            model, dm = self.model_and_derivatives(a1, a2, off, amp, derivatives=not rss_only)
             sl = (slice(pad + crop[0].start, pad + crop[0].stop), slice(pad + crop[1].start, pad + crop[1].stop))
-            model = model.reshape(full)
             res = (frame[crop] - bg - model[sl]).ravel()
             if rss_only:
                 rss += float(np.sum((res - res.mean()) ** 2))
                 continue
-            cols = np.stack([d.reshape(full)[sl].ravel() for d in dm], axis=1)
+            cols = np.stack([d[sl].ravel() for d in dm], axis=1)
             cols -= cols.mean(axis=0)  # the constant background absorbs any mean change
             idx = np.r_[0:4, 4 + 2 * f, 5 + 2 * f]
             jtr[idx] += cols.T @ (res - res.mean())
             # Gauss-Newton matrix of the variable-projection objective: J^T (I - P) J with P the
             # projector on the site basis and background (the amplitudes re-adjust when the
             # lattice moves), J^T J - (B^T J)^T (B^T B)^-1 (B^T J), on the basis' own pixels
-            frame_cols = [d.reshape(full)[pad:pad + height, pad:pad + width] for d in dm]
+            frame_cols = [d[pad:pad + height, pad:pad + width] for d in dm]
             roi = basis.crop
             raw = np.stack([c[roi].ravel() for c in frame_cols], axis=1)
             proj = [basis.project(c) for c in frame_cols]
@@ -275,40 +290,14 @@ class _Problem:
         m_mat = np.zeros((n_p, n_p))
         n_obs, n_par = 0, n_p
         height, width = self.shape
-        r = self.table.radius
-        size = 2 * r + 1
-        pad = size
-        oy, ox = np.mgrid[0:size, 0:size]
-        full = (height + 2 * pad, width + 2 * pad)
-        n_full = full[0] * full[1]
+        pad = self.pad
         sl = (slice(pad + crop[0].start, pad + crop[0].stop), slice(pad + crop[1].start, pad + crop[1].stop))
         for f, (frame, off, amp, bg, basis) in enumerate(zip(self.frames, offsets, amps, bgs, bases)):
-            x = off[0] + self.rows * a1[0] + self.cols * a2[0]
-            y = off[1] + self.rows * a1[1] + self.cols * a2[1]
-            xi, yi = np.rint(x).astype(int), np.rint(y).astype(int)
-            rows, cols = self.rows.astype(float), self.cols.astype(float)
-
-            def render(coefficients, x=x, y=y, xi=xi, yi=yi):
-                """Images of sum_k c_k * (s_k, ds_k/dx, ds_k/dy)[which] for (c, which) pairs."""
-                out = [np.zeros(n_full) for _ in coefficients]
-                need = any(which for _, which in coefficients)
-                for start in range(0, len(x), 256):
-                    idx = np.arange(start, min(start + 256, len(x)))
-                    parts = self.table(x[idx] - xi[idx], y[idx] - yi[idx], derivatives=need)
-                    flat = ((yi[idx, None, None] + pad - r + oy[None]) * full[1]
-                            + (xi[idx, None, None] + pad - r + ox[None])).ravel()
-                    for image, (c, which) in zip(out, coefficients):
-                        image += np.bincount(flat, weights=(c[idx, None, None] * parts[which]).ravel(),
-                                             minlength=n_full)
-                return [image.reshape(full) for image in out]
-
-            images = render([(amp, 0), (amp * rows, 1), (amp * rows, 2), (amp * cols, 1), (amp * cols, 2),
-                             (amp, 1), (amp, 2)])
-            model, dm = images[0], images[1:]
+            model, dm = self.model_and_derivatives(a1, a2, off, amp)
             res = (frame[crop] - bg - model[sl]).ravel()
             res = res - res.mean()
             sols = [basis.solve(*basis.project(d[pad:pad + height, pad:pad + width])) for d in dm]
-            fitted = render([(np.asarray(c, float), 0) for c, _ in sols])
+            fitted = self.render(a1, a2, off, [(c, 0) for c, _ in sols])
             jp = np.stack([(d[sl] - fit[sl] - (float(np.ravel(b)[0]) if np.size(b) else 0.0)).ravel()
                            for d, fit, (_, b) in zip(dm, fitted, sols)], axis=1)
             jp -= jp.mean(axis=0)  # the background column absorbs the mean
@@ -332,11 +321,7 @@ def _far_uncertainty(jtj, rss, n_frames, crop, rows, cols, n_sites) -> float:
         cov = np.linalg.inv(jtj) * sigma2
     except np.linalg.LinAlgError:
         return float("nan")
-    far = int(np.argmax(np.hypot(rows, cols)))
-    g = np.array([[rows[far], 0, cols[far], 0, 1, 0], [0, rows[far], 0, cols[far], 0, 1]], float)
-    sub = cov[:6, :6]
-    val = float(np.max(np.linalg.eigvalsh(g @ sub @ g.T)))
-    return float(np.sqrt(val)) if val >= 0 else float("nan")
+    return _far_position_sigma(cov, rows, cols)
 
 
 def _far_position_sigma(cov, rows, cols) -> float:
@@ -432,18 +417,15 @@ def refine_lattice_model(image_or_stack, geometry: LatticeGeometry, *, psf: PSFM
     return fit
 
 
-def _refine_model(image_or_stack, geometry, *, psf, camera=None, offsets=None, max_sites_radius=None, max_iter=20,
-                  tol=2e-3):
-    """:func:`refine_lattice_model`, also returning every frame's fitted offset, (n_frames, 2) pixels."""
-    frames = _prepare_frames(image_or_stack, camera)
+def _refine_model(frames, geometry, *, psf, offsets, max_sites_radius=None, max_iter=20, tol=2e-3):
+    """One Gauss-Newton fit of prepared ``frames`` (n, H, W photons) from ``offsets`` (n, 2 pixels).
+
+    Returns the geometry (offset of frame 0), every frame's offset, the covariance of the
+    parameters (or None) and the fitted region's site indices (rows, cols).
+    """
     n_f = frames.shape[0]
     shape = frames.shape[1:]
-    if offsets is None:
-        offs = np.tile(np.asarray(geometry.offset, float), (n_f, 1))
-    else:
-        offs = np.asarray(offsets, float).reshape(-1, 2).copy()
-        if offs.shape[0] != n_f:
-            raise FrameError(f"got {offs.shape[0]} starting offsets for {n_f} frames")
+    offs = np.asarray(offsets, float).reshape(n_f, 2).copy()
     a1 = np.asarray(geometry.a1, float).copy()
     a2 = np.asarray(geometry.a2, float).copy()
     start_a = np.concatenate([a1, a2])
@@ -614,10 +596,10 @@ def _refine_stack(frames, geometry, *, psf, offsets, max_sites_radius=None, max_
         warn.append(_precision_warning(spacing_sigma, len(used)))
     # far-site uncertainty of frame 0: combined vectors, frame 0's own offset variance
     first, _, cov0, (core_rows, core_cols) = fits[0]
-    far = int(np.argmax(np.hypot(core_rows, core_cols)))
-    g = np.array([[core_rows[far], 0, core_cols[far], 0], [0, core_rows[far], 0, core_cols[far]]], float)
-    pos = g @ combined_cov @ g.T + (cov0[4:6, 4:6] if cov0 is not None else np.full((2, 2), np.nan))
-    uncertainty = float(np.sqrt(np.max(np.linalg.eigvalsh(pos)))) if np.all(np.isfinite(pos)) else float("nan")
+    cov6 = np.zeros((6, 6))
+    cov6[:4, :4] = combined_cov
+    cov6[4:, 4:] = cov0[4:6, 4:6] if cov0 is not None else np.nan
+    uncertainty = _far_position_sigma(cov6, core_rows, core_cols)
     quality = LatticeQuality(peak_to_background=first.quality.peak_to_background, residual=uncertainty,
                              n_sites_used=sum(fits[f][0].quality.n_sites_used for f in used), warnings=tuple(warn),
                              spacing_sigma=spacing_sigma)
