@@ -20,6 +20,7 @@ sites). The 1,000-frame stack cycles 20 distinct simulated frames.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import os
 import subprocess
 import sys
@@ -100,17 +101,28 @@ class Cycled:
         return self.base[int(i) % len(self.base)]
 
 
-def drag_rate(frames, cal, n_updates: int = 100):
+@contextlib.contextmanager
+def _window(*, synchronous: bool):
+    """A shown main window with throw-away settings, no autosave and no restore offer."""
+    import tempfile
+
     from latticeread.gui.app import make_app
     from latticeread.gui.main_window import MainWindow
     from latticeread.gui.settings import AppSettings
-    import tempfile
 
     app = make_app()
     with tempfile.TemporaryDirectory() as tmp:
-        w = MainWindow(settings=AppSettings(os.path.join(tmp, "s.ini")), synchronous=True, offer_restore=False,
+        w = MainWindow(settings=AppSettings(os.path.join(tmp, "s.ini")), synchronous=synchronous, offer_restore=False,
                        autosave_interval_s=0)
         w.show()
+        try:
+            yield app, w
+        finally:
+            w.close()
+
+
+def drag_rate(frames, cal, n_updates: int = 100):
+    with _window(synchronous=True) as (app, w):
         app.processEvents()
         s = w.session
         s.set_frames(frames[:1].copy())
@@ -134,7 +146,6 @@ def drag_rate(frames, cal, n_updates: int = 100):
             elapsed = time.perf_counter() - start
             results[label] = n_updates / elapsed
         line.sigPositionChangeFinished.emit(line)
-        w.close()
     return n_sites, results
 
 
@@ -146,17 +157,9 @@ def long_stack_drag(frames, cal, n_frames: int, n_updates: int = 60, *, backgrou
     (a worker job that also keeps each site's amplitudes sorted, so a drag re-counts by binary
     search); False: fitted on the GUI thread without that copy (as after reopening a session),
     so every step compares all amplitudes with the threshold."""
-    from latticeread.gui.app import make_app
-    from latticeread.gui.main_window import MainWindow
-    from latticeread.gui.settings import AppSettings
     from latticeread.session import ReconstructBatch
-    import tempfile
 
-    app = make_app()
-    with tempfile.TemporaryDirectory() as tmp:
-        w = MainWindow(settings=AppSettings(os.path.join(tmp, "s.ini")), synchronous=True, offer_restore=False,
-                       autosave_interval_s=0)
-        w.show()
+    with _window(synchronous=True) as (app, w):
         app.processEvents()
         s = w.session
         s.set_frames(Cycled(frames, n_frames))
@@ -193,23 +196,13 @@ def long_stack_drag(frames, cal, n_frames: int, n_updates: int = 60, *, backgrou
             app.processEvents()
         w.grab()
         settle = time.perf_counter() - start
-        w.close()
     return n_sites, rate, settle
 
 
 def stall_during_stack(frames, cal, n_frames: int):
     from PySide6 import QtCore
 
-    from latticeread.gui.app import make_app
-    from latticeread.gui.main_window import MainWindow
-    from latticeread.gui.settings import AppSettings
-    import tempfile
-
-    app = make_app()
-    with tempfile.TemporaryDirectory() as tmp:
-        w = MainWindow(settings=AppSettings(os.path.join(tmp, "s.ini")), synchronous=False, offer_restore=False,
-                       autosave_interval_s=0)
-        w.show()
+    with _window(synchronous=False) as (app, w):
         s = w.session
         s.set_frames(Cycled(frames, n_frames))
         s.set_calibration(cal)
@@ -234,7 +227,6 @@ def stall_during_stack(frames, cal, n_frames: int):
             app.processEvents(QtCore.QEventLoop.AllEvents, 5)
         elapsed = time.perf_counter() - start
         timer.stop()
-        w.close()
     gaps = np.array(gaps[1:])
     return elapsed, n_frames / elapsed, float(gaps.max()), float(np.percentile(gaps, 99))
 
