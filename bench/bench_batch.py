@@ -5,7 +5,7 @@ Scenario (invented): the "square" demo setting (532 nm lattice spacing = 3.3 pix
 frame per TIFF file, reconstructed with a fixed calibration (the simulation's own geometry,
 PSF and camera; threshold 450 photons).
 
-Targets (issue 7): >= 50 frames/s on 2 cores; peak memory < 1 GB and flat in the number of
+Targets: >= 50 frames/s on 2 cores; peak memory < 1 GB and flat in the number of
 frames; the Dask LocalCluster within 30% of the process pool.
 
 Every measured run happens in a fresh subprocess so that ``resource.getrusage`` peaks belong

@@ -25,7 +25,7 @@ Frames as in bench/bench_lattice.py (512x512, ~52x52 sites of spacing 9.8 pixels
 angle, filling 0.3, 500 photons per atom, 2 photons of background per pixel, ideal photon
 counter); the mean image of the simulation (its ``photons`` per site) is used, averaged over
 seeds. Printed: 1-sigma relative spacing error (of |a1|), angle error (mrad) and offset error
-(spacings) per case, and the target of issue 3 (2e-4, 0.5 mrad, 0.01) beside them. A worst
+(spacings) per case, and the single-frame target (2e-4, 0.5 mrad, 0.01) beside them. A worst
 case over 4-8 seeds is about 2 sigma.
 
 Usage::
@@ -68,7 +68,7 @@ def main():
     excess = 2.0 if args.emccd else 1.0
     print(f"Cramer-Rao bound, one 512x512 frame, ~52x52 sites, filling 0.3, 500 photons/atom, background "
           f"{BACKGROUND} photons/pixel, {'EMCCD (excess 2)' if args.emccd else 'ideal photon counter'}, "
-          f"mean of {args.seeds} seeds; 1 sigma. Target (issue 3): spacing 2e-4, angle 0.5 mrad, offset 0.01")
+          f"mean of {args.seeds} seeds; 1 sigma. Target: spacing 2e-4, angle 0.5 mrad, offset 0.01")
     print(f"{'PSF':9s} {'a/FWHM':>6s}  {'spacing: known':>14s} {'occupied':>9s} {'linear':>9s}   "
           f"{'angle mrad: known':>17s} {'occupied':>9s} {'linear':>9s}   {'offset: linear':>14s}")
     for kind in args.kinds:

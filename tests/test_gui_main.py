@@ -128,7 +128,7 @@ def test_open_sample_data_and_estimate_geometry(window):
 
 
 def _drag_threshold(window, qtbot, start: float, stop: float) -> None:
-    """Raw mouse events on the histogram's threshold line (see /work/shared/ENV-NOTES.md)."""
+    """Raw mouse events on the histogram's threshold line (QTest.mouseMove does not carry the held button)."""
     panel = window.histogram_panel
     window.docks["histogram_panel"].raise_()
     view = panel.plot_widget

@@ -110,7 +110,7 @@ def test_histogram_counts_every_finite_site_and_scales_components(qtbot, tmp_pat
 
 
 def test_histogram_shows_a_real_threshold_result(qtbot):
-    """The panel reads the fields of the classification engineer's ThresholdResult."""
+    """The panel reads the fields of classify.ThresholdResult."""
     from latticeread.core.classify import select_threshold
 
     panel = _show(qtbot, HistogramPanel())

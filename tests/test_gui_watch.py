@@ -73,7 +73,7 @@ def test_new_file_reaches_panel_and_frame_signal_within_one_second(qtbot, tmp_pa
     controller.statsChanged.connect(lambda _s: delivered_at.append(time.perf_counter()))
     _write_atomically(folder / "shot_0000.tif", frames[0])
     written_at = time.perf_counter()
-    # issue 7: the watch updates the image and the trend plots within 1 s of a new file
+    # the watch updates the image and the trend plots within 1 s of a new file
     qtbot.waitUntil(lambda: panel.shots_label.text() == "1" and len(frames_seen) == 1, timeout=1000)
     latency = delivered_at[0] - written_at
     print(f"\nwatch latency (256x256 frame, 200 ms poll): {latency * 1000:.0f} ms")

@@ -9,7 +9,7 @@ Ground truth from the project's forward model (latticeread.core.simulate): 512x5
   peak (the 0.8 FWHM case must go through the prior path).
 - Reciprocal lattice a_i . b_j = delta_ij (Ashcroft & Mermin, *Solid State Physics*, ch. 5,
   quoted from memory): used to express the estimate in the true basis before comparing.
-Targets (issue 3): relative spacing error < 2e-4, angle error < 0.5 mrad, offset error < 0.01
+Targets: relative spacing error < 2e-4, angle error < 0.5 mrad, offset error < 0.01
 lattice spacings.
 """
 

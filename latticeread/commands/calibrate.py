@@ -42,7 +42,7 @@ def camera_from_args(args):
     from latticeread.core.camera import CameraModel
 
     if getattr(args, "camera", None) is not None:
-        from latticeread.io import load_camera  # the I/O engineer's reader
+        from latticeread.io import load_camera  # camera JSON reader
 
         return load_camera(args.camera)
     try:

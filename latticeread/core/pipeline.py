@@ -336,7 +336,7 @@ class Reconstructor:
         poor = False
         start, search = None, True
         if self.phase_method == "fourier":
-            from latticeread.core.lattice import refine_phase  # the geometry engineer's module
+            from latticeread.core.lattice import refine_phase  # Fourier phase refit
 
             try:
                 fitted = refine_phase(clean, geometry, reference=geometry.offset)
@@ -668,7 +668,7 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
         notes["geometry_estimated"] = True
     psf_warnings: list[str] = []
     if psf is None:
-        from latticeread.core.psf_estimate import estimate_psf  # the classification engineer's module
+        from latticeread.core.psf_estimate import estimate_psf  # PSF from isolated atoms
 
         try:
             psf = estimate_psf(clean, geometry)
