@@ -375,11 +375,15 @@ class Session:
 
     def _apply_calibration(self, old, new) -> None:
         self._calibration = new
-        amplitude_fields = ("geometry", "psf", "camera", "frame_shape", "amplitude_method")
+        # every typed setting that changes amplitudes (options: weighting, index bounds, photons
+        # per atom, reference image, offset refit; the frame policy) drops them
+        amplitude_fields = ("geometry", "psf", "camera", "frame_shape", "amplitude_method", "options",
+                            "frame_policy")
         if old is None or new is None or any(_differs(getattr(old, f), getattr(new, f)) for f in amplitude_fields):
             self._invalidate_amplitudes(emit=True)
         else:
-            if new.threshold_method != old.threshold_method and self._threshold_result is not None:
+            if (new.threshold_method != old.threshold_method or new.threshold_scope != old.threshold_scope) \
+                    and self._threshold_result is not None:
                 self._threshold_result = None
                 self._refresh_threshold_result()
             elif new.threshold != old.threshold and self._threshold_result is not None and new.threshold is not None:

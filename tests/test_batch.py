@@ -214,7 +214,7 @@ def test_run_stores_what_the_pipeline_gives_and_records_failures(tmp_path):
     np.testing.assert_allclose(run.offset, [g.offset for g in truth.geometries], rtol=0, atol=0.05)
     assert summary.mean_filling == pytest.approx(np.mean(run.filling))
     assert 0.3 < summary.mean_filling < 0.6  # simulated filling 0.45
-    assert run.calibration["notes"]["index_bounds"] == cal.notes["index_bounds"]
+    assert tuple(run.calibration["reconstruction"]["index_bounds"]) == cal.options.index_bounds
 
 
 def test_resume_adds_only_new_shots_and_does_not_retry_failures(tmp_path):

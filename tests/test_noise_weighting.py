@@ -121,10 +121,11 @@ def test_stored_reference_survives_json_and_matches_the_mean_frame(dense_cloud):
     frames, _ = dense_cloud
     cal = with_camera_weighting(_calibration(), frames[:10])
     back = Calibration.from_dict(json.loads(json.dumps(cal.to_dict())))
-    assert back.notes["weighting"] == "camera"
-    block = back.notes["reference_photons"]["block"]
+    assert back == cal
+    assert back.options.weighting == "camera"
+    block = back.options.reference.block
     mean = np.mean([CAMERA.counts_to_photons(f) for f in frames[:10]], axis=0)
-    stored = np.asarray(back.notes["reference_photons"]["values"])
+    stored = back.options.reference.values
     assert stored[2, 3] == pytest.approx(mean[2 * block:3 * block, 3 * block:4 * block].mean(), abs=1e-3)
     a = Reconstructor(back).pixel_weights
     b = Reconstructor(_calibration(), weighting="camera", reference=np.repeat(
@@ -141,7 +142,7 @@ def test_command_line_weighting(dense_cloud, tmp_path, capsys):
     airy = ["--psf", "airy", "--wavelength-nm", "767", "--na", "0.75", "--pixel-size-nm", "180"]
     assert main(["calibrate", str(path), "-o", str(cal), "--weighting", "camera", *airy, *camera]) == 0
     assert "camera-noise weights" in capsys.readouterr().out
-    assert json.loads(cal.read_text())["notes"]["weighting"] == "camera"
+    assert json.loads(cal.read_text())["reconstruction"]["weighting"] == "camera"
     out = tmp_path / "sites.csv"
     assert main(["reconstruct", str(path), "-c", str(cal), "-o", str(out), "--weighting", "none", "--quiet"]) == 0
     plain = np.genfromtxt(out, delimiter=",", names=True)

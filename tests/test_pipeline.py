@@ -53,7 +53,7 @@ def test_calibrate_and_reconstruct_match_the_truth(scenario):
     geo, frames, truth, cal = scenario
     assert cal.amplitude_method == "linear"
     assert 300 < cal.threshold < 900
-    assert cal.notes["photons_per_atom"] == pytest.approx(1200.0, rel=0.05)
+    assert cal.options.photons_per_atom == pytest.approx(1200.0, rel=0.05)
     results = list(reconstruct_stack(frames, cal))
     shapes = {r.occupation_matrix().shape for r in results}
     assert len(shapes) == 1  # same matrix for every frame
@@ -163,7 +163,7 @@ def test_binary_method_chosen_below_0p7_fwhm():
                                     phase_jitter=0.4, rng=9)
     cal = calibrate(frames, psf=PSF, camera=CAMERA, geometry=geo)
     assert cal.amplitude_method == "nonlinear"
-    assert cal.notes["photons_per_atom"] == pytest.approx(1000.0, rel=0.1)
+    assert cal.options.photons_per_atom == pytest.approx(1000.0, rel=0.1)
     err = []
     for f, res in enumerate(reconstruct_stack(frames, cal)):
         idx = truth_positions(res, truth, f)

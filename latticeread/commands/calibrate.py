@@ -161,7 +161,7 @@ def run(args: argparse.Namespace) -> int:
     a1, a2 = cal.geometry.spacings
     print(f"wrote {out}: spacings {a1:.3f}, {a2:.3f} px, PSF {cal.psf.kind} FWHM {cal.psf.fwhm:.3f} px, "
           f"{cal.amplitude_method} amplitudes, threshold {cal.threshold:.1f} photons"
-          + (", camera-noise weights" if cal.notes.get("weighting") == "camera" else ""))
+          + (", camera-noise weights" if cal.options.weighting == "camera" else ""))
     for key, what in (("geometry_from_prior", "lattice fitted from the given spacing and angle"),
                       ("vectors_model_fit", "lattice vectors refined by the image-model fit")):
         fit = cal.notes.get(key)

@@ -104,9 +104,9 @@ def _occupation_file(path: Path, args):
     occ = data.occupation.reshape(n // k, k, *data.occupation.shape[1:])
     fp, fn = np.array([]), np.array([])
     cal = data.calibration
-    fit = cal.notes.get("threshold_result") if cal is not None and isinstance(cal.notes, dict) else None
-    if isinstance(fit, dict) and "false_positive_rate" in fit:
-        fp, fn = np.array([float(fit["false_positive_rate"])]), np.array([float(fit["false_negative_rate"])])
+    fit = cal.threshold_fit if cal is not None else None
+    if fit is not None:
+        fp, fn = np.array([float(fit.false_positive_rate)]), np.array([float(fit.false_negative_rate)])
     return occ, fp, fn, None, cal
 
 

@@ -78,11 +78,11 @@ def run(args: argparse.Namespace) -> int:
         cal = calibrate(stack, psf=psf_from_args(args), camera=camera, pixel_size_nm=args.pixel_size_nm,
                         method=args.method)
     weighting = getattr(args, "weighting", None)
-    if weighting == "camera" and cal.notes.get("weighting") != "camera":
+    if weighting == "camera" and (cal.options.weighting != "camera" or cal.options.reference is None):
         # no stored mean frame (calibration made without it, or estimated here): average the input
         cal = with_camera_weighting(cal, stack)
     elif weighting == "none":
-        cal = cal.replace(notes=dict(cal.notes, weighting="none"))
+        cal = cal.with_options(weighting="none")
     mask = None
     if args.bad_pixels is not None:
         mask = ~load_mask(args.bad_pixels, frame_shape=tuple(cal.frame_shape))
@@ -96,7 +96,7 @@ def run(args: argparse.Namespace) -> int:
                 "command": "reconstruct",
                 "method": args.method or cal.amplitude_method,
                 "phase_refit": not args.no_phase_refit,
-                "weighting": cal.notes.get("weighting", "none")}
+                "weighting": cal.options.weighting}
     if args.calibration is not None:
         metadata["calibration_file"] = str(args.calibration)
     try:

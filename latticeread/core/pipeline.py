@@ -31,7 +31,7 @@ from latticeread.core.amplitudes import (
     cell_labels,
     deconvolution_amplitudes,
 )
-from latticeread.core.calibration import Calibration
+from latticeread.core.calibration import Calibration, ReconstructionOptions, ReferenceImage
 from latticeread.core.camera import CameraModel
 from latticeread.core.classify import ThresholdResult, classify, select_threshold
 from latticeread.core.geometry import LatticeGeometry, SiteGrid, lattice_sites
@@ -144,14 +144,10 @@ def reclassify(result: FrameResult, threshold) -> FrameResult:
 
 def _calibration_threshold(calibration: Calibration):
     """The calibration's fixed threshold as a ThresholdResult when its fit was stored, else float/None."""
-    stored = calibration.notes.get("threshold_result") if isinstance(calibration.notes, dict) else None
     if calibration.threshold is None:
         return None
-    if stored:
-        try:
-            tr = ThresholdResult.from_dict(stored)
-        except (ReconstructionError, TypeError, ValueError):
-            return float(calibration.threshold)
+    tr = calibration.threshold_fit
+    if tr is not None:
         if tr.threshold != calibration.threshold:
             tr = tr.with_threshold(calibration.threshold)
         return tr
@@ -173,21 +169,21 @@ class Reconstructor:
         Overrides ``calibration.amplitude_method``.
     mask : (H, W) ndarray of bool, optional
         Pixels to use (True); sites that rely on excluded pixels are flagged MASKED.
-    refit_phase : bool
-        Re-find the lattice offset in every frame (True) or use the calibration's offset.
-    phase_method : {"model", "fourier"}
-        How the offset is re-found. ``"model"`` (default): search one unit cell for the best
+    refit_phase : bool, optional
+        Re-find the lattice offset in every frame (True) or use the calibration's offset
+        (default: ``calibration.options.refit_phase``).
+    phase_method : {"model", "fourier"}, optional
+        How the offset is re-found (default: ``calibration.options.phase_method``). ``"model"`` (default): search one unit cell for the best
         matched-filter energy, then Newton steps on the least-squares fit of the whole image
         model (:meth:`SiteBasis.fit_offset`); works at every spacing, also where the lattice's
         Fourier peaks lie beyond the optical cut-off (spacing below ~1 FWHM for an Airy PSF).
         ``"fourier"``: start from :func:`latticeread.core.lattice.refine_phase`, then the
         same model polish.
     index_bounds : (row_min, row_max, col_min, col_max), optional
-        Restrict the sites to these indices (default: ``calibration.notes["index_bounds"]``
-        when present, else every site whose centre lies in the frame).
+        Restrict the sites to these indices (default: ``calibration.options.index_bounds``;
+        None there = every site whose centre lies in the frame).
     weighting : {"none", "camera"}, optional
-        Pixel weights of the least-squares fit (default: ``calibration.notes["weighting"]``,
-        else ``"none"``). ``"none"``: every pixel counts the same. ``"camera"``: each pixel is
+        Pixel weights of the least-squares fit (default: ``calibration.options.weighting``). ``"none"``: every pixel counts the same. ``"camera"``: each pixel is
         weighted by the inverse of its camera-noise variance (photons^2,
         :meth:`CameraModel.photon_variance`) evaluated at a fixed reference image, smoothed
         over the larger of the lattice spacing and the PSF FWHM (:func:`camera_weights`).
@@ -198,8 +194,7 @@ class Reconstructor:
         empty margin, read noise), not the shot noise of each individual atom.
     reference : (H, W) ndarray of float, optional
         Mean photons per pixel for ``weighting="camera"`` (default: the calibration's stored
-        mean image, ``calibration.notes["reference_photons"]``, written by
-        :func:`with_camera_weighting`).
+        mean image, ``calibration.options.reference``, written by :func:`with_camera_weighting`).
 
     Raises
     ------
@@ -208,8 +203,9 @@ class Reconstructor:
         another size, camera weighting without a reference image).
     """
 
-    def __init__(self, calibration: Calibration, *, method: str | None = None, mask=None, refit_phase: bool = True,
-                 index_bounds=None, phase_method: str = "model", weighting: str | None = None, reference=None):
+    def __init__(self, calibration: Calibration, *, method: str | None = None, mask=None,
+                 refit_phase: bool | None = None, index_bounds=None, phase_method: str | None = None,
+                 weighting: str | None = None, reference=None):
         if not isinstance(calibration, Calibration):
             raise CalibrationError(f"expected a Calibration, got {type(calibration).__name__}")
         shape = tuple(int(s) for s in calibration.frame_shape)
@@ -226,10 +222,13 @@ class Reconstructor:
                                        f"made for {shape[0]}x{shape[1]}")
             if not mask.any():
                 raise CalibrationError("the mask excludes every pixel")
+        options = calibration.options
+        phase_method = options.phase_method if phase_method is None else phase_method
+        refit_phase = options.refit_phase if refit_phase is None else refit_phase
         if phase_method not in ("model", "fourier"):
             raise CalibrationError(f"unknown phase method {phase_method!r}; use 'model' or 'fourier'")
         if weighting is None:
-            weighting = calibration.notes.get("weighting", "none") if isinstance(calibration.notes, dict) else "none"
+            weighting = options.weighting
         if weighting not in WEIGHTINGS:
             raise CalibrationError(f"unknown pixel weighting {weighting!r}; use 'none' (every pixel counts the same) "
                                    "or 'camera' (inverse camera-noise variance)")
@@ -240,8 +239,8 @@ class Reconstructor:
         self.refit_phase = bool(refit_phase)
         self.frame_shape = shape
         self.camera: CameraModel = calibration.camera
-        if index_bounds is None and isinstance(calibration.notes, dict):
-            index_bounds = calibration.notes.get("index_bounds")
+        if index_bounds is None:
+            index_bounds = options.index_bounds
         self.index_bounds = None if index_bounds is None else tuple(int(v) for v in index_bounds)
         self.sites = lattice_sites(calibration.geometry, shape, index_bounds=self.index_bounds)
         if len(self.sites) == 0:
@@ -264,7 +263,7 @@ class Reconstructor:
                 self.phase_basis = SiteBasis(calibration.geometry, frame_shape=shape, psf=calibration.psf,
                                              sites=block, mask=mask, pixel_weights=self.pixel_weights)
         self.threshold = _calibration_threshold(calibration)
-        atom = calibration.notes.get("photons_per_atom") if isinstance(calibration.notes, dict) else None
+        atom = options.photons_per_atom
         if atom is None and calibration.threshold is not None:
             atom = 2.0 * float(calibration.threshold)
         self.atom_photons = None if atom is None or not np.isfinite(atom) or atom <= 0 else float(atom)
@@ -279,7 +278,28 @@ class Reconstructor:
             raise FrameError(f"{where} holds {image.dtype} values; expected real camera counts")
         self.calibration.check_frame_shape(image.shape, where=where)
         self._check_camera(image, where)
+        self._check_pixels(image, where)
         return image
+
+    def _check_pixels(self, image, where: str) -> None:
+        """Apply the calibration's frame policy: NaN/inf or saturated pixels fail the frame when it says so.
+
+        With the default policy ("flag") nothing happens here: the amplitude fit leaves those
+        pixels out and flags the sites that rely on them (NONFINITE, SATURATED).
+        """
+        policy = self.calibration.frame_policy
+        crop = self.basis.crop
+        if policy.nonfinite == "fail" and np.issubdtype(image.dtype, np.floating):
+            bad = int(np.count_nonzero(~np.isfinite(image[crop])))
+            if bad:
+                raise FrameError(f"{where} has {bad} NaN or infinite pixel(s) under the lattice and the calibration's "
+                                 "frame policy says such frames fail (frame_policy.nonfinite = 'fail')")
+        if policy.saturated == "fail":
+            with np.errstate(invalid="ignore"):
+                bad = int(np.count_nonzero(image[crop] >= self.camera.saturation))
+            if bad:
+                raise FrameError(f"{where} has {bad} saturated pixel(s) under the lattice and the calibration's "
+                                 "frame policy says such frames fail (frame_policy.saturated = 'fail')")
 
     def _check_camera(self, image, where: str) -> None:
         """Refuse frames whose dark pixels lie far below the calibrated bias (another camera).
@@ -431,11 +451,14 @@ class Reconstructor:
 def _camera_pixel_weights(calibration: Calibration, shape, reference) -> np.ndarray:
     """Per-pixel weights (1/photons^2) of ``weighting="camera"``; see :class:`Reconstructor`."""
     if reference is None:
-        stored = calibration.notes.get("reference_photons") if isinstance(calibration.notes, dict) else None
-        if not stored:
+        stored = calibration.options.reference
+        if stored is None:
             raise CalibrationError("camera weighting needs the mean photon image of the calibration frames; "
                                    "recalibrate with --weighting camera")
-        reference = _reference_from_notes(stored, shape)
+        if stored.shape != tuple(shape):
+            raise CalibrationError("the calibration's reference image for camera weighting does not match its frame "
+                                   "shape; recalibrate with --weighting camera")
+        reference = stored.image()
     reference = np.asarray(reference, dtype=float)
     if reference.shape != tuple(shape):
         raise CalibrationError(f"the reference image for camera weighting is {reference.shape[0]}x"
@@ -447,24 +470,8 @@ def _camera_pixel_weights(calibration: Calibration, shape, reference) -> np.ndar
         raise CalibrationError(f"camera weighting: {exc}") from exc
 
 
-def _reference_from_notes(stored, shape) -> np.ndarray:
-    """Full-size mean photon image from the block means stored by :func:`with_camera_weighting`."""
-    try:
-        block = int(stored["block"])
-        values = np.asarray(stored["values"], dtype=float)
-        full_shape = tuple(int(v) for v in stored["shape"])
-    except (KeyError, TypeError, ValueError) as exc:
-        raise CalibrationError(f"the calibration's reference image for camera weighting is malformed ({exc}); "
-                               "recalibrate with --weighting camera") from exc
-    if full_shape != tuple(shape) or values.ndim != 2 or block < 1 or \
-            values.shape != (-(-shape[0] // block), -(-shape[1] // block)):
-        raise CalibrationError("the calibration's reference image for camera weighting does not match its frame "
-                               "shape; recalibrate with --weighting camera")
-    return np.repeat(np.repeat(values, block, axis=0), block, axis=1)[:shape[0], :shape[1]]
-
-
 def with_camera_weighting(calibration: Calibration, frames, *, max_frames: int = 50) -> Calibration:
-    """The calibration set up for ``weighting="camera"``: mean photon image of ``frames`` stored in its notes.
+    """The calibration set up for ``weighting="camera"``: mean photon image of ``frames`` in its options.
 
     Parameters
     ----------
@@ -478,7 +485,7 @@ def with_camera_weighting(calibration: Calibration, frames, *, max_frames: int =
     Returns
     -------
     Calibration
-        ``notes["weighting"] = "camera"`` and ``notes["reference_photons"]``: the mean photon
+        ``options.weighting = "camera"`` and ``options.reference``: the mean photon
         image (non-finite and saturated pixels left out) as block means over squares of
         ``block`` pixels (the largest whole number of pixels not above the smaller lattice
         spacing; the weights are smoothed over more than that anyway), so the calibration
@@ -520,10 +527,8 @@ def with_camera_weighting(calibration: Calibration, frames, *, max_frames: int =
     hb, wb = -(-h // block), -(-w // block)
     padded = np.pad(mean, ((0, hb * block - h), (0, wb * block - w)), mode="edge")
     values = padded.reshape(hb, block, wb, block).mean(axis=(1, 3))
-    notes = dict(calibration.notes, weighting="camera",
-                 reference_photons={"block": block, "shape": [h, w],
-                                    "values": np.round(values, 4).tolist(), "n_frames": int(len(pick))})
-    return calibration.replace(notes=notes)
+    reference = ReferenceImage(block=block, shape=(h, w), values=np.round(values, 4), n_frames=int(len(pick)))
+    return calibration.with_options(weighting="camera", reference=reference)
 
 
 def _with_positions(sites: SiteGrid, x, y) -> SiteGrid:
@@ -636,8 +641,10 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
     Returns
     -------
     Calibration
-        With ``notes``: ``threshold_result`` (the histogram fit), ``photons_per_atom``,
-        ``n_frames_used``, ``index_bounds`` (when restricted), ``amplitude_warnings``.
+        The threshold fitted on the pooled histogram of the calibration frames (fixed from
+        then on), its fit in ``threshold_fit``, ``options.index_bounds`` (when restricted) and
+        ``options.photons_per_atom``; ``notes`` holds the provenance (``n_frames_used``,
+        ``spacing_over_fwhm``, ``threshold_sites``, fit diagnostics, ``warnings``).
     """
     camera = camera or CameraModel()
     n_total = _n_frames(frames)
@@ -699,27 +706,20 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
         raise CalibrationError(f"unknown amplitude method {method!r}; use one of {', '.join(AMPLITUDE_METHODS)}")
     notes["spacing_over_fwhm"] = float(ratio)
 
-    first_notes = {}
-    if restrict_region:
-        bounds = _bright_region(clean, geometry=geometry, psf=psf)
-        if bounds is not None:
-            first_notes["index_bounds"] = list(bounds)
+    first_bounds = _bright_region(clean, geometry=geometry, psf=psf) if restrict_region else None
     draft = Calibration(geometry=geometry, psf=psf, camera=camera, frame_shape=shape, threshold=None,
                         threshold_method=threshold_method, amplitude_method="linear", pixel_size_nm=pixel_size_nm,
-                        notes=first_notes)
+                        options=ReconstructionOptions(index_bounds=first_bounds))
     rec = Reconstructor(draft, method="linear", mask=mask, refit_phase=True)
     pooled, pooled_flags, warnings = _pooled(rec, chosen)
     tr = select_threshold(pooled, method=threshold_method, camera=camera, flags=pooled_flags)
-    if restrict_region and np.isfinite(tr.threshold) and "index_bounds" not in first_notes:
+    if restrict_region and np.isfinite(tr.threshold) and first_bounds is None:
         bounds = _atom_region(rec.sites, pooled.reshape(len(chosen), -1), tr.threshold)
         if bounds is not None:
-            notes["index_bounds"] = list(bounds)
-            draft = draft.replace(notes={"index_bounds": list(bounds)})
+            draft = draft.with_options(index_bounds=bounds)
             rec = Reconstructor(draft, method="linear", mask=mask, refit_phase=rec.refit_phase)
             pooled, pooled_flags, warnings = _pooled(rec, chosen)
             tr = select_threshold(pooled, method=threshold_method, camera=camera, flags=pooled_flags)
-    elif "index_bounds" in first_notes:
-        notes["index_bounds"] = first_notes["index_bounds"]
     if np.isfinite(tr.threshold):
         # the histogram of the sites where atoms occur: sites that never hold an atom (corners of
         # the bounding box, the margin) have no neighbours' light and would make the empty peak
@@ -742,16 +742,14 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
         else:
             # the binary fit re-estimates the brightness of one atom in every frame (least-squares
             # scale of the pattern); its decision level is half of it, which is the threshold
-            notes_round = dict(draft.notes, photons_per_atom=float(atom))
-            rec = Reconstructor(draft.replace(amplitude_method=method, notes=notes_round), method=method,
-                                mask=mask, refit_phase=rec.refit_phase)
+            rec = Reconstructor(draft.replace(amplitude_method=method).with_options(photons_per_atom=float(atom)),
+                                method=method, mask=mask, refit_phase=rec.refit_phase)
             pooled, pooled_flags, warnings, atoms = _pooled(rec, chosen, atoms=True)
             atom = float(np.median(atoms)) if atoms else atom
             # the self-consistent brightness can sit in a local minimum with too few atoms: scan
             # fixed brightnesses on a few frames and keep the one with the smallest residual
             atom = _scan_atom(rec, chosen[:3], atom)
-            rec = Reconstructor(draft.replace(amplitude_method=method,
-                                              notes=dict(draft.notes, photons_per_atom=atom)),
+            rec = Reconstructor(draft.replace(amplitude_method=method).with_options(photons_per_atom=atom),
                                 method=method, mask=mask, refit_phase=rec.refit_phase)
             pooled, pooled_flags, warnings, atoms = _pooled(rec, chosen, atoms=True)
             atom = float(np.median(atoms)) if atoms else atom
@@ -760,19 +758,17 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
             notes["threshold_note"] = ("binary refinement: threshold = half the fitted photons of one atom, "
                                        "the decision level of the fit")
     elif method in ("wiener", "richardson_lucy"):
-        rec = Reconstructor(draft.replace(amplitude_method=method, notes=dict(draft.notes)), method=method,
+        rec = Reconstructor(draft.replace(amplitude_method=method), method=method,
                             mask=mask, refit_phase=rec.refit_phase)
         pooled, pooled_flags, warnings = _pooled(rec, chosen)
         tr = select_threshold(pooled, method=threshold_method, camera=camera, flags=pooled_flags)
         atom = tr.occupied_mean
-    notes["threshold_result"] = tr.to_dict()
-    if np.isfinite(atom) and atom > 0:
-        notes["photons_per_atom"] = float(atom)
     if warnings or tr.warnings or psf_warnings:
         notes["warnings"] = sorted(set(warnings) | set(tr.warnings) | set(psf_warnings))
+    options = draft.options.replace(photons_per_atom=float(atom) if np.isfinite(atom) and atom > 0 else None)
     return Calibration(geometry=geometry, psf=psf, camera=camera, frame_shape=shape, threshold=float(tr.threshold),
                        threshold_method=threshold_method, amplitude_method=method, pixel_size_nm=pixel_size_nm,
-                       notes=notes)
+                       options=options, threshold_fit=tr, notes=notes)
 
 
 def lattice_constraint_kwargs(prior: dict | None, *, angle_between: float = np.pi / 2) -> dict:

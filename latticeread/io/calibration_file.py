@@ -8,7 +8,7 @@ floats when the file is loaded.
 Layout (all lengths in pixels, amplitudes and thresholds in photons)::
 
     {
-      "format": "latticeread-calibration", "format_version": 1, "program_version": "0.1.0",
+      "format": "latticeread-calibration", "format_version": 2, "program_version": "0.1.0",
       "geometry": {"a1": [x, y], "a2": [x, y], "offset": [x, y], "quality": {...}},
       "psf": {"kind": "airy" | "gaussian" | "empirical", "fwhm": px, "radius": px,
               "params": {...}, "supersample": n, "kernel": [[...], ...] (empirical only)},
@@ -16,9 +16,20 @@ Layout (all lengths in pixels, amplitudes and thresholds in photons)::
                  "bias": counts, "read_noise": counts, "quantum_efficiency": ...,
                  "clock_induced_charge": electrons, "saturation": counts},
       "frame_shape": [height, width],
-      "threshold": photons or null, "threshold_method": "...", "amplitude_method": "...",
-      "pixel_size_nm": nm or null, "notes": {...}
+      "threshold": photons or null, "threshold_method": "mixture" | "otsu" | "minimum",
+      "threshold_scope": "pooled" | "per_frame", "threshold_fit": {...} or null,
+      "amplitude_method": "...", "pixel_size_nm": nm or null,
+      "reconstruction": {"weighting": "none" | "camera", "index_bounds": [r0, r1, c0, c1] or null,
+                         "photons_per_atom": photons or null, "phase_method": "model" | "fourier",
+                         "refit_phase": true, "reference": {"block", "shape", "values", "n_frames"} or null},
+      "frame_policy": {"nonfinite": "flag" | "fail", "saturated": "flag" | "fail"},
+      "notes": {...}   (provenance only)
     }
+
+Format version 1 had no ``threshold_scope``, ``threshold_fit``, ``reconstruction`` or
+``frame_policy``; its settings (``weighting``, ``index_bounds``, ``photons_per_atom``,
+``reference_photons``, ``threshold_result``) travelled in ``notes``. Such files still load:
+the settings are moved into the typed fields.
 """
 
 from __future__ import annotations
@@ -31,7 +42,7 @@ from pathlib import Path
 
 import numpy as np
 
-from latticeread.core.calibration import Calibration
+from latticeread.core.calibration import FORMAT_VERSION, Calibration
 from latticeread.errors import CalibrationError
 
 from .atomic import atomic_write
@@ -187,6 +198,19 @@ _SCHEMA = {
     "threshold_method": (False, _str, False),
     "amplitude_method": (False, _str, False),
     "pixel_size_nm": (False, _number, True),
+    "threshold_scope": (False, _str, False),
+    "threshold_fit": (False, _obj, True),
+    "reconstruction": (False, _obj, False),
+    "reconstruction.weighting": (False, _str, False),
+    "reconstruction.index_bounds": (False, (lambda v: isinstance(v, list) and len(v) == 4 and all(
+        isinstance(x, int) and not isinstance(x, bool) for x in v), "a list of four whole numbers"), True),
+    "reconstruction.photons_per_atom": (False, _number, True),
+    "reconstruction.phase_method": (False, _str, False),
+    "reconstruction.refit_phase": (False, (lambda v: isinstance(v, bool), "true or false"), False),
+    "reconstruction.reference": (False, _obj, True),
+    "frame_policy": (False, _obj, False),
+    "frame_policy.nonfinite": (False, _str, False),
+    "frame_policy.saturated": (False, _str, False),
     "notes": (False, _obj, False),
 }
 
@@ -198,10 +222,10 @@ def _check_schema(data, where: str) -> None:
     if fmt != "latticeread-calibration":
         raise CalibrationError(f"{where}: this is not a latticeread calibration (format is {fmt!r})")
     version = data.get("format_version", 1)
-    if not _is_number(version) or version > 1:
+    if not _is_number(version) or version > FORMAT_VERSION:
         raise CalibrationError(
-            f"{where}: calibration format version {version!r} is newer than this program understands (1); "
-            "update latticeread")
+            f"{where}: calibration format version {version!r} is newer than this program understands "
+            f"({FORMAT_VERSION}); update latticeread")
     for key, (required, (check, expected), nullable) in _SCHEMA.items():
         parent_key, _, name = key.rpartition(".")
         parent = data if not parent_key else data.get(parent_key)
