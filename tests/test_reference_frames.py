@@ -1,0 +1,111 @@
+"""The outside check: frames of an independent simulator, reconstructed unaided and scored on the truth.
+
+Each case of ``shared/reference-frames`` (beside the checkout; see ``tests/reference_frames.py``)
+is calibrated and reconstructed once per test session from its ``frame.tif`` and the optics
+and camera of its ``public.json`` only, exactly as the folder's README says a user would. Two
+checks per case:
+
+* geometry: every truth site (loaded region and its two empty margin rings, every frame) has a
+  reconstructed site within 0.02 of the smallest lattice spacing (the project's target for
+  tight lattices; a tenth of a spacing already misplaces the PSF enough to cost fidelity);
+* fidelity: the mean per-frame fidelity over all truth sites, scored as the README defines
+  (match radius 0.25 x ``spacing_min``, :class:`scipy.spatial.cKDTree`), lies within 0.2
+  percentage points of the true-model oracle in ``expected.json``.
+
+Cases the program does not pass yet are marked ``xfail(strict=True)`` with the numbers measured
+when the mark was set, so the suite stays green and a fix that makes one pass turns the mark
+into a failure that asks for its removal.
+"""
+
+from __future__ import annotations
+
+import pytest
+
+import reference_frames as rf
+
+FOLDER = rf.reference_dir()
+pytestmark = pytest.mark.skipif(FOLDER is None, reason="the reference frames (../shared/reference-frames beside the "
+                                f"checkout, or ${rf.ENV_VAR}) are not on this machine")
+
+#: Largest distance from a truth site to the nearest reconstructed site, in units of spacing_min.
+SITE_TOLERANCE = 0.02
+#: Largest shortfall of the mean fidelity below the oracle's, as a fraction (0.2 percentage points).
+FIDELITY_TOLERANCE = 0.002
+
+CASES = ("r1_square_resolved", "r2_mott_disk", "r3_triangular", "r4_sparse_tight", "r5_field_and_drift",
+         "r6_distorted")
+
+#: Cases failing today, with the numbers measured when the mark was set (calibrated with the Airy
+#: PSF of public.json, default settings otherwise).
+GEOMETRY_XFAIL = {
+    "r1_square_resolved": "max site error 0.021 spacing (the Fourier estimate, just above the 0.02 target)",
+    "r2_mott_disk": "no lattice found: the Fourier peaks lie beyond the optical cut-off and the core is filled",
+    "r3_triangular": "max site error 0.104 spacing",
+    "r4_sparse_tight": "max site error 0.097 spacing",
+    "r5_field_and_drift": "max site error 0.203 spacing (drift between frames, aberrations)",
+    "r6_distorted": "max site error 0.108 spacing (barrel distortion: one perfect lattice misplaces the corners)",
+}
+FIDELITY_XFAIL = {
+    "r2_mott_disk": "no lattice found",
+    "r3_triangular": "fidelity 0.9971 against the oracle's 0.9998 (-0.26 pp)",
+    "r5_field_and_drift": "fidelity 0.9874 against the oracle's 0.9983 (-1.10 pp)",
+}
+
+
+def _marked(table):
+    return [pytest.param(c, marks=pytest.mark.xfail(strict=True, reason=table[c])) if c in table else c
+            for c in CASES]
+
+
+_RUNS: dict = {}
+
+
+def _scored(case: str):
+    """Run and score ``case`` once per session; a failure of the program is re-raised each time."""
+    if case not in _RUNS:
+        try:
+            run = rf.run_case(FOLDER / case)
+            _RUNS[case] = (run, rf.score_case(FOLDER / case, run))
+        except Exception as exc:  # the program failed on this case: every check of it fails with the reason
+            _RUNS[case] = exc
+    got = _RUNS[case]
+    if isinstance(got, Exception):
+        raise AssertionError(f"{case}: the program failed unaided: {type(got).__name__}: {got}") from got
+    return got
+
+
+@pytest.mark.parametrize("case", _marked(GEOMETRY_XFAIL))
+def test_every_site_within_two_hundredths_of_a_spacing(case):
+    _, score = _scored(case)
+    assert score.max_site_error <= SITE_TOLERANCE, f"{case}: {score.summary()}"
+
+
+@pytest.mark.parametrize("case", _marked(FIDELITY_XFAIL))
+def test_fidelity_close_to_the_true_model(case):
+    _, score = _scored(case)
+    oracle = rf.expected(FOLDER)["cases"][case]["oracle_fidelity_mean"]
+    assert score.mean_fidelity >= oracle - FIDELITY_TOLERANCE, (
+        f"{case}: {score.summary()}; oracle {oracle:.4f}")
+
+
+def test_scorer_counts_missing_and_wrong_sites():
+    """The scorer itself, on a truth shifted by known amounts (no program involved)."""
+    import numpy as np
+
+    truth = rf.load_truth(FOLDER / "r1_square_resolved")
+    x, y = truth["site_x_frames"][:1], truth["site_y_frames"][:1]
+    occ = truth["occ_initial"][:1].astype(np.uint8)
+    perfect = rf.score_frames(truth, x, y, occ)
+    assert perfect.mean_fidelity == 1.0 and perfect.max_site_error == 0.0
+    spacing = float(truth["spacing_min"])
+    # ten sites dropped, five flipped, everything moved by 0.1 spacing
+    flipped = occ.copy()
+    flipped[0, 10:15] ^= 1
+    n = x.shape[1]
+    keep = np.arange(n) >= 10
+    score = rf.score_frames(truth, [x[0, keep] + 0.1 * spacing], [y[0, keep]], [flipped[0, keep]])
+    assert score.mean_fidelity == pytest.approx(1 - 15 / n)  # sites 0..9 missing, 10..14 wrong
+    assert score.unmatched[0] == 10
+    assert score.max_site_error > 0.9  # a dropped site's nearest neighbour is about a spacing away
+    moved = rf.score_frames(truth, [x[0] + 0.3 * spacing], [y[0]], [occ[0]])
+    assert moved.mean_fidelity < 0.05  # beyond the match radius: nothing matches
