@@ -227,13 +227,43 @@ class PatternTable:
         How often each distinct (own, neighbours) combination occurs, per shot and pair.
     n_neighbours : int
         ``K``, the number of hop targets of an atom.
+    site_entry : (n_shots, n_pairs, n_rows, n_cols) ndarray of int or None
+        Table entry of every site and image pair (-1 where the site was not read out in
+        both images); used to resample blocks of sites.
     """
 
-    def __init__(self, own, neighbours, counts, n_neighbours):
+    def __init__(self, own, neighbours, counts, n_neighbours, site_entry=None):
         self.own = own
         self.neighbours = neighbours
         self.counts = counts
         self.n_neighbours = int(n_neighbours)
+        self.site_entry = site_entry
+
+    def block_counts(self, block: int) -> np.ndarray:
+        """Pattern counts per (shot, block of ``block x block`` sites), image pairs summed.
+
+        Parameters
+        ----------
+        block : int
+            Side of a square block of sites (sites).
+
+        Returns
+        -------
+        (n_units, M) ndarray of int
+            One row per (shot, block) that holds at least one read-out site pair.
+        """
+        entry = self.site_entry
+        n_shots, _, R, C = entry.shape
+        b = max(int(block), 1)
+        nbr, nbc = -(-R // b), -(-C // b)
+        blk = (np.arange(R)[:, None] // b) * nbc + (np.arange(C)[None, :] // b)
+        unit = np.arange(n_shots)[:, None, None, None] * (nbr * nbc) + blk[None, None]
+        unit = np.broadcast_to(unit, entry.shape)
+        sel = entry >= 0
+        M = self.own.size
+        out = np.bincount(unit[sel] * M + entry[sel], minlength=n_shots * nbr * nbc * M)
+        out = out.reshape(n_shots * nbr * nbc, M)
+        return out[out.sum(axis=1) > 0]
 
     @property
     def vacated(self) -> np.ndarray:
@@ -294,7 +324,9 @@ def pattern_table(observed: np.ndarray, *, valid: np.ndarray, offsets: np.ndarra
     counts = np.bincount(unit[sel] * M + inv, minlength=n_shots * n_pairs * M).reshape(n_shots, n_pairs, M)
     own = uniq // base ** nc
     neighbours = np.stack([(uniq // base ** (nc - 1 - c)) % base for c in range(nc)], axis=1)
-    return PatternTable(own.astype(int), neighbours.astype(int), counts, K)
+    site_entry = np.full(key.shape, -1, np.int64)
+    site_entry[sel] = inv
+    return PatternTable(own.astype(int), neighbours.astype(int), counts, K, site_entry=site_entry)
 
 
 def pattern_probabilities(theta, *, neighbours: np.ndarray, n_neighbours: int) -> np.ndarray:
