@@ -232,7 +232,7 @@ class ThresholdResult:
         fp, fn = _error_rates(t, self.empty_mean, self.empty_std, self.occupied_mean, self.occupied_std)
         if self.is_skewed:
             pair = self._pair()
-            fp, fn = float(1.0 - pair.cdf0(t)), float(pair.cdf1(t))
+            fp, fn = _tail_rates(pair, t)
         moved = dataclasses.replace(self, threshold=t, method="user", false_positive_rate=fp, false_negative_rate=fn)
         if "_pair_cache" in self.__dict__:  # same peaks: reuse the tabulation
             object.__setattr__(moved, "_pair_cache", self.__dict__["_pair_cache"])
@@ -456,7 +456,7 @@ def select_threshold(
     fp, fn = _error_rates(t, m0, s0, m1, s1)
     if skew:
         pair = _SkewedPair(m0, *skew)
-        fp, fn = float(1.0 - pair.cdf0(t)), float(pair.cdf1(t))
+        fp, fn = _tail_rates(pair, t)
     for text in warn:
         logger.info("threshold: %s", text)
     for text in warn:
@@ -934,6 +934,14 @@ def _fit_skewed(counts, centers, *, m0, s0, m1, s1, w1, kappa):
     if ke >= _MAX_GAMMA_SHAPE:
         ke = float("inf")
     return w, (mm0, sn, ke, te, k, ts, ss)
+
+
+def _tail_rates(pair, t):
+    """(FP, FN) of skewed peaks at threshold ``t``, clipped to 0..1 (the tabulated CDFs can
+    overshoot 1 by a rounding error, which would make a tail probability of -2e-16)."""
+    fp = min(max(1.0 - float(pair.cdf0(t)), 0.0), 1.0)
+    fn = min(max(float(pair.cdf1(t)), 0.0), 1.0)
+    return fp, fn
 
 
 def _crossing_skewed(pair, w1, t_guess, lo, hi):
