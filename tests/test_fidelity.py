@@ -456,3 +456,101 @@ def test_command_reads_an_occupation_file_without_reconstructing(pair_stack, cap
     ref = estimate_fidelity(occ, false_negative_rate=0.001, geometry=cal.geometry, n_bootstrap=10, rng=0)
     assert got["loss"]["value"] == pytest.approx(ref.loss.value, abs=1e-12)
     assert got["n_atom_images"] == ref.n_atom_images
+
+
+# --------------------------------------------------------------------------- one shot: intervals over sites
+
+
+def test_one_pair_of_images_gets_an_interval_over_blocks_of_sites():
+    """One shot: a bootstrap over shots would return the value itself as both ends."""
+    obs, _ = simulate_occupations(n_shots=1, shape=(40, 40), filling=0.3, loss=0.03, hop=0.015,
+                                  false_positive=0.002, false_negative=0.01, rng=2)
+    rep = estimate_fidelity(obs, false_positive_rate=0.002, false_negative_rate=0.01, n_bootstrap=60,
+                            n_blocks=0, rng=2)
+    for est in (rep.loss, rep.hop):
+        assert est.low < est.value < est.high
+        assert est.high - est.low > 0.005       # a few atoms lost or hopped among ~480: wide
+        assert "blocks of 4x4 sites" in est.method
+    assert rep.settings["interval_unit"] == "sites"
+    assert rep.settings["interval"].startswith("bootstrap over blocks of 4x4 sites")
+    assert any("resample blocks of 4x4 sites" in w for w in rep.warnings)
+    shots = estimate_fidelity(obs, false_positive_rate=0.002, false_negative_rate=0.01, n_bootstrap=20,
+                              n_blocks=0, interval="shots", rng=2)
+    assert shots.loss.low == shots.loss.high == pytest.approx(shots.loss.value)   # the collapse
+
+
+def test_one_shot_intervals_cover_the_truth_in_most_seeds():
+    """Coverage of the site-block interval with one pair of images (small; the bench has more seeds).
+
+    A 95 % interval should cover in about 95 % of seeds; 8 seeds with 6 or more covering
+    passes (a collapsed interval covers in none).
+    """
+    covered = np.zeros(2, int)
+    for seed in range(8):
+        obs, _ = simulate_occupations(n_shots=1, shape=(36, 36), filling=0.3, loss=0.03, hop=0.015,
+                                      false_positive=0.002, false_negative=0.01, rng=100 + seed)
+        rep = estimate_fidelity(obs, false_positive_rate=0.002, false_negative_rate=0.01, n_bootstrap=30,
+                                n_blocks=0, rng=seed)
+        covered += (rep.loss.covers(0.03), rep.hop.covers(0.015))
+    assert covered.min() >= 6, covered
+
+
+def test_many_shots_still_resample_shots():
+    obs, _ = simulate_occupations(n_shots=12, shape=(12, 12), filling=0.3, loss=0.03, rng=4)
+    rep = estimate_fidelity(obs, false_positive_rate=0.0, false_negative_rate=0.0, n_bootstrap=10, n_blocks=0)
+    assert rep.settings["interval_unit"] == "shots" and "over shots" in rep.loss.method
+
+
+def test_block_counts_keep_every_site_pair():
+    from latticeread.core import _markov
+
+    obs, _ = simulate_occupations(n_shots=3, n_images=3, shape=(10, 9), filling=0.4, loss=0.05, hop=0.05, rng=1)
+    valid = obs != 255
+    table = _markov.pattern_table(obs, valid=valid, offsets=neighbour_offsets())
+    blocks = table.block_counts(4)
+    assert blocks.shape == (3 * 3 * 3, table.own.size)       # 3 shots x (3 x 3) blocks of up to 4x4
+    assert np.array_equal(blocks.sum(axis=0), table.counts.sum(axis=(0, 1)))
+
+
+@pytest.mark.parametrize("kwargs, match", [
+    ({"interval": "frames"}, "unknown interval unit 'frames'; use one of auto, shots, sites"),
+    ({"site_block": 0}, "site_block must be at least 1 site"),
+])
+def test_bad_interval_options_are_refused(kwargs, match):
+    with pytest.raises(FidelityError, match=match):
+        estimate_fidelity(_occ(), **kwargs)
+
+
+# --------------------------------------------------------------------------- report round trip
+
+
+def test_report_round_trips_through_a_dict_and_json(issue_trials):
+    rep = issue_trials[0]
+    back = FidelityReport.from_dict(json.loads(json.dumps(rep.to_dict())))
+    assert back.to_dict() == rep.to_dict()
+    assert back.loss == rep.loss and back.per_shot == rep.per_shot and back.blocks == rep.blocks
+    assert back.format_table() == rep.format_table()
+    obs, _ = simulate_occupations(n_shots=4, n_images=3, shape=(12, 12), filling=0.3, loss=0.05, rng=3)
+    three = estimate_fidelity(obs, false_positive_rate=0.001, false_negative_rate=0.001, n_bootstrap=0,
+                              histogram=histogram_fidelity(threshold=2.0, means=(0, 4), stds=(1, 1),
+                                                           weights=(0.7, 0.3)))
+    again = FidelityReport.from_dict(json.loads(json.dumps(three.to_dict())))
+    assert again.to_dict() == three.to_dict() and again.histogram == three.histogram
+    assert np.isnan(again.loss.low)                      # no bootstrap: null back to NaN
+
+
+@pytest.mark.parametrize("data, match", [
+    ({"format": "something else"}, "not a latticeread fidelity record"),
+    ({"format": "latticeread-fidelity", "format_version": 99}, "format version 99 is newer"),
+    ({"format": "latticeread-fidelity", "format_version": 1}, "fidelity record is missing loss, hop"),
+])
+def test_bad_fidelity_records_are_refused(data, match):
+    with pytest.raises(FidelityError, match=match):
+        FidelityReport.from_dict(data)
+
+
+def test_a_stored_estimate_needs_a_value():
+    from latticeread.core.fidelity import Estimate
+
+    with pytest.raises(FidelityError, match="the stored estimate is missing value"):
+        Estimate.from_dict({"low": 0.1})

@@ -24,12 +24,29 @@ false-negative and false-positive rates; they are reported for transparency.
 *Model* estimates (``loss``, ``hop``): the maximum of a composite likelihood of the pattern
 of every site in both images given the patterns of its neighbours (see
 :mod:`latticeread.core._markov` for the model and its approximations). The filling, loss,
-hop and (optionally) pair-loss probabilities are fitted; the false-positive and
-false-negative rates are held at the histogram values because two images alone cannot tell
-a false negative in image ``n + 1`` from a loss. Intervals come from a bootstrap over shots
-(the unit that is really independent) with a seeded generator; when the uncertainties of
-the misread rates are given, every bootstrap replicate also draws the rates from a normal
-distribution with those standard deviations, so the interval includes them.
+hop and (optionally) pair-loss probabilities are fitted; the false-negative rate is held at
+the histogram value because two images alone cannot tell a false negative in image
+``n + 1`` from a loss.
+
+Intervals come from a bootstrap with a seeded generator (Efron & Tibshirani, *An
+Introduction to the Bootstrap*, 1993, percentile interval). With
+:data:`MIN_SHOTS_FOR_SHOT_BOOTSTRAP` shots or more the resampled unit is the shot (the unit
+that is really independent). With fewer shots -- down to a single pair of images -- a
+bootstrap over shots has nothing to resample (every replicate is the data itself, and the
+interval collapses onto the value), so square blocks of ``site_block x site_block`` sites of
+every shot are resampled instead (a moving-block idea: Kunsch, Ann. Stat. 17, 1217 (1989));
+a block is several hop ranges wide, so an atom and the site it hopped to mostly stay
+together. The report says which unit was used (``Estimate.method`` and
+``settings["interval"]``). When the uncertainty of the false-negative rate is given, every
+replicate also draws the rate from a normal distribution with that standard deviation, so
+the interval includes it.
+
+Misread rates
+-------------
+Front ends call :func:`fidelity_from_frames`: it takes the occupations together with the
+site amplitudes and the thresholds that produced them, derives the misread rates once with
+:func:`latticeread.core.misread.misread_rates` (one pooled histogram fit, skewed peaks for an
+EMCCD) and records in ``settings["misread"]`` and ``settings["peak_shape"]`` how.
 
 Combined figure
 ---------------
@@ -43,6 +60,7 @@ the fitted loss and hop and includes the misread-rate uncertainty when it is giv
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 import math
 from dataclasses import dataclass, field
@@ -62,6 +80,7 @@ __all__ = [
     "wilson_interval",
     "histogram_fidelity",
     "estimate_fidelity",
+    "fidelity_from_frames",
     "simulate_occupations",
     "neighbour_offsets",
 ]
@@ -77,12 +96,34 @@ MIN_ATOM_IMAGES = 1000
 MAX_CLEAR_FILLING = 0.5
 #: Loss per image of 1-2 % is typical for fluorescence imaging (common practice, no source).
 TYPICAL_LOSS = (0.01, 0.02)
+#: Version of the dictionary written by FidelityReport.to_dict.
+FORMAT_VERSION = 1
+#: With fewer shots than this the intervals resample blocks of sites instead of shots.
+MIN_SHOTS_FOR_SHOT_BOOTSTRAP = 10
+#: Side of the blocks of sites resampled when there are few shots (sites).
+SITE_BLOCK = 4
+INTERVAL_UNITS = ("auto", "shots", "sites")
 
 
 def _num(x):
     """JSON-ready float (NaN and inf become None)."""
     x = float(x)
     return x if math.isfinite(x) else None
+
+
+def _float(x):
+    """Inverse of :func:`_num`: None becomes NaN."""
+    return float("nan") if x is None else float(x)
+
+
+def _record(data, cls_name: str, keys) -> dict:
+    """``data`` as a dict holding ``keys``, or a FidelityError naming what is missing."""
+    if not isinstance(data, dict):
+        raise FidelityError(f"a stored {cls_name} must be a dictionary, got {type(data).__name__}")
+    missing = [k for k in keys if k not in data]
+    if missing:
+        raise FidelityError(f"the stored {cls_name} is missing {', '.join(missing)}")
+    return data
 
 
 # --------------------------------------------------------------------------- intervals
@@ -156,6 +197,13 @@ class Estimate:
         return {"value": _num(self.value), "low": _num(self.low), "high": _num(self.high),
                 "n_atoms": int(self.n_atoms), "n_shots": int(self.n_shots), "method": self.method}
 
+    @classmethod
+    def from_dict(cls, data: dict) -> "Estimate":
+        """Inverse of :meth:`to_dict` (null becomes NaN)."""
+        d = _record(data, "estimate", ("value",))
+        return cls(value=_float(d["value"]), low=_float(d.get("low")), high=_float(d.get("high")),
+                   n_atoms=int(d.get("n_atoms", 0)), n_shots=int(d.get("n_shots", 0)), method=str(d.get("method", "")))
+
 
 @dataclass(frozen=True)
 class HistogramFidelity:
@@ -188,6 +236,13 @@ class HistogramFidelity:
         return {k: _num(getattr(self, k)) for k in
                 ("threshold", "false_positive_rate", "false_negative_rate", "filling",
                  "misread_fraction", "fidelity")}
+
+    @classmethod
+    def from_dict(cls, data: dict) -> "HistogramFidelity":
+        """Inverse of :meth:`to_dict` (null becomes NaN)."""
+        names = ("threshold", "false_positive_rate", "false_negative_rate", "filling", "misread_fraction", "fidelity")
+        d = _record(data, "histogram figures", names)
+        return cls(**{k: _float(d[k]) for k in names})
 
 
 def histogram_fidelity(threshold_result=None, *, threshold=None, means=None, stds=None,
@@ -276,6 +331,13 @@ class ShotFidelity:
                 "n_appeared": self.n_appeared, "n_appeared_near_vacated": self.n_appeared_near_vacated,
                 "vanished": self.vanished.to_dict()}
 
+    @classmethod
+    def from_dict(cls, data: dict) -> "ShotFidelity":
+        """Inverse of :meth:`to_dict`."""
+        names = ("shot", "n_atoms", "n_vanished", "n_appeared", "n_appeared_near_vacated")
+        d = _record(data, "per-shot record", names + ("vanished",))
+        return cls(**{k: int(d[k]) for k in names}, vanished=Estimate.from_dict(d["vanished"]))
+
 
 @dataclass(frozen=True)
 class BlockFidelity:
@@ -303,6 +365,13 @@ class BlockFidelity:
     def to_dict(self) -> dict:
         return {"first_shot": self.first_shot, "last_shot": self.last_shot, "loss": _num(self.loss),
                 "hop": _num(self.hop), "read_correctly": _num(self.read_correctly), "n_atoms": self.n_atoms}
+
+    @classmethod
+    def from_dict(cls, data: dict) -> "BlockFidelity":
+        """Inverse of :meth:`to_dict`."""
+        d = _record(data, "block record", ("first_shot", "last_shot", "loss", "hop", "read_correctly", "n_atoms"))
+        return cls(first_shot=int(d["first_shot"]), last_shot=int(d["last_shot"]), loss=_float(d["loss"]),
+                   hop=_float(d["hop"]), read_correctly=_float(d["read_correctly"]), n_atoms=int(d["n_atoms"]))
 
 
 @dataclass(frozen=True)
@@ -368,7 +437,7 @@ class FidelityReport:
 
     def to_dict(self) -> dict:
         """JSON-ready dictionary (NaN written as null)."""
-        out = {"format": "latticeread-fidelity", "format_version": 1}
+        out = {"format": "latticeread-fidelity", "format_version": FORMAT_VERSION}
         for name in ("loss", "hop", "pair_loss", "filling", "false_positive_rate", "false_negative_rate",
                      "read_correctly", "loss_counted", "hop_counted"):
             out[name] = getattr(self, name).to_dict()
@@ -386,6 +455,40 @@ class FidelityReport:
             warnings=list(self.warnings),
         )
         return out
+
+    @classmethod
+    def from_dict(cls, data: dict) -> "FidelityReport":
+        """Rebuild a report from :meth:`to_dict` output (e.g. read back from a session file).
+
+        Raises
+        ------
+        FidelityError
+            Not a fidelity record, a newer format version, or a missing field.
+        """
+        if not isinstance(data, dict) or data.get("format") != "latticeread-fidelity":
+            raise FidelityError("this is not a latticeread fidelity record (no format 'latticeread-fidelity')")
+        version = data.get("format_version")
+        if not isinstance(version, int) or version > FORMAT_VERSION:
+            raise FidelityError(f"fidelity record format version {version!r} is newer than this program reads "
+                                f"({FORMAT_VERSION}); update latticeread")
+        estimates = ("loss", "hop", "pair_loss", "filling", "false_positive_rate", "false_negative_rate",
+                     "read_correctly", "loss_counted", "hop_counted")
+        d = _record(data, "fidelity record", estimates + ("loss_is_typical",))
+        hist = d.get("histogram")
+        return cls(
+            **{k: Estimate.from_dict(d[k]) for k in estimates},
+            loss_is_typical=bool(d["loss_is_typical"]),
+            per_shot=tuple(ShotFidelity.from_dict(x) for x in d.get("per_shot", ())),
+            blocks=tuple(BlockFidelity.from_dict(x) for x in d.get("blocks", ())),
+            per_pair=tuple({k: (_float(v) if k in ("loss", "hop") else v) for k, v in p.items()}
+                           for p in d.get("per_pair", ())),
+            n_shots=int(d.get("n_shots", 0)), n_images=int(d.get("n_images", 0)), n_sites=int(d.get("n_sites", 0)),
+            n_atom_images=int(d.get("n_atom_images", 0)),
+            neighbour_offsets=tuple(tuple(int(v) for v in o) for o in d.get("neighbour_offsets", ())),
+            histogram=None if hist is None else HistogramFidelity.from_dict(hist),
+            settings=dict(d.get("settings") or {}),
+            warnings=tuple(str(w) for w in d.get("warnings", ())),
+        )
 
     def format_table(self) -> str:
         """A readable text table of the main figures (percent per image)."""
@@ -412,6 +515,11 @@ class FidelityReport:
             row("loss, counted (no misread corr.)", self.loss_counted, "Wilson"),
             row("hop, counted (no misread corr.)", self.hop_counted, "Wilson"),
         ]
+        if self.settings.get("interval"):
+            lines.append(f"  intervals: {self.settings['interval']}")
+        misread = self.settings.get("misread")
+        if isinstance(misread, dict) and misread.get("method"):
+            lines.append(f"  misread rates: {misread['method']}")
         if self.histogram is not None:
             h = self.histogram
             lines.append(f"  one-image histogram: FP {100 * h.false_positive_rate:.3f} %, "
@@ -557,6 +665,8 @@ def estimate_fidelity(
     n_bootstrap: int = 200,
     confidence: float = 0.95,
     n_blocks: int = 10,
+    interval: str = "auto",
+    site_block: int = SITE_BLOCK,
     rng=0,
 ) -> FidelityReport:
     """Estimate loss, hopping and the combined fidelity from repeated images.
@@ -595,12 +705,19 @@ def estimate_fidelity(
     histogram : HistogramFidelity or ThresholdResult, optional
         One-image histogram figures to include in the report.
     n_bootstrap : int, optional
-        Bootstrap replicates over shots for the model intervals (0 = no intervals).
+        Bootstrap replicates for the model intervals (0 = no intervals).
     confidence : float, optional
         Two-sided confidence level of all intervals.
     n_blocks : int, optional
         Number of blocks of consecutive shots for the over-the-run summary (blocks are
         enlarged to hold at least 1,000 atom-images when the data allow; 0 = none).
+    interval : {"auto", "shots", "sites"}, optional
+        What the bootstrap resamples: whole shots, or blocks of sites within every shot.
+        ``"auto"`` (default): shots when there are at least
+        :data:`MIN_SHOTS_FOR_SHOT_BOOTSTRAP` of them, otherwise blocks of sites (so one
+        pair of images still gets an interval).
+    site_block : int, optional
+        Side of the square blocks of sites for ``interval="sites"`` (sites, default 4).
     rng : int or numpy.random.Generator, optional
         Seed of the bootstrap (default 0, so a report is reproducible).
 
@@ -622,6 +739,10 @@ def estimate_fidelity(
         raise FidelityError(f"confidence must be between 0 and 1, got {confidence!r}")
     if int(n_bootstrap) < 0:
         raise FidelityError(f"n_bootstrap must be 0 or more, got {n_bootstrap!r}")
+    if interval not in INTERVAL_UNITS:
+        raise FidelityError(f"unknown interval unit {interval!r}; use one of {', '.join(INTERVAL_UNITS)}")
+    if int(site_block) < 1:
+        raise FidelityError(f"site_block must be at least 1 site, got {site_block!r}")
     if histogram is not None and not isinstance(histogram, HistogramFidelity):
         histogram = histogram_fidelity(histogram)
     warnings: list[str] = []
@@ -653,13 +774,17 @@ def estimate_fidelity(
     f_hat, loss_hat, hop_hat, fp_hat = (float(v) for v in x_hat[:4])
     beta_hat = float(x_hat[4]) if fitter.fit_beta else fitter.beta
 
-    # Bootstrap over shots (and over the false-negative rate when its uncertainty is known).
+    # Bootstrap over shots or blocks of sites (and over the false-negative rate when its
+    # uncertainty is known).
+    unit = interval if interval != "auto" else ("shots" if n_shots >= MIN_SHOTS_FOR_SHOT_BOOTSTRAP else "sites")
+    units = per_shot if unit == "shots" else table.block_counts(int(site_block)).astype(float)
+    n_units = units.shape[0]
     gen = np.random.default_rng(rng)
     boot = []
     for _ in range(int(n_bootstrap)):
-        w = gen.multinomial(n_shots, np.full(n_shots, 1.0 / n_shots))
+        w = gen.multinomial(n_units, np.full(n_units, 1.0 / n_units))
         fn_b = fn if not sfn else float(np.clip(gen.normal(fn, sfn), 0.0, 0.499))
-        x = fitter.fit(w @ per_shot, fn_b, x_hat).x
+        x = fitter.fit(w @ units, fn_b, x_hat).x
         beta_b = float(x[4]) if fitter.fit_beta else fitter.beta
         boot.append([x[0], x[1], x[2], beta_b, x[3], fn_b, 1 - (x[3] + fn_b + x[1] + x[2])])
     boot = np.asarray(boot, float).reshape(-1, 7)
@@ -671,7 +796,9 @@ def estimate_fidelity(
         lo, hi = np.quantile(boot[:, col], [alpha, 1 - alpha])
         return float(lo), float(hi)
 
-    boot_method = (f"model fit, {len(boot)} bootstrap replicates over shots"
+    unit_text = ("shots" if unit == "shots" else
+                 f"blocks of {int(site_block)}x{int(site_block)} sites ({n_units} blocks)")
+    boot_method = (f"model fit, {len(boot)} bootstrap replicates over {unit_text}"
                    + (" and the false-negative rate" if sfn else ""))
     common = dict(n_atoms=n_atoms, n_shots=n_shots)
     loss = Estimate(loss_hat, *interval(1), method=boot_method, **common)
@@ -731,8 +858,12 @@ def estimate_fidelity(
     if f_hat > MAX_CLEAR_FILLING:
         warnings.append(f"filling {f_hat:.2f} is above {MAX_CLEAR_FILLING}: too dense for a hop to be told "
                         "apart from loss plus a misread; the hop estimate is ambiguous")
-    if n_bootstrap and n_shots < 10:
+    if n_bootstrap and unit == "shots" and n_shots < MIN_SHOTS_FOR_SHOT_BOOTSTRAP:
         warnings.append(f"only {n_shots} shot(s): bootstrap intervals over shots are unreliable")
+    if n_bootstrap and unit == "sites":
+        warnings.append(f"only {n_shots} shot(s): the intervals resample blocks of {int(site_block)}x"
+                        f"{int(site_block)} sites, which takes the blocks as independent (drifts between "
+                        "shots are not in them)")
     if n_bootstrap == 0:
         warnings.append("no bootstrap requested: the model estimates have no interval")
     if fn_in and not sfn:
@@ -743,6 +874,8 @@ def estimate_fidelity(
                         "(e.g. light from neighbouring atoms), so its false-negative rate may be off too")
 
     settings = {"confidence": float(confidence), "n_bootstrap": int(n_bootstrap),
+                "interval": f"bootstrap over {unit_text}" if n_bootstrap else "none",
+                "interval_unit": unit, "site_block": int(site_block),
                 "neighbour_radius": float(neighbour_radius), "radius_in": "real space" if geometry else "index space",
                 "pair_loss": None if pair_loss is None else float(pair_loss), "fill_value": int(fill_value),
                 "histogram_false_positive_rate": fp_in, "false_negative_uncertainty": sfn,
@@ -755,3 +888,92 @@ def estimate_fidelity(
         n_images=n_images, n_sites=int(valid[:, 0].sum(axis=(1, 2)).max()), n_atom_images=n_atoms,
         neighbour_offsets=tuple(tuple(int(v) for v in o) for o in offsets), histogram=histogram,
         settings=settings, warnings=tuple(warnings))
+
+
+def fidelity_from_frames(
+    occupations,
+    *,
+    amplitudes,
+    thresholds,
+    camera=None,
+    peak_shape: str | None = None,
+    geometry=None,
+    false_positive_rate: float | None = None,
+    false_negative_rate: float | None = None,
+    false_negative_uncertainty: float | None = None,
+    neighbour_radius: float = 2 ** 0.5,
+    pair_loss: float | None = 1.0,
+    n_bootstrap: int = 200,
+    confidence: float = 0.95,
+    n_blocks: int = 10,
+    interval: str = "auto",
+    rng=0,
+) -> FidelityReport:
+    """Loss, hopping and misreads of reconstructed frames: the entry point of every front end.
+
+    The window, ``batch``, ``watch`` and the ``fidelity`` command all call this function, so
+    the same frames give the same report whichever route produced them.
+
+    Parameters
+    ----------
+    occupations : (n_shots, n_images, n_rows, n_cols) array of uint8
+        Occupation matrices grouped into shots (see :func:`estimate_fidelity`).
+    amplitudes : (n_frames, ...) array_like of float
+        Site amplitudes of the frames behind ``occupations``, photons (NaN where not read
+        out); any layout after the first axis.
+    thresholds : float or (n_frames,) array_like of float
+        Threshold each frame was classified with, photons.
+    camera : CameraModel, optional
+        Camera of the frames; an EMCCD gets skewed histogram peaks
+        (:func:`latticeread.core.misread.peak_shape_for`).
+    peak_shape : {"normal", "skewed"}, optional
+        Override of the camera's peak shape.
+    geometry : LatticeGeometry, optional
+        Lattice geometry (real-space neighbour radius).
+    false_positive_rate, false_negative_rate, false_negative_uncertainty : float, optional
+        Values given by the user; each replaces the one derived from the amplitudes.
+    neighbour_radius, pair_loss, n_bootstrap, confidence, n_blocks, interval, rng
+        As in :func:`estimate_fidelity`.
+
+    Returns
+    -------
+    FidelityReport
+        ``settings["misread"]`` holds the misread-rate record
+        (:meth:`~latticeread.core.misread.MisreadRates.to_dict`), ``settings["peak_shape"]``
+        the peak model and ``settings["rates_given"]`` the rates the user set.
+    """
+    from latticeread.core.misread import misread_rates
+
+    try:
+        rates = misread_rates(amplitudes, thresholds=thresholds, camera=camera, peak_shape=peak_shape)
+        problem = ()
+    except FidelityError as exc:     # e.g. a frame without a threshold: estimate without misread rates
+        rates, problem = None, (f"misread rates not estimated ({exc}): misreads are not corrected for",)
+    given = {k: v for k, v in (("false_positive_rate", false_positive_rate),
+                               ("false_negative_rate", false_negative_rate),
+                               ("false_negative_uncertainty", false_negative_uncertainty)) if v is not None}
+    fp = given.get("false_positive_rate", None if rates is None else rates.false_positive_rate)
+    fn = given.get("false_negative_rate", None if rates is None else rates.false_negative_rate)
+    if "false_negative_uncertainty" in given:
+        sfn = given["false_negative_uncertainty"]
+    elif "false_negative_rate" in given or rates is None:
+        sfn = None
+    else:
+        sfn = rates.false_negative_uncertainty
+        sfn = sfn if math.isfinite(sfn) else None
+    histogram = None
+    if rates is not None and math.isfinite(rates.false_positive_rate) and math.isfinite(rates.false_negative_rate):
+        w = rates.filling
+        misread = (1 - w) * rates.false_positive_rate + w * rates.false_negative_rate
+        histogram = HistogramFidelity(threshold=rates.threshold, false_positive_rate=rates.false_positive_rate,
+                                      false_negative_rate=rates.false_negative_rate, filling=w,
+                                      misread_fraction=misread, fidelity=1 - misread)
+    report = estimate_fidelity(
+        occupations, false_positive_rate=fp, false_negative_rate=fn, false_negative_uncertainty=sfn,
+        neighbour_radius=neighbour_radius, geometry=geometry, pair_loss=pair_loss, histogram=histogram,
+        n_bootstrap=n_bootstrap, confidence=confidence, n_blocks=n_blocks, interval=interval, rng=rng)
+    settings = dict(report.settings, misread=None if rates is None else rates.to_dict(),
+                    peak_shape=None if rates is None else rates.peak_shape, rates_given=sorted(given))
+    notes = problem if rates is None else tuple(f"misread rates: {w}" for w in rates.warnings)
+    warnings = tuple(dict.fromkeys(report.warnings + notes))
+    return dataclasses.replace(report, settings=settings, warnings=warnings)
