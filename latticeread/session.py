@@ -1082,19 +1082,19 @@ class Session:
             raise ReconstructionError(f"{self.n_frames} frames do not split into shots of {ips} images each")
         stack = self.occupation_stack()
         occ = stack.reshape(self.n_frames // ips, ips, *stack.shape[1:])
-        tr = self._threshold_result
-        rates = {}
-        if tr is not None:
-            rates = {"false_positive_rate": float(tr.false_positive_rate),
-                     "false_negative_rate": float(tr.false_negative_rate)}
+        # misread rates: the one computation every front end uses (pooled fit at the threshold in force)
+        amplitudes = self._amplitudes.copy()
+        threshold = self.threshold
+        camera = self._calibration.camera
         geometry = self._calibration.geometry
         n_boot = int(self._settings["bootstrap_resamples"])
         key = (self._generation, self._classification_key())
 
         def job(should_stop: Callable[[], bool] = lambda: False):
-            from latticeread.core.fidelity import estimate_fidelity
+            from latticeread.core.fidelity import fidelity_from_frames
 
-            return key, estimate_fidelity(occ, geometry=geometry, n_bootstrap=n_boot, **rates)
+            return key, fidelity_from_frames(occ, amplitudes=amplitudes, thresholds=threshold, camera=camera,
+                                             geometry=geometry, n_bootstrap=n_boot)
 
         return job
 
@@ -1169,6 +1169,7 @@ class Session:
             "calibration": None if self._calibration is None else self._calibration.to_dict(),
             "undo": [None if c is None else c.to_dict() for c in self._undo[-20:]],
             "settings": dict(self._settings),
+            "fidelity": None if self._fidelity is None else self._fidelity.to_dict(),
         }
         snap: dict[str, Any] = {"doc": doc, "protect": self._protected(), "frames": None, "results": None}
         if self._frames is not None and self._frames_source is None:
@@ -1230,6 +1231,14 @@ class Session:
         finally:
             if h5 is not None:
                 h5.close()
+        if doc.get("fidelity") is not None and self._done.size and self._done.all():
+            from latticeread.core.fidelity import FidelityReport
+            from latticeread.errors import FidelityError
+
+            try:
+                self._set_fidelity(FidelityReport.from_dict(doc["fidelity"]))
+            except FidelityError as exc:
+                self.message.emit(f"the stored fidelity estimate was dropped: {exc}")
         self.set_index(int(doc.get("current_index", 0)))
         self._set_modified(False)
         self.message.emit(f"session {path.name} opened")

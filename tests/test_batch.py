@@ -339,7 +339,7 @@ def test_group_shots_keeps_only_complete_shots():
 
 
 def test_pairs_of_images_give_a_fidelity_estimate(tmp_path):
-    from latticeread.core.fidelity import estimate_fidelity
+    from latticeread.core.fidelity import fidelity_from_frames
     from latticeread.runs.batch import run_batch
 
     cal, _, truth = make_dataset(tmp_path / "data", n_files=2, frames_per_file=4, seed=8, images_per_shot=2)
@@ -349,9 +349,12 @@ def test_pairs_of_images_give_a_fidelity_estimate(tmp_path):
     assert fid is not None and fid.n_shots == 4 and fid.n_images == 2
     # Reference: the fidelity module called directly on the shots as simulated (shot-major frames).
     run = read_run(tmp_path / "run.h5")
-    assert np.isnan(run.false_positive_rate).all()  # fixed threshold: no histogram fit, no misread rates
-    direct = estimate_fidelity(run.occupation.reshape(4, 2, *run.occupation.shape[1:]), geometry=cal.geometry,
-                               n_bootstrap=0)
+    assert np.isnan(run.false_positive_rate).all()  # fixed threshold: no per-frame histogram fit
+    # misread rates from the pooled amplitudes at the fixed threshold, as every front end does
+    direct = fidelity_from_frames(run.occupation.reshape(4, 2, *run.occupation.shape[1:]),
+                                  amplitudes=run.amplitude, thresholds=run.threshold, camera=cal.camera,
+                                  geometry=cal.geometry, n_bootstrap=0)
+    assert fid.settings["misread"] == direct.settings["misread"]
     assert fid.loss.value == pytest.approx(direct.loss.value)
     assert fid.hop.value == pytest.approx(direct.hop.value)
     assert "fidelity      loss" in summary.format()

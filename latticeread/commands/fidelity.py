@@ -2,10 +2,14 @@
 
 Input is either one stack whose consecutive frames are repeated images of one shot
 (``--images-per-shot`` frames per shot, shot-major), or two stacks FIRST and SECOND whose
-frame ``i`` are the first and second image of shot ``i``, or an occupation HDF5 file written
-by ``latticeread reconstruct`` / ``batch`` (then nothing is reconstructed again). Every frame
-is reconstructed with the same pipeline as the other commands; the misread rates come from
-the histogram fits of the frames unless given on the command line.
+frame ``i`` are the first and second image of shot ``i``, or a results file: an occupation
+HDF5 file written by ``latticeread reconstruct`` or a run file written by ``batch`` /
+``watch`` (then nothing is reconstructed again; in a run file the frames of each input file
+are grouped into shots as ``batch`` does). Every frame is reconstructed with the same
+pipeline as the other commands. The estimate itself is
+:func:`latticeread.core.fidelity.fidelity_from_frames`, the one the window and ``batch``
+call: misread rates from one pooled histogram fit of the frames' amplitudes at the thresholds
+they were classified with (skewed peaks for an EMCCD), unless given on the command line.
 """
 
 from __future__ import annotations
@@ -26,7 +30,7 @@ log = logging.getLogger(__name__)
 def add_parser(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("stacks", nargs="+", type=Path, metavar="STACK",
                         help="PAIRS.tif (consecutive frames are repeated images), or FIRST.tif SECOND.tif, "
-                             "or an occupation .h5 file from 'latticeread reconstruct'")
+                             "or a results .h5 file from 'latticeread reconstruct', 'batch' or 'watch'")
     parser.add_argument("--images-per-shot", type=int, default=2, metavar="N",
                         help="consecutive frames per shot in a single stack (default 2)")
     parser.add_argument("--calibration", "-c", type=Path, default=None, metavar="CAL.json",
@@ -37,23 +41,24 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
                         help="probability that an empty site reads occupied, as the histogram claims (default: "
                              "from the histogram fits); the images' own rate is fitted and compared with it")
     parser.add_argument("--false-negative", type=float, default=None, metavar="P",
-                        help="probability that an atom reads empty (default: from the histogram fits)")
+                        help="probability that an atom reads empty (default: from the histogram fit)")
     parser.add_argument("--false-negative-uncertainty", type=float, default=None, metavar="SIGMA",
-                        help="standard deviation of the false-negative rate (default: standard error of the "
-                             "per-frame histogram fits)")
+                        help="standard deviation of the false-negative rate (default: binomial standard error "
+                             "of the pooled histogram fit; none when --false-negative is given)")
     parser.add_argument("--radius", type=float, default=2 ** 0.5, metavar="SITES",
                         help="hop range in lattice sites (default 1.414: nearest and diagonal neighbours)")
     parser.add_argument("--fit-pair-loss", action="store_true",
                         help="fit the probability that two atoms meeting on a site are both lost "
                              "(default: fixed at 1, parity projection)")
     parser.add_argument("--bootstrap", type=int, default=200, metavar="N",
-                        help="bootstrap replicates over shots for the intervals (default 200)")
+                        help="bootstrap replicates for the intervals, over shots or, with fewer than 10 shots, "
+                             "over blocks of sites (default 200)")
     parser.add_argument("--seed", type=int, default=0, help="seed of the bootstrap (default 0)")
     parser.add_argument("--no-progress", action="store_true", help="no progress bar")
 
 
 def _frames_to_occupations(args):
-    """Reconstruct the stacks; return occupations, per-frame misread rates, histogram fit, calibration."""
+    """Reconstruct the stacks; return occupations, per-frame amplitudes and thresholds, calibration."""
     from tqdm import tqdm
 
     from latticeread.core.pipeline import Reconstructor, calibrate
@@ -65,36 +70,40 @@ def _frames_to_occupations(args):
                             f"{len(stacks[1])}; the two stacks must hold the same shots")
     calibration = load_calibration(args.calibration) if args.calibration else calibrate(stacks[0])
     rec = Reconstructor(calibration)
-    per_stack = []
-    fp, fn, first_fit = [], [], None
+    per_stack, amplitudes, thresholds = [], [], []
     total = sum(len(s) for s in stacks)
     with tqdm(total=total, desc="reconstructing", unit="frame", file=sys.stderr,
               disable=args.no_progress) as bar:
         for stack in stacks:
-            mats = []
+            mats, amps, ts = [], [], []
             for i in range(len(stack)):
                 res = rec(stack[i], frame_index=i)
                 mats.append(res.occupation_matrix(fill=255))
-                tr = res.threshold_result
-                if tr is not None:
-                    first_fit = first_fit or tr
-                    fp.append(tr.false_positive_rate)
-                    fn.append(tr.false_negative_rate)
+                amps.append(np.asarray(res.amplitudes, float))
+                t = res.threshold
+                ts.append(float(getattr(t, "threshold", t)))
                 bar.update(1)
             per_stack.append(np.stack(mats))
+            amplitudes.append(amps)
+            thresholds.append(ts)
     if len(per_stack) == 2:
         occ = np.stack(per_stack, axis=1)                          # (shots, 2, R, C)
+        # frames in the order of the occupations: shot 0 image 0, shot 0 image 1, ...
+        amps = [a for pair in zip(*amplitudes) for a in pair]
+        ts = [t for pair in zip(*thresholds) for t in pair]
     else:
+        amps, ts = amplitudes[0], thresholds[0]
         n, k = len(per_stack[0]), int(args.images_per_shot)
         if k < 2:
             raise FidelityError(f"--images-per-shot must be at least 2, got {k}")
         if n % k:
             raise FidelityError(f"{args.stacks[0].name} has {n} frames, not a multiple of --images-per-shot {k}")
         occ = per_stack[0].reshape(n // k, k, *per_stack[0].shape[1:])
-    return occ, np.asarray(fp, float), np.asarray(fn, float), first_fit, calibration
+    return occ, amps, np.asarray(ts, float), calibration
 
 
 def _occupation_file(path: Path, args):
+    """Occupations, amplitudes, thresholds and calibration of a ``reconstruct`` output file."""
     from latticeread.io import read_occupation_hdf5
 
     data = read_occupation_hdf5(path)
@@ -102,16 +111,37 @@ def _occupation_file(path: Path, args):
     if n % k:
         raise FidelityError(f"{path.name} holds {n} frames, not a multiple of --images-per-shot {k}")
     occ = data.occupation.reshape(n // k, k, *data.occupation.shape[1:])
-    fp, fn = np.array([]), np.array([])
-    cal = data.calibration
-    fit = cal.threshold_fit if cal is not None else None
-    if fit is not None:
-        fp, fn = np.array([float(fit.false_positive_rate)]), np.array([float(fit.false_negative_rate)])
-    return occ, fp, fn, None, cal
+    return occ, data.amplitude, np.asarray(data.threshold, float), data.calibration
+
+
+def _run_file(path: Path, args):
+    """Occupations, amplitudes, thresholds and calibration of a ``batch`` / ``watch`` run file.
+
+    The frames of each input file are grouped into shots of ``--images-per-shot`` images as
+    ``batch`` groups them (:func:`latticeread.runs.batch.group_shots`); incomplete shots are
+    left out.
+    """
+    import json as _json
+
+    from latticeread.io import read_run
+    from latticeread.io.calibration_file import calibration_from_json
+    from latticeread.runs.batch import group_shots
+
+    k = int(args.images_per_shot)
+    if k < 2:
+        raise FidelityError(f"--images-per-shot must be at least 2, got {k}")
+    run = read_run(path, matrices=("occupation", "amplitude"))
+    occ, rows = group_shots(run, k)
+    if occ.shape[0] == 0:
+        raise FidelityError(f"{path.name} holds {len(run)} frames but no complete shot of {k} consecutive images "
+                            "of one input file")
+    calibration = calibration_from_json(_json.dumps(run.calibration), where=f"the calibration stored in {path.name}") \
+        if run.calibration else None
+    return occ, run.amplitude[rows.ravel()], run.threshold[rows.ravel()], calibration
 
 
 def run(args: argparse.Namespace) -> int:
-    from latticeread.core.fidelity import estimate_fidelity
+    from latticeread.core.fidelity import fidelity_from_frames
     from latticeread.io import atomic_write
 
     if len(args.stacks) > 2:
@@ -121,23 +151,20 @@ def run(args: argparse.Namespace) -> int:
     if args.bootstrap < 0:
         return _usage(f"--bootstrap must be 0 or more, got {args.bootstrap}")
     single = args.stacks[0]
-    if len(args.stacks) == 1 and single.suffix.lower() in (".h5", ".hdf5") and _is_occupation_file(single):
-        occ, fp, fn, fit, calibration = _occupation_file(single, args)
+    kind = _results_kind(single) if len(args.stacks) == 1 and single.suffix.lower() in (".h5", ".hdf5") else None
+    if kind == "run":
+        occ, amplitudes, thresholds, calibration = _run_file(single, args)
+    elif kind == "occupation":
+        occ, amplitudes, thresholds, calibration = _occupation_file(single, args)
     else:
-        occ, fp, fn, fit, calibration = _frames_to_occupations(args)
+        occ, amplitudes, thresholds, calibration = _frames_to_occupations(args)
 
-    fp_rate = args.false_positive if args.false_positive is not None else (float(fp.mean()) if fp.size else None)
-    fn_rate = args.false_negative if args.false_negative is not None else (float(fn.mean()) if fn.size else None)
-    if args.false_negative_uncertainty is not None:
-        s_fn = float(args.false_negative_uncertainty)
-    elif fn.size > 1 and args.false_negative is None:
-        s_fn = float(fn.std(ddof=1) / np.sqrt(fn.size)) or None    # spread of the per-frame fits
-    else:
-        s_fn = None
-    report = estimate_fidelity(
-        occ, false_positive_rate=fp_rate, false_negative_rate=fn_rate, false_negative_uncertainty=s_fn,
+    report = fidelity_from_frames(
+        occ, amplitudes=amplitudes, thresholds=thresholds, camera=None if calibration is None else calibration.camera,
+        false_positive_rate=args.false_positive, false_negative_rate=args.false_negative,
+        false_negative_uncertainty=args.false_negative_uncertainty,
         neighbour_radius=args.radius, geometry=None if calibration is None else calibration.geometry,
-        pair_loss=None if args.fit_pair_loss else 1.0, histogram=fit, n_bootstrap=args.bootstrap, rng=args.seed)
+        pair_loss=None if args.fit_pair_loss else 1.0, n_bootstrap=args.bootstrap, rng=args.seed)
     print(report.format_table())
     if args.out is not None:
         data = report.to_dict()
@@ -155,12 +182,16 @@ def _usage(message: str) -> int:
     return 2
 
 
-def _is_occupation_file(path: Path) -> bool:
-    """True when ``path`` is an HDF5 file with an ``occupation`` dataset."""
+def _results_kind(path: Path) -> str | None:
+    """``"run"`` for a batch/watch run file, ``"occupation"`` for a reconstruct output, else None."""
     import h5py
+
+    from latticeread.io.run_file import RUN_FORMAT
 
     try:
         with h5py.File(path, "r") as h5:
-            return "occupation" in h5
+            if h5.attrs.get("format") == RUN_FORMAT:
+                return "run"
+            return "occupation" if "occupation" in h5 else None
     except OSError:
-        return False
+        return None

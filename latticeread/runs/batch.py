@@ -644,22 +644,17 @@ def group_shots(run, images_per_shot: int) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _fidelity(path, calibration: Calibration, images_per_shot: int, n_bootstrap: int):
-    from latticeread.core.fidelity import estimate_fidelity
+    from latticeread.core.fidelity import fidelity_from_frames
     from latticeread.errors import FidelityError
 
-    run = read_run(path, matrices=("occupation",))
+    run = read_run(path, matrices=("occupation", "amplitude"))
     occupations, rows = group_shots(run, images_per_shot)
     if occupations.shape[0] == 0:
         return None, (f"no complete shot of {images_per_shot} consecutive images: fidelity not estimated",)
-    fp = run.false_positive_rate[rows.ravel()]
-    fn = run.false_negative_rate[rows.ravel()]
-    rates = {}
-    if np.isfinite(fp).any():
-        rates["false_positive_rate"] = float(np.nanmedian(fp))
-    if np.isfinite(fn).any():
-        rates["false_negative_rate"] = float(np.nanmedian(fn))
     try:
-        return estimate_fidelity(occupations, geometry=calibration.geometry, n_bootstrap=n_bootstrap, **rates), ()
+        return fidelity_from_frames(occupations, amplitudes=run.amplitude[rows.ravel()],
+                                    thresholds=run.threshold[rows.ravel()], camera=calibration.camera,
+                                    geometry=calibration.geometry, n_bootstrap=n_bootstrap), ()
     except FidelityError as exc:
         return None, (f"fidelity not estimated: {exc}",)
 
@@ -669,9 +664,10 @@ def summarize_run(path, calibration: Calibration, *, counts: dict, seconds: floa
     """Build a :class:`BatchSummary` from the run file's per-shot table and this run's counters.
 
     With ``images_per_shot`` > 1 the loss and hopping between consecutive images are
-    estimated (:func:`latticeread.core.fidelity.estimate_fidelity`) on every complete shot
-    in the run file, with the median misread rates of the shots' threshold fits and
-    ``fidelity_bootstrap`` bootstrap replicates for the intervals (0: no intervals).
+    estimated (:func:`latticeread.core.fidelity.fidelity_from_frames`, the estimate every
+    front end uses) on every complete shot in the run file, from its occupations, amplitudes
+    and thresholds, with ``fidelity_bootstrap`` bootstrap replicates for the intervals
+    (0: no intervals).
     """
     run = read_run(path, matrices=False)
     n = len(run)
