@@ -28,7 +28,8 @@ from __future__ import annotations
 import importlib
 import math
 
-__all__ = ["GeometryPanel", "PSFPanel", "HistogramPanel", "FidelityPanel", "WARNING_STYLE", "fmt", "show_warnings"]
+__all__ = ["GeometryPanel", "PSFPanel", "HistogramPanel", "FidelityPanel", "WARNING_STYLE", "fmt", "rate_pct",
+           "show_warnings"]
 
 _LAZY = {
     "GeometryPanel": "latticeread.gui.panels.geometry_panel",
@@ -56,6 +57,32 @@ def fmt(value, digits: int = 3, unit: str = "") -> str:
         return "-"
     text = f"{v:.0f}" if abs(v) >= 10 ** digits else f"{v:.{digits}g}"
     return f"{text} {unit}".rstrip()
+
+
+#: Percentages below this are shown as "< 1e-6 %" (a tail probability such as 1e-225 % only
+#: says "none in any realistic number of images").
+SMALLEST_PERCENT = 1e-6
+
+
+def rate_pct(rate, digits: int = 2) -> str:
+    """Format a probability (fraction 0..1) as a percentage for a label.
+
+    ``-`` for None/NaN, ``0 %`` for zero, ``< 1e-6 %`` below :data:`SMALLEST_PERCENT`,
+    otherwise ``digits`` significant figures below 1 % and ``digits`` decimals above.
+    """
+    try:
+        v = 100.0 * float(rate)
+    except (TypeError, ValueError):
+        return "-"
+    if not math.isfinite(v):
+        return "-"
+    if v == 0:
+        return "0 %"
+    if abs(v) < SMALLEST_PERCENT:
+        return f"{'> -' if v < 0 else '< '}1e-6 %"
+    if abs(v) < 1:
+        return f"{v:.{digits}g} %"
+    return f"{v:.{digits}f} %"
 
 
 def show_warnings(label, warnings) -> None:

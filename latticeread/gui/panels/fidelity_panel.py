@@ -2,6 +2,9 @@
 
 A pure view of an imaging-fidelity report (from consecutive images of the same atoms).
 Loss is marked "typical" when it lies within 1-2 % per image (common practice, no source).
+A label under the table says what "loss per image" and "hopping per image" count
+(:data:`MEANING`), and the summary names the interval and the histogram peak shape used.
+Misread rates below 1e-6 % are shown as "< 1e-6 %".
 
 Methods (data in)
 -----------------
@@ -48,9 +51,9 @@ import numpy as np
 import pyqtgraph as pg
 from PySide6 import QtCore, QtGui, QtWidgets
 
-from latticeread.gui.panels import WARNING_STYLE, show_warnings
+from latticeread.gui.panels import SMALLEST_PERCENT, WARNING_STYLE, rate_pct, show_warnings
 
-__all__ = ["FidelityPanel", "TYPICAL_LOSS", "loss_note"]
+__all__ = ["FidelityPanel", "TYPICAL_LOSS", "MEANING", "loss_note"]
 
 #: Loss per image regarded as typical for fluorescence imaging in a deep lattice
 #: (fraction; common practice, no source).
@@ -66,6 +69,29 @@ _ROWS = (
     ("vanished, counted", ("loss_counted",)),
     ("hopped, counted", ("hop_counted",)),
 )
+#: Rows whose values are misread rates (shown with significant figures, not two decimals).
+_RATE_ROWS = (3, 4)
+
+#: What the loss and hopping rows count, and how they relate to a forward model.
+MEANING = (
+    "Loss per image: share of the atoms read in one image that are gone in the next with no "
+    "appearance beside them. Hopping per image: share that reappears on an empty neighbouring "
+    "site. Both are what two consecutive images show, corrected for misreads, so they are below "
+    "a simulation's per-image probabilities: an event at a random moment of the exposure is "
+    "partly invisible (an early hop is read on the new site in the same image, a hop onto an "
+    "atom is a pair loss, an atom lost early is never read)."
+)
+_ROW_TIPS = {
+    0: "Fraction of the atoms read occupied in image n that are gone in image n+1 with no appearance "
+       "next to them (model fit, corrected for misreads)",
+    1: "Fraction of the atoms read occupied in image n that reappear on an empty neighbouring site in "
+       "image n+1 (model fit, corrected for misreads); hops within one exposure are partly invisible",
+    2: "1 - (false positives + false negatives + loss + hopping), per site and image",
+    3: "False positives: an empty site read as occupied, per empty site and image",
+    4: "False negatives: an atom read as empty, per atom and image",
+    5: "Atoms read occupied then empty, without misread correction",
+    6: "Appearances next to a vanished atom, without misread correction",
+}
 _LOSS_PEN = pg.mkPen((200, 40, 40), width=2)
 _VANISHED_PEN = pg.mkPen((120, 120, 120), width=1)
 _HOP_PEN = pg.mkPen((40, 90, 200), width=2)
@@ -105,10 +131,12 @@ def _pct(value, digits: int = 2) -> str:
     v = _finite(value)
     if v is None:
         return "-"
+    if 0 < abs(100 * v) < SMALLEST_PERCENT:
+        return rate_pct(v)
     return f"{100 * v:.{digits}f} %"
 
 
-def _interval(ci) -> str:
+def _interval(ci, *, significant: bool = False) -> str:
     if ci is None:
         return "-"
     try:
@@ -117,7 +145,9 @@ def _interval(ci) -> str:
         return "-"
     if lo is None or hi is None:
         return "-"
-    return f"{100 * lo:.2f} – {100 * hi:.2f} %"
+    if significant:
+        return f"{rate_pct(lo).removesuffix(' %')} – {rate_pct(hi)}"
+    return f"{_pct(lo).removesuffix(' %')} – {_pct(hi)}"
 
 
 def loss_note(loss, *, typical: bool | None = None) -> str:
@@ -170,6 +200,12 @@ class FidelityPanel(QtWidgets.QWidget):
         self.table.setVerticalScrollBarPolicy(QtCore.Qt.ScrollBarPolicy.ScrollBarAlwaysOff)
         self.table.setHorizontalScrollBarPolicy(QtCore.Qt.ScrollBarPolicy.ScrollBarAlwaysOff)
 
+        for row, tip in _ROW_TIPS.items():
+            self.table.verticalHeaderItem(row).setToolTip(tip)
+        self.meaning_label = QtWidgets.QLabel(MEANING)
+        self.meaning_label.setWordWrap(True)
+        self.meaning_label.setStyleSheet("QLabel { color: #444; font-size: 90%; }")
+
         self.summary_label = QtWidgets.QLabel("no fidelity estimate")
         self.summary_label.setWordWrap(True)
         self.summary_label.setToolTip("Atoms and shots that entered the estimate, and the "
@@ -217,6 +253,7 @@ class FidelityPanel(QtWidgets.QWidget):
         layout.setContentsMargins(4, 4, 4, 4)
         layout.addWidget(self.warnings_label)
         layout.addWidget(self.table)
+        layout.addWidget(self.meaning_label)
         layout.addWidget(self.summary_label)
         layout.addWidget(self.trend_plot, 1)
         layout.addWidget(self.estimate_button)
@@ -254,6 +291,10 @@ class FidelityPanel(QtWidgets.QWidget):
             parts.append(f"{int(n_atoms)} atom-images")
         if n_shots is not None:
             parts.append(f"{int(n_shots)} shots" + (f" × {int(n_images)} images" if n_images else ""))
+        if settings.get("interval"):
+            parts.append(f"intervals: {settings['interval']}")
+        if settings.get("peak_shape"):
+            parts.append(f"misread rates from {settings['peak_shape']} histogram peaks")
         self.summary_label.setText(" · ".join(parts) if parts else "no counts given")
         show_warnings(self.warnings_label, _get(report, "warnings", default=()))
         self._set_trend(_get(report, "per_shot"), _get(report, "blocks"))
@@ -270,7 +311,10 @@ class FidelityPanel(QtWidgets.QWidget):
 
     # --------------------------------------------------------------- internals
     def _set_row(self, row: int, value, ci, note: str) -> None:
-        for col, text in enumerate((_pct(value), _interval(ci), note)):
+        significant = row in _RATE_ROWS
+        shown = (rate_pct(value) if significant and value is not None else _pct(value),
+                 _interval(ci, significant=significant), note)
+        for col, text in enumerate(shown):
             item = QtWidgets.QTableWidgetItem(text)
             if col < 2:
                 item.setTextAlignment(QtCore.Qt.AlignmentFlag.AlignRight | QtCore.Qt.AlignmentFlag.AlignVCenter)

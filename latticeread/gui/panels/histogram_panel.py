@@ -52,7 +52,7 @@ import numpy as np
 import pyqtgraph as pg
 from PySide6 import QtCore, QtWidgets
 
-from latticeread.gui.panels import WARNING_STYLE, fmt, show_warnings
+from latticeread.gui.panels import WARNING_STYLE, fmt, rate_pct, show_warnings
 
 __all__ = ["HistogramPanel", "THRESHOLD_METHODS"]
 
@@ -369,10 +369,7 @@ class HistogramPanel(QtWidgets.QWidget):
     # --------------------------------------------------------------- internals
     @staticmethod
     def _pct(rate) -> str:
-        if rate is None or not math.isfinite(float(rate)):
-            return "-"
-        rate = 100.0 * float(rate)
-        return f"{rate:.2g} %" if rate < 10 else f"{rate:.1f} %"
+        return rate_pct(rate)
 
     def _set_box(self, value: float) -> None:
         blocked = self.threshold_box.blockSignals(True)
