@@ -790,7 +790,7 @@ def estimate_fidelity(
     boot = np.asarray(boot, float).reshape(-1, 7)
     alpha = (1 - confidence) / 2
 
-    def interval(col):
+    def percentile(col):
         if boot.shape[0] == 0:
             return float("nan"), float("nan")
         lo, hi = np.quantile(boot[:, col], [alpha, 1 - alpha])
@@ -801,19 +801,19 @@ def estimate_fidelity(
     boot_method = (f"model fit, {len(boot)} bootstrap replicates over {unit_text}"
                    + (" and the false-negative rate" if sfn else ""))
     common = dict(n_atoms=n_atoms, n_shots=n_shots)
-    loss = Estimate(loss_hat, *interval(1), method=boot_method, **common)
-    hop = Estimate(hop_hat, *interval(2), method=boot_method, **common)
-    filling = Estimate(f_hat, *interval(0), method=boot_method, **common)
-    pair = (Estimate(beta_hat, *interval(3), method="fitted", **common) if fitter.fit_beta
+    loss = Estimate(loss_hat, *percentile(1), method=boot_method, **common)
+    hop = Estimate(hop_hat, *percentile(2), method=boot_method, **common)
+    filling = Estimate(f_hat, *percentile(0), method=boot_method, **common)
+    pair = (Estimate(beta_hat, *percentile(3), method="fitted", **common) if fitter.fit_beta
             else Estimate(beta_hat, method="fixed", **common))
-    fp_est = Estimate(fp_hat, *interval(4), method="fitted (appearances away from vacated sites)", **common)
+    fp_est = Estimate(fp_hat, *percentile(4), method="fitted (appearances away from vacated sites)", **common)
     if sfn:
         z = float(special.ndtri(1 - alpha))
         fn_est = Estimate(fn, max(0.0, fn - z * sfn), fn + z * sfn, method="from the histogram fit", **common)
     else:
         fn_est = Estimate(fn, method="from the histogram fit (no uncertainty given)" if fn_in is not None
                           else "assumed 0", **common)
-    read_ok = Estimate(1 - (fp_hat + fn + loss_hat + hop_hat), *interval(6), method=boot_method, **common)
+    read_ok = Estimate(1 - (fp_hat + fn + loss_hat + hop_hat), *percentile(6), method=boot_method, **common)
     counted_loss_k = max(vanished - near, 0)
     loss_counted = Estimate(counted_loss_k / n_atoms, *wilson_interval(counted_loss_k, n_atoms, confidence=confidence),
                             method="counted: vanished without an appearance nearby, Wilson interval", **common)
