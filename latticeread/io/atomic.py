@@ -19,14 +19,18 @@ import contextlib
 import errno
 import logging
 import os
+import re
 import secrets
+import shutil
 import stat
+import time
 from collections.abc import Iterable, Iterator
 from pathlib import Path
 
 from latticeread.errors import ExportError, LatticeReadError
 
-__all__ = ["atomic_write", "atomic_path", "describe_os_error"]
+__all__ = ["atomic_write", "atomic_path", "describe_os_error", "DiskFullError", "reserve_space",
+           "clean_stale_temps", "temp_name"]
 
 log = logging.getLogger(__name__)
 
@@ -65,6 +69,146 @@ def describe_os_error(exc: OSError, path: Path) -> str:
     else:
         reason = exc.strerror or str(exc)
     return f"cannot write {path}: {reason}"
+
+
+class DiskFullError(ExportError):
+    """Not enough free disk space to write the next block of an output file.
+
+    Raised *before* anything is written, so the file keeps everything committed so far.
+    """
+
+
+_NO_SPACE = (errno.ENOSPC, getattr(errno, "EDQUOT", -1), errno.EFBIG)
+
+
+def reserve_space(path, end: int) -> None:
+    """Give the first ``end`` bytes of the file ``path`` real disk blocks, or raise.
+
+    Writers call this before each block (with the file's current size plus an upper bound
+    of what the block adds), so that a full disk stops the run *between* blocks with a
+    clear message instead of failing inside the HDF5 library in the middle of a write.
+    Uses ``posix_fallocate`` where available (the space is then held by the file); on
+    other systems it compares with the free space of the file system.
+
+    Parameters
+    ----------
+    path : str or PathLike
+        An existing file.
+    end : int
+        Bytes from the start of the file that must be backed by disk blocks.
+
+    Raises
+    ------
+    DiskFullError
+        The disk (or quota, or file size limit) cannot hold ``end`` bytes.
+    """
+    path = Path(os.fspath(path))
+    end = int(end)
+    if hasattr(os, "posix_fallocate"):
+        try:
+            fd = os.open(path, os.O_WRONLY)
+        except OSError as exc:
+            raise ExportError(describe_os_error(exc, path)) from exc
+        try:
+            os.posix_fallocate(fd, 0, end)
+            return
+        except OSError as exc:
+            if exc.errno in _NO_SPACE:
+                raise DiskFullError(_full_message(path, end)) from exc
+            if exc.errno not in (errno.EOPNOTSUPP, errno.EINVAL, getattr(errno, "ENOTSUP", -1)):
+                raise ExportError(describe_os_error(exc, path)) from exc
+        finally:
+            os.close(fd)
+    try:
+        size = path.stat().st_size
+        free = shutil.disk_usage(path.parent).free
+    except OSError as exc:
+        raise ExportError(describe_os_error(exc, path)) from exc
+    if end - size > free:
+        raise DiskFullError(_full_message(path, end))
+
+
+def _full_message(path: Path, end: int) -> str:
+    try:
+        free = shutil.disk_usage(path.parent).free
+        detail = f"{free / 2**20:.1f} MiB free"
+    except OSError:
+        detail = "free space unknown"
+    return (f"the disk holding {path.parent} is full ({detail}; the next block needs up to "
+            f"{max(end - _size(path), 0) / 2**20:.1f} MiB more)")
+
+
+def _size(path: Path) -> int:
+    try:
+        return path.stat().st_size
+    except OSError:
+        return 0
+
+
+def temp_name(path) -> Path:
+    """Hidden temporary name beside ``path`` that records the writer's pid.
+
+    ``run.csv`` -> ``.run.csv.<pid>-<random>.tmp``; :func:`clean_stale_temps` removes such
+    files of processes that no longer run.
+    """
+    path = Path(os.fspath(path))
+    return path.with_name(f".{path.name}.{os.getpid()}-{secrets.token_hex(4)}.tmp")
+
+
+_TEMP_WITH_PID = re.compile(r"^\..+\.(\d+)-[0-9a-f]{8}\.tmp$")
+#: Temporary names of earlier versions (no pid): removed once they are this old (seconds).
+_OLD_TEMP = re.compile(r"^\..+\.([0-9a-f]{8}\.tmp|[A-Za-z0-9_]{8}\.part)$")
+_OLD_TEMP_AGE = 3600.0
+
+
+def _pid_running(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except (PermissionError, OverflowError):
+        return True
+    return True
+
+
+def clean_stale_temps(folder) -> list[Path]:
+    """Remove hidden temporary files that killed latticeread runs left in ``folder``.
+
+    A temporary file named by :func:`temp_name` is removed when its pid no longer runs;
+    temporary files of earlier versions (no pid in the name) when older than an hour.
+    Files that cannot be removed are left alone.
+
+    Returns
+    -------
+    list of Path
+        The files removed.
+    """
+    removed = []
+    try:
+        entries = list(os.scandir(folder))
+    except OSError:
+        return removed
+    now = time.time()
+    for entry in entries:
+        name = entry.name
+        if not name.startswith("."):
+            continue
+        m = _TEMP_WITH_PID.match(name)
+        try:
+            if m:
+                stale = int(m.group(1)) != os.getpid() and not _pid_running(int(m.group(1)))
+            elif _OLD_TEMP.match(name):
+                stale = now - entry.stat().st_mtime > _OLD_TEMP_AGE
+            else:
+                continue
+            if stale and entry.is_file(follow_symlinks=False):
+                os.unlink(entry.path)
+                removed.append(Path(entry.path))
+        except OSError:
+            continue
+    if removed:
+        log.info("removed %d temporary file(s) left by killed runs in %s", len(removed), folder)
+    return removed
 
 
 def _first_file_ancestor(folder: Path) -> Path:
@@ -125,7 +269,8 @@ def atomic_path(path, *, protect: Iterable | None = None) -> Iterator[Path]:
     """
     path = Path(os.fspath(path))
     _check_target(path, protect)
-    tmp = path.with_name(f".{path.name}.{secrets.token_hex(4)}.tmp")
+    clean_stale_temps(path.parent)
+    tmp = temp_name(path)
     try:
         # 0o666 lets the user's umask decide the permissions, like an ordinary new file.
         fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666)
