@@ -1,27 +1,49 @@
-"""The resumable HDF5 run file written by ``latticeread batch`` and ``latticeread watch``.
+"""The results file: one HDF5 layout for every run (batch, watch, reconstruct, session save).
 
-A run file collects the reconstruction of many shots. It is appended to shot by shot (or a
-small block of shots at a time) and flushed after every append, so a run that is killed
-leaves a readable file holding every shot written so far; running the same command again skips those shots (each is keyed by
-the input file path, a content hash of the file and the frame index inside it).
+A run file collects the reconstruction of many shots. It is appended to a block of shots
+at a time; a run that is killed, interrupted or stopped by a full disk leaves a readable
+file holding every shot committed before, and running the same command again skips those
+shots (each is keyed by the input file path, a content hash of the file and the frame
+index inside it).
 
-Layout (all per-shot datasets share the first axis, one entry per completed shot)
---------------------------------------------------------------------------------
-Root attributes
+Safety
+------
+* **Crash at any instant.** The file is written in HDF5's single-writer/multiple-reader
+  (SWMR) mode (``libver="latest"``): the library orders its metadata writes so that the
+  file on disk is consistent at every instant, which is what makes a concurrent reader
+  possible and equally what a SIGKILL leaves behind. New rows become part of the result
+  only when the two-element ``committed`` dataset (shots, failures) is updated, after the
+  rows themselves are flushed; rows beyond the committed counts are ignored and
+  overwritten. A file whose writer died is rebuilt from its committed rows (into a
+  temporary file, then renamed) the next time a writer opens it.
+* **Full disk.** Before every block the writer reserves disk blocks for an upper bound of
+  what the block adds (:func:`latticeread.io.atomic.reserve_space`); when the disk cannot
+  hold it, :class:`~latticeread.io.atomic.DiskFullError` is raised before anything is
+  written.
+* **One writer.** A writer holds :class:`~latticeread.io.run_lock.RunFileLock` (a lock file
+  with its pid) from before the file is created until it is closed; a second writer stops
+  with a message naming the first. Readers take no lock and are never blocked: open the
+  file with ``h5py.File(path, "r", swmr=True)`` or :func:`read_run`.
+
+Layout (format version 2; all per-shot datasets share the first axis)
+--------------------------------------------------------------------
+Root attributes (written when the file is created, never changed)
     ``format`` = ``"latticeread-run"``, ``format_version``, ``program_version``,
     ``calibration`` (the calibration as JSON text), ``created`` (UTC ISO time),
-    ``n_shots`` and ``n_failures`` (number of complete rows; rows beyond these were cut
-    short by an interruption and are ignored and overwritten), ``metadata`` (JSON).
-``shots/`` (one row per completed shot)
-    ``source`` (str, absolute input path), ``file_hash`` (str, hex BLAKE2b-128 of the file
-    bytes), ``frame_index`` (int64, frame inside that file), ``offset``, ``a1``, ``a2``
+    ``metadata`` (JSON text: command, inputs...).
+``committed`` (2,) int64
+    Number of complete shot rows and failure rows. Rows beyond these are not part of the
+    file (an interruption cut them short).
+``shots/`` (one row per committed shot)
+    ``source`` (UTF-8 bytes, absolute input path), ``file_hash`` (bytes, hex BLAKE2b-128 of
+    the file), ``frame_index`` (int64, frame inside that file), ``offset``, ``a1``, ``a2``
     ((n, 2) float64, lattice offset and vectors ``(x, y)`` in pixels used for that shot),
     ``threshold`` (float64, photons), ``false_positive_rate``, ``false_negative_rate``
     (float64, misread probabilities per site from the threshold fit; NaN for a fixed
     threshold without a fit), ``n_sites``, ``n_occupied`` (int64), ``filling``
     (float64, occupied / valid sites), ``peak_to_background``, ``lattice_residual``
-    (float64, lattice fit diagnostics), ``warnings`` (str, one per line), ``written_at``
-    (float64, Unix time of writing).
+    (float64, lattice fit diagnostics), ``warnings`` (UTF-8 bytes, one warning per line),
+    ``written_at`` (float64, Unix time of writing).
 ``occupation`` (n, rows, cols) uint8
     1 occupied, 0 empty, 255 outside the reconstructed region.
 ``amplitude``, ``p_occupied``, ``x``, ``y`` (n, rows, cols) float64
@@ -34,16 +56,21 @@ Root attributes
     read), ``error`` (exception class name), ``reason`` (message), ``resolved`` (bool, a
     later retry succeeded), ``written_at``.
 
-Only one process writes a run file (the main process of a run); workers return records.
+Text is stored as fixed-length UTF-8 bytes (SWMR cannot append variable-length strings
+safely); a text longer than its field ends in ``" [cut]"``. Version 1 files (counters in
+attributes, variable-length strings) are read, and converted to version 2 when a writer
+resumes them.
 """
 
 from __future__ import annotations
 
+import contextlib
 import datetime as _dt
 import json
 import logging
 import os
-import tempfile
+import signal
+import threading
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -54,6 +81,9 @@ import numpy as np
 from latticeread import __version__
 from latticeread.errors import ExportError, FrameFileError
 
+from .atomic import atomic_path, clean_stale_temps, describe_os_error, reserve_space
+from .run_lock import RunFileLock
+
 __all__ = [
     "RUN_FORMAT",
     "RUN_FORMAT_VERSION",
@@ -63,18 +93,22 @@ __all__ = [
     "RunData",
     "RunFailures",
     "read_run",
+    "open_run_for_reading",
+    "describe_keys",
 ]
 
 log = logging.getLogger(__name__)
 
 RUN_FORMAT = "latticeread-run"
-RUN_FORMAT_VERSION = 1
+RUN_FORMAT_VERSION = 2
 
-_STR = h5py.string_dtype("utf-8")
+#: Bytes of each text field (a Linux path is at most 4096 bytes).
+_TEXT = {"source": 4096, "file_hash": 64, "warnings": 4096, "error": 128, "reason": 4096}
+_CUT = " [cut]"
 #: per-shot scalar/vector columns of ``shots/``: name -> (dtype, trailing shape)
 _SHOT_COLUMNS = {
-    "source": (_STR, ()),
-    "file_hash": (_STR, ()),
+    "source": (f"S{_TEXT['source']}", ()),
+    "file_hash": (f"S{_TEXT['file_hash']}", ()),
     "frame_index": (np.int64, ()),
     "offset": (np.float64, (2,)),
     "a1": (np.float64, (2,)),
@@ -87,7 +121,7 @@ _SHOT_COLUMNS = {
     "filling": (np.float64, ()),
     "peak_to_background": (np.float64, ()),
     "lattice_residual": (np.float64, ()),
-    "warnings": (_STR, ()),
+    "warnings": (f"S{_TEXT['warnings']}", ()),
     "written_at": (np.float64, ()),
 }
 #: per-site matrices: name -> (dtype, fill value outside the region)
@@ -99,15 +133,20 @@ _MATRICES = {
     "y": (np.float64, np.nan),
     "flags": (np.uint8, 0),
 }
+#: HDF5 chunk of the matrices (one shot, up to 64 x 64 sites); rows and cols are unlimited
+#: because the matrix size is known only when the first shot arrives.
+_MATRIX_CHUNK = (1, 64, 64)
 _FAILURE_COLUMNS = {
-    "source": _STR,
-    "file_hash": _STR,
+    "source": f"S{_TEXT['source']}",
+    "file_hash": f"S{_TEXT['file_hash']}",
     "frame_index": np.int64,
-    "error": _STR,
-    "reason": _STR,
+    "error": f"S{_TEXT['error']}",
+    "reason": f"S{_TEXT['reason']}",
     "resolved": np.bool_,
     "written_at": np.float64,
 }
+#: Extra bytes reserved per block for HDF5 metadata (chunk index, object headers).
+_METADATA_MARGIN = 1 << 20
 
 
 @dataclass(frozen=True, order=True)
@@ -214,8 +253,154 @@ def _calibration_identity(text: str) -> str:
     return _canonical_json(data)
 
 
+def describe_keys(keys, *, max_files: int = 5) -> str:
+    """Shots named for a person: ``"a.tif frames 0-7, b.tif frame 2 (and 3 more files)"``."""
+    by_file: dict[str, list[int]] = {}
+    for key in keys:
+        by_file.setdefault(Path(key.source).name, []).append(int(key.frame_index))
+    if not by_file:
+        return "none"
+    parts = []
+    for name, frames in list(by_file.items())[:max_files]:
+        frames = sorted(set(frames))
+        if frames == [-1]:
+            parts.append(f"{name} (whole file)")
+            continue
+        runs, start = [], frames[0]
+        for a, b in zip(frames, frames[1:] + [None]):
+            if b != a + 1:
+                runs.append(f"{start}" if start == a else f"{start}-{a}")
+                start = b
+        parts.append(f"{name} frame{'s' if len(frames) > 1 else ''} {', '.join(runs)}")
+    more = len(by_file) - max_files
+    return ", ".join(parts) + (f" (and {more} more file{'s' if more > 1 else ''})" if more > 0 else "")
+
+
+def _encode_text(values, width: int) -> np.ndarray:
+    """UTF-8 bytes of each text, cut to ``width`` bytes (ending in " [cut]") when longer.
+
+    File names that are not valid UTF-8 keep their raw bytes (``surrogateescape``), so
+    every path the operating system gives round-trips exactly.
+    """
+    out = []
+    for text in values:
+        raw = str(text).encode("utf-8", "surrogateescape")
+        if len(raw) > width:
+            raw = raw[:width - len(_CUT)].decode("utf-8", "ignore").encode("utf-8") + _CUT.encode()
+        out.append(raw)
+    return np.array(out, dtype=f"S{width}")
+
+
+def _decode_text(ds, stop: int) -> np.ndarray:
+    """Text column (fixed bytes in version 2, variable strings in version 1) as str array."""
+    if stop == 0:
+        return np.zeros(0, dtype=str)
+    if ds.dtype.kind == "S":
+        return np.char.decode(ds[:stop], "utf-8", "surrogateescape")
+    return np.asarray(ds.asstr()[:stop], dtype=object).astype(str)
+
+
+def _counts(f: h5py.File) -> tuple[int, int]:
+    """Committed (shots, failures) of a version 2 or version 1 file."""
+    if "committed" in f:
+        n, nf = (int(v) for v in f["committed"][:2])
+    else:
+        n, nf = int(f.attrs["n_shots"]), int(f.attrs["n_failures"])
+    # Defensive: never claim rows a dataset does not have.
+    n = min([n] + [f["shots"][c].shape[0] for c in ("source", "frame_index")])
+    nf = min([nf] + [f["failures"][c].shape[0] for c in ("source", "frame_index")])
+    return n, nf
+
+
+def open_run_for_reading(path) -> h5py.File:
+    """Open a run file read-only without blocking or being blocked by its writer.
+
+    Version 2 files are opened in SWMR read mode (a live writer may be appending; a file
+    whose writer was killed is readable too); older files, and other HDF5 files, are
+    opened normally.
+
+    Raises
+    ------
+    FrameFileError
+        Missing, not HDF5, or unreadable.
+    """
+    path = Path(os.fspath(path))
+    if not path.exists():
+        raise FrameFileError(f"the run file {path} does not exist")
+    try:
+        return h5py.File(path, "r", swmr=True)
+    except OSError:
+        pass
+    try:
+        return h5py.File(path, "r")
+    except OSError as exc:
+        raise FrameFileError(f"{path} cannot be opened as an HDF5 run file: {exc}") from exc
+
+
+@contextlib.contextmanager
+def _interrupt_deferred():
+    """Hold back Ctrl-C (SIGINT) while a block is being committed; deliver it afterwards.
+
+    Only the main thread can change signal handlers; elsewhere this does nothing (SIGINT
+    is handled by the main thread there anyway).
+    """
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    received = []
+    previous = signal.getsignal(signal.SIGINT)
+    try:
+        signal.signal(signal.SIGINT, lambda signum, frame: received.append(frame))
+    except (ValueError, TypeError):
+        yield
+        return
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGINT, previous)
+        if received:
+            if callable(previous):
+                previous(signal.SIGINT, received[-1])
+            elif previous == signal.default_int_handler or previous is None:
+                raise KeyboardInterrupt
+
+
+def _create_layout(f: h5py.File, attrs: dict) -> None:
+    """Root attributes and empty datasets of a version 2 run file (open for writing)."""
+    for key, value in attrs.items():
+        f.attrs[key] = value
+    f.attrs["format"] = RUN_FORMAT
+    f.attrs["format_version"] = RUN_FORMAT_VERSION
+    f.create_dataset("committed", data=np.zeros(2, np.int64))
+    shots = f.create_group("shots")
+    for name, (dtype, tail) in _SHOT_COLUMNS.items():
+        text = np.dtype(dtype).kind == "S"
+        shots.create_dataset(name, shape=(0, *tail), maxshape=(None, *tail), dtype=dtype,
+                             chunks=(64 if text else 256, *tail), **({"compression": "gzip"} if text else {}))
+    failures = f.create_group("failures")
+    for name, dtype in _FAILURE_COLUMNS.items():
+        text = np.dtype(dtype).kind == "S"
+        failures.create_dataset(name, shape=(0,), maxshape=(None,), dtype=dtype, chunks=(64,),
+                                **({"compression": "gzip"} if text else {}))
+    for name, (dtype, fill) in _MATRICES.items():
+        # gzip level 1 with byte shuffling: half the size of raw float64 at a few ms per
+        # shot; level 4 compresses hardly better at twice the time.
+        f.create_dataset(name, shape=(0, 0, 0), maxshape=(None, None, None), dtype=dtype, chunks=_MATRIX_CHUNK,
+                         compression="gzip", compression_opts=1, shuffle=True, fillvalue=fill)
+
+
+def _block_bytes(n_shots: int, shape: tuple[int, int]) -> int:
+    """Upper bound of the bytes a block of shots adds to the file (before compression)."""
+    rows = -(-max(shape[0], 1) // _MATRIX_CHUNK[1]) * _MATRIX_CHUNK[1]
+    cols = -(-max(shape[1], 1) // _MATRIX_CHUNK[2]) * _MATRIX_CHUNK[2]
+    per_shot = rows * cols * sum(np.dtype(d).itemsize for d, _ in _MATRICES.values())
+    per_shot += sum(np.dtype(d).itemsize * int(np.prod(t)) for d, t in _SHOT_COLUMNS.values())
+    # gzip can expand incompressible data by a few bytes per block; 10 % covers it.
+    return int(1.1 * n_shots * per_shot) + _METADATA_MARGIN
+
+
 class RunWriter:
-    """Create or resume a run file and append shots to it, one at a time.
+    """Create or resume a run file and append shots to it, a block at a time.
 
     Parameters
     ----------
@@ -227,20 +412,29 @@ class RunWriter:
     metadata : dict, optional
         Free-form JSON-able information stored with the run (command line, inputs...).
 
+    Raises
+    ------
+    ExportError
+        The folder is missing or read-only, another process writes the file, the file is
+        not a run file or belongs to another calibration.
+
     Notes
     -----
-    Every :meth:`append` / :meth:`append_many` writes the data rows first, then increments
-    the ``n_shots`` attribute and flushes the file, so an interruption at any point leaves
-    the file with ``n_shots`` complete rows. Use as a context manager, or call :meth:`close`.
+    Every :meth:`append` / :meth:`append_many` reserves disk space, writes the data rows,
+    flushes, then updates the ``committed`` counts and flushes again, so an interruption
+    at any point leaves the file with every complete block. Use as a context manager, or
+    call :meth:`close` (which also releases the writer lock).
     """
 
     def __init__(self, path, *, calibration_json: str, metadata: dict | None = None):
-        self.path = Path(path)
+        self.path = Path(os.fspath(path))
         self._calibration_json = calibration_json
         self._metadata = dict(metadata or {})
         self._file: h5py.File | None = None
         self._done: set[ShotKey] = set()
         self._failed: dict[ShotKey, int] = {}
+        self._n = self._nf = 0
+        self._lock = RunFileLock(self.path)
         self._open()
 
     # --- opening -------------------------------------------------------------------
@@ -248,147 +442,176 @@ class RunWriter:
         folder = self.path.parent if str(self.path.parent) else Path(".")
         if not folder.is_dir():
             raise ExportError(f"cannot write the run file {self.path}: the folder {folder} does not exist")
-        if self.path.exists():
-            self._resume()
-        else:
-            self._create()
+        if not os.access(folder, os.W_OK):
+            raise ExportError(f"cannot write the run file {self.path}: the folder {folder} is not writable")
+        try:
+            self._lock.acquire()
+        except ExportError as exc:
+            cause = exc.__cause__
+            if isinstance(cause, OSError):  # the lock file itself cannot be made
+                raise ExportError(f"cannot write the run file {self.path}: the folder {folder} is not writable "
+                                  f"({cause.strerror or cause})") from exc
+            raise
+        try:
+            clean_stale_temps(folder)
+            if self.path.exists():
+                self._resume()
+            else:
+                self._create()
+        except BaseException:
+            self._close_file()
+            self._lock.release()
+            raise
+
+    def _attrs(self) -> dict:
+        return {"program_version": __version__, "calibration": self._calibration_json, "created": _now_iso(),
+                "metadata": json.dumps(self._metadata, sort_keys=True, default=str)}
 
     def _create(self) -> None:
-        folder = self.path.parent if str(self.path.parent) else Path(".")
         # Build the empty file under a temporary name and rename it into place, so a
         # failure here never leaves a half-made file at the requested path.
-        try:
-            fd, tmp = tempfile.mkstemp(prefix=f".{self.path.name}.", suffix=".part", dir=folder)
-        except OSError as exc:
-            raise ExportError(f"cannot write the run file {self.path}: the folder {folder} is not writable "
-                              f"({exc.strerror})") from exc
-        os.close(fd)
-        try:
-            with h5py.File(tmp, "w") as f:
-                f.attrs["format"] = RUN_FORMAT
-                f.attrs["format_version"] = RUN_FORMAT_VERSION
-                f.attrs["program_version"] = __version__
-                f.attrs["calibration"] = self._calibration_json
-                f.attrs["created"] = _now_iso()
-                f.attrs["metadata"] = json.dumps(self._metadata, sort_keys=True, default=str)
-                f.attrs["n_shots"] = 0
-                f.attrs["n_failures"] = 0
-                shots = f.create_group("shots")
-                for name, (dtype, tail) in _SHOT_COLUMNS.items():
-                    shots.create_dataset(name, shape=(0, *tail), maxshape=(None, *tail), dtype=dtype,
-                                         chunks=(256, *tail))
-                failures = f.create_group("failures")
-                for name, dtype in _FAILURE_COLUMNS.items():
-                    failures.create_dataset(name, shape=(0,), maxshape=(None,), dtype=dtype, chunks=(64,))
-            os.replace(tmp, self.path)
-        except OSError as exc:
-            Path(tmp).unlink(missing_ok=True)
-            raise ExportError(f"cannot write the run file {self.path}: {exc}") from exc
-        except BaseException:
-            Path(tmp).unlink(missing_ok=True)
-            raise
-        self._file = self._open_h5("r+")
+        with atomic_path(self.path) as tmp:
+            with h5py.File(tmp, "w", libver="latest") as f:
+                _create_layout(f, self._attrs())
+        self._file = self._open_h5()
 
-    def _open_h5(self, mode: str) -> h5py.File:
+    def _open_h5(self) -> h5py.File:
         try:
-            return h5py.File(self.path, mode)
+            f = h5py.File(self.path, "r+", libver="latest")
         except BlockingIOError as exc:
-            raise ExportError(f"the run file {self.path} is open in another program (another batch or watch "
-                              "run?); wait for it to finish or choose another --out") from exc
+            raise ExportError(f"the run file {self.path} is open for writing in another program; wait for it to "
+                              "finish or choose another output file") from exc
         except PermissionError as exc:
             raise ExportError(f"cannot write the run file {self.path}: permission denied") from exc
         except OSError as exc:
             raise ExportError(f"the existing file {self.path} cannot be opened as a run file "
-                              f"({exc}); it is left untouched: choose another --out") from exc
-
-    def _resume(self) -> None:
-        f = self._open_h5("r+")
+                              f"({exc}); it is left untouched: choose another output file") from exc
         try:
+            f.swmr_mode = True
+        except (OSError, ValueError) as exc:
+            f.close()
+            raise ExportError(f"the run file {self.path} cannot be shared with readers while it is written "
+                              f"({exc})") from exc
+        return f
+
+    def _check_existing(self) -> tuple[int, bool]:
+        """Validate an existing file read-only; return its format version and whether it was closed cleanly."""
+        try:
+            f = open_run_for_reading(self.path)
+        except FrameFileError as exc:
+            raise ExportError(f"the existing file {self.path} cannot be opened as a run file ({exc}); it is "
+                              "left untouched: choose another output file") from exc
+        with f:
             if f.attrs.get("format") != RUN_FORMAT:
                 raise ExportError(f"{self.path} exists and is not a latticeread run file; it is left "
-                                  "untouched: choose another --out")
+                                  "untouched: choose another output file")
             version = int(f.attrs.get("format_version", 0))
             if version > RUN_FORMAT_VERSION:
                 raise ExportError(f"{self.path} was written by a newer latticeread (run format {version}); "
-                                  "update latticeread or choose another --out")
+                                  "update latticeread or choose another output file")
             stored = str(f.attrs.get("calibration", "{}"))
             if _calibration_identity(stored) != _calibration_identity(self._calibration_json):
                 raise ExportError(f"{self.path} holds a run made with a different calibration; resume it with "
-                                  "the same calibration or choose another --out")
-            n = int(f.attrs["n_shots"])
-            nf = int(f.attrs["n_failures"])
-            # Drop rows an interruption left half-written (beyond the committed counts).
-            for name in _SHOT_COLUMNS:
-                if f["shots"][name].shape[0] != n:
-                    f["shots"][name].resize(n, axis=0)
-            for name in _MATRICES:
-                if name in f and f[name].shape[0] != n:
-                    f[name].resize(n, axis=0)
-            for name in _FAILURE_COLUMNS:
-                if f["failures"][name].shape[0] != nf:
-                    f["failures"][name].resize(nf, axis=0)
-            sources = f["shots/source"].asstr()[:n]
-            hashes = f["shots/file_hash"].asstr()[:n]
-            frames = f["shots/frame_index"][:n]
-            self._done = {ShotKey(s, h, int(i)) for s, h, i in zip(sources, hashes, frames)}
-            fs = f["failures/source"].asstr()[:nf]
-            fh = f["failures/file_hash"].asstr()[:nf]
-            fi = f["failures/frame_index"][:nf]
-            fr = f["failures/resolved"][:nf]
-            self._failed = {ShotKey(s, h, int(i)): row for row, (s, h, i, r) in enumerate(zip(fs, fh, fi, fr))
-                            if not r}
-            f.attrs["resumed"] = _now_iso()
-            f.flush()
-        except BaseException:
-            f.close()
-            raise
-        self._file = f
-        log.info("resuming %s: %d shots done, %d failed", self.path, len(self._done), len(self._failed))
+                                  "the same calibration or choose another output file")
+        try:
+            h5py.File(self.path, "r").close()
+            clean = True
+        except OSError:
+            clean = False  # the consistency flags of a writer that died are still set
+        return version, clean
 
-    # --- state ---------------------------------------------------------------------
+    def _resume(self) -> None:
+        version, clean = self._check_existing()
+        if version < RUN_FORMAT_VERSION or not clean:
+            self._rebuild(reason="written by an older latticeread" if clean else
+                          "its last writer was killed before closing it")
+        self._file = f = self._open_h5()
+        n, nf = _counts(f)
+        self._n, self._nf = n, nf
+        s = f["shots"]
+        for src, digest, idx in zip(_decode_text(s["source"], n), _decode_text(s["file_hash"], n),
+                                    s["frame_index"][:n]):
+            self._done.add(ShotKey(str(src), str(digest), int(idx)))
+        g = f["failures"]
+        resolved = g["resolved"][:nf]
+        for row, (src, digest, idx) in enumerate(zip(_decode_text(g["source"], nf), _decode_text(g["file_hash"], nf),
+                                                     g["frame_index"][:nf])):
+            if not resolved[row]:
+                self._failed[ShotKey(str(src), str(digest), int(idx))] = row
+        log.info("resuming %s: %d shots and %d failures already in it", self.path, n, len(self._failed))
+
+    def _rebuild(self, *, reason: str) -> None:
+        """Copy the committed rows into a fresh version 2 file and put it in place (atomic)."""
+        log.warning("rebuilding the run file %s from its committed rows (%s)", self.path, reason)
+        src = open_run_for_reading(self.path)
+        with src, atomic_path(self.path) as tmp:
+            n, nf = _counts(src)
+            attrs = {k: src.attrs[k] for k in ("program_version", "calibration", "created", "metadata")
+                     if k in src.attrs}
+            with h5py.File(tmp, "w", libver="latest") as f:
+                _create_layout(f, {**self._attrs(), **attrs})
+                shape = tuple(src["occupation"].shape[1:]) if n and "occupation" in src else (0, 0)
+                for start in range(0, n, 64):
+                    stop = min(n, start + 64)
+                    reserve_space(tmp, f.id.get_filesize() + _block_bytes(stop - start, shape))
+                    for name in _MATRICES:
+                        d = f[name]
+                        d.resize((stop, *shape))
+                        d[start:stop] = src[name][start:stop]
+                    for name, (dtype, _tail) in _SHOT_COLUMNS.items():
+                        d = f["shots"][name]
+                        d.resize(stop, axis=0)
+                        if name in _TEXT:
+                            d[start:stop] = _encode_text(_decode_text(src["shots"][name], stop)[start:], _TEXT[name])
+                        else:
+                            d[start:stop] = src["shots"][name][start:stop]
+                g = f["failures"]
+                for name in _FAILURE_COLUMNS:
+                    g[name].resize(nf, axis=0)
+                    if nf:
+                        g[name][:] = (_encode_text(_decode_text(src["failures"][name], nf), _TEXT[name])
+                                      if name in _TEXT else src["failures"][name][:nf])
+                f["committed"][...] = [n, nf]
+        log.info("rebuilt %s: %d shots, %d failures kept", self.path, n, nf)
+
+    # --- state -----------------------------------------------------------------------
     @property
-    def done(self) -> frozenset[ShotKey]:
-        """Keys of the shots already in the file."""
-        return frozenset(self._done)
+    def done(self) -> set[ShotKey]:
+        """Keys of the shots already in the file (including those written by this writer)."""
+        return set(self._done)
 
     @property
-    def failed(self) -> frozenset[ShotKey]:
-        """Keys of unresolved failures recorded in the file."""
-        return frozenset(self._failed)
+    def failed(self) -> set[ShotKey]:
+        """Keys of unresolved failures in the file."""
+        return set(self._failed)
 
     @property
     def n_shots(self) -> int:
-        return len(self._done)
-
-    @property
-    def matrix_shape(self) -> tuple[int, int] | None:
-        """(rows, cols) of the occupation matrices, or None before the first shot."""
-        f = self._require_open()
-        return tuple(f["occupation"].shape[1:]) if "occupation" in f else None
+        """Committed shots in the file."""
+        return self._n
 
     def _require_open(self) -> h5py.File:
         if self._file is None:
             raise ExportError(f"the run file {self.path} is closed")
         return self._file
 
-    # --- writing -------------------------------------------------------------------
-    def append(self, record: ShotRecord) -> bool:
-        """Write one completed shot and flush the file.
+    def _reserve(self, nbytes: int) -> None:
+        f = self._require_open()
+        reserve_space(self.path, f.id.get_filesize() + int(nbytes))
 
-        Returns
-        -------
-        bool
-            True if written; False if a shot with the same key is already in the file (it
-            is not written twice).
-        """
+    def _commit(self) -> None:
+        f = self._file
+        f.flush()
+        f["committed"][...] = [self._n, self._nf]
+        f.flush()
+
+    # --- writing ---------------------------------------------------------------------
+    def append(self, record: ShotRecord) -> bool:
+        """Append one shot; return False (and write nothing) if its key is already in the file."""
         return self.append_many([record]) == 1
 
     def append_many(self, records) -> int:
-        """Write several completed shots as one block, then commit and flush once.
-
-        Writing a block costs about as much as writing one shot (HDF5 calls dominate), so
-        a batch run gathers the shots that come back within a fraction of a second. An
-        interruption before the commit leaves the file with the shots of earlier blocks.
+        """Append a block of shots with one resize and one flush per dataset.
 
         Parameters
         ----------
@@ -400,6 +623,13 @@ class RunWriter:
         int
             Number of shots written (shots already in the file, or repeated in ``records``,
             are skipped with a logged warning).
+
+        Raises
+        ------
+        DiskFullError
+            The disk cannot hold the block; nothing of it was written.
+        ExportError
+            Wrong matrix shape, or a write error (the file keeps its committed shots).
         """
         f = self._require_open()
         block: list[ShotRecord] = []
@@ -412,65 +642,63 @@ class RunWriter:
             block.append(record)
         if not block:
             return 0
-        shape = block[0].matrix_shape
-        if "occupation" not in f:
-            for name, (dtype, fill) in _MATRICES.items():
-                # gzip level 1 with byte shuffling: half the size of raw float64 at a few
-                # ms per shot; level 4 compresses hardly better at twice the time.
-                f.create_dataset(name, shape=(0, *shape), maxshape=(None, *shape), dtype=dtype,
-                                 chunks=(1, *shape), compression="gzip", compression_opts=1, shuffle=True,
-                                 fillvalue=fill)
-        held = tuple(f["occupation"].shape[1:])
+        n = self._n
+        held = tuple(f["occupation"].shape[1:]) if n else block[0].matrix_shape
         for record in block:
             if record.matrix_shape != held:
                 raise ExportError(
                     f"shot {record.key.frame_index} of {record.key.source} gives a {record.matrix_shape[0]}x"
                     f"{record.matrix_shape[1]} occupation matrix but {self.path} holds {held[0]}x{held[1]} "
                     "matrices; a run must use one calibration")
-        n = int(f.attrs["n_shots"])
         m = len(block)
+        self._reserve(_block_bytes(m, held))
         now = time.time()
+        columns = {
+            "source": _encode_text([r.key.source for r in block], _TEXT["source"]),
+            "file_hash": _encode_text([r.key.file_hash for r in block], _TEXT["file_hash"]),
+            "frame_index": [r.key.frame_index for r in block],
+            "offset": [r.offset for r in block],
+            "a1": [r.a1 for r in block],
+            "a2": [r.a2 for r in block],
+            "threshold": [r.threshold for r in block],
+            "false_positive_rate": [r.false_positive_rate for r in block],
+            "false_negative_rate": [r.false_negative_rate for r in block],
+            "n_sites": [r.n_sites for r in block],
+            "n_occupied": [r.n_occupied for r in block],
+            "filling": [r.filling for r in block],
+            "peak_to_background": [r.peak_to_background for r in block],
+            "lattice_residual": [r.lattice_residual for r in block],
+            "warnings": _encode_text(["\n".join(r.warnings) for r in block], _TEXT["warnings"]),
+            "written_at": [now] * m,
+        }
+        matrices = {name: np.stack([np.asarray(getattr(r, name), dtype=dtype) for r in block])
+                    for name, (dtype, _fill) in _MATRICES.items()}
         try:
-            for name, (dtype, _fill) in _MATRICES.items():
-                d = f[name]
-                d.resize(n + m, axis=0)
-                d[n:n + m] = np.stack([np.asarray(getattr(r, name), dtype=dtype) for r in block])
-            columns = {
-                "source": [r.key.source for r in block],
-                "file_hash": [r.key.file_hash for r in block],
-                "frame_index": [r.key.frame_index for r in block],
-                "offset": [r.offset for r in block],
-                "a1": [r.a1 for r in block],
-                "a2": [r.a2 for r in block],
-                "threshold": [r.threshold for r in block],
-                "false_positive_rate": [r.false_positive_rate for r in block],
-                "false_negative_rate": [r.false_negative_rate for r in block],
-                "n_sites": [r.n_sites for r in block],
-                "n_occupied": [r.n_occupied for r in block],
-                "filling": [r.filling for r in block],
-                "peak_to_background": [r.peak_to_background for r in block],
-                "lattice_residual": [r.lattice_residual for r in block],
-                "warnings": ["\n".join(r.warnings) for r in block],
-                "written_at": [now] * m,
-            }
-            shots = f["shots"]
-            for name, values in columns.items():
-                d = shots[name]
-                d.resize(n + m, axis=0)
-                d[n:n + m] = np.asarray(values, dtype=object) if d.dtype.kind == "O" else np.asarray(values, d.dtype)
-            # Commit: the rows count only once the counter says so.
-            f.attrs["n_shots"] = n + m
-            # An earlier failure of these shots, or of an older version of their file (e.g.
-            # read while the camera was still writing it), is resolved by this success.
-            for key in keys:
-                for old in [k for k in self._failed if k == key or (k.source == key.source and
-                                                                     k.file_hash != key.file_hash)]:
-                    f["failures/resolved"][self._failed.pop(old)] = True
-            f.flush()
+            with _interrupt_deferred():
+                for name, values in matrices.items():
+                    d = f[name]
+                    d.resize((n + m, *held))
+                    d[n:n + m] = values
+                shots = f["shots"]
+                for name, values in columns.items():
+                    d = shots[name]
+                    d.resize(n + m, axis=0)
+                    d[n:n + m] = np.asarray(values, d.dtype)
+                # An earlier failure of these shots, or of an older version of their file
+                # (e.g. read while the camera was still writing it), is resolved by this success.
+                for key in keys:
+                    for old in [k for k in self._failed if k == key or (k.source == key.source and
+                                                                         k.file_hash != key.file_hash)]:
+                        f["failures/resolved"][self._failed.pop(old)] = True
+                # Commit: the rows count only once the counter says so.
+                self._n = n + m
+                self._commit()
         except OSError as exc:
+            self._n = n
             first = block[0].key
-            raise ExportError(f"writing shot {first.frame_index} of {first.source} to {self.path} failed: {exc} "
-                              f"(the file keeps the {n} shots written before)") from exc
+            raise ExportError(f"writing shot {first.frame_index} of {first.source} to {self.path} failed: "
+                              f"{describe_os_error(exc, self.path)} (the file keeps the {n} shots written "
+                              "before)") from exc
         self._done.update(keys)
         return m
 
@@ -482,32 +710,46 @@ class RunWriter:
         """
         f = self._require_open()
         g = f["failures"]
+        self._reserve(_METADATA_MARGIN)
         try:
-            if key in self._failed:
-                row = self._failed[key]
-                g["error"][row] = error
-                g["reason"][row] = reason
-                g["written_at"][row] = time.time()
-            else:
-                n = int(f.attrs["n_failures"])
-                values = {"source": key.source, "file_hash": key.file_hash, "frame_index": key.frame_index,
-                          "error": error, "reason": reason, "resolved": False, "written_at": time.time()}
-                for name, value in values.items():
-                    g[name].resize(n + 1, axis=0)
-                    g[name][n] = value
-                f.attrs["n_failures"] = n + 1
-                self._failed[key] = n
-            f.flush()
+            with _interrupt_deferred():
+                if key in self._failed:
+                    row = self._failed[key]
+                    g["error"][row] = _encode_text([error], _TEXT["error"])[0]
+                    g["reason"][row] = _encode_text([reason], _TEXT["reason"])[0]
+                    g["written_at"][row] = time.time()
+                    self._commit()
+                else:
+                    nf = self._nf
+                    values = {"source": _encode_text([key.source], _TEXT["source"]),
+                              "file_hash": _encode_text([key.file_hash], _TEXT["file_hash"]),
+                              "frame_index": [key.frame_index], "error": _encode_text([error], _TEXT["error"]),
+                              "reason": _encode_text([reason], _TEXT["reason"]), "resolved": [False],
+                              "written_at": [time.time()]}
+                    for name, value in values.items():
+                        g[name].resize(nf + 1, axis=0)
+                        g[name][nf:nf + 1] = np.asarray(value, g[name].dtype)
+                    self._nf = nf + 1
+                    self._commit()
+                    self._failed[key] = nf
         except OSError as exc:
-            raise ExportError(f"writing a failure record to {self.path} failed: {exc}") from exc
+            raise ExportError(f"writing a failure record to {self.path} failed: "
+                              f"{describe_os_error(exc, self.path)}") from exc
+
+    def _close_file(self) -> None:
+        f, self._file = self._file, None
+        if f is not None:
+            try:
+                f.flush()
+            finally:
+                f.close()
 
     def close(self) -> None:
-        if self._file is not None:
-            try:
-                self._file.flush()
-            finally:
-                self._file.close()
-                self._file = None
+        """Flush and close the file and release the writer lock (safe to call twice)."""
+        try:
+            self._close_file()
+        finally:
+            self._lock.release()
 
     def __enter__(self) -> "RunWriter":
         return self
@@ -643,17 +885,11 @@ def read_run(path, *, matrices: bool = True) -> RunData:
         The file is missing, not HDF5, or not a run file.
     """
     path = Path(path)
-    if not path.exists():
-        raise FrameFileError(f"the run file {path} does not exist")
-    try:
-        f = h5py.File(path, "r")
-    except OSError as exc:
-        raise FrameFileError(f"{path} cannot be opened as an HDF5 run file: {exc}") from exc
+    f = open_run_for_reading(path)
     with f:
         if f.attrs.get("format") != RUN_FORMAT:
             raise FrameFileError(f"{path} is an HDF5 file but not a latticeread run file")
-        n = int(f.attrs["n_shots"])
-        nf = int(f.attrs["n_failures"])
+        n, nf = _counts(f)
         s = f["shots"]
         wanted = set(_MATRICES) if matrices is True else set(matrices or ())
         unknown = wanted - set(_MATRICES)
@@ -663,23 +899,23 @@ def read_run(path, *, matrices: bool = True) -> RunData:
         for name, (dtype, _fill) in _MATRICES.items():
             if name not in wanted:
                 mats[name] = None
-            elif name in f:
+            elif name in f and n:
                 mats[name] = f[name][:n]
             else:
                 mats[name] = np.zeros((0, 0, 0), dtype=dtype)
         g = f["failures"]
         failures = RunFailures(
-            source=np.asarray(g["source"].asstr()[:nf], dtype=object).astype(str),
-            file_hash=np.asarray(g["file_hash"].asstr()[:nf], dtype=object).astype(str),
+            source=_decode_text(g["source"], nf),
+            file_hash=_decode_text(g["file_hash"], nf),
             frame_index=g["frame_index"][:nf],
-            error=np.asarray(g["error"].asstr()[:nf], dtype=object).astype(str),
-            reason=np.asarray(g["reason"].asstr()[:nf], dtype=object).astype(str),
+            error=_decode_text(g["error"], nf),
+            reason=_decode_text(g["reason"], nf),
             resolved=g["resolved"][:nf],
         )
-        warnings = tuple(tuple(w.split("\n")) if w else () for w in s["warnings"].asstr()[:n])
+        warnings = tuple(tuple(str(w).split("\n")) if w else () for w in _decode_text(s["warnings"], n))
         return RunData(
-            source=np.asarray(s["source"].asstr()[:n], dtype=object).astype(str),
-            file_hash=np.asarray(s["file_hash"].asstr()[:n], dtype=object).astype(str),
+            source=_decode_text(s["source"], n),
+            file_hash=_decode_text(s["file_hash"], n),
             frame_index=s["frame_index"][:n],
             **mats,
             offset=s["offset"][:n], a1=s["a1"][:n], a2=s["a2"][:n],

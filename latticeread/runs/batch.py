@@ -37,9 +37,9 @@ from pathlib import Path
 import numpy as np
 
 from latticeread.core.calibration import Calibration
-from latticeread.errors import CalibrationError, FrameFileError, LatticeReadError, ReconstructionError
+from latticeread.errors import CalibrationError, ExportError, FrameFileError, LatticeReadError, ReconstructionError
 from latticeread.io.calibration_file import calibration_from_json, calibration_to_json, load_calibration
-from latticeread.io.run_file import RunWriter, ShotKey, ShotRecord, read_run
+from latticeread.io.run_file import RunWriter, ShotKey, ShotRecord, describe_keys, read_run
 
 __all__ = [
     "FRAME_SUFFIXES",
@@ -865,7 +865,14 @@ class _BlockWriter:
 
 def _drive(runner, tasks: list, writer: RunWriter, counts: dict, examples: list, *, progress: bool,
            window: int, block_size: int = 32) -> None:
-    """Submit shots (at most ``window`` unwritten at once) and write them in input order."""
+    """Submit shots (at most ``window`` unwritten at once) and write them in input order.
+
+    Raises
+    ------
+    ExportError
+        A block could not be written (full disk...); the message names the shots of this
+        run that are not in the run file. Everything written before stays.
+    """
     buffered: dict[int, object] = {}
     next_submit = next_write = 0
     out = _BlockWriter(writer, counts, examples, block_size=block_size)
@@ -882,13 +889,30 @@ def _drive(runner, tasks: list, writer: RunWriter, counts: dict, examples: list,
                 next_write += 1
                 bar.update(1)
             bar.set_postfix(failed=counts["failed"], refresh=False)
-    finally:
-        # On Ctrl-C or an error keep what already came back (order does not matter for keys).
-        with contextlib.suppress(Exception):
+        out.flush()
+    except ExportError as exc:
+        raise _not_written_error(exc, tasks, writer) from exc
+    except BaseException:
+        # Ctrl-C or an error elsewhere: keep what already came back (order does not matter
+        # for keys); a failure to write it is reported, never swallowed.
+        try:
             for index in sorted(buffered):
-                out.add(buffered[index])
+                out.add(buffered.pop(index))
             out.flush()
+        except ExportError as exc:
+            raise _not_written_error(exc, tasks, writer) from exc
+        raise
+    finally:
         bar.close()
+
+
+def _not_written_error(exc: ExportError, tasks: list, writer: RunWriter) -> ExportError:
+    """The write error, plus which shots of this run are not in the run file."""
+    missing = [k for k in tasks if k not in writer.done and k not in writer.failed]
+    cls = type(exc) if isinstance(exc, ExportError) else ExportError
+    return cls(f"{exc}; {len(missing)} shot(s) of this run not written: {describe_keys(missing)}. The run file keeps "
+               f"its {writer.n_shots} shots: free space (or fix the cause) and run the same command again to "
+               "continue")
 
 
 def summary_dict(summary: BatchSummary) -> dict:

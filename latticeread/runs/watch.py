@@ -26,7 +26,8 @@ from pathlib import Path
 import numpy as np
 
 from latticeread.io.calibration_file import calibration_to_json
-from latticeread.io.run_file import RunWriter, ShotKey
+from latticeread.errors import ExportError
+from latticeread.io.run_file import RunWriter, ShotKey, describe_keys
 from latticeread.runs.batch import (
     FRAME_SUFFIXES,
     BatchSummary,
@@ -335,15 +336,23 @@ class LiveRun:
         while self._queue and (max_files is None or self.counts["files"] < max_files):
             event = self._queue.popleft()
             self.counts["files"] += 1
-            for outcome in self._outcomes(event):
+            outcomes = self._outcomes(event)
+            for position, outcome in enumerate(outcomes):
+                try:
+                    if isinstance(outcome, ShotFailure):
+                        self._writer.record_failure(outcome.key, error=outcome.error, reason=outcome.reason)
+                    elif not self._writer.append(outcome):
+                        continue
+                except ExportError as exc:
+                    missing = [o.key for o in outcomes[position:]]
+                    raise type(exc)(f"{exc}; not written: {describe_keys(missing)}. The run file keeps its "
+                                    f"{self._writer.n_shots} shots: free space (or fix the cause) and run the "
+                                    "same command again to continue") from exc
                 if isinstance(outcome, ShotFailure):
-                    self._writer.record_failure(outcome.key, error=outcome.error, reason=outcome.reason)
                     self.counts["failed"] += 1
                     self._examples.append(_describe_failure(outcome))
-                elif self._writer.append(outcome):
-                    self.counts["new"] += 1
                 else:
-                    continue
+                    self.counts["new"] += 1
                 self.stats.add(outcome)
                 done.append(outcome)
                 if on_shot is not None:
