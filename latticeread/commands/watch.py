@@ -54,4 +54,6 @@ def run(args: argparse.Namespace) -> int:
                            max_files=args.max_files, timeout=args.timeout, include_existing=not args.new_only,
                            on_shot=show, retry_failed=args.retry_failed, metadata={"command": "watch"})
     print(summary.format())
-    return 0
+    from latticeread.runs.watch import INTERRUPTED_NOTE
+
+    return 130 if INTERRUPTED_NOTE in summary.warnings else 0

@@ -40,6 +40,7 @@ from latticeread.core.calibration import Calibration
 from latticeread.errors import CalibrationError, ExportError, FrameFileError, LatticeReadError, ReconstructionError
 from latticeread.io.calibration_file import calibration_from_json, calibration_to_json, load_calibration
 from latticeread.io.run_file import RunWriter, ShotKey, ShotRecord, describe_keys, read_run
+from latticeread.runs.stopping import POLL_SECONDS, die_with_parent, interrupt_guard, raise_if_interrupted
 
 __all__ = [
     "FRAME_SUFFIXES",
@@ -411,6 +412,8 @@ def _init_pool_worker(calibration_json: str, digest: str) -> None:
     # Ctrl-C in the terminal reaches the whole process group; the main process alone
     # handles it (cancels pending shots, waits for running ones, closes the run file).
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    # A worker never outlives the run, even when the run is killed with SIGKILL.
+    die_with_parent()
     try:
         worker_reconstructor(calibration_json, digest)
     except CalibrationError:
@@ -437,6 +440,7 @@ class SerialRunner:
         self._queue.append((index, key))
 
     def next_done(self):
+        raise_if_interrupted()
         index, key = self._queue.popleft()
         return index, self._rec(key)
 
@@ -475,7 +479,7 @@ class PoolRunner:
         ctx = multiprocessing.get_context("forkserver" if "forkserver" in methods else "spawn")
         with _single_thread_blas():
             if ctx.get_start_method() == "forkserver":
-                ctx.set_forkserver_preload(["latticeread.runs.batch"])
+                ctx.set_forkserver_preload(["latticeread.runs.forkserver_child", "latticeread.runs.batch"])
                 from multiprocessing import forkserver
 
                 forkserver.ensure_running()
@@ -492,7 +496,8 @@ class PoolRunner:
 
     def next_done(self):
         while not self._ready:
-            done, _ = wait(list(self._futures), return_when=FIRST_COMPLETED)
+            raise_if_interrupted()
+            done, _ = wait(list(self._futures), timeout=POLL_SECONDS, return_when=FIRST_COMPLETED)
             for future in done:
                 self._ready.append((future, *self._futures.pop(future)))
         future, index, key = self._ready.popleft()
@@ -802,8 +807,9 @@ def run_batch(inputs, *, calibration, out, workers: int | None = None, scheduler
             runner = _make_runner(cal_json, workers=workers, scheduler=scheduler)
             description = runner.description
             try:
-                _drive(runner, plan.tasks, writer, counts, examples, progress=progress,
-                       window=window or _default_window(runner))
+                with interrupt_guard():
+                    _drive(runner, plan.tasks, writer, counts, examples, progress=progress,
+                           window=window or _default_window(runner))
             finally:
                 runner.close(cancel=True)
     return summarize_run(out, cal, counts=counts, seconds=time.perf_counter() - t_start, workers=description,
@@ -882,6 +888,7 @@ def _drive(runner, tasks: list, writer: RunWriter, counts: dict, examples: list,
             while next_submit < len(tasks) and next_submit - next_write < window:
                 runner.submit(next_submit, tasks[next_submit])
                 next_submit += 1
+            raise_if_interrupted()
             index, outcome = runner.next_done()
             buffered[index] = outcome
             while next_write in buffered:

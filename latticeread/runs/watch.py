@@ -28,6 +28,7 @@ import numpy as np
 from latticeread.io.calibration_file import calibration_to_json
 from latticeread.errors import ExportError
 from latticeread.io.run_file import RunWriter, ShotKey, describe_keys
+from latticeread.runs.stopping import interrupt_guard, raise_if_interrupted
 from latticeread.runs.batch import (
     FRAME_SUFFIXES,
     BatchSummary,
@@ -45,6 +46,9 @@ from latticeread.runs.batch import (
 __all__ = ["WatchEvent", "FolderWatcher", "RunningStats", "LiveRun", "watch_folder", "validate_frame_file"]
 
 log = logging.getLogger(__name__)
+
+#: Warning of the summary of a watch stopped with Ctrl-C (the command then exits with 130).
+INTERRUPTED_NOTE = "interrupted (Ctrl-C); every shot shown above is in the run file"
 
 
 @dataclass(frozen=True)
@@ -313,7 +317,11 @@ class LiveRun:
         plan = plan_shots([event.path], done=writer.done, failed=writer.failed, retry_failed=self.retry_failed)
         self.counts["skipped_done"] += plan.n_done_before
         self.counts["skipped_failed"] += plan.n_failed_before
-        return list(plan.failures) + [self._reconstruct(key) for key in plan.tasks]
+        outcomes = list(plan.failures)
+        for key in plan.tasks:
+            raise_if_interrupted()
+            outcomes.append(self._reconstruct(key))
+        return outcomes
 
     def step(self, *, on_shot=None, max_files: int | None = None) -> list:
         """Poll the folder once and handle the files that became complete.
@@ -338,6 +346,7 @@ class LiveRun:
             self.counts["files"] += 1
             outcomes = self._outcomes(event)
             for position, outcome in enumerate(outcomes):
+                raise_if_interrupted()
                 try:
                     if isinstance(outcome, ShotFailure):
                         self._writer.record_failure(outcome.key, error=outcome.error, reason=outcome.reason)
@@ -369,8 +378,7 @@ class LiveRun:
                                 seconds=time.perf_counter() - self._t_start, workers="this process",
                                 failure_examples=self._examples)
         if interrupted:
-            summary = replace(summary, warnings=(*summary.warnings, "interrupted (Ctrl-C); every shot shown "
-                                                 "above is in the run file"))
+            summary = replace(summary, warnings=(*summary.warnings, INTERRUPTED_NOTE))
         return summary
 
     def __enter__(self) -> "LiveRun":
@@ -422,16 +430,19 @@ def watch_folder(folder, *, calibration, out, interval: float = 0.5, max_files: 
                  retry_failed=retry_failed, metadata=metadata) as live:
         last_activity = time.monotonic()
         try:
-            while True:
-                handled = live.counts["files"]
-                live.step(on_shot=on_shot, max_files=max_files)
-                if live.counts["files"] != handled:
-                    last_activity = time.monotonic()
-                if max_files is not None and live.counts["files"] >= max_files:
-                    break
-                if timeout is not None and time.monotonic() - last_activity > timeout:
-                    break
-                sleep(interval)
+            with interrupt_guard():
+                while True:
+                    handled = live.counts["files"]
+                    live.step(on_shot=on_shot, max_files=max_files)
+                    if live.counts["files"] != handled:
+                        last_activity = time.monotonic()
+                    if max_files is not None and live.counts["files"] >= max_files:
+                        break
+                    if timeout is not None and time.monotonic() - last_activity > timeout:
+                        break
+                    raise_if_interrupted()
+                    sleep(interval)
+                    raise_if_interrupted()
         except KeyboardInterrupt:
             interrupted = True
     return live.summary(interrupted=interrupted)
