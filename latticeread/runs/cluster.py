@@ -107,9 +107,14 @@ class DaskRunner:
         if scheduler == "local":
             n = int(n_workers or os.cpu_count() or 1)
             # See the module docstring: Dask's trim threshold costs about a third of the throughput.
-            with dask.config.set({"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None}):
-                self._cluster = distributed.LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
-                                                         dashboard_address=None)
+            # The scheduler starts an HTTP server even with dashboard_address=None (on the
+            # default port 8787, all interfaces); bind it to an ephemeral loopback port with
+            # no routes and no dashboard instead, so a batch serves nothing on the network.
+            with dask.config.set({"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None,
+                                  "distributed.scheduler.http.routes": []}):
+                self._cluster = distributed.LocalCluster(
+                    n_workers=n, threads_per_worker=1, processes=True, dashboard_address=None,
+                    scheduler_kwargs={"dashboard": False, "dashboard_address": "127.0.0.1:0"})
             self._client = distributed.Client(self._cluster)
             self.description = f"a Dask LocalCluster of {n} worker processes"
         else:
