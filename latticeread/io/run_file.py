@@ -328,11 +328,11 @@ def open_run_for_reading(path) -> h5py.File:
     if not path.exists():
         raise FrameFileError(f"the run file {path} does not exist")
     try:
-        return h5py.File(path, "r", swmr=True)
+        return h5py.File(path, "r", swmr=True, locking=False)
     except OSError:
         pass
     try:
-        return h5py.File(path, "r")
+        return h5py.File(path, "r", locking=False)
     except OSError as exc:
         raise FrameFileError(f"{path} cannot be opened as an HDF5 run file: {exc}") from exc
 
@@ -477,7 +477,9 @@ class RunWriter:
 
     def _open_h5(self) -> h5py.File:
         try:
-            f = h5py.File(self.path, "r+", libver="latest")
+            # HDF5's own file lock is off: the writer lock (RunFileLock) keeps other writers
+            # out, and a reader opening the file at this moment must not stop the run.
+            f = h5py.File(self.path, "r+", libver="latest", locking=False)
         except BlockingIOError as exc:
             raise ExportError(f"the run file {self.path} is open for writing in another program; wait for it to "
                               "finish or choose another output file") from exc
@@ -514,7 +516,7 @@ class RunWriter:
                 raise ExportError(f"{self.path} holds a run made with a different calibration; resume it with "
                                   "the same calibration or choose another output file")
         try:
-            h5py.File(self.path, "r").close()
+            h5py.File(self.path, "r", locking=False).close()
             clean = True
         except OSError:
             clean = False  # the consistency flags of a writer that died are still set
