@@ -354,27 +354,34 @@ _MATRIX_DATASETS = {
 
 
 def write_occupation_hdf5(path, results: Iterable, *, calibration=None, metadata: Mapping | None = None,
-                          protect=None, compression: str | None = "gzip") -> int:
-    """Write occupation matrices and per-site arrays of many frames to one HDF5 file.
+                          protect=None, block: int = 32) -> int:
+    """Write occupation matrices and per-site arrays of many frames to one results file.
+
+    The file has the run-file layout of :mod:`latticeread.io.run_file` (the one layout
+    that batch and watch write too), plus the output contract's root attributes
+    (``geometry``, ``psf``, ``camera``, ``threshold``, ``inputs``, ``fidelity``,
+    ``units``, ``row_min``, ``col_min``). It is written under a temporary name and renamed
+    when complete: the path holds the whole new file or its previous content.
 
     Parameters
     ----------
     path : str or PathLike
         Output file (``.h5``).
     results : iterable of FrameResult
-        Per-frame results; a generator is appended in slabs of a few frames (about 1 MiB per
-        dataset, also the HDF5 chunk size) into resizable datasets, so memory stays flat. All frames must share the site index set of the
-        first frame (a fixed calibration), otherwise ReconstructionError.
+        Per-frame results; a generator is written in blocks of ``block`` frames, so memory
+        stays flat. All frames must share the site index set of the first frame (a fixed
+        calibration), otherwise ReconstructionError.
     calibration : Calibration, optional
-        Stored as root attributes (``geometry``, ``psf``, ``camera``, ``threshold``,
-        ``calibration``).
+        Stored as root attributes (``calibration``, ``geometry``, ``psf``, ``camera``,
+        ``threshold``).
     metadata : mapping, optional
         ``inputs`` (input file names) and ``fidelity`` become their own attributes, the
-        rest goes to the ``metadata`` attribute (JSON).
+        rest goes to the ``metadata`` attribute (JSON). With exactly one input file its
+        path is each shot's ``source``.
     protect : iterable of paths, optional
         Input files that must not be overwritten.
-    compression : {"gzip", None}
-        Lossless compression of the datasets.
+    block : int
+        Frames per written block.
 
     Returns
     -------
@@ -384,134 +391,69 @@ def write_occupation_hdf5(path, results: Iterable, *, calibration=None, metadata
     Raises
     ------
     ExportError
-        The file cannot be written (nothing is left behind).
+        The file cannot be written (nothing is left behind), e.g. a full disk.
     ReconstructionError
         No results, inconsistent arrays, or a frame with sites outside the first frame's
         index range.
     """
-    import h5py
+    from .run_file import RunWriter, ShotKey, ShotRecord
 
     path = Path(os.fspath(path))
     settings = _settings(calibration, metadata, fmt=_FORMAT_H5)
+    cal = settings["calibration"]
+    inputs = settings["inputs"]
+    source = inputs[0] if len(inputs) == 1 else ""
     n = 0
     with atomic_path(path, protect=protect) as tmp:
-        with h5py.File(tmp, "w") as h5:
-            ds = {}
-            buf = None
-            row_min = col_min = n_r = n_c = 0
+        tmp.unlink()  # the run writer creates it (under its own temporary name)
+        row_min = col_min = n_r = n_c = 0
+        attrs = {"units": UNITS, "inputs": inputs, "fidelity": settings["fidelity"],
+                 **{key: None if cal is None else cal[key] for key in ("geometry", "psf", "camera")},
+                 "threshold": np.nan if cal is None or cal["threshold"] is None else float(cal["threshold"])}
+        pending: list = []
+        writer = None
+        try:
             for position, result in enumerate(results):
                 f = _read_result(result, position)
-                if n == 0 and buf is None:
+                if writer is None:
                     if f.rows.size:
                         row_min, col_min = int(f.rows.min()), int(f.cols.min())
                         n_r, n_c = int(f.rows.max()) - row_min + 1, int(f.cols.max()) - col_min + 1
-                    block = _block_frames(n_r, n_c)
-                    ds = _create_datasets(h5, n_r, n_c, compression, block)
-                    buf = _Buffer(block, n_r, n_c)
+                    attrs.update(row_min=row_min, col_min=col_min)
+                    writer = RunWriter(tmp, calibration_json=json.dumps(cal, allow_nan=False),
+                                       metadata=settings["metadata"], attrs=attrs)
                 ii, jj = f.rows - row_min, f.cols - col_min
                 if f.rows.size and (ii.min() < 0 or jj.min() < 0 or ii.max() >= n_r or jj.max() >= n_c):
                     raise ReconstructionError(
                         f"frame {f.index} has sites outside the index range of the first frame "
                         f"(rows {row_min}..{row_min + n_r - 1}, cols {col_min}..{col_min + n_c - 1}); "
                         "frames exported together must share one calibration's site set")
-                buf.add(f, ii, jj)
-                if buf.full:
-                    n = buf.flush(ds, n)
-            if buf is not None:
-                n = buf.flush(ds, n)
+                matrices = {}
+                for name, values in (("occupation", f.occupied), ("amplitude", f.amplitude),
+                                     ("p_occupied", f.p_occupied), ("flags", f.flags), ("x", f.x), ("y", f.y)):
+                    dtype, fill, _ = _MATRIX_DATASETS[name]
+                    m = np.full((n_r, n_c), fill, dtype=dtype)
+                    m[ii, jj] = values
+                    matrices[name] = m
+                geometry = getattr(result, "geometry", None)
+                nan2 = (float("nan"), float("nan"))
+                pending.append(ShotRecord(
+                    key=ShotKey(source, "", f.index), **matrices, offset=f.offset,
+                    a1=tuple(float(v) for v in geometry.a1) if geometry is not None else nan2,
+                    a2=tuple(float(v) for v in geometry.a2) if geometry is not None else nan2,
+                    threshold=f.threshold, warnings=f.warnings, origin=(row_min, col_min)))
+                if len(pending) >= block:
+                    n += writer.append_many(pending)
+                    pending = []
+            if writer is not None and pending:
+                n += writer.append_many(pending)
             if n == 0:
                 raise ReconstructionError(f"nothing to export to {path.name}: there are no frame results")
-            attrs = h5.attrs
-            attrs["row_min"] = row_min
-            attrs["col_min"] = col_min
-            for key in ("format", "program_version", "created"):
-                attrs[key] = settings[key]
-            attrs["format_version"] = settings["format_version"]
-            attrs["units"] = json.dumps(settings["units"])
-            attrs["inputs"] = json.dumps(settings["inputs"])
-            attrs["fidelity"] = json.dumps(settings["fidelity"], allow_nan=False)
-            attrs["metadata"] = json.dumps(settings["metadata"], allow_nan=False)
-            cal = settings["calibration"]
-            attrs["calibration"] = json.dumps(cal, allow_nan=False)
-            for key in ("geometry", "psf", "camera"):
-                attrs[key] = json.dumps(None if cal is None else cal[key], allow_nan=False)
-            attrs["threshold"] = np.nan if cal is None or cal["threshold"] is None else float(cal["threshold"])
+        finally:
+            if writer is not None:
+                writer.close()
     log.info("wrote %d frames to %s", n, path)
     return n
-
-
-def _block_frames(n_r: int, n_c: int) -> int:
-    """Frames buffered (and stored per chunk): about 1 MiB of float64 per dataset."""
-    return int(np.clip(2**17 // max(n_r * n_c, 1), 1, 256))
-
-
-class _Buffer:
-    """A few frames held in memory so the HDF5 file is written in slabs (flat memory)."""
-
-    def __init__(self, block: int, n_r: int, n_c: int):
-        self.block = block
-        self.m = {name: np.full((block, n_r, n_c), fill, dtype=dtype)
-                  for name, (dtype, fill, _) in _MATRIX_DATASETS.items()}
-        self.index = np.zeros(block, np.int64)
-        self.offset = np.zeros((block, 2))
-        self.threshold = np.zeros(block)
-        self.warnings: list[str] = []
-        self.k = 0
-
-    @property
-    def full(self) -> bool:
-        return self.k == self.block
-
-    def add(self, f: _Frame, ii, jj) -> None:
-        k = self.k
-        for name, values in (("occupation", f.occupied), ("amplitude", f.amplitude), ("p_occupied", f.p_occupied),
-                             ("flags", f.flags), ("x", f.x), ("y", f.y)):
-            self.m[name][k] = _MATRIX_DATASETS[name][1]
-            self.m[name][k][ii, jj] = values
-        self.index[k], self.offset[k], self.threshold[k] = f.index, f.offset, f.threshold
-        self.warnings.append("; ".join(f.warnings))
-        self.k += 1
-
-    def flush(self, ds: dict, n: int) -> int:
-        k = self.k
-        if k == 0:
-            return n
-        for d in ds.values():
-            d.resize(n + k, axis=0)
-        for name, m in self.m.items():
-            ds[name][n:n + k] = m[:k]
-        ds["frame_index"][n:n + k] = self.index[:k]
-        ds["offset"][n:n + k] = self.offset[:k]
-        ds["threshold"][n:n + k] = self.threshold[:k]
-        ds["warnings"][n:n + k] = self.warnings
-        self.warnings = []
-        self.k = 0
-        return n + k
-
-
-def _create_datasets(h5, n_r: int, n_c: int, compression, block: int = 1):
-    import h5py
-
-    kw = {"compression": compression, "shuffle": True} if compression and n_r * n_c else {}
-    chunks = (block, n_r, n_c) if n_r * n_c else None
-    ds = {}
-    for name, (dtype, fill, description) in _MATRIX_DATASETS.items():
-        d = h5.create_dataset(name, shape=(0, n_r, n_c), maxshape=(None, n_r, n_c), dtype=dtype,
-                              fillvalue=fill, chunks=chunks if chunks else True, **kw)
-        d.attrs["units"] = UNITS.get(name, "")
-        d.attrs["description"] = description
-        ds[name] = d
-    ds["frame_index"] = h5.create_dataset("frame_index", shape=(0,), maxshape=(None,), dtype=np.int64, chunks=(1024,))
-    ds["frame_index"].attrs["units"] = UNITS["frame"]
-    ds["offset"] = h5.create_dataset("offset", shape=(0, 2), maxshape=(None, 2), dtype=np.float64, chunks=(1024, 2))
-    ds["offset"].attrs["units"] = "pixels (x, y) of lattice site (0, 0) in each frame"
-    ds["threshold"] = h5.create_dataset("threshold", shape=(0,), maxshape=(None,), dtype=np.float64,
-                                        chunks=(1024,), fillvalue=np.nan)
-    ds["threshold"].attrs["units"] = UNITS["threshold"]
-    ds["warnings"] = h5.create_dataset("warnings", shape=(0,), maxshape=(None,),
-                                       dtype=h5py.string_dtype("utf-8"), chunks=(1024,))
-    ds["warnings"].attrs["description"] = "reasons why a frame's result may mislead; empty when none"
-    return ds
 
 
 @dataclass(frozen=True)
@@ -571,38 +513,72 @@ _JSON_ATTRS = ("units", "inputs", "fidelity", "metadata", "calibration", "geomet
 
 
 def read_occupation_hdf5(path) -> OccupationFile:
-    """Read an HDF5 file written by :func:`write_occupation_hdf5` into memory.
+    """Read a results file (run layout, or the occupation layout of version 1) into memory.
+
+    Reads the files of ``reconstruct --out x.h5``, ``batch``, ``watch`` and the window's
+    export alike (:mod:`latticeread.io.run_file`); shots whose writer was interrupted are
+    left out. For a notebook, :func:`latticeread.io.read_results` gives the same content as
+    plain arrays and a dict.
 
     Raises
     ------
     FrameFileError
-        Missing file, not HDF5, or a dataset of the contract missing.
+        Missing file, not HDF5, or not a latticeread results file.
     """
-    import h5py
+    from .run_file import RUN_FORMAT, open_run_for_reading, read_run
 
     path = Path(os.fspath(path))
     if not path.exists():
         raise FrameFileError(f"occupation file {path} does not exist")
     try:
-        h5 = h5py.File(path, "r")
-    except OSError as exc:
+        h5 = open_run_for_reading(path)
+    except FrameFileError as exc:
         raise FrameFileError(f"{path.name} is not a readable HDF5 file ({exc})") from exc
     with h5:
-        needed = [*_MATRIX_DATASETS, "frame_index", "offset", "threshold", "warnings"]
-        missing = [k for k in needed if k not in h5]
-        if missing:
-            raise FrameFileError(f"{path.name} is not a latticeread occupation file: dataset(s) "
-                                 f"{', '.join(missing)} missing")
-        arrays = {k: h5[k][()] for k in [*_MATRIX_DATASETS, "frame_index", "offset", "threshold"]}
-        warnings = tuple(w.decode("utf-8") if isinstance(w, bytes) else str(w) for w in h5["warnings"][()])
-        attrs = {}
-        for key, value in h5.attrs.items():
-            if isinstance(value, bytes):
-                value = value.decode("utf-8")
-            if key in _JSON_ATTRS and isinstance(value, str):
+        attrs = _decoded_attrs(h5)
+        if attrs.get("format") != RUN_FORMAT:
+            return _read_occupation_v1(h5, path, attrs)
+    run = read_run(path)
+    cal = attrs.get("calibration")
+    for key in ("geometry", "psf", "camera"):
+        if attrs.get(key) is None and isinstance(cal, dict):
+            attrs[key] = cal.get(key)
+    if "threshold" not in attrs and isinstance(cal, dict):
+        attrs["threshold"] = np.nan if cal.get("threshold") is None else float(cal["threshold"])
+    attrs.setdefault("inputs", sorted(set(run.source.tolist())))
+    attrs.setdefault("units", UNITS)
+    row_min, col_min = (int(v) for v in run.origin[0]) if len(run) else \
+        (int(attrs.get("row_min", 0)), int(attrs.get("col_min", 0)))
+    return OccupationFile(occupation=run.occupation, amplitude=run.amplitude, p_occupied=run.p_occupied,
+                          flags=run.flags, x=run.x, y=run.y, frame_index=run.frame_index, offset=run.offset,
+                          threshold=run.threshold, warnings=tuple("; ".join(w) for w in run.warnings),
+                          row_min=row_min, col_min=col_min, attrs=attrs)
+
+
+def _decoded_attrs(h5) -> dict:
+    attrs = {}
+    for key, value in h5.attrs.items():
+        if isinstance(value, bytes):
+            value = value.decode("utf-8")
+        if key in _JSON_ATTRS and isinstance(value, str):
+            try:
                 value = from_jsonable(json.loads(value))
-            elif isinstance(value, np.generic):
-                value = value.item()
-            attrs[key] = value
+            except json.JSONDecodeError:
+                pass
+        elif isinstance(value, np.generic):
+            value = value.item()
+        attrs[key] = value
+    return attrs
+
+
+def _read_occupation_v1(h5, path: Path, attrs: dict) -> OccupationFile:
+    """The occupation layout written before the run layout became the one results file."""
+    needed = [*_MATRIX_DATASETS, "frame_index", "offset", "threshold", "warnings"]
+    missing = [k for k in needed if k not in h5]
+    if missing:
+        raise FrameFileError(f"{path.name} is not a latticeread occupation file: dataset(s) "
+                             f"{', '.join(missing)} missing")
+    arrays = {k: h5[k][()] for k in [*_MATRIX_DATASETS, "frame_index", "offset", "threshold"]}
+    warnings = tuple(w.decode("utf-8") if isinstance(w, bytes) else str(w) for w in h5["warnings"][()])
     return OccupationFile(**arrays, warnings=warnings, row_min=int(attrs.get("row_min", 0)),
                           col_min=int(attrs.get("col_min", 0)), attrs=attrs)

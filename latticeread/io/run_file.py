@@ -123,6 +123,23 @@ _SHOT_COLUMNS = {
     "lattice_residual": (np.float64, ()),
     "warnings": (f"S{_TEXT['warnings']}", ()),
     "written_at": (np.float64, ()),
+    "origin": (np.int64, (2,)),
+}
+#: Units and meaning written as dataset attributes (``units``, ``description``).
+_DESCRIPTIONS = {
+    "occupation": ("1 occupied, 0 empty, 255 outside the region", "site occupation"),
+    "amplitude": ("photons", "site amplitude"),
+    "p_occupied": ("probability", "posterior probability of occupation"),
+    "x": ("pixels (column; centre of pixel (0,0) at 0)", "site centre x"),
+    "y": ("pixels (row, downwards; centre of pixel (0,0) at 0)", "site centre y"),
+    "flags": ("bit field, see latticeread.core.flags", "site quality bits (0 = reliable)"),
+    "shots/offset": ("pixels (x, y)", "position of lattice site (0, 0) in the frame"),
+    "shots/a1": ("pixels (x, y)", "first lattice vector"),
+    "shots/a2": ("pixels (x, y)", "second lattice vector"),
+    "shots/threshold": ("photons", "occupancy threshold"),
+    "shots/origin": ("lattice sites (row, col)", "site of matrix element [0, 0]"),
+    "shots/frame_index": ("index (0-based)", "frame inside the input file"),
+    "shots/written_at": ("seconds since 1970 (Unix time)", "when the shot was committed"),
 }
 #: per-site matrices: name -> (dtype, fill value outside the region)
 _MATRICES = {
@@ -193,6 +210,9 @@ class ShotRecord:
         Reasons the shot may mislead.
     false_positive_rate, false_negative_rate : float
         Misread probabilities per site from the threshold fit (NaN if not available).
+    origin : (2,) tuple of int
+        Lattice indices ``(row, col)`` of matrix element ``[0, 0]``: element ``[i, j]`` is
+        site ``(origin[0] + i, origin[1] + j)``.
     """
 
     key: ShotKey
@@ -211,6 +231,7 @@ class ShotRecord:
     warnings: tuple[str, ...] = ()
     false_positive_rate: float = float("nan")
     false_negative_rate: float = float("nan")
+    origin: tuple[int, int] = (0, 0)
 
     @property
     def matrix_shape(self) -> tuple[int, int]:
@@ -387,6 +408,9 @@ def _create_layout(f: h5py.File, attrs: dict) -> None:
         # shot; level 4 compresses hardly better at twice the time.
         f.create_dataset(name, shape=(0, 0, 0), maxshape=(None, None, None), dtype=dtype, chunks=_MATRIX_CHUNK,
                          compression="gzip", compression_opts=1, shuffle=True, fillvalue=fill)
+    for name, (units, description) in _DESCRIPTIONS.items():
+        f[name].attrs["units"] = units
+        f[name].attrs["description"] = description
 
 
 def _block_bytes(n_shots: int, shape: tuple[int, int]) -> int:
@@ -411,6 +435,9 @@ class RunWriter:
         different calibration raises :class:`~latticeread.errors.ExportError`.
     metadata : dict, optional
         Free-form JSON-able information stored with the run (command line, inputs...).
+    attrs : dict, optional
+        Further root attributes written when the file is created (strings or numbers;
+        other values are stored as JSON text).
 
     Raises
     ------
@@ -426,10 +453,11 @@ class RunWriter:
     call :meth:`close` (which also releases the writer lock).
     """
 
-    def __init__(self, path, *, calibration_json: str, metadata: dict | None = None):
+    def __init__(self, path, *, calibration_json: str, metadata: dict | None = None, attrs: dict | None = None):
         self.path = Path(os.fspath(path))
         self._calibration_json = calibration_json
         self._metadata = dict(metadata or {})
+        self._extra_attrs = dict(attrs or {})
         self._file: h5py.File | None = None
         self._done: set[ShotKey] = set()
         self._failed: dict[ShotKey, int] = {}
@@ -464,8 +492,10 @@ class RunWriter:
             raise
 
     def _attrs(self) -> dict:
-        return {"program_version": __version__, "calibration": self._calibration_json, "created": _now_iso(),
-                "metadata": json.dumps(self._metadata, sort_keys=True, default=str)}
+        extra = {k: v if isinstance(v, (str, int, float)) else json.dumps(v, default=str)
+                 for k, v in self._extra_attrs.items()}
+        return {**extra, "program_version": __version__, "calibration": self._calibration_json,
+                "created": _now_iso(), "metadata": json.dumps(self._metadata, sort_keys=True, default=str)}
 
     def _create(self) -> None:
         # Build the empty file under a temporary name and rename it into place, so a
@@ -548,8 +578,7 @@ class RunWriter:
         src = open_run_for_reading(self.path)
         with src, atomic_path(self.path) as tmp:
             n, nf = _counts(src)
-            attrs = {k: src.attrs[k] for k in ("program_version", "calibration", "created", "metadata")
-                     if k in src.attrs}
+            attrs = {k: v for k, v in src.attrs.items() if k not in ("n_shots", "n_failures")}
             with h5py.File(tmp, "w", libver="latest") as f:
                 _create_layout(f, {**self._attrs(), **attrs})
                 shape = tuple(src["occupation"].shape[1:]) if n and "occupation" in src else (0, 0)
@@ -565,6 +594,8 @@ class RunWriter:
                         d.resize(stop, axis=0)
                         if name in _TEXT:
                             d[start:stop] = _encode_text(_decode_text(src["shots"][name], stop)[start:], _TEXT[name])
+                        elif name not in src["shots"]:
+                            d[start:stop] = 0  # version 1 files stored no origin
                         else:
                             d[start:stop] = src["shots"][name][start:stop]
                 g = f["failures"]
@@ -672,6 +703,7 @@ class RunWriter:
             "lattice_residual": [r.lattice_residual for r in block],
             "warnings": _encode_text(["\n".join(r.warnings) for r in block], _TEXT["warnings"]),
             "written_at": [now] * m,
+            "origin": [r.origin for r in block],
         }
         matrices = {name: np.stack([np.asarray(getattr(r, name), dtype=dtype) for r in block])
                     for name, (dtype, _fill) in _MATRICES.items()}
@@ -806,6 +838,8 @@ class RunData:
         Threshold in photons, filling fraction, lattice diagnostics, Unix time of writing.
     false_positive_rate, false_negative_rate : (n,) float64
         Misread probabilities per site from each shot's threshold fit (NaN if none).
+    origin : (n, 2) ndarray of int64
+        Lattice site ``(row, col)`` of matrix element ``[0, 0]`` per shot.
     n_sites, n_occupied : (n,) ndarray of int64
     warnings : tuple of tuple of str
         Warnings per shot.
@@ -842,6 +876,7 @@ class RunData:
     calibration: dict = field(repr=False)
     program_version: str = ""
     metadata: dict = field(default_factory=dict, repr=False)
+    origin: np.ndarray = field(default_factory=lambda: np.zeros((0, 2), np.int64))
 
     def __len__(self) -> int:
         return int(self.frame_index.size)
@@ -926,6 +961,7 @@ def read_run(path, *, matrices: bool = True) -> RunData:
             lattice_residual=s["lattice_residual"][:n], written_at=s["written_at"][:n],
             false_positive_rate=s["false_positive_rate"][:n], false_negative_rate=s["false_negative_rate"][:n],
             warnings=warnings, failures=failures,
+            origin=s["origin"][:n] if "origin" in s else np.zeros((n, 2), np.int64),
             calibration=json.loads(str(f.attrs.get("calibration", "{}"))),
             program_version=str(f.attrs.get("program_version", "")),
             metadata=json.loads(str(f.attrs.get("metadata", "{}"))),

@@ -300,7 +300,7 @@ def shot_record(key: ShotKey, result) -> ShotRecord:
         threshold=float("nan") if threshold is None else float(threshold),
         peak_to_background=float(geometry.quality.peak_to_background),
         lattice_residual=float(geometry.quality.residual), warnings=tuple(warnings),
-        false_positive_rate=fp, false_negative_rate=fn)
+        false_positive_rate=fp, false_negative_rate=fn, origin=(int(sites.row_min), int(sites.col_min)))
 
 
 class ShotReconstructor:
