@@ -246,3 +246,13 @@ def test_killed_reconstruct_leaves_no_file_and_its_temp_is_cleaned(data, tmp_pat
 
     assert main(args) == 0
     assert out.exists() and not list(tmp_path.glob(".*.tmp"))  # the next run removed the leftover
+
+
+def test_fidelity_reads_the_batch_run_file(data, tmp_path, capsys):
+    """The results file of batch is the same layout the fidelity command reads."""
+    from latticeread.cli import main
+
+    assert main(["fidelity", str(data / "reference.h5"), "--images-per-shot", "2", "--bootstrap", "0",
+                 "--out", str(tmp_path / "report.json")]) == 0
+    assert (tmp_path / "report.json").exists()
+    assert "not a latticeread occupation file" not in capsys.readouterr().err

@@ -217,6 +217,31 @@ def test_csv_round_trip_bit_exact(tmp_path):
     assert path.read_text().splitlines()[0] == "frame,row,col,x,y,amplitude,occupied,p_occupied,flags"
 
 
+def test_csv_round_trip_exact_for_awkward_values(tmp_path):
+    """Negative and large site indices, NaN, infinities, -0.0, subnormal and huge amplitudes
+    come back as the identical doubles (numpy.loadtxt as the independent reader)."""
+    base = make_results(1)[0]
+    n = len(base.sites)
+    rng = np.random.default_rng(4)
+    special = np.array([np.nan, np.inf, -np.inf, -0.0, 5e-324, 1.7976931348623157e308, 0.1, 1 / 3])
+    amp = rng.normal(0, 1e6, n) * 10.0 ** rng.integers(-200, 200, n)
+    amp[:special.size] = special
+    rows = base.sites.rows - 5000  # below zero and beyond the small-number table
+    sites = type(base.sites)(rows, base.sites.cols, base.sites.x, base.sites.y, int(rows.min()), base.sites.col_min,
+                             base.sites.n_rows, base.sites.n_cols)
+    frame = FakeResult(123456, base.geometry, sites, amp, base.occupied, base.p_occupied, base.flags, 1.0)
+    path = tmp_path / "odd.csv"
+    assert write_sites_csv(path, [frame]) == n
+    table = read_sites_csv(path)
+    np.testing.assert_array_equal(table["amplitude"], amp)
+    assert np.signbit(table["amplitude"][3]) and table["amplitude"][4] == 5e-324
+    np.testing.assert_array_equal(table["row"], rows)
+    assert (table["frame"] == 123456).all()
+    plain = np.loadtxt(path, delimiter=",", skiprows=1)
+    np.testing.assert_array_equal(plain[:, 5], amp)
+    np.testing.assert_array_equal(plain[:, 3], base.sites.x)
+
+
 def test_csv_sidecar_holds_settings_as_strict_json(tmp_path):
     """RFC 8259: the companion JSON has no NaN tokens; the calibration reads back equal."""
     path = tmp_path / "sites.csv"

@@ -246,3 +246,84 @@ def test_append_many_writes_a_block_once(tmp_path):
     run = read_run(path)
     assert run.frame_index.tolist() == [0, 1, 2]
     np.testing.assert_array_equal(run.amplitude[2], _record(2).amplitude)
+
+
+def test_read_results_gives_plain_arrays_and_a_settings_dict(tmp_path):
+    from latticeread.io import read_results
+
+    path = tmp_path / "run.h5"
+    recs = [_record(i) for i in range(3)]
+    with RunWriter(path, calibration_json=CAL, metadata={"command": "batch"}) as w:
+        w.append_many(recs)
+        w.record_failure(ShotKey("/data/bad.tif", "", -1), error="FrameFileError", reason="truncated")
+    arrays, settings = read_results(path)
+    assert all(isinstance(v, np.ndarray) for v in arrays.values())
+    np.testing.assert_array_equal(arrays["occupation"], np.stack([r.occupation for r in recs]))
+    np.testing.assert_array_equal(arrays["amplitude"], np.stack([r.amplitude for r in recs]))
+    assert arrays["source"].tolist() == ["/data/shot.tif"] * 3 and arrays["frame_index"].tolist() == [0, 1, 2]
+    assert arrays["warnings"].tolist() == ["", "few atoms\npoor fit", ""]
+    assert arrays["failure_reason"].tolist() == ["truncated"] and arrays["failure_frame_index"].tolist() == [-1]
+    assert settings["calibration"] == json.loads(CAL) and settings["metadata"] == {"command": "batch"}
+    assert (settings["n_shots"], settings["n_failures"], settings["format_version"]) == (3, 1, 2)
+    table, _ = read_results(path, matrices=False)
+    assert "occupation" not in table and table["threshold"].tolist() == [250.0, 251.0, 252.0]
+
+
+def test_read_results_refuses_other_files(tmp_path):
+    from latticeread.io import read_results
+
+    with h5py.File(tmp_path / "y.h5", "w") as f:
+        f["a"] = 1
+    with pytest.raises(FrameFileError, match="not a latticeread results file"):
+        read_results(tmp_path / "y.h5")
+
+
+def test_long_and_undecodable_text_round_trips_or_is_marked_cut(tmp_path):
+    path = tmp_path / "run.h5"
+    odd = "/data/" + "\udcff" + "odd.tif"  # a file name that is not UTF-8, as os.fsdecode gives it
+    long_warning = "w" * 5000
+    rec = _record(0)
+    rec = ShotRecord(**{**rec.__dict__, "key": ShotKey(odd, "ab" * 16, 0), "warnings": (long_warning,)})
+    with RunWriter(path, calibration_json=CAL) as w:
+        w.append(rec)
+    run = read_run(path)
+    assert run.source.tolist() == [odd]
+    (warning,) = run.warnings[0]
+    assert warning.endswith(" [cut]") and len(warning.encode()) <= 4096
+
+
+def test_version_1_file_is_read_and_converted_on_resume(tmp_path):
+    """A run file of the earlier layout (counters in attributes, variable-length strings)."""
+    path = tmp_path / "old.h5"
+    rec = _record(0)
+    text = h5py.string_dtype("utf-8")
+    with h5py.File(path, "w") as f:
+        f.attrs.update(format=RUN_FORMAT, format_version=1, program_version="0.0", calibration=CAL, created="x",
+                       metadata="{}", n_shots=1, n_failures=0)
+        s = f.create_group("shots")
+        for name, value in (("source", [rec.key.source]), ("file_hash", [rec.key.file_hash]), ("warnings", [""])):
+            s.create_dataset(name, data=value, dtype=text, maxshape=(None,))
+        s["frame_index"] = [0]
+        for name in ("offset", "a1", "a2"):
+            s[name] = [getattr(rec, name)]
+        for name in ("threshold", "false_positive_rate", "false_negative_rate", "filling", "peak_to_background",
+                     "lattice_residual", "written_at"):
+            s[name] = [float(getattr(rec, name, 0.0))]
+        s["n_sites"], s["n_occupied"] = [rec.n_sites], [rec.n_occupied]
+        g = f.create_group("failures")
+        for name in ("source", "file_hash", "error", "reason"):
+            g.create_dataset(name, shape=(0,), dtype=text, maxshape=(None,))
+        g.create_dataset("frame_index", shape=(0,), dtype=np.int64, maxshape=(None,))
+        g.create_dataset("resolved", shape=(0,), dtype=bool, maxshape=(None,))
+        g.create_dataset("written_at", shape=(0,), dtype=float, maxshape=(None,))
+        for name in ("occupation", "amplitude", "p_occupied", "x", "y", "flags"):
+            f[name] = getattr(rec, name)[None]
+    assert read_run(path).keys == [rec.key]
+    with RunWriter(path, calibration_json=CAL) as w:
+        assert w.done == {rec.key}
+        w.append(_record(1))
+    run = read_run(path)
+    assert run.frame_index.tolist() == [0, 1]
+    np.testing.assert_array_equal(run.amplitude[0], rec.amplitude)
+    with h5py.File(path, "r") as f:
+        assert f.attrs["format_version"] == 2

@@ -16,6 +16,7 @@ from latticeread.io.export import (
     write_occupation_hdf5,
     write_sites_csv,
 )
+from latticeread.io.results import read_results
 from latticeread.io.run_file import RunData, read_run
 
 __all__ = [
@@ -38,4 +39,5 @@ __all__ = [
     "OccupationFile",
     "read_run",
     "RunData",
+    "read_results",
 ]

@@ -217,12 +217,30 @@ def sidecar_path(path) -> Path:
 # --- CSV ------------------------------------------------------------------------------------
 
 def _fmt_float(values: np.ndarray) -> list[str]:
-    # repr(float) is the shortest text that reads back to the same double ("nan" for NaN)
-    return [repr(v) for v in values.tolist()]
+    # repr(float) is the shortest text that reads back to the same double ("nan" for NaN);
+    # map() runs it in a C loop, without a Python frame per value.
+    return list(map(repr, values.tolist()))
+
+
+#: Text of the small integers (indices, 0/1, flags), looked up instead of formatted.
+_SMALL_INTS = np.array([str(i) for i in range(4096)], dtype=object)
 
 
 def _fmt_int(values: np.ndarray) -> list[str]:
-    return [str(v) for v in values.tolist()]
+    values = np.asarray(values)
+    if values.size and values.min() >= 0 and values.max() < _SMALL_INTS.size:
+        return _SMALL_INTS[values.astype(np.intp)].tolist()
+    return list(map(str, values.tolist()))
+
+
+def _csv_block(f: "_Frame") -> str:
+    """The rows of one frame as one string: columns formatted whole, rows joined in C loops."""
+    n = f.rows.size
+    if n == 0:
+        return ""
+    columns = [[str(f.index)] * n, _fmt_int(f.rows), _fmt_int(f.cols), _fmt_float(f.x), _fmt_float(f.y),
+               _fmt_float(f.amplitude), _fmt_int(f.occupied), _fmt_float(f.p_occupied), _fmt_int(f.flags)]
+    return "\n".join(map(",".join, zip(*columns))) + "\n"
 
 
 def write_sites_csv(path, results: Iterable, *, calibration=None, metadata: Mapping | None = None,
@@ -275,12 +293,8 @@ def write_sites_csv(path, results: Iterable, *, calibration=None, metadata: Mapp
             f = _read_result(result, position)
             if f.warnings:
                 warnings_by_frame[str(f.index)] = list(f.warnings)
-            n = f.rows.size
-            frame_col = [str(f.index)] * n
-            cols = zip(frame_col, _fmt_int(f.rows), _fmt_int(f.cols), _fmt_float(f.x), _fmt_float(f.y),
-                       _fmt_float(f.amplitude), _fmt_int(f.occupied), _fmt_float(f.p_occupied), _fmt_int(f.flags))
-            fh.writelines(",".join(r) + "\n" for r in cols)
-            n_rows += n
+            fh.write(_csv_block(f))
+            n_rows += f.rows.size
             n_frames += 1
         settings["n_frames"] = n_frames
         settings["n_rows"] = n_rows
