@@ -81,6 +81,14 @@ class SimulationTruth:
         Background photons per pixel.
     photons_per_atom : float
         Mean detected photons of an atom present for the whole exposure.
+    settings : dict
+        The simulation's options.
+    artefacts : dict of ndarray
+        Charge that did not come through the objective (empty when none was simulated):
+        ``hot_pixel_index`` (flat pixel index ``row * width + col``) and
+        ``hot_pixel_electrons`` (mean dark electrons per exposure, Poisson in every frame);
+        ``cosmic_frame``, ``cosmic_index``, ``cosmic_electrons`` (electrons deposited in
+        each pixel of each hit) and ``cosmic_hit`` (hit number, one per track or blob).
     """
 
     geometry: LatticeGeometry
@@ -99,6 +107,7 @@ class SimulationTruth:
     background: float = 0.0
     photons_per_atom: float = 0.0
     settings: dict = field(default_factory=dict)
+    artefacts: dict = field(default_factory=dict, repr=False)
 
     @property
     def n_frames(self) -> int:
@@ -303,12 +312,29 @@ def _expose(occupied: np.ndarray, brightness: np.ndarray, neighbours: np.ndarray
     return final, shine, lost, target, carried
 
 
-def apply_camera(photon_image: np.ndarray, camera: CameraModel, *, rng=None) -> np.ndarray:
-    """Turn a mean photon image (photons per pixel) into a uint16 camera frame (counts)."""
+def apply_camera(photon_image: np.ndarray, camera: CameraModel, *, rng=None, dark_electrons=None,
+                 deposited_electrons=None) -> np.ndarray:
+    """Turn a mean photon image (photons per pixel) into a uint16 camera frame (counts).
+
+    Parameters
+    ----------
+    photon_image : (H, W) ndarray
+        Mean photons per pixel reaching the sensor.
+    camera : CameraModel
+    rng : int or numpy.random.Generator
+    dark_electrons : (H, W) ndarray, optional
+        Mean dark charge per pixel, electrons (hot pixels); Poisson like the photoelectrons.
+    deposited_electrons : (H, W) ndarray, optional
+        Charge deposited directly in the pixels, electrons (cosmic-ray hits); added as is.
+    """
     rng = np.random.default_rng(rng)
     mean_e = np.clip(photon_image, 0, None) * camera.quantum_efficiency
+    if dark_electrons is not None:
+        mean_e = mean_e + np.clip(dark_electrons, 0, None)
     if camera.kind == "emccd":
         electrons = rng.poisson(mean_e + camera.clock_induced_charge)
+        if deposited_electrons is not None:
+            electrons = electrons + np.rint(np.clip(deposited_electrons, 0, None)).astype(electrons.dtype)
         amplified = np.zeros(electrons.shape)
         hit = electrons > 0
         if camera.em_gain > 1:
@@ -319,6 +345,8 @@ def apply_camera(photon_image: np.ndarray, camera: CameraModel, *, rng=None) -> 
         offset = camera.bias
     else:
         electrons = rng.poisson(mean_e).astype(float)
+        if deposited_electrons is not None:
+            electrons = electrons + np.clip(deposited_electrons, 0, None)
         gain = camera.counts_per_electron if camera.gain_map is None else camera.counts_per_electron * camera.gain_map
         signal = electrons * gain
         offset = camera.bias if camera.offset_map is None else camera.offset_map
@@ -333,7 +361,8 @@ def simulate_frames(*, geometry: LatticeGeometry, frame_shape=(256, 256), psf: P
                     brightness_spread: float = 0.0, background: float = 0.0, n_shots: int = 1,
                     images_per_shot: int = 1, loss_probability: float = 0.0, hop_probability: float = 0.0,
                     phase_jitter: float = 0.0, phase_drift=(0.0, 0.0), edge_radius: float | None = None,
-                    margin: float | None = None, rng=None):
+                    margin: float | None = None, hot_pixels: int = 0, hot_pixel_electrons=(50.0, 3000.0),
+                    cosmic_rays: float = 0.0, cosmic_electrons=(500.0, 3000.0), rng=None):
     """Simulate camera frames of atoms in a lattice, and record the truth.
 
     Parameters
@@ -362,6 +391,13 @@ def simulate_frames(*, geometry: LatticeGeometry, frame_shape=(256, 256), psf: P
         RMS random displacement of the lattice per frame, pixels (each axis).
     phase_drift : (float, float)
         Linear displacement of the lattice per frame, pixels ``(dx, dy)``.
+    hot_pixels : int
+        Number of hot pixels: a dark charge (electrons, log-uniform over
+        ``hot_pixel_electrons``) at the same pixels in every frame, Poisson per frame
+        (:func:`latticeread.core.simulate_features.hot_pixels`).
+    cosmic_rays : float
+        Mean number of cosmic-ray hits per frame (streaks and blobs, total charge log-uniform
+        over ``cosmic_electrons`` electrons; :func:`latticeread.core.simulate_features.cosmic_rays`).
     rng : int or numpy.random.Generator
 
     Returns
@@ -399,6 +435,16 @@ def simulate_frames(*, geometry: LatticeGeometry, frame_shape=(256, 256), psf: P
     geometries = []
     drift = np.asarray(phase_drift, float)
     shape_k = 1.0 / brightness_spread**2 if brightness_spread > 0 else None
+    artefacts: dict = {}
+    dark = None
+    if hot_pixels:
+        from latticeread.core.simulate_features import hot_pixels as draw_hot_pixels
+
+        index, mean = draw_hot_pixels(frame_shape, n=hot_pixels, electrons=hot_pixel_electrons, rng=rng)
+        artefacts.update(hot_pixel_index=index, hot_pixel_electrons=mean)
+        dark = np.zeros(frame_shape)
+        dark.ravel()[index] = mean
+    cosmic_parts: list = []
     for shot in range(n_shots):
         occ = make_occupation(sites, pattern=pattern, filling=filling, occupation=occupation,
                               edge_radius=edge_radius, rng=rng)
@@ -416,9 +462,23 @@ def simulate_frames(*, geometry: LatticeGeometry, frame_shape=(256, 256), psf: P
             x = sites.x + shift[0] if np.ndim(shift) else sites.x
             y = sites.y + shift[1] if np.ndim(shift) else sites.y
             photon_image = render_sites(frame_shape, x, y, photons[f], psf) + background
-            frames[f] = apply_camera(photon_image, camera, rng=rng)
+            deposited = None
+            if cosmic_rays:
+                from latticeread.core.simulate_features import cosmic_rays as draw_cosmic_rays
+
+                index, charge, hit = draw_cosmic_rays(frame_shape, rate=cosmic_rays, electrons=cosmic_electrons,
+                                                      rng=rng)
+                cosmic_parts.append((np.full(index.size, f, np.int64), index, charge, hit))
+                deposited = np.zeros(frame_shape)
+                np.add.at(deposited.ravel(), index, charge)
+            frames[f] = apply_camera(photon_image, camera, rng=rng, dark_electrons=dark,
+                                     deposited_electrons=deposited)
             final[f] = fin
             occ = fin
+    if cosmic_rays:
+        for key, part in zip(("cosmic_frame", "cosmic_index", "cosmic_electrons", "cosmic_hit"),
+                             zip(*cosmic_parts)):
+            artefacts[key] = np.concatenate(part)
     truth = SimulationTruth(
         geometry=geometry, geometries=tuple(geometries), sites=sites, psf=psf, camera=camera,
         frame_shape=frame_shape, n_shots=n_shots, images_per_shot=images_per_shot,
@@ -427,7 +487,10 @@ def simulate_frames(*, geometry: LatticeGeometry, frame_shape=(256, 256), psf: P
         settings={"filling": filling, "pattern": pattern, "brightness_spread": brightness_spread,
                   "loss_probability": loss_probability, "hop_probability": hop_probability,
                   "phase_jitter": phase_jitter, "phase_drift": list(map(float, drift)),
-                  "region": None if region is None else (list(region) if isinstance(region, tuple) else "mask")},
+                  "region": None if region is None else (list(region) if isinstance(region, tuple) else "mask"),
+                  "hot_pixels": int(hot_pixels), "hot_pixel_electrons": list(map(float, hot_pixel_electrons)),
+                  "cosmic_rays": float(cosmic_rays), "cosmic_electrons": list(map(float, cosmic_electrons))},
+        artefacts=artefacts,
     )
     return frames, truth
 
