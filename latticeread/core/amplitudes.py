@@ -596,7 +596,7 @@ class SiteBasis:
         return (float(best[0]), float(best[1])), it
 
     # --- flags ---------------------------------------------------------------------------
-    def flags(self, *, offset=None, saturated=None, nonfinite=None) -> np.ndarray:
+    def flags(self, *, offset=None, saturated=None, nonfinite=None, artefacts=None) -> np.ndarray:
         """Per-site flags (uint8) for a frame with the given offset and bad pixels."""
         key = self._shift(offset)
         if getattr(self, "_flags_key", None) != key:
@@ -612,10 +612,12 @@ class SiteBasis:
             out[self._sample(self._spline(saturated), offset) > BAD_PIXEL_FRACTION] |= site_flags.SATURATED
         if nonfinite is not None:
             out[self._sample(self._spline(nonfinite), offset) > BAD_PIXEL_FRACTION] |= site_flags.NONFINITE
+        if artefacts is not None:
+            out[self._sample(self._spline(artefacts), offset) > BAD_PIXEL_FRACTION] |= site_flags.ARTEFACT
         return out
 
     # --- whole-frame estimators ------------------------------------------------------------
-    def linear(self, image, *, offset=None, saturated=None) -> AmplitudeResult:
+    def linear(self, image, *, offset=None, saturated=None, artefacts=None) -> AmplitudeResult:
         """Least-squares amplitudes of one frame (see module notes).
 
         Parameters
@@ -626,10 +628,14 @@ class SiteBasis:
             Lattice offset of this frame in pixels.
         saturated : (H, W) ndarray of bool, optional
             Pixels that reached the camera's saturation value (left out and flagged).
+        artefacts : (H, W) ndarray of bool, optional
+            Cosmic-ray hits and hot pixels (:mod:`latticeread.core.artefacts`): left out, and
+            their sites flagged ARTEFACT.
         """
-        return self._run(image, offset=offset, saturated=saturated, refine_level=None)
+        return self._run(image, offset=offset, saturated=saturated, artefacts=artefacts, refine_level=None)
 
-    def nonlinear(self, image, *, atom_photons, offset=None, saturated=None, max_iter: int = 200) -> AmplitudeResult:
+    def nonlinear(self, image, *, atom_photons, offset=None, saturated=None, artefacts=None,
+                  max_iter: int = 200) -> AmplitudeResult:
         """Linear amplitudes refined with the binary occupation (see module notes).
 
         Parameters
@@ -645,8 +651,8 @@ class SiteBasis:
         if not np.isfinite(atom_photons) or atom_photons <= 0:
             raise ReconstructionError(f"the binary refinement needs the photons of one atom as a positive number, "
                                       f"got {atom_photons}")
-        return self._run(image, offset=offset, saturated=saturated, refine_level=float(atom_photons),
-                         max_iter=max_iter)
+        return self._run(image, offset=offset, saturated=saturated, artefacts=artefacts,
+                         refine_level=float(atom_photons), max_iter=max_iter)
 
     def binary_energy(self, image, *, atom_photons, offset=None) -> float:
         """Lowest squared residual (photons^2, up to a constant) of binary patterns of fixed brightness.
@@ -664,7 +670,7 @@ class SiteBasis:
         with self._one_thread():
             return self._run_frame(image, **kwargs)
 
-    def _run_frame(self, image, *, offset, saturated, refine_level, max_iter=200) -> AmplitudeResult:
+    def _run_frame(self, image, *, offset, saturated, refine_level, max_iter=200, artefacts=None) -> AmplitudeResult:
         image = _as_image(image, self.frame_shape)
         image = image.astype(float, copy=False)
         warnings = []
@@ -677,9 +683,16 @@ class SiteBasis:
             if saturated.shape != self.frame_shape:
                 raise ReconstructionError(f"saturation mask is {saturated.shape} but the frame is {self.frame_shape}")
             saturated = saturated if saturated[self.crop].any() else None
+        if artefacts is not None:
+            artefacts = np.asarray(artefacts, dtype=bool)
+            if artefacts.shape != self.frame_shape:
+                raise ReconstructionError(f"artefact mask is {artefacts.shape} but the frame is {self.frame_shape}")
+            artefacts = artefacts if artefacts[self.crop].any() else None
         bad = None
-        if nonfinite is not None or saturated is not None:
+        if nonfinite is not None or saturated is not None or artefacts is not None:
             bad = np.zeros(self.frame_shape, bool)
+            if artefacts is not None:
+                bad |= artefacts
             if nonfinite is not None:
                 bad |= nonfinite
                 warnings.append(f"{int(nonfinite.sum())} non-finite pixel(s) were left out of the fit")
@@ -712,7 +725,7 @@ class SiteBasis:
         if refine_level is not None:
             amps, iterations = self._refine(c, d, amps, bg, atom=refine_level, correction=correction,
                                             max_iter=max_iter)
-        flags = self.flags(offset=offset, saturated=saturated, nonfinite=nonfinite)
+        flags = self.flags(offset=offset, saturated=saturated, nonfinite=nonfinite, artefacts=artefacts)
         x, y = self.positions(offset)
         return AmplitudeResult(amplitudes=amps, background=self.background_level(bg), flags=flags, x=x, y=y,
                                method="linear" if refine_level is None else "nonlinear",

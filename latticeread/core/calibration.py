@@ -151,6 +151,9 @@ class ReconstructionOptions:
         How the lattice offset is re-found in each frame.
     refit_phase : bool
         Re-find the lattice offset in every frame (True) or use the calibration's offset.
+    hot_pixels : tuple of (row, col)
+        Pixels left out of every fit (hot pixels found in the calibration stack,
+        :func:`latticeread.core.artefacts.find_hot_pixels`); their sites are flagged ARTEFACT.
     """
 
     weighting: str = "none"
@@ -159,6 +162,7 @@ class ReconstructionOptions:
     reference: ReferenceImage | None = None
     phase_method: str = "model"
     refit_phase: bool = True
+    hot_pixels: tuple = ()
 
     def __post_init__(self):
         if self.weighting not in _WEIGHTINGS:
@@ -178,6 +182,11 @@ class ReconstructionOptions:
         object.__setattr__(self, "index_bounds", bounds)
         object.__setattr__(self, "photons_per_atom", _optional_positive(self.photons_per_atom, "photons per atom"))
         object.__setattr__(self, "refit_phase", bool(self.refit_phase))
+        try:
+            hot = tuple((int(r), int(c)) for r, c in (self.hot_pixels or ()))
+        except (TypeError, ValueError) as exc:
+            raise CalibrationError(f"hot pixels must be [row, col] pairs, got {self.hot_pixels!r}") from exc
+        object.__setattr__(self, "hot_pixels", hot)
         if self.reference is not None and not isinstance(self.reference, ReferenceImage):
             object.__setattr__(self, "reference", ReferenceImage.from_dict(self.reference))
 
@@ -189,7 +198,8 @@ class ReconstructionOptions:
                 "index_bounds": None if self.index_bounds is None else list(self.index_bounds),
                 "photons_per_atom": self.photons_per_atom,
                 "reference": None if self.reference is None else self.reference.to_dict(),
-                "phase_method": self.phase_method, "refit_phase": self.refit_phase}
+                "phase_method": self.phase_method, "refit_phase": self.refit_phase,
+                "hot_pixels": [list(p) for p in self.hot_pixels]}
 
     @classmethod
     def from_dict(cls, data: dict) -> "ReconstructionOptions":

@@ -31,6 +31,15 @@ from latticeread.core.amplitudes import (
     cell_labels,
     deconvolution_amplitudes,
 )
+from latticeread.core.artefacts import (
+    ARTEFACT_WARNING,
+    ArtefactFinder,
+    PixelModel,
+    clean_stack,
+    fill_pixels,
+    hot_pixel_mask,
+    model_fill,
+)
 from latticeread.core.calibration import Calibration, ReconstructionOptions, ReferenceImage
 from latticeread.core.camera import CameraModel
 from latticeread.core.classify import ThresholdResult, classify, select_threshold
@@ -225,6 +234,10 @@ class Reconstructor:
         options = calibration.options
         phase_method = options.phase_method if phase_method is None else phase_method
         refit_phase = options.refit_phase if refit_phase is None else refit_phase
+        hot = hot_pixel_mask(options.hot_pixels, shape)
+        if hot.any():  # hot pixels are left out once, in the factorisation
+            mask = ~hot if mask is None else mask & ~hot
+        self.hot_pixels = hot if hot.any() else None
         if phase_method not in ("model", "fourier"):
             raise CalibrationError(f"unknown phase method {phase_method!r}; use 'model' or 'fourier'")
         if weighting is None:
@@ -268,6 +281,7 @@ class Reconstructor:
             atom = 2.0 * float(calibration.threshold)
         self.atom_photons = None if atom is None or not np.isfinite(atom) or atom <= 0 else float(atom)
         self._last_offset = calibration.geometry.offset
+        self.artefacts = ArtefactFinder(calibration, shape, crop=self.basis.crop)
 
     # --- steps ------------------------------------------------------------------------------
     def _check(self, image, where: str) -> np.ndarray:
@@ -385,25 +399,34 @@ class Reconstructor:
         image = self._check(image, where)
         photons = self._photons(image)
         saturated = self._saturated(image)
-        geometry, warnings, poor = self._frame_geometry(photons)
+        art, filled, art_warnings = self.artefacts(photons)
+        geometry, warnings, poor = self._frame_geometry(filled)
+        warnings = warnings + art_warnings
         offset = geometry.offset
-        if self.method == "linear":
-            amp = self.basis.linear(photons, offset=offset, saturated=saturated)
+        if art is not None and self.method in ("linear", "nonlinear"):
+            amp = self._fit_around(photons, filled, art, offset=offset, saturated=saturated)
+        elif self.method == "linear":
+            amp = self.basis.linear(photons, offset=offset, saturated=saturated, artefacts=self.hot_pixels)
         elif self.method == "nonlinear":
             atom = self.atom_photons
             if atom is None:
-                lin = self.basis.linear(photons, offset=offset, saturated=saturated)
+                lin = self.basis.linear(photons, offset=offset, saturated=saturated, artefacts=self.hot_pixels)
                 tr = select_threshold(lin.amplitudes, method="mixture", camera=self.camera, flags=lin.flags)
                 atom = tr.occupied_mean if np.isfinite(tr.occupied_mean) else np.nan
                 if not np.isfinite(atom) or atom <= 0:
                     warnings.append("no atoms found for the binary refinement; linear amplitudes were used")
                     amp = lin
                 else:
-                    amp = self.basis.nonlinear(photons, atom_photons=atom, offset=offset, saturated=saturated)
+                    amp = self.basis.nonlinear(photons, atom_photons=atom, offset=offset, saturated=saturated,
+                                               artefacts=self.hot_pixels)
             else:
-                amp = self.basis.nonlinear(photons, atom_photons=atom, offset=offset, saturated=saturated)
+                amp = self.basis.nonlinear(photons, atom_photons=atom, offset=offset, saturated=saturated,
+                                           artefacts=self.hot_pixels)
         else:
             photons = self.camera.counts_to_photons(image)  # deconvolution works on the whole frame
+            bad = art if self.hot_pixels is None else (self.hot_pixels if art is None else art | self.hot_pixels)
+            if bad is not None:
+                photons = fill_pixels(photons, bad)
             labels = cell_labels(geometry, _with_positions(self.sites, *self.basis.positions(offset)),
                                  self.frame_shape)
             amp = deconvolution_amplitudes(photons, basis=self.basis, method=self.method, offset=offset,
@@ -413,6 +436,30 @@ class Reconstructor:
             flags = flags | np.uint8(site_flags.POOR_FIT)
             amp = dataclasses.replace(amp, flags=flags)
         return geometry, amp, tuple(warnings) + amp.warnings
+
+    def _fit_around(self, photons, filled, art, *, offset, saturated, steps: int = 2) -> AmplitudeResult:
+        """Amplitudes with this frame's cosmic-ray pixels left out, by filling them with the fit.
+
+        A low-rank update of the factorisation per hit pixel would be exact but costs a banded
+        solve per pixel; filling the pixels with the model's prediction and refitting
+        (:func:`latticeread.core.artefacts.model_fill`) converges to the same fit in a few
+        steps at the cost of one fit each.
+        """
+        def fit(image):
+            if self.method == "nonlinear" and self.atom_photons is not None:
+                return self.basis.nonlinear(image, atom_photons=self.atom_photons, offset=offset,
+                                            saturated=saturated, artefacts=self.hot_pixels)
+            return self.basis.linear(image, offset=offset, saturated=saturated, artefacts=self.hot_pixels)
+
+        if getattr(self, "_pixel_model", None) is None:
+            self._pixel_model = PixelModel(self.calibration.psf)
+        amp = fit(filled)
+        for _ in range(steps):
+            filled = model_fill(photons, art, x=amp.x, y=amp.y, amplitudes=amp.amplitudes,
+                                background=amp.background, model=self._pixel_model)
+            amp = fit(filled)
+        flags = amp.flags | (self.basis.flags(offset=offset, artefacts=art) & np.uint8(site_flags.ARTEFACT))
+        return dataclasses.replace(amp, flags=flags)
 
     def extract(self, image):
         """The heavy step: ``(geometry, amplitudes (photons), flags)`` of one frame in counts."""
@@ -670,6 +717,10 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
     finite = np.isfinite(photons)
     clean = np.where(finite, photons, np.nanmedian(photons)) if not finite.all() else photons
     notes: dict = {"n_frames_used": int(len(chosen))}
+    # cosmic-ray hits and hot pixels would pass for atoms in the lattice, region and PSF estimates
+    raw_clean = clean
+    cleaned = clean_stack(raw_clean, psf=psf, camera=camera)
+    clean = cleaned.frames
     if geometry is None:
         geometry = _geometry_from_frames(clean, psf=psf, prior=lattice_prior, n_fit=refine_frames, notes=notes)
         notes["geometry_estimated"] = True
@@ -694,6 +745,13 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
                                       "why": str(exc)}
             psf_warnings.extend(fitted.warnings)
         notes["psf_estimated"] = True
+        # the measured PSF also catches streaks and blobs that a sharp first guess lets through
+        cleaned = clean_stack(raw_clean, psf=psf, camera=camera, known=cleaned.hot)
+        clean = cleaned.frames
+    hot = np.argwhere(cleaned.hot)
+    notes["artefacts"] = {"hot_pixels": int(len(hot)), "cosmic_ray_hits": cleaned.n_hits,
+                          "pixels_filled": cleaned.n_pixels, "n_frames": int(len(chosen))}
+    hot_pixels = tuple(map(tuple, hot.tolist()))
     if refine_vectors and "geometry_from_prior" not in notes:  # the prior path is a model fit already
         geometry = _refine_vectors(clean, geometry, psf=psf, n_fit=refine_frames, notes=notes,
                                    warnings=psf_warnings)
@@ -709,7 +767,7 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
     first_bounds = _bright_region(clean, geometry=geometry, psf=psf) if restrict_region else None
     draft = Calibration(geometry=geometry, psf=psf, camera=camera, frame_shape=shape, threshold=None,
                         threshold_method=threshold_method, amplitude_method="linear", pixel_size_nm=pixel_size_nm,
-                        options=ReconstructionOptions(index_bounds=first_bounds))
+                        options=ReconstructionOptions(index_bounds=first_bounds, hot_pixels=hot_pixels))
     rec = Reconstructor(draft, method="linear", mask=mask, refit_phase=True)
     pooled, pooled_flags, warnings = _pooled(rec, chosen)
     tr = select_threshold(pooled, method=threshold_method, camera=camera, flags=pooled_flags)
@@ -880,7 +938,8 @@ def _pooled(rec: Reconstructor, frames, *, atoms: bool = False):
         _, amp, warn = rec.extract_full(frame, where=f"calibration frame {i}")
         amps.append(amp.amplitudes)
         flags.append(amp.flags)
-        warnings.extend(warn)
+        # the calibration summarises cosmic-ray hits in notes["artefacts"] instead of one line per frame
+        warnings.extend(w for w in warn if not w.startswith(ARTEFACT_WARNING))
         if atoms and amp.method == "nonlinear" and getattr(rec.basis, "last_atom_photons", None):
             fitted.append(float(rec.basis.last_atom_photons))
     out = (np.concatenate(amps), np.concatenate(flags), sorted(set(warnings)))

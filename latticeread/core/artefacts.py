@@ -1,0 +1,603 @@
+"""Cosmic-ray hits and hot pixels: charge that did not come through the objective.
+
+A cosmic-ray hit deposits charge in one pixel, a short streak or a small blob; a hot pixel
+collects dark charge in every frame at the same place. Neither looks like the image of an
+atom: the PSF is blurred by the optics over several pixels, so no pixel of an image made of
+atoms can stand out from its neighbours by more than the PSF allows.
+
+The shape test
+--------------
+With the five-point Laplacian ``L(p) = 4 v(p) - sum of the 4 neighbours`` (pixels, photons),
+every pixel-integrated PSF stamp satisfies ``L(p) <= k v(p)`` on its bright part, where
+``k = sharpness(psf)`` is the largest ratio over sub-pixel source positions (about 0.26 for a
+FWHM of 6.3 pixels, 1.2 for 2.7 pixels, 1.85 for 2 pixels). As ``L`` is linear, any sum of
+atoms on a smooth background ``b`` obeys the same bound with ``v - b``. A pixel with
+
+    L(p) - k (v(p) - b(p)) > n_sigma * sigma_L(p)
+
+is charge no PSF can make (``sigma_L`` is the standard deviation of ``L`` from the camera's
+noise model, :meth:`CameraModel.photon_variance`, for independent pixels). An isolated pixel
+has ``L = 4 v``, a one-pixel-wide streak ``L = 2 v``, a blob of Gaussian radius 1 pixel
+``L = 1.6 v``: all far above ``k`` for PSFs wider than about 3 pixels. For a PSF near 2
+pixels FWHM a small blob cannot be told from an atom by shape alone.
+
+This is the idea of the Laplacian cosmic-ray detector of van Dokkum (PASP 113, 1420 (2001);
+from memory), with the fine-structure image replaced by the PSF's own bound ``k``.
+
+Detected pixels are grown into their surroundings (the faint edge of a blob or streak:
+connected pixels more than ``grow_sigma`` standard deviations above the local median) and
+then left out of the site fit; the sites they touch are flagged ARTEFACT
+(:mod:`latticeread.core.flags`). Hot pixels are pixels that fail the test in most frames of a
+stack (:func:`find_hot_pixels`), or that a dark-frame analysis found
+(``latticeread camera --bad-pixels``).
+"""
+
+from __future__ import annotations
+
+import logging
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import ndimage
+from skimage.filters import apply_hysteresis_threshold
+
+from latticeread.core.camera import CameraModel
+from latticeread.core.psf import PSFModel
+
+__all__ = ["ArtefactResult", "ArtefactFinder", "CleanedStack", "clean_stack", "model_fill", "PixelModel", "ARTEFACT_WARNING", "hot_pixel_mask", "sharpness", "bounds", "SCALES", "find_artefacts", "find_hot_pixels", "fill_pixels",
+           "SHARPEST_FWHM"]
+
+log = logging.getLogger(__name__)
+
+#: Narrowest PSF FWHM (pixels) assumed when the PSF is not known yet (a first pass before the
+#: PSF has been measured); its bound ``k`` is about 1.85.
+SHARPEST_FWHM = 2.0
+
+#: Smoothing filters of the shape test: none (single pixels), a Gaussian of 1 pixel (small
+#: blobs) and three-pixel lines along rows, columns and both diagonals (faint streaks).
+SCALES = ("pixel", "blob", "row", "column", "diagonal", "antidiagonal")
+
+#: Start of the per-frame warning about cosmic-ray hits (calibration summarises them instead).
+ARTEFACT_WARNING = "cosmic-ray hits"
+
+_FIVE_POINT = np.array([[0.0, -1.0, 0.0], [-1.0, 4.0, -1.0], [0.0, -1.0, 0.0]])
+_NEIGHBOURS = np.array([[0.0, 1.0, 0.0], [1.0, 0.0, 1.0], [0.0, 1.0, 0.0]])
+
+
+@dataclass(frozen=True)
+class ArtefactResult:
+    """Pixels of one frame holding charge that is not the image of atoms.
+
+    Attributes
+    ----------
+    mask : (H, W) ndarray of bool
+        Pixels to leave out of the fit (detected pixels and their grown surroundings).
+    n_hits : int
+        Connected groups of detected pixels (cosmic-ray hits, and hot pixels not given as
+        ``known``).
+    n_pixels : int
+        ``mask.sum()``.
+    charge : float
+        Photons above the local background inside the mask (a rough size of the hits).
+    """
+
+    mask: np.ndarray = field(repr=False)
+    n_hits: int = 0
+    n_pixels: int = 0
+    charge: float = 0.0
+
+
+def _filters(scale: str, radius: int = 4):
+    """Kernels ``G`` (the smoothing named ``scale``) and ``F`` = five-point Laplacian of ``G``."""
+    g = np.zeros((2 * radius + 1, 2 * radius + 1))
+    c = radius
+    if scale == "pixel":
+        g[c, c] = 1.0
+    elif scale == "blob":
+        g[c, c] = 1.0
+        g = ndimage.gaussian_filter(g, 1.0, mode="constant")
+    elif scale == "row":
+        g[c, c - 1:c + 2] = 1.0 / 3
+    elif scale == "column":
+        g[c - 1:c + 2, c] = 1.0 / 3
+    elif scale == "diagonal":
+        g[[c - 1, c, c + 1], [c - 1, c, c + 1]] = 1.0 / 3
+    elif scale == "antidiagonal":
+        g[[c - 1, c, c + 1], [c + 1, c, c - 1]] = 1.0 / 3
+    else:
+        raise ValueError(f"unknown filter {scale!r}; use one of {', '.join(SCALES)}")
+    return g, ndimage.convolve(g, _FIVE_POINT, mode="constant")
+
+
+def _ratio(stamps, scale: float, floor: float) -> float:
+    g, f = _filters(scale)
+    best = 0.0
+    for stamp in stamps:
+        num = ndimage.convolve(stamp, f, mode="constant")
+        den = ndimage.convolve(stamp, g, mode="constant")
+        bright = den >= floor * den.max()
+        best = max(best, float(np.max(num[bright] / den[bright])))
+    return best
+
+
+def _stamps(psf: PSFModel, n_shifts: int) -> np.ndarray:
+    shifts = np.linspace(-0.5, 0.5, int(n_shifts))
+    dx, dy = np.meshgrid(shifts, shifts)
+    return psf.stamps(dx.ravel(), dy.ravel())
+
+
+def sharpness(psf: PSFModel, *, scale: str = "pixel", n_shifts: int = 5, floor: float = 0.05) -> float:
+    """Largest ``F(p) / G(p)`` over the pixel-integrated PSF (see the module notes).
+
+    Parameters
+    ----------
+    psf : PSFModel
+    scale : str
+        Smoothing of both filters, one of :data:`SCALES`; ``"pixel"`` is the plain five-point
+        Laplacian over the pixel value.
+    n_shifts : int
+        Sub-pixel source positions per axis tried over [-0.5, 0.5] pixel.
+    floor : float
+        Only pixels holding at least this fraction of the smoothed stamp's peak enter (the
+        faint wings carry too little light to matter next to the noise margin).
+
+    Returns
+    -------
+    float
+        The bound ``k`` (dimensionless; 4 would be a single bright pixel for ``"pixel"``).
+    """
+    return _ratio(_stamps(psf, n_shifts), scale, floor)
+
+
+def bounds(psf: PSFModel) -> tuple[float, ...]:
+    """:func:`sharpness` of ``psf`` at each of :data:`SCALES` (compute once per PSF)."""
+    stamps = _stamps(psf, 5)
+    return tuple(_ratio(stamps, s, 0.05) for s in SCALES)
+
+
+def _background(image, block: int) -> np.ndarray:
+    """Smooth low background: the 20th percentile of blocks of ``block`` pixels, interpolated."""
+    h, w = image.shape
+    block = max(1, min(int(block), h, w))
+    hb, wb = h // block, w // block
+    crop = image[:hb * block, :wb * block].reshape(hb, block, wb, block).transpose(0, 2, 1, 3)
+    low = np.percentile(crop.reshape(hb, wb, -1), 20, axis=2)
+    if hb == 1 and wb == 1:
+        return np.full(image.shape, float(low[0, 0]))
+    return ndimage.zoom(low, (h / hb, w / wb), order=1, mode="nearest", grid_mode=True)
+
+
+def _excess(image, *, ks, camera: CameraModel, block: int, scales=SCALES):
+    """Largest ``(F v - k (G v - b)) / sigma`` over the filters, per pixel; and the background ``b``.
+
+    For ``"pixel"`` the noise is exact for independent pixels; for the smoothing filters the
+    variance is taken as the smoothed variance times the filter's squared norm (it varies
+    slowly over the filter's few pixels). For ``"blob"`` only local maxima of the smoothed
+    image count (the centres of blobs; their edges are grown afterwards), so that the
+    smoothing does not spread a detection over its neighbours.
+    """
+    bg = _background(image, block)
+    lap = ndimage.convolve(image, _FIVE_POINT, mode="nearest")
+    var = camera.photon_variance(image)
+    best = None
+    for scale, k in zip(scales, ks):
+        g, f = _filters(scale)
+        if scale == "pixel":
+            score = (lap - k * (image - bg)) / np.sqrt(np.maximum(
+                (4.0 - k) ** 2 * var + ndimage.convolve(var, _NEIGHBOURS, mode="nearest"), 1e-12))
+        else:
+            size = 3 if scale != "blob" else g.shape[0]
+            c = g.shape[0] // 2
+            kernel = g[c - size // 2:c + size // 2 + 1, c - size // 2:c + size // 2 + 1]
+            smooth = ndimage.correlate(image, kernel, mode="nearest")
+            lap_s = ndimage.correlate(lap, kernel, mode="nearest")
+            var_s = ndimage.correlate(var, np.abs(kernel) / np.abs(kernel).sum(), mode="nearest")
+            norm = float(np.sum((f - k * g) ** 2))
+            score = (lap_s - k * (smooth - bg)) / np.sqrt(np.maximum(var_s * norm, 1e-12))
+            if scale == "blob":
+                score = np.where(smooth >= ndimage.maximum_filter(smooth, size=3, mode="nearest"), score, -np.inf)
+        best = score if best is None else np.maximum(best, score)
+    return best, bg
+
+
+def _default_psf() -> PSFModel:
+    from latticeread.core.psf import gaussian_psf
+
+    return gaussian_psf(fwhm=SHARPEST_FWHM)
+
+
+def _check(image) -> np.ndarray:
+    image = np.asarray(image, dtype=float)
+    if image.ndim != 2:
+        raise ValueError(f"expected one 2-D frame, got shape {image.shape}")
+    return image
+
+
+def find_artefacts(image, *, psf: PSFModel | None = None, camera: CameraModel | None = None,
+                   ks=None, n_sigma: float = 5.5, grow_sigma: float = 3.0,
+                   known=None, block: int = 32) -> ArtefactResult:
+    """Cosmic-ray hits and hot pixels of one frame (shape test against the PSF).
+
+    Parameters
+    ----------
+    image : (H, W) ndarray
+        Frame in photons per pixel (after :meth:`CameraModel.counts_to_photons`); non-finite
+        pixels are ignored.
+    psf : PSFModel, optional
+        The image of one atom; default: the sharpest PSF the program handles
+        (:data:`SHARPEST_FWHM`), which catches single pixels but not streaks.
+    camera : CameraModel, optional
+        Noise model (photons); default: Poisson only.
+    ks : tuple of float, optional
+        The PSF's bounds from :func:`bounds` (computed from ``psf`` when not given; pass them
+        when many frames share one PSF).
+    n_sigma : float
+        Detection level of the shape test in standard deviations of the camera noise.
+    grow_sigma : float
+        Pixels connected to a detection that fail the shape test at this lower level join
+        the hit (hysteresis, :func:`skimage.filters.apply_hysteresis_threshold`), and so do
+        pixels next to it that exceed the local median by this many standard deviations (the
+        faint edge of a blob), up to three pixels out.
+    known : (H, W) ndarray of bool, optional
+        Pixels known to be bad (hot pixels of the stack, dark-frame analysis): always in the mask.
+    block : int
+        Block size (pixels) of the smooth background estimate.
+
+    Returns
+    -------
+    ArtefactResult
+
+    Raises
+    ------
+    ValueError
+        The image is not 2-D, or ``known`` has another shape.
+    """
+    image = _check(image)
+    camera = camera or CameraModel()
+    if ks is None:
+        ks = bounds(_default_psf() if psf is None else psf)
+    if known is not None:
+        known = np.asarray(known, dtype=bool)
+        if known.shape != image.shape:
+            raise ValueError(f"the known bad-pixel mask is {known.shape[0]}x{known.shape[1]} pixels but the frame "
+                             f"is {image.shape[0]}x{image.shape[1]}")
+    finite = np.isfinite(image)
+    work = image if finite.all() else np.where(finite, image, np.nanmedian(image) if finite.any() else 0.0)
+    if known is not None and known.any() and not known.all():
+        work = fill_pixels(work, known)  # known bad pixels must not make their neighbours fail
+    score, bg = _excess(work, ks=ks, camera=camera, block=block)
+    # hysteresis: a hit is a group of pixels failing the test at ``grow_sigma`` with at least
+    # one failing it at ``n_sigma`` (faint streaks: every pixel a little too sharp)
+    core = apply_hysteresis_threshold(np.where(finite, score, -np.inf), grow_sigma, n_sigma)
+    if known is not None:  # known bad pixels are single pixels: not grown
+        core &= ~known
+        if not core.any():
+            return ArtefactResult(mask=known.copy(), n_hits=0, n_pixels=int(known.sum()), charge=0.0)
+    if not core.any():
+        return ArtefactResult(mask=core, n_hits=0, n_pixels=0, charge=0.0)
+    mask = _grow(work, core, camera=camera, grow_sigma=grow_sigma)
+    if known is not None:
+        mask |= known
+        core |= known
+    labels, n_all = ndimage.label(mask, structure=np.ones((3, 3), bool))
+    n_hits = n_all
+    if known is not None and known.any():  # hits that are not (only) known bad pixels
+        n_hits = int(np.count_nonzero(ndimage.maximum(core & ~known, labels, np.arange(1, n_all + 1))))
+    charge = float(np.sum((work - bg)[mask]))
+    return ArtefactResult(mask=mask, n_hits=int(n_hits), n_pixels=int(mask.sum()), charge=charge)
+
+
+def _grow(image, core, *, camera: CameraModel, grow_sigma: float, steps: int = 3) -> np.ndarray:
+    """Core pixels, their 8 neighbours, and connected pixels well above the local median."""
+    mask = ndimage.binary_dilation(core, structure=np.ones((3, 3), bool))
+    labels, n = ndimage.label(mask, structure=np.ones((3, 3), bool))
+    pad = steps + 3
+    for sl in ndimage.find_objects(labels):
+        r0, r1 = max(0, sl[0].start - pad), min(image.shape[0], sl[0].stop + pad)
+        c0, c1 = max(0, sl[1].start - pad), min(image.shape[1], sl[1].stop + pad)
+        sub = image[r0:r1, c0:c1]
+        held = mask[r0:r1, c0:c1]
+        level = np.median(sub[~held]) if (~held).any() else np.median(sub)
+        sigma = np.sqrt(np.maximum(camera.photon_variance(np.full(1, level))[0], 1e-12))
+        high = sub > level + grow_sigma * sigma
+        region = held.copy()
+        for _ in range(steps):
+            grown = ndimage.binary_dilation(region, structure=np.ones((3, 3), bool)) & high
+            if not (grown & ~region).any():
+                break
+            region |= grown
+        mask[r0:r1, c0:c1] |= region
+    return mask
+
+
+def find_hot_pixels(stack, *, psf: PSFModel | None = None, camera: CameraModel | None = None,
+                    n_sigma: float = 4.0, fraction: float = 0.5, min_frames: int = 3) -> np.ndarray:
+    """Pixels that fail the shape test in most frames of a stack: hot pixels.
+
+    Parameters
+    ----------
+    stack : (n, H, W) ndarray
+        Frames in photons per pixel.
+    psf, camera :
+        As for :func:`find_artefacts`.
+    n_sigma : float
+        Detection level per frame (lower than for single hits: the majority vote over frames
+        keeps out noise).
+    fraction : float
+        Share of frames in which a pixel must fail the test.
+    min_frames : int
+        Fewer frames cannot tell a hot pixel from a cosmic-ray hit: an all-False mask is
+        returned (every frame's hits are still found by :func:`find_artefacts`).
+
+    Returns
+    -------
+    (H, W) ndarray of bool
+    """
+    stack = np.asarray(stack, dtype=float)
+    if stack.ndim != 3:
+        raise ValueError(f"expected a stack of frames (n, H, W), got shape {stack.shape}")
+    hot = np.zeros(stack.shape[1:], bool)
+    if len(stack) < min_frames:
+        return hot
+    camera = camera or CameraModel()
+    ks = bounds(_default_psf() if psf is None else psf)
+    count = np.zeros(stack.shape[1:], np.int32)
+    for frame in stack:
+        finite = np.isfinite(frame)
+        work = frame if finite.all() else np.where(finite, frame, np.nanmedian(frame))
+        score, _ = _excess(work, ks=ks[:1], camera=camera, block=32, scales=SCALES[:1])
+        count += score > n_sigma
+    hot = count >= max(2, int(np.ceil(fraction * len(stack))))
+    return hot
+
+
+def fill_pixels(image, mask, *, sigma: float = 1.5) -> np.ndarray:
+    """The image with masked pixels replaced by a Gaussian-weighted mean of unmasked neighbours.
+
+    For steps that cannot leave pixels out (Fourier lattice estimate, PSF averaging, the phase
+    search, deconvolution); the site fit leaves them out instead. Works box by box around the
+    masked groups, so a few hits cost little on a large frame.
+
+    Parameters
+    ----------
+    image : (H, W) ndarray
+    mask : (H, W) ndarray of bool
+        Pixels to replace.
+    sigma : float
+        Width of the Gaussian weight, pixels (doubled until every masked pixel has neighbours).
+
+    Returns
+    -------
+    (H, W) ndarray of float (a copy; ``image`` is not changed)
+    """
+    image = np.asarray(image, dtype=float)
+    mask = np.asarray(mask, dtype=bool)
+    out = image.copy()
+    if not mask.any():
+        return out
+    if mask.all():
+        raise ValueError("every pixel is masked; nothing to fill them from")
+    pad = int(np.ceil(4 * sigma)) + 1
+    labels, _ = ndimage.label(ndimage.binary_dilation(mask, iterations=pad))
+    for sl in ndimage.find_objects(labels):
+        sub_mask = mask[sl]
+        if not sub_mask.any():
+            continue
+        sub = image[sl]
+        todo = sub_mask.copy()
+        s = float(sigma)
+        while todo.any():
+            num = ndimage.gaussian_filter(np.where(sub_mask, 0.0, sub), s, mode="nearest")
+            den = ndimage.gaussian_filter((~sub_mask).astype(float), s, mode="nearest")
+            ok = todo & (den > 1e-3)
+            out[sl][ok] = num[ok] / den[ok]
+            todo &= ~ok
+            if s > max(sub.shape):
+                out[sl][todo] = float(np.median(image[~mask]))
+                break
+            s *= 2
+    return out
+
+
+def hot_pixel_mask(pixels, frame_shape) -> np.ndarray:
+    """(H, W) bool mask from a list of ``[row, col]`` pairs (as stored in a calibration's notes).
+
+    Raises
+    ------
+    ValueError
+        A pair is malformed or lies outside the frame.
+    """
+    mask = np.zeros(tuple(int(v) for v in frame_shape), bool)
+    if not pixels:
+        return mask
+    rc = np.asarray(pixels, dtype=np.int64)
+    if rc.ndim != 2 or rc.shape[1] != 2:
+        raise ValueError(f"hot pixels must be [row, col] pairs, got an array of shape {rc.shape}")
+    if rc.min() < 0 or (rc[:, 0] >= mask.shape[0]).any() or (rc[:, 1] >= mask.shape[1]).any():
+        raise ValueError(f"a hot pixel lies outside the {mask.shape[0]}x{mask.shape[1]}-pixel frame")
+    mask[rc[:, 0], rc[:, 1]] = True
+    return mask
+
+
+class ArtefactFinder:
+    """Per-frame search for cosmic-ray hits, with a calibration's PSF, camera and hot pixels.
+
+    The PSF's bounds are computed once. The calibration's hot pixels
+    (``calibration.options.hot_pixels``, found by :func:`find_hot_pixels` when calibrating)
+    are always left out.
+
+    Parameters
+    ----------
+    calibration : Calibration
+    frame_shape : (int, int)
+    crop : tuple of slice, optional
+        The part of the frame the fit reads; the search looks only there.
+    n_sigma : float
+        Detection level (see :func:`find_artefacts`).
+    enabled : bool
+        Search every frame (True) or only leave out the hot pixels.
+    """
+
+    def __init__(self, calibration, frame_shape, *, crop=None, n_sigma: float = 5.5, enabled: bool = True):
+        self.enabled = bool(enabled)
+        self.frame_shape = tuple(int(v) for v in frame_shape)
+        self.crop = crop if crop is not None else (slice(0, self.frame_shape[0]), slice(0, self.frame_shape[1]))
+        self.camera = calibration.camera
+        self.n_sigma = float(n_sigma)
+        self.hot = hot_pixel_mask(calibration.options.hot_pixels, self.frame_shape)
+        self.ks = bounds(calibration.psf) if self.enabled else None
+
+    def __call__(self, photons):
+        """``(mask or None, photons with the mask filled, warnings)`` for one frame in photons.
+
+        The mask holds this frame's hits only; the hot pixels (:attr:`hot`) are left out of
+        the fit once and for all by the caller.
+        """
+        photons = np.asarray(photons, dtype=float)
+        if not self.enabled:
+            return None, photons, []
+        sub = photons[self.crop]
+        found = find_artefacts(sub, camera=self.camera, ks=self.ks, n_sigma=self.n_sigma, known=self.hot[self.crop])
+        if not found.n_hits:
+            return None, photons, []
+        mask = np.zeros(self.frame_shape, bool)
+        mask[self.crop] = found.mask
+        mask &= ~self.hot & np.isfinite(photons)  # non-finite pixels are left out (and flagged) by the fit
+        warnings = [f"{ARTEFACT_WARNING}: {found.n_hits} sharp spot(s) that do not look like the PSF "
+                    f"({int(mask.sum())} pixels) were left out of the fit; the sites they touch are flagged "
+                    "'artefact'"]
+        return mask, fill_pixels(photons, mask | self.hot), warnings
+
+
+class PixelModel:
+    """The fitted site model's value at chosen pixels (the PSF tabulated once, pixel-integrated).
+
+    Parameters
+    ----------
+    psf : PSFModel
+    """
+
+    def __init__(self, psf: PSFModel):
+        from latticeread.core.amplitudes import pixel_integrated_table
+
+        table, k, half = pixel_integrated_table(psf, oversample=2)
+        self.table, self.k, self.half, self.radius = table, int(k), int(half), int(psf.radius)
+        # stamps are normalised to unit flux inside their (2 r + 1)^2 window
+        grid = half + np.arange(-self.radius, self.radius + 1) * k
+        self.norm = float(table[np.ix_(grid, grid)].sum())
+
+    def __call__(self, rows, cols, *, x, y, amplitudes, background: float) -> np.ndarray:
+        """Photons predicted at pixels ``(rows, cols)`` by sites at ``(x, y)`` with ``amplitudes``."""
+        rows = np.asarray(rows, dtype=float)
+        cols = np.asarray(cols, dtype=float)
+        out = np.full(rows.shape, float(background))
+        if rows.size == 0:
+            return out
+        r = self.radius
+        near = ((x > cols.min() - r - 1) & (x < cols.max() + r + 1) & (y > rows.min() - r - 1) &
+                (y < rows.max() + r + 1) & np.isfinite(amplitudes))
+        sx, sy, sa = x[near], y[near], amplitudes[near]
+        dx = cols[:, None] - sx[None, :]
+        dy = rows[:, None] - sy[None, :]
+        inside = (np.abs(np.rint(dx)) <= r) & (np.abs(np.rint(dy)) <= r)
+        coords = [np.clip(dy * self.k + self.half, 0, self.table.shape[0] - 1).ravel(),
+                  np.clip(dx * self.k + self.half, 0, self.table.shape[1] - 1).ravel()]
+        values = ndimage.map_coordinates(self.table, coords, order=1).reshape(dx.shape) / self.norm
+        return out + np.sum(np.where(inside, values * sa[None, :], 0.0), axis=1)
+
+
+def model_fill(photons, mask, *, x, y, amplitudes, background, model: PixelModel) -> np.ndarray:
+    """The frame with the masked pixels replaced by the fitted site model's prediction.
+
+    One step of the expectation-maximisation iteration for least squares with missing pixels
+    (fill, fit, fill with the fit, ...), which converges to the fit that leaves the pixels out
+    (Dempster, Laird & Rubin, J. R. Stat. Soc. B 39, 1 (1977); from memory).
+
+    Parameters
+    ----------
+    photons : (H, W) ndarray
+        Frame in photons per pixel.
+    mask : (H, W) ndarray of bool
+        Pixels to replace.
+    x, y : (N,) ndarray
+        Site centres of the fit, pixels.
+    amplitudes : (N,) ndarray
+        Fitted photons per site.
+    background : float
+        Fitted background, photons per pixel.
+    model : PixelModel
+        The PSF tabulated for this evaluation.
+
+    Returns
+    -------
+    (H, W) ndarray of float (a copy)
+    """
+    out = np.array(photons, dtype=float)
+    x, y, amplitudes = (np.asarray(v, dtype=float) for v in (x, y, amplitudes))
+    labels, _ = ndimage.label(mask, structure=np.ones((3, 3), bool))
+    for i, sl in enumerate(ndimage.find_objects(labels), start=1):
+        rows, cols = np.nonzero(labels[sl] == i)
+        rows, cols = rows + sl[0].start, cols + sl[1].start
+        out[rows, cols] = model(rows, cols, x=x, y=y, amplitudes=amplitudes, background=float(background))
+    return out
+
+
+@dataclass(frozen=True)
+class CleanedStack:
+    """A stack with its cosmic-ray hits and hot pixels filled in (for calibration steps).
+
+    Attributes
+    ----------
+    frames : (n, H, W) ndarray of float
+        Photons per pixel, artefact pixels replaced by their neighbours' mean.
+    hot : (H, W) ndarray of bool
+        Hot pixels (bad in most frames).
+    n_hits : int
+        Cosmic-ray hits found over all frames (hot pixels not counted).
+    n_pixels : int
+        Pixels filled over all frames.
+    """
+
+    frames: np.ndarray = field(repr=False)
+    hot: np.ndarray = field(repr=False)
+    n_hits: int = 0
+    n_pixels: int = 0
+
+
+def clean_stack(stack, *, psf: PSFModel | None = None, camera: CameraModel | None = None,
+                known=None) -> CleanedStack:
+    """Find hot pixels (:func:`find_hot_pixels`) and each frame's hits, and fill them in.
+
+    Parameters
+    ----------
+    stack : (n, H, W) ndarray
+        Frames in photons per pixel.
+    psf : PSFModel, optional
+        The image of one atom (default: the sharpest the program handles, which finds single
+        pixels but not streaks; run again once the PSF is measured).
+    camera : CameraModel, optional
+        Noise model.
+    known : (H, W) ndarray of bool, optional
+        Pixels already known to be bad (added to the hot pixels).
+
+    Returns
+    -------
+    CleanedStack
+    """
+    stack = np.asarray(stack, dtype=float)
+    if stack.ndim != 3:
+        raise ValueError(f"expected a stack of frames (n, H, W), got shape {stack.shape}")
+    camera = camera or CameraModel()
+    psf = psf or _default_psf()
+    hot = find_hot_pixels(stack, psf=psf, camera=camera)
+    if known is not None:
+        hot = hot | np.asarray(known, dtype=bool)
+    ks = bounds(psf)
+    frames = np.empty_like(stack)
+    n_hits = n_pixels = 0
+    for i, frame in enumerate(stack):
+        found = find_artefacts(frame, camera=camera, ks=ks, known=hot)
+        n_hits += found.n_hits
+        n_pixels += found.n_pixels
+        frames[i] = fill_pixels(frame, found.mask) if found.n_pixels else frame
+    return CleanedStack(frames=frames, hot=hot, n_hits=int(n_hits), n_pixels=int(n_pixels))
