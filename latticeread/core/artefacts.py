@@ -57,6 +57,9 @@ SHARPEST_FWHM = 2.0
 #: blobs) and three-pixel lines along rows, columns and both diagonals (faint streaks).
 SCALES = ("pixel", "blob", "row", "column", "diagonal", "antidiagonal")
 
+#: Largest share of a frame's pixels left out as hits; beyond it the frame is not images of atoms.
+MAX_MASKED_FRACTION = 0.05
+
 #: Start of the per-frame warning about cosmic-ray hits (calibration summarises them instead).
 ARTEFACT_WARNING = "cosmic-ray hits"
 
@@ -460,6 +463,10 @@ class ArtefactFinder:
         found = find_artefacts(sub, camera=self.camera, ks=self.ks, n_sigma=self.n_sigma, known=self.hot[self.crop])
         if not found.n_hits:
             return None, photons, []
+        if found.n_pixels > MAX_MASKED_FRACTION * sub.size:
+            return None, photons, [f"{100 * found.n_pixels / sub.size:.0f} % of the pixels are sharper than the PSF "
+                                   "allows: the frame does not look like images of atoms through this PSF (wrong "
+                                   "calibration?); no pixels were left out"]
         mask = np.zeros(self.frame_shape, bool)
         mask[self.crop] = found.mask
         mask &= ~self.hot & np.isfinite(photons)  # non-finite pixels are left out (and flagged) by the fit
@@ -597,6 +604,9 @@ def clean_stack(stack, *, psf: PSFModel | None = None, camera: CameraModel | Non
     n_hits = n_pixels = 0
     for i, frame in enumerate(stack):
         found = find_artefacts(frame, camera=camera, ks=ks, known=hot)
+        if found.n_pixels > MAX_MASKED_FRACTION * frame.size:  # not hits: the frame is not atoms' light
+            frames[i] = frame
+            continue
         n_hits += found.n_hits
         n_pixels += found.n_pixels
         frames[i] = fill_pixels(frame, found.mask) if found.n_pixels else frame
