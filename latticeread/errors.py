@@ -9,11 +9,12 @@ Exit codes of the command line (documented in the README):
 
 ====  ==========================================================
 0     success
-1     unexpected internal error (a bug: please report with --debug)
-2     bad command-line usage
-3     input data problem (unreadable file, bad frame, no lattice)
-4     output problem (folder not writable, disk full)
-5     calibration problem (missing keys, wrong frame size or camera)
+1     unexpected internal error (a bug: please report with --debug); never a deliberate refusal
+2     bad command-line usage (unknown command or option, unsupported output suffix)
+3     input data problem (unreadable file, bad frame, no lattice, frames too large for memory)
+4     output problem (folder not writable, disk full, output exists without --force,
+      output would replace one of the command's inputs)
+5     calibration problem (missing keys, values outside physical ranges, wrong frame size or camera)
 130   interrupted (Ctrl-C)
 ====  ==========================================================
 """
@@ -65,6 +66,16 @@ class FidelityError(LatticeReadError, ValueError):
     """Occupation matrices or rates given to the fidelity estimate are unusable."""
 
     exit_code = 3
+
+
+class UsageError(LatticeReadError, ValueError):
+    """The command line asks for something the program does not do (e.g. an unsupported output suffix)."""
+
+    exit_code = 2
+
+
+class OutputExistsError(ExportError):
+    """The output file exists and ``--force`` was not given, or it is one of the command's inputs."""
 
 
 class LatticeReadWarning(UserWarning):
