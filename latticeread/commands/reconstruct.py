@@ -15,11 +15,20 @@ import sys
 from pathlib import Path
 
 from latticeread.commands.calibrate import add_camera_arguments, camera_from_args, psf_from_args
-from latticeread.errors import LatticeReadError
-
 log = logging.getLogger(__name__)
 
 _OUT_SUFFIXES = {".csv": "csv", ".h5": "hdf5", ".hdf5": "hdf5"}
+
+
+def threshold_photons(text: str) -> float:
+    """argparse type of ``--threshold``: a finite number of photons in the physical range."""
+    from latticeread.io.limits import check_threshold
+
+    try:
+        return check_threshold(float(text), where="the threshold")
+    except ValueError as exc:
+        raise argparse.ArgumentTypeError(str(exc) if "photons" in str(exc)
+                                         else f"must be a number of photons, got {text!r}") from None
 
 
 def add_parser(parser: argparse.ArgumentParser) -> None:
@@ -34,7 +43,7 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--weighting", choices=["none", "camera"], default=None,
                         help="pixel weights of the amplitude fit: none, or camera (inverse camera-noise variance "
                              "of the mean frame); default: the calibration's, else none")
-    parser.add_argument("--threshold", type=float, default=None,
+    parser.add_argument("--threshold", type=threshold_photons, default=None,
                         help="fixed threshold in photons (default: the calibration's)")
     parser.add_argument("--no-phase-refit", action="store_true",
                         help="use the calibration's lattice offset for every frame")
@@ -60,13 +69,15 @@ def run(args: argparse.Namespace) -> int:
     from latticeread.io import load_calibration, write_occupation_hdf5, write_sites_csv
     from latticeread.io.frames import load_frames, load_mask
 
+    from latticeread.io.export import sidecar_path
+    from latticeread.io.outputs import check_outputs, check_suffix
+
     out = Path(args.out)
-    kind = _OUT_SUFFIXES.get(out.suffix.lower())
-    if kind is None:
-        raise LatticeReadError(f"the output {out} must end in .csv (per-site table) or .h5/.hdf5 "
-                               "(occupation matrices)")
-    if out.exists() and not args.force:
-        raise LatticeReadError(f"{out} exists; pass --force to overwrite it")
+    kind = _OUT_SUFFIXES[check_suffix(out, {".csv": "per-site table", ".h5": "occupation matrices",
+                                            ".hdf5": "occupation matrices"}, what="the output")]
+    check_outputs([out, sidecar_path(out) if kind == "csv" else None], force=args.force,
+                  inputs={"frame file": args.frames, "calibration": args.calibration,
+                          "bad-pixel mask": args.bad_pixels, "camera description": getattr(args, "camera", None)})
     if args.calibration is not None:
         cal = load_calibration(args.calibration)
         stack = load_frames(args.frames, dataset=args.dataset, saturation=cal.camera.saturation,

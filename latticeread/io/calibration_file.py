@@ -46,6 +46,7 @@ from latticeread.core.calibration import FORMAT_VERSION, Calibration
 from latticeread.errors import CalibrationError
 
 from .atomic import atomic_write
+from .limits import check_calibration_values
 
 __all__ = ["save_calibration", "load_calibration", "calibration_to_json", "calibration_from_json",
            "save_camera", "load_camera", "to_jsonable", "from_jsonable"]
@@ -252,12 +253,15 @@ def calibration_from_json(text: str, *, where: str = "calibration") -> Calibrati
         ``geometry.a1``), or values the models reject (negative gain...).
     """
     try:
-        data = json.loads(text)
+        data = from_jsonable(json.loads(text))
     except json.JSONDecodeError as exc:
         raise CalibrationError(
             f"{where} is not valid JSON (line {exc.lineno}, column {exc.colno}: {exc.msg})") from exc
-    data = from_jsonable(data)
+    except RecursionError as exc:
+        raise CalibrationError(f"{where} is nested too deeply to be a calibration (lists or objects inside "
+                               "each other thousands of levels deep)") from exc
     _check_schema(data, where)
+    check_calibration_values(data, where=where)
     try:
         return Calibration.from_dict(data)
     except CalibrationError as exc:

@@ -28,6 +28,7 @@ from pathlib import Path
 import numpy as np
 
 from latticeread.errors import CalibrationError, FrameError, FrameFileError, LatticeReadWarning
+from latticeread.io.limits import check_frame_memory
 
 __all__ = [
     "FrameStack",
@@ -356,6 +357,8 @@ class _TiffReader:
             if self._pages is not None:
                 return self._pages[i].asarray()
             if self._cache is None:  # several planes in one page: decode the page once
+                check_frame_memory(self.shape[-2:], where=self.path.name, n_frames=len(self),
+                                   itemsize=self.dtype.itemsize)
                 self._cache = self._series.asarray().reshape((len(self), *self.shape[-2:]))
             return self._cache[i]
         except (tifffile.TiffFileError, ValueError, OSError, IndexError, struct.error) as exc:
@@ -430,6 +433,18 @@ class _H5Reader:
         self.h5.close()
 
 
+def _npz_member_header(npz, key: str):
+    """Declared ``(shape, dtype)`` of one array of an open ``.npz`` archive, without decompressing it."""
+    names = npz.zip.namelist()
+    with npz.zip.open(key if key in names else f"{key}.npy") as fh:
+        version = np.lib.format.read_magic(fh)
+        if version == (1, 0):
+            shape, _, dtype = np.lib.format.read_array_header_1_0(fh)
+        else:
+            shape, _, dtype = np.lib.format.read_array_header_2_0(fh)
+    return tuple(shape), np.dtype(dtype)
+
+
 class _ArrayReader:
     """``.npy`` (memory-mapped) or one array of a ``.npz`` archive."""
 
@@ -452,6 +467,11 @@ class _ArrayReader:
                         dataset = keys[0]
                     if dataset not in keys:
                         raise FrameFileError(f"{name} has no array {dataset!r}; it holds {', '.join(keys) or 'none'}")
+                    # an .npz array is decompressed whole: check its declared size first
+                    shape, dtype = _npz_member_header(npz, dataset)
+                    where = f"array {dataset} of {name}"
+                    n, h, w = check_stack(shape, dtype, where=where)
+                    check_frame_memory((h, w), where=where, n_frames=n, itemsize=dtype.itemsize)
                     self.array = npz[dataset]
                     self.dataset = dataset
         except FrameFileError:
@@ -503,6 +523,8 @@ class FrameStack:
         where = source.name if dataset is None else f"dataset {dataset} of {source.name}"
         self._where = where
         n, h, w = check_stack(reader.shape, reader.dtype, where=where)
+        # from the declared shape only, before any pixel is decoded
+        check_frame_memory((h, w), where=where)
         if roi is not None:
             roi = _check_roi(roi, (h, w), where)
             h, w = roi[1] - roi[0], roi[3] - roi[2]
@@ -565,8 +587,13 @@ class FrameStack:
 
     def __getitem__(self, i):
         if isinstance(i, slice):
-            return np.stack([self[k] for k in range(*i.indices(len(self)))]) if len(range(*i.indices(len(self)))) \
-                else np.empty((0, *self.frame_shape), self.dtype)
+            picked = range(*i.indices(len(self)))
+            if not len(picked):
+                return np.empty((0, *self.frame_shape), self.dtype)
+            # the frames are held together (and stacked: twice their size at the peak)
+            check_frame_memory(self.frame_shape, where=self._where, n_frames=len(picked),
+                               itemsize=2 * self._dtype.itemsize)
+            return np.stack([self[k] for k in picked])
         i = self._index(i)
         frame = self._raw(i)
         if self.validate:
