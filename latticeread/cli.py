@@ -10,9 +10,11 @@ codes (see :mod:`latticeread.errors`).
 from __future__ import annotations
 
 import argparse
+import difflib
 import importlib
 import logging
 import sys
+from pathlib import Path
 
 from latticeread import __version__
 
@@ -34,7 +36,8 @@ def build_parser() -> argparse.ArgumentParser:
         prog="latticeread",
         description="Occupation matrices from site-resolved fluorescence images of lattice atoms.",
         epilog="Run 'latticeread COMMAND --help' for the options of one command. "
-        "Exit codes: 0 ok, 1 internal error, 2 usage, 3 input data, 4 output, 5 calibration, 130 interrupted.",
+        "Exit codes: 0 ok, 1 internal error (a bug), 2 usage, 3 input data, 4 output (also: exists without "
+        "--force, or would replace an input), 5 calibration, 130 interrupted.",
     )
     parser.add_argument("--version", action="version", version=f"latticeread {__version__}")
     parser.add_argument("--debug", action="store_true", help="show full tracebacks and debug logging")
@@ -54,19 +57,60 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+#: Options of the window (the default command) that take a value, so the value is not a command.
+_GUI_VALUE_OPTIONS = {"--settings"}
+
+
+def unknown_command_message(word: str) -> str:
+    """The usage message for a first argument that is neither a command nor an existing file."""
+    names = [name for name, _, _ in COMMANDS]
+    close = difflib.get_close_matches(word, names, n=1, cutoff=0.6)
+    hint = f"did you mean '{close[0]}'? " if close else ""
+    return (f"'{word}' is not a command and no such file exists; {hint}"
+            f"commands: {', '.join(names)} (run 'latticeread --help')")
+
+
+class _OwnMessagesOnly(logging.Filter):
+    """Pass the program's own log records; other libraries' (tifffile, h5py...) only with --debug.
+
+    Problems those libraries log (a damaged TIFF page, for instance) reach the user as the
+    program's own error message, so their raw lines would only repeat it in other words.
+    """
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        return record.name == "latticeread" or record.name.startswith("latticeread.")
+
+
+def _setup_logging(debug: bool) -> None:
+    handler = logging.StreamHandler(sys.stderr)
+    handler.setFormatter(logging.Formatter("%(levelname)s %(name)s: %(message)s"))
+    if not debug:
+        handler.addFilter(_OwnMessagesOnly())
+    root = logging.getLogger()
+    for old in [h for h in root.handlers if getattr(h, "_latticeread", False)]:
+        root.removeHandler(old)
+    handler._latticeread = True
+    root.addHandler(handler)
+    root.setLevel(logging.DEBUG if debug else logging.WARNING)
+
+
 def main(argv: list[str] | None = None) -> int:
     argv = list(sys.argv[1:] if argv is None else argv)
     names = {name for name, _, _ in COMMANDS}
-    # ``latticeread`` or ``latticeread FILE...`` opens the window.
-    first = next((a for a in argv if not a.startswith("-")), None)
-    if first is None or first not in names:
-        if not any(a in ("-h", "--help", "--version") for a in argv):
-            argv = ["gui", *argv]
+    # ``latticeread`` or ``latticeread FILE...`` opens the window; a word that is neither a
+    # command nor an existing file is a mistyped command: a usage error, not the window.
+    first = next((a for k, a in enumerate(argv)
+                  if not a.startswith("-") and (k == 0 or argv[k - 1] not in _GUI_VALUE_OPTIONS)), None)
+    asks_help = any(a in ("-h", "--help", "--version") for a in argv)
+    if first is not None and first not in names and not Path(first).exists() and not asks_help:
+        print(f"latticeread: error: {unknown_command_message(first)}", file=sys.stderr)
+        return 2
+    if (first is None or first not in names) and not asks_help:
+        argv = ["gui", *argv]
     parser = build_parser()
     args = parser.parse_args(argv)
     debug = bool(getattr(args, "debug", False))
-    logging.basicConfig(level=logging.DEBUG if debug else logging.WARNING,
-                        format="%(levelname)s %(name)s: %(message)s")
+    _setup_logging(debug)
     if not hasattr(args, "_run"):
         parser.print_help()
         return 2

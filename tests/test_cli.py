@@ -54,3 +54,52 @@ def test_unexpected_errors_say_it_is_a_bug(monkeypatch, capsys):
     assert "--debug" in capsys.readouterr().err
     with pytest.raises(ZeroDivisionError):
         main(["--debug", "simulate", "x.tif"])
+
+
+def test_old_option_spellings_are_hidden_aliases_of_one_name(capsys):
+    from latticeread.cli import build_parser
+
+    parser = build_parser()
+    args = parser.parse_args(["camera", "d.tif", "--kind", "emccd"])
+    assert args.camera_kind == "emccd"
+    assert parser.parse_args(["camera", "d.tif"]).camera_kind == "scmos"
+    args = parser.parse_args(["reconstruct", "f.tif", "-o", "s.csv", "--qe", "0.5"])
+    assert args.quantum_efficiency == 0.5
+    assert parser.parse_args(["calibrate", "f.tif", "-o", "c.json"]).quantum_efficiency == 1.0
+    for command in (["batch", "f.tif", "-c", "c.json", "-o", "r.h5"], ["fidelity", "f.tif"]):
+        assert parser.parse_args([*command, "--no-progress"]).quiet is True
+        assert parser.parse_args([*command, "-q"]).quiet is True
+        assert parser.parse_args(command).quiet is False
+    for command in ("camera", "reconstruct", "batch", "fidelity"):
+        with pytest.raises(SystemExit):
+            parser.parse_args([command, "--help"])
+        text = capsys.readouterr().out
+        assert "--qe " not in text and "--kind " not in text and "--no-progress" not in text
+
+
+def test_other_libraries_log_lines_stay_off_stderr_unless_debugging(monkeypatch, capsys):
+    import logging
+
+    import latticeread.commands.simulate as sim
+
+    def noisy(args):
+        logging.getLogger("tifffile").error("<tifffile.TiffPage 0> raw library complaint")
+        logging.getLogger("latticeread.io.frames").warning("the program's own warning")
+        return 0
+
+    monkeypatch.setattr(sim, "run", noisy)
+    assert main(["simulate", "x.tif"]) == 0
+    err = capsys.readouterr().err
+    assert "the program's own warning" in err and "raw library complaint" not in err
+    assert main(["simulate", "x.tif", "--debug"]) == 0
+    assert "raw library complaint" in capsys.readouterr().err
+
+
+def test_a_mistyped_command_is_a_usage_error_with_a_suggestion(monkeypatch, capsys):
+    import latticeread.commands.gui as gui
+
+    monkeypatch.setattr(gui, "run", lambda args: pytest.fail("a mistyped command must not open the window"))
+    assert main(["reconstuct", "frames.tif"]) == 2
+    assert "did you mean 'reconstruct'" in capsys.readouterr().err
+    assert main(["--settings", "new.ini", "nonsense"]) == 2
+    assert "'nonsense' is not a command" in capsys.readouterr().err

@@ -141,15 +141,15 @@ def test_output_folder_is_a_file(stack, tmp_path, capsys):
 
 def test_error_output_suffix(stack, tmp_path, capsys):
     _, path, cal, _ = stack
-    assert main(["reconstruct", str(path), "-c", str(cal), "-o", str(tmp_path / "s.txt")]) == 1
-    assert "must end in .csv" in capsys.readouterr().err
+    assert main(["reconstruct", str(path), "-c", str(cal), "-o", str(tmp_path / "s.txt")]) == 2
+    assert "must end in one of: .csv" in capsys.readouterr().err
 
 
 def test_error_existing_output(stack, tmp_path, capsys):
     _, path, cal, _ = stack
     out = tmp_path / "s.csv"
     out.write_text("keep me")
-    assert main(["reconstruct", str(path), "-c", str(cal), "-o", str(out)]) == 1
+    assert main(["reconstruct", str(path), "-c", str(cal), "-o", str(out)]) == 4
     assert "pass --force" in capsys.readouterr().err
     assert out.read_text() == "keep me"
 
@@ -168,8 +168,8 @@ def test_error_gaussian_without_fwhm(stack, tmp_path, capsys):
 
 def test_error_calibration_suffix(stack, tmp_path, capsys):
     _, path, _, _ = stack
-    assert main(["calibrate", str(path), "--out", str(tmp_path / "c.txt")]) == 1
-    assert "must end in .json" in capsys.readouterr().err
+    assert main(["calibrate", str(path), "--out", str(tmp_path / "c.txt")]) == 2
+    assert "must end in one of: .json" in capsys.readouterr().err
 
 
 def test_error_truncated_tiff(stack, tmp_path, capsys):

@@ -217,5 +217,5 @@ def test_simulate_command_writes_tiff_and_truth_that_tifffile_reads(tmp_path, ca
 
 
 def test_simulate_command_rejects_wrong_extension(tmp_path, capsys):
-    assert main(["simulate", str(tmp_path / "x.png")]) == 1
-    assert "must end in .tif" in capsys.readouterr().err
+    assert main(["simulate", str(tmp_path / "x.png")]) == 2
+    assert "must end in one of: .tif" in capsys.readouterr().err

@@ -55,17 +55,24 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
                              "only, faster)")
     parser.add_argument("--retry-failed", action="store_true",
                         help="try again the shots that failed in an earlier run of this run file")
-    parser.add_argument("--no-progress", action="store_true", help="no progress bar")
+    parser.add_argument("--quiet", "-q", action="store_true", help="no progress bar")
+    parser.add_argument("--no-progress", dest="quiet", action="store_true", default=argparse.SUPPRESS,
+                        help=argparse.SUPPRESS)  # older spelling of --quiet
     parser.add_argument("--json", action="store_true", help="print the summary as JSON instead of text")
 
 
 def run(args: argparse.Namespace) -> int:
+    from latticeread.io.outputs import check_outputs, check_suffix
     from latticeread.runs.batch import run_batch, summary_dict
+
+    # an existing run file is continued, never replaced; it must not be one of the inputs
+    check_suffix(args.out, [".h5", ".hdf5"], what="the run file")
+    check_outputs([args.out], force=True, inputs={"input": list(args.inputs), "calibration": args.calibration})
 
     try:
         summary = run_batch(args.inputs, calibration=args.calibration, out=args.out, workers=args.workers,
                             scheduler=args.scheduler, retry_failed=args.retry_failed,
-                            progress=not args.no_progress, metadata={"command": "batch"},
+                            progress=not args.quiet, metadata={"command": "batch"},
                             images_per_shot=args.images_per_shot, fidelity_bootstrap=args.fidelity_bootstrap)
     except KeyboardInterrupt:
         print(f"latticeread batch: interrupted; every shot written so far is kept in {args.out}. "

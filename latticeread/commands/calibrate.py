@@ -17,7 +17,7 @@ import argparse
 import logging
 from pathlib import Path
 
-from latticeread.errors import CalibrationError, LatticeReadError
+from latticeread.errors import CalibrationError
 
 log = logging.getLogger(__name__)
 
@@ -33,7 +33,10 @@ def add_camera_arguments(parser: argparse.ArgumentParser) -> None:
                      help="read-out conversion gain, counts per electron (default 1)")
     cam.add_argument("--bias", type=float, default=0.0, help="offset of every pixel, counts (default 0)")
     cam.add_argument("--read-noise", type=float, default=0.0, help="RMS read noise, counts (default 0)")
-    cam.add_argument("--qe", type=float, default=1.0, help="quantum efficiency 0..1 (default 1)")
+    cam.add_argument("--quantum-efficiency", type=float, default=1.0,
+                     help="photoelectrons per photon, 0..1 (default 1)")
+    cam.add_argument("--qe", dest="quantum_efficiency", type=float, default=argparse.SUPPRESS,
+                     help=argparse.SUPPRESS)  # short spelling kept for old scripts
     cam.add_argument("--saturation", type=int, default=65535, help="largest value the camera outputs (default 65535)")
 
 
@@ -47,7 +50,7 @@ def camera_from_args(args):
         return load_camera(args.camera)
     try:
         return CameraModel(kind=args.camera_kind, em_gain=args.em_gain, counts_per_electron=args.counts_per_electron,
-                           bias=args.bias, read_noise=args.read_noise, quantum_efficiency=args.qe,
+                           bias=args.bias, read_noise=args.read_noise, quantum_efficiency=args.quantum_efficiency,
                            saturation=args.saturation)
     except ValueError as exc:
         raise CalibrationError(f"bad camera options: {exc}") from exc
@@ -136,11 +139,12 @@ def run(args: argparse.Namespace) -> int:
     from latticeread.io import save_calibration
     from latticeread.io.frames import load_frames
 
+    from latticeread.io.outputs import check_outputs, check_suffix
+
     out = Path(args.out)
-    if out.suffix.lower() != ".json":
-        raise LatticeReadError(f"the calibration file {out} must end in .json")
-    if out.exists() and not args.force:
-        raise LatticeReadError(f"{out} exists; pass --force to overwrite it")
+    check_suffix(out, [".json"], what="the calibration file")
+    check_outputs([out], force=args.force,
+                  inputs={"frame file": args.frames, "camera description": getattr(args, "camera", None)})
     camera = camera_from_args(args)
     psf = psf_from_args(args)
     prior = lattice_prior_from_args(args)

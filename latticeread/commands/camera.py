@@ -8,7 +8,7 @@ sCMOS, one dark stack and one stack per illumination level::
 
 EMCCD with a known conversion gain (from a run with the EM gain off, or the data sheet)::
 
-    latticeread camera darks.tif flats.tif --frames-per-level 10 --kind emccd \\
+    latticeread camera darks.tif flats.tif --frames-per-level 10 --camera-kind emccd \\
         --counts-per-electron 0.17 --out camera.json
 """
 
@@ -19,7 +19,7 @@ import logging
 import sys
 from pathlib import Path
 
-from latticeread.errors import FrameError
+from latticeread.errors import FrameError, UsageError
 
 log = logging.getLogger(__name__)
 
@@ -28,9 +28,12 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("darks", type=Path, help="dark frames (shutter closed), at least two")
     parser.add_argument("flats", type=Path, nargs="*",
                         help="uniformly lit frames, one file per light level (or see --frames-per-level)")
-    parser.add_argument("--out", type=Path, default=None, help="write the camera description to this JSON file")
-    parser.add_argument("--kind", choices=["scmos", "emccd"], default="scmos",
+    parser.add_argument("--out", "-o", type=Path, default=None,
+                        help="write the camera description to this JSON file")
+    parser.add_argument("--camera-kind", choices=["scmos", "emccd"], default="scmos",
                         help="camera type: scmos/ccd (no excess noise) or emccd (default scmos)")
+    parser.add_argument("--kind", dest="camera_kind", choices=["scmos", "emccd"], default=argparse.SUPPRESS,
+                        help=argparse.SUPPRESS)  # older spelling of --camera-kind
     parser.add_argument("--counts-per-electron", type=float, default=None,
                         help="conversion gain in counts per electron; for an EMCCD it separates the EM gain "
                              "from the measured product")
@@ -50,6 +53,8 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
                         help="also write a bad-pixel mask (.npy, True = bad) found from the darks")
     parser.add_argument("--n-sigma", type=float, default=6.0,
                         help="outlier limit for bad pixels, robust standard deviations (default 6)")
+    parser.add_argument("--force", action="store_true",
+                        help="replace the --out and --bad-pixels files when they exist")
 
 
 def _read(path: Path, dataset):
@@ -75,6 +80,16 @@ def run(args: argparse.Namespace) -> int:
     from latticeread.io.atomic import atomic_write
     from latticeread.io.calibration_file import save_camera
 
+    from latticeread.io.outputs import check_outputs, check_suffix
+
+    if args.out is not None:
+        check_suffix(args.out, [".json"], what="the camera description")
+    if args.bad_pixels is not None:
+        check_suffix(args.bad_pixels, [".npy"], what="the bad-pixel mask")
+    check_outputs([args.out, args.bad_pixels], force=args.force,
+                  inputs={"dark frame file": args.darks, "flat frame file": list(args.flats)})
+    if args.out is not None and args.bad_pixels is not None and args.out == args.bad_pixels:
+        raise UsageError("--out and --bad-pixels name the same file; give two different names")
     darks, saturation = _read(args.darks, args.dataset)
     if len(darks) < 2:
         raise FrameError(f"{args.darks.name} holds {len(darks)} frame; at least two dark frames are needed")
@@ -94,7 +109,7 @@ def run(args: argparse.Namespace) -> int:
             levels.append(data)
     sat = args.saturation if args.saturation is not None else (saturation if saturation is not None else 65535)
     try:
-        est = estimate_camera(darks, levels, kind=args.kind, counts_per_electron=args.counts_per_electron,
+        est = estimate_camera(darks, levels, kind=args.camera_kind, counts_per_electron=args.counts_per_electron,
                               em_gain=args.em_gain, quantum_efficiency=args.quantum_efficiency,
                               saturation=int(sat), clock_induced_charge=args.clock_induced_charge)
     except ValueError as exc:

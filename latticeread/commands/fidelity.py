@@ -54,7 +54,10 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
                         help="bootstrap replicates for the intervals, over shots or, with fewer than 10 shots, "
                              "over blocks of sites (default 200)")
     parser.add_argument("--seed", type=int, default=0, help="seed of the bootstrap (default 0)")
-    parser.add_argument("--no-progress", action="store_true", help="no progress bar")
+    parser.add_argument("--quiet", "-q", action="store_true", help="no progress bar")
+    parser.add_argument("--no-progress", dest="quiet", action="store_true", default=argparse.SUPPRESS,
+                        help=argparse.SUPPRESS)  # older spelling of --quiet
+    parser.add_argument("--force", action="store_true", help="replace the --out report when it exists")
 
 
 def _frames_to_occupations(args):
@@ -73,7 +76,7 @@ def _frames_to_occupations(args):
     per_stack, amplitudes, thresholds = [], [], []
     total = sum(len(s) for s in stacks)
     with tqdm(total=total, desc="reconstructing", unit="frame", file=sys.stderr,
-              disable=args.no_progress) as bar:
+              disable=args.quiet) as bar:
         for stack in stacks:
             mats, amps, ts = [], [], []
             for i in range(len(stack)):
@@ -150,6 +153,11 @@ def run(args: argparse.Namespace) -> int:
         return _usage(f"the report {args.out} must end in .json")
     if args.bootstrap < 0:
         return _usage(f"--bootstrap must be 0 or more, got {args.bootstrap}")
+    if args.out is not None:
+        from latticeread.io.outputs import check_outputs
+
+        check_outputs([args.out], force=args.force,
+                      inputs={"input stack": list(args.stacks), "calibration": args.calibration})
     single = args.stacks[0]
     kind = _results_kind(single) if len(args.stacks) == 1 and single.suffix.lower() in (".h5", ".hdf5") else None
     if kind == "run":
@@ -170,7 +178,7 @@ def run(args: argparse.Namespace) -> int:
         data = report.to_dict()
         data["inputs"] = [str(p) for p in args.stacks]
         data["calibration_file"] = None if args.calibration is None else str(args.calibration)
-        with atomic_write(args.out, "w", protect=args.stacks) as fh:
+        with atomic_write(args.out, "w", protect=[p for p in (*args.stacks, args.calibration) if p]) as fh:
             json.dump(data, fh, indent=2)
         print(f"wrote {args.out}")
     return 0

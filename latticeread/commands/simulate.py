@@ -6,7 +6,7 @@ import argparse
 import logging
 from pathlib import Path
 
-from latticeread.errors import LatticeReadError
+from latticeread.errors import UsageError
 
 log = logging.getLogger(__name__)
 
@@ -29,6 +29,8 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--jitter", type=float, default=0.3,
                         help="RMS lattice displacement per frame in pixels (default 0.3)")
     parser.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+    parser.add_argument("--force", action="store_true",
+                        help="replace OUT and its truth file when they exist")
 
 
 def run(args: argparse.Namespace) -> int:
@@ -36,11 +38,13 @@ def run(args: argparse.Namespace) -> int:
 
     from latticeread.core.simulate import demo_scenario, simulate_frames
     from latticeread.io.atomic import atomic_path
+    from latticeread.io.outputs import check_outputs, check_suffix
     from latticeread.io.truth_file import write_truth
 
     out = Path(args.out)
-    if out.suffix.lower() not in (".tif", ".tiff"):
-        raise LatticeReadError(f"the output {out} must end in .tif or .tiff")
+    check_suffix(out, [".tif", ".tiff"], what="the output")
+    truth_path = out.with_suffix(".truth.h5")
+    check_outputs([out, truth_path], force=args.force)
     kw = demo_scenario(args.scenario, frame_shape=tuple(args.size))
     pixel_nm = kw.pop("pixel_size_nm")
     for key, value in (("filling", args.filling), ("photons_per_atom", args.photons),
@@ -52,12 +56,11 @@ def run(args: argparse.Namespace) -> int:
                                         images_per_shot=args.images_per_shot, phase_jitter=args.jitter,
                                         rng=args.seed)
     except ValueError as exc:
-        raise LatticeReadError(f"cannot simulate: {exc}") from exc
+        raise UsageError(f"cannot simulate: {exc}") from exc
     truth.settings.update({"scenario": args.scenario, "seed": args.seed, "pixel_size_nm": pixel_nm})
     with atomic_path(out) as tmp:
         tifffile.imwrite(tmp, frames, photometric="minisblack", compression="zlib",
                          metadata={"axes": "QYX"}, description=None)
-    truth_path = out.with_suffix(".truth.h5")
     write_truth(truth_path, truth)
     print(f"wrote {out} ({frames.shape[0]} frames of {frames.shape[1]}x{frames.shape[2]} uint16) "
           f"and {truth_path} ({len(truth.sites)} sites, seed {args.seed})")

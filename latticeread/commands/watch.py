@@ -43,7 +43,12 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
+    from latticeread.io.outputs import check_outputs, check_suffix
     from latticeread.runs.watch import watch_folder
+
+    # an existing run file is continued, never replaced; it must not be the calibration
+    check_suffix(args.out, [".h5", ".hdf5"], what="the run file")
+    check_outputs([args.out], force=True, inputs={"calibration": args.calibration})
 
     def show(outcome, stats):
         if not args.quiet:

@@ -1,0 +1,92 @@
+"""Every deliberate refusal of the command line exits with the code the README's table gives.
+
+Each case runs the real command on small files; the refusals happen before any frame is
+analysed, so the whole file takes about a second. Existing files must be left untouched.
+"""
+
+import re
+import shutil
+from pathlib import Path
+
+import pytest
+
+from latticeread.cli import main
+
+ROOT = Path(__file__).resolve().parents[1]
+SAMPLE = ROOT / "sample_data"
+
+
+@pytest.fixture()
+def files(tmp_path):
+    """A frame file, its calibration, and a few existing files that must never change."""
+    shutil.copy(SAMPLE / "demo_folded.tif", tmp_path / "frames.tif")
+    shutil.copy(SAMPLE / "demo_folded.calibration.json", tmp_path / "cal.json")
+    for name in ("old.csv", "old.h5", "old.json", "old_only.csv.json", "old.tif", "taken.truth.h5", "data.h5"):
+        (tmp_path / name).write_text(f"existing {name}")
+    (tmp_path / "empty_cal.json").write_text("{}")
+    return tmp_path
+
+
+# (command line with {d} for the folder, expected exit code, words of the message)
+REFUSALS = [
+    (["recontruct", "{d}/frames.tif"], 2, "did you mean 'reconstruct'"),
+    (["calibrat"], 2, "did you mean 'calibrate'"),
+    (["reconstruct", "{d}/frames.tif", "-c", "{d}/cal.json", "-o", "{d}/sites.txt"], 2, "must end in one of"),
+    (["calibrate", "{d}/frames.tif", "-o", "{d}/cal.yaml"], 2, "must end in one of: .json"),
+    (["simulate", "{d}/frames.png"], 2, "must end in one of: .tif"),
+    (["batch", "{d}/frames.tif", "-c", "{d}/cal.json", "-o", "{d}/run.json"], 2, "run file"),
+    (["watch", "{d}", "-c", "{d}/cal.json", "-o", "{d}/live.csv"], 2, "run file"),
+    (["fidelity", "{d}/frames.tif", "--out", "{d}/report.txt"], 2, "must end in .json"),
+    (["reconstruct", "{d}/missing.tif", "-c", "{d}/cal.json", "-o", "{d}/s.csv"], 3, "does not exist"),
+    (["reconstruct", "{d}/frames.tif", "-c", "{d}/cal.json", "-o", "{d}/old.csv"], 4, "already exists"),
+    (["reconstruct", "{d}/frames.tif", "-c", "{d}/cal.json", "-o", "{d}/old.h5"], 4, "already exists"),
+    (["reconstruct", "{d}/frames.tif", "-c", "{d}/cal.json", "-o", "{d}/old_only.csv"], 4,
+     "old_only.csv.json already exists"),
+    (["calibrate", "{d}/frames.tif", "-o", "{d}/old.json"], 4, "already exists"),
+    (["calibrate", "{d}/frames.tif", "--camera", "{d}/old.json", "-o", "{d}/old.json", "--force"], 4,
+     "camera description this command reads"),
+    (["simulate", "{d}/old.tif"], 4, "already exists"),
+    (["simulate", "{d}/taken.tif"], 4, "taken.truth.h5 already exists"),
+    (["fidelity", "{d}/frames.tif", "-c", "{d}/cal.json", "--out", "{d}/old.json"], 4, "already exists"),
+    (["fidelity", "{d}/frames.tif", "-c", "{d}/cal.json", "--out", "{d}/cal.json", "--force"], 4,
+     "calibration this command reads"),
+    (["camera", "{d}/frames.tif", "--out", "{d}/old.json"], 4, "already exists"),
+    (["batch", "{d}/data.h5", "{d}/frames.tif", "-c", "{d}/cal.json", "-o", "{d}/data.h5"], 4,
+     "input this command reads"),
+    (["reconstruct", "{d}/frames.tif", "-c", "{d}/empty_cal.json", "-o", "{d}/s.csv"], 5, ""),
+]
+
+
+@pytest.mark.parametrize("argv, code, words", REFUSALS, ids=[" ".join(r[0][:1] + [str(r[1])]) + f"-{i}"
+                                                             for i, r in enumerate(REFUSALS)])
+def test_each_refusal_exits_with_its_code_and_touches_nothing(files, capsys, monkeypatch, argv, code, words):
+    import latticeread.commands.gui as gui
+
+    monkeypatch.setattr(gui, "run", lambda args: pytest.fail("a refusal must not open the window"))
+    before = {p.name: p.read_bytes() for p in files.iterdir()}
+    assert main([a.format(d=files) for a in argv]) == code
+    err = capsys.readouterr().err
+    assert words in err
+    assert "internal error" not in err and "Traceback" not in err
+    after = {p.name: p.read_bytes() for p in files.iterdir()}
+    assert after == before
+
+
+def _readme_codes() -> dict[int, str]:
+    text = (ROOT / "README.md").read_text(encoding="utf-8")
+    return {int(m.group(1)): m.group(2) for m in re.finditer(r"^\| (\d+) \| (.+) \|$", text, re.M)}
+
+
+def test_readme_table_lists_every_exit_code_of_the_program():
+    from latticeread import errors
+
+    codes = _readme_codes()
+    assert set(codes) == {0, 1, 2, 3, 4, 5, 130}
+    used = {cls.exit_code for cls in vars(errors).values()
+            if isinstance(cls, type) and issubclass(cls, errors.LatticeReadError) and cls is not errors.LatticeReadError}
+    assert used <= set(codes)
+    assert "bug" in codes[1]
+
+
+def test_every_refusal_code_of_the_table_is_exercised():
+    assert {code for _, code, _ in REFUSALS} == {c for c in _readme_codes() if c not in (0, 1, 130)}
