@@ -190,6 +190,37 @@ def _close_stack(stack) -> None:
             close()
 
 
+def _file_identity(path) -> tuple | None:
+    """(size, modification time in ns, inode, device) of a file; None when it is gone."""
+    try:
+        st = os.stat(path)
+    except OSError:
+        return None
+    return (st.st_size, st.st_mtime_ns, st.st_ino, st.st_dev)
+
+
+def _open_verified(key: ShotKey) -> tuple:
+    """Open ``key.source`` and check that it still holds the content ``key.file_hash`` names.
+
+    Returns ``(stack, identity)``. The file is hashed after opening; an unchanged identity
+    before and after shows that the open handle and the hashed bytes are the same file.
+    """
+    name = Path(key.source).name
+    before = _file_identity(key.source)
+    stack = _open_stack(key.source)
+    try:
+        digest = hash_file(key.source)
+        after = _file_identity(key.source)
+    except OSError as exc:
+        _close_stack(stack)
+        raise FrameFileError(f"{name} cannot be read again: {exc.strerror or exc}") from exc
+    if before != after or digest != key.file_hash:
+        _close_stack(stack)
+        raise FrameFileError(f"{name} changed after it was listed for this run (replaced or still being written); "
+                             "its frames were not taken. Run again to take the new version")
+    return stack, after
+
+
 def _count_frames(path: Path) -> int:
     stack = _open_stack(path)
     try:
@@ -335,20 +366,33 @@ class ShotReconstructor:
         self._stacks: OrderedDict = OrderedDict()
         self._keep_open = max(1, int(keep_open))
 
-    def _stack(self, source: str):
-        stack = self._stacks.pop(source, None)
-        if stack is None:
-            stack = _open_stack(source)
-        self._stacks[source] = stack
+    def _stack(self, key: ShotKey):
+        """The open stack of ``key``'s file, holding exactly the content ``key.file_hash`` names.
+
+        Open stacks are cached by (path, content hash) and remembered with the file's size,
+        modification time and inode: a file replaced or rewritten under the same name is a
+        new input, opened (and checked against its hash) again, never read from a stale
+        handle.
+        """
+        cache_key = (key.source, key.file_hash)
+        entry = self._stacks.pop(cache_key, None)
+        if entry is not None and entry[1] != _file_identity(key.source):
+            _close_stack(entry[0])
+            entry = None
+        if entry is None:
+            entry = _open_verified(key)
+        self._stacks[cache_key] = entry
         while len(self._stacks) > self._keep_open:
-            _close_stack(self._stacks.popitem(last=False)[1])
-        return stack
+            _close_stack(self._stacks.popitem(last=False)[1][0])
+        return entry[0]
 
     def __call__(self, key: ShotKey) -> ShotRecord | ShotFailure:
         """Reconstruct one shot; every exception becomes a :class:`ShotFailure`."""
         name = Path(key.source).name
         try:
-            stack = self._stack(key.source)
+            stack = self._stack(key)
+            # the declared frame size, before a pixel is decoded
+            self.calibration.check_frame_shape(tuple(stack.frame_shape), where=f"the frames of {name}")
             image = stack[key.frame_index]
             if np.ndim(image) != 2:
                 raise ReconstructionError(f"frame {key.frame_index} of {name} has {np.ndim(image)} dimensions; "
@@ -358,17 +402,22 @@ class ShotReconstructor:
                 result = self._reconstructor(image, frame_index=key.frame_index)
             return shot_record(key, result)
         except LatticeReadError as exc:
-            self._stacks.pop(key.source, None)
+            self._forget(key)
             return ShotFailure(key, type(exc).__name__, str(exc))
         except Exception as exc:  # noqa: BLE001 - a bug on one shot must not stop thousands
-            self._stacks.pop(key.source, None)
+            self._forget(key)
             log.warning("unexpected error on frame %d of %s", key.frame_index, key.source, exc_info=True)
             return ShotFailure(key, type(exc).__name__, f"internal error on frame {key.frame_index} of {name}: "
                                                         f"{type(exc).__name__}: {exc}")
 
+    def _forget(self, key: ShotKey) -> None:
+        entry = self._stacks.pop((key.source, key.file_hash), None)
+        if entry is not None:
+            _close_stack(entry[0])
+
     def close(self) -> None:
         while self._stacks:
-            _close_stack(self._stacks.popitem()[1])
+            _close_stack(self._stacks.popitem()[1][0])
 
 
 def calibration_digest(calibration_json: str) -> str:
