@@ -1,7 +1,7 @@
 """Live watch: detecting completed frame files (FolderWatcher) and the watch loop.
 
-"Complete" is our own rule (size and time unchanged between two polls and the file opens
-and its last frame reads); the reference for valid/truncated TIFF is tifffile itself
+"Complete" is our own rule (size and time unchanged between two polls and for the settle
+time, and the file opens and its last frame reads); the reference for valid/truncated TIFF is tifffile itself
 (common practice, no source).
 """
 
@@ -36,7 +36,7 @@ def _touch(path, data: bytes, *, mtime_ns: int | None = None):
 def test_file_is_reported_only_when_complete(tmp_path):
     data = _tiff_bytes(3)
     shot = tmp_path / "shot_001.tif"
-    w = FolderWatcher(tmp_path)
+    w = FolderWatcher(tmp_path, settle=0)
     _touch(shot, data[: len(data) // 2], mtime_ns=10**18)  # the camera is half-way through
     assert w.poll() == []                      # first sight
     assert w.poll() == []                      # size stable but the TIFF is truncated
@@ -52,7 +52,7 @@ def test_file_is_reported_only_when_complete(tmp_path):
 def test_growing_file_is_not_reported(tmp_path):
     data = _tiff_bytes(2)
     shot = tmp_path / "s.tif"
-    w = FolderWatcher(tmp_path)
+    w = FolderWatcher(tmp_path, settle=0)
     for k, end in enumerate((100, 400, 700, len(data))):
         _touch(shot, data[:end], mtime_ns=10**18 + k)
         assert w.poll() == []
@@ -62,7 +62,7 @@ def test_growing_file_is_not_reported(tmp_path):
 def test_corrupt_and_empty_files_are_reported_broken_once(tmp_path):
     (tmp_path / "junk.tif").write_bytes(b"this is not a tiff" * 10)
     (tmp_path / "empty.tif").write_bytes(b"")
-    w = FolderWatcher(tmp_path, give_up_polls=3)
+    w = FolderWatcher(tmp_path, give_up_polls=3, settle=0)
     seen = []
     for _ in range(6):
         seen += w.poll()
@@ -78,7 +78,7 @@ def test_hidden_excluded_and_other_files_are_ignored(tmp_path):
     (tmp_path / "notes.txt").write_text("hello")
     (tmp_path / "live.h5").write_bytes(b"run file")
     (tmp_path / "a.tif").write_bytes(data)
-    w = FolderWatcher(tmp_path, exclude=[tmp_path / "live.h5"])
+    w = FolderWatcher(tmp_path, exclude=[tmp_path / "live.h5"], settle=0)
     events = w.poll() + w.poll()
     assert [e.path.name for e in events] == ["a.tif"]
 
@@ -86,7 +86,7 @@ def test_hidden_excluded_and_other_files_are_ignored(tmp_path):
 def test_new_only_skips_existing_files(tmp_path):
     data = _tiff_bytes()
     (tmp_path / "old.tif").write_bytes(data)
-    w = FolderWatcher(tmp_path, include_existing=False)
+    w = FolderWatcher(tmp_path, include_existing=False, settle=0)
     assert w.poll() == []
     (tmp_path / "new.tif").write_bytes(data)
     events = w.poll() + w.poll() + w.poll()
@@ -96,7 +96,7 @@ def test_new_only_skips_existing_files(tmp_path):
 def test_rewritten_file_is_reported_again(tmp_path):
     shot = tmp_path / "s.tif"
     _touch(shot, _tiff_bytes(seed=1), mtime_ns=10**18)
-    w = FolderWatcher(tmp_path)
+    w = FolderWatcher(tmp_path, settle=0)
     assert [e.status for e in w.poll() + w.poll()] == ["ready"]
     _touch(shot, _tiff_bytes(seed=2), mtime_ns=10**18 + 5)
     assert [e.status for e in w.poll() + w.poll()] == ["ready"]
@@ -106,7 +106,7 @@ def test_events_come_in_natural_order(tmp_path):
     data = _tiff_bytes()
     for name in ("shot_10.tif", "shot_2.tif", "shot_1.tif"):
         (tmp_path / name).write_bytes(data)
-    w = FolderWatcher(tmp_path)
+    w = FolderWatcher(tmp_path, settle=0)
     w.poll()
     assert [e.path.name for e in w.poll()] == ["shot_1.tif", "shot_2.tif", "shot_10.tif"]
 
@@ -152,7 +152,7 @@ def test_watch_reconstructs_new_files_as_they_arrive(tmp_path):
 
     lines = []
     summary = watch_folder(live, calibration=cal, out=live / "live.h5", max_files=3, on_shot=lambda o, s:
-                           lines.append(s.describe(o)), sleep=camera)
+                           lines.append(s.describe(o)), sleep=camera, settle=0)
     run = read_run(live / "live.h5")
     assert [Path(s).name for s in run.source] == ["shot_0.tif", "shot_1.tif", "shot_2.tif"]
     assert len(run.failures) == 0  # the half-written file was waited for, not failed
@@ -185,7 +185,8 @@ def test_watch_records_broken_files_and_stops_cleanly_on_ctrl_c(tmp_path):
         if len(polls) == 15:
             raise KeyboardInterrupt
 
-    summary = watch_folder(live, calibration=cal, out=tmp_path / "live.h5", sleep=ctrl_c_after_a_while)
+    summary = watch_folder(live, calibration=cal, out=tmp_path / "live.h5", sleep=ctrl_c_after_a_while,
+                           settle=0)
     assert any("interrupted" in w for w in summary.warnings)
     run = read_run(tmp_path / "live.h5")
     assert len(run) == 0 and len(run.failures) == 1
@@ -226,7 +227,7 @@ def test_live_run_steps_keep_files_beyond_max_files_for_later(tmp_path):
     from test_batch import make_dataset
 
     cal, _, _ = make_dataset(tmp_path / "cam", n_files=2, frames_per_file=1, seed=14)
-    with LiveRun(tmp_path / "cam", calibration=cal, out=tmp_path / "live.h5") as live:
+    with LiveRun(tmp_path / "cam", calibration=cal, out=tmp_path / "live.h5", settle=0) as live:
         assert live.step() == []                              # first sight of both files
         first = live.step(max_files=1)                        # both complete; only one handled
         assert [Path(o.key.source).name for o in first] == ["shot_0.tif"]

@@ -19,10 +19,21 @@ def _positive(kind):
     return check
 
 
+def _non_negative(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        value = -1.0
+    if not value >= 0:
+        raise argparse.ArgumentTypeError(f"must be 0 or a positive number of seconds, got {text!r}")
+    return value
+
+
 def add_parser(parser: argparse.ArgumentParser) -> None:
     parser.epilog = (
-        "A file is taken when its size has not changed between two looks at the folder and it opens as a "
-        "complete frame file. Each frame is appended to the run file at once (same format as "
+        "A file is taken when its size and time have not changed between two looks at the folder nor for the "
+        "settle time (a camera that appends frames to one file pauses between frames: make --settle longer "
+        "than that pause), and it opens as a complete frame file. Each frame is appended to the run file at once (same format as "
         "'latticeread batch'; files already in it are skipped). Stop with Ctrl-C.")
     parser.add_argument("folder", type=Path, help="folder the camera writes frame files to")
     parser.add_argument("--calibration", "-c", required=True, type=Path, metavar="CAL.json",
@@ -31,6 +42,8 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
                         help="run file to create, or to continue when it exists")
     parser.add_argument("--interval", type=_positive(float), default=0.5, metavar="SECONDS",
                         help="time between two looks at the folder (default 0.5 s)")
+    parser.add_argument("--settle", type=_non_negative, default=0.5, metavar="SECONDS",
+                        help="a file must stay unchanged this long before it is taken (default 0.5 s)")
     parser.add_argument("--max-files", type=_positive(int), default=None, metavar="N",
                         help="stop after N files (default: run until Ctrl-C)")
     parser.add_argument("--timeout", type=_positive(float), default=None, metavar="SECONDS",
@@ -57,7 +70,8 @@ def run(args: argparse.Namespace) -> int:
     print(f"watching {args.folder} (Ctrl-C to stop); results go to {args.out}", file=sys.stderr, flush=True)
     summary = watch_folder(args.folder, calibration=args.calibration, out=args.out, interval=args.interval,
                            max_files=args.max_files, timeout=args.timeout, include_existing=not args.new_only,
-                           on_shot=show, retry_failed=args.retry_failed, metadata={"command": "watch"})
+                           on_shot=show, retry_failed=args.retry_failed, metadata={"command": "watch"},
+                           settle=args.settle)
     print(summary.format())
     from latticeread.runs.watch import INTERRUPTED_NOTE
 

@@ -4,9 +4,15 @@
 :meth:`FolderWatcher.poll` every fraction of a second (the GUI does it from a timer, the
 command line from a loop) and it returns the files that became complete since the last
 call. A file counts as complete when its size and modification time did not change
-between two polls **and** it opens as a valid frame file whose last frame can be read (a
-TIFF still being written fails that test). A file that stays unchanged but unreadable for
-``give_up_polls`` polls is reported as broken, once.
+between two polls, have not changed for at least a settle time (``settle`` seconds since
+the file's modification time, or since the watcher saw the change when that time lies in
+the future), **and** it opens
+as a valid frame file whose last frame can be read, with the same size and time after
+reading as before (a TIFF still being written fails that test). The settle time covers a
+camera that appends frames to one file: between two frames the file is unchanged and
+readable, but it is not complete. A file that stays unchanged but unreadable for
+``give_up_polls`` polls is reported as broken, once. A file that changes after it was
+reported (rewritten, replaced, or grown) is reported again: it is a new input.
 
 :class:`LiveRun` ties the watcher to a reconstructor (built once) and a run file, one poll
 per :meth:`LiveRun.step` (the GUI's timer or worker calls it); every new frame is
@@ -95,9 +101,16 @@ def validate_frame_file(path) -> int:
 @dataclass
 class _FileState:
     stat: tuple
+    since: float = 0.0  # watcher clock when this stat was first seen
     stable: int = 0  # consecutive polls with an unchanged stat
     reported: tuple | None = None  # stat at the time it was reported
     last_error: str = ""
+    n_frames: int | None = None  # frames when it was reported
+
+
+#: Seconds a file must stay unchanged before it is taken (a camera appending frames to one
+#: file pauses between frames; common practice, no source: longer than one readout).
+DEFAULT_SETTLE_SECONDS = 0.5
 
 
 class FolderWatcher:
@@ -118,17 +131,26 @@ class FolderWatcher:
     give_up_polls : int
         A file unchanged but unreadable for this many polls is reported as broken.
     validate : callable, optional
-        ``validate(path)`` raises when the file is not a complete frame file; default
-        :func:`validate_frame_file`.
+        ``validate(path)`` raises when the file is not a complete frame file (and may return
+        its number of frames); default :func:`validate_frame_file`.
+    settle : float
+        Seconds a file's size and modification time must stay unchanged before it is taken
+        (default :data:`DEFAULT_SETTLE_SECONDS`); counted from the modification time (from
+        when the watcher saw the change if that time lies in the future). 0 takes a file at
+        the first poll that finds it unchanged.
+    clock : callable
+        Seconds on the wall clock (``time.time``; tests may replace it).
 
     Notes
     -----
     A file is reported once per version: if it is rewritten (size or time changes) after
-    it was reported, it is reported again when it is complete again.
+    it was reported, it is reported again when it is complete again, with a warning in the
+    log when it had been taken with fewer frames (it grew after it was taken).
     """
 
     def __init__(self, folder, *, suffixes=FRAME_SUFFIXES, exclude=(), include_existing: bool = True,
-                 give_up_polls: int = 10, validate=None):
+                 give_up_polls: int = 10, validate=None, settle: float = DEFAULT_SETTLE_SECONDS,
+                 clock=time.time):
         from latticeread.errors import FrameFileError
 
         self.folder = Path(os.fspath(folder)).resolve()
@@ -141,6 +163,10 @@ class FolderWatcher:
         self._files: dict[Path, _FileState] = {}
         self._first = True
         self._include_existing = bool(include_existing)
+        if not settle >= 0:
+            raise ValueError(f"settle time must be 0 or more seconds, got {settle!r}")
+        self.settle = float(settle)
+        self._clock = clock
 
     def _scan(self) -> dict[Path, tuple]:
         found = {}
@@ -174,24 +200,32 @@ class FolderWatcher:
             In natural file-name order.
         """
         current = self._scan()
+        now = self._clock()
         events: list[WatchEvent] = []
         for path in [p for p in self._files if p not in current]:
             del self._files[path]  # deleted or renamed away
         for path, stat in current.items():
             state = self._files.get(path)
             if state is None:
-                state = self._files[path] = _FileState(stat)
+                state = self._files[path] = _FileState(stat, since=now)
                 if self._first and not self._include_existing:
                     state.reported = stat
                 continue
             if stat != state.stat:
-                state.stat, state.stable, state.last_error = stat, 0, ""
+                state.stat, state.since, state.stable, state.last_error = stat, now, 0, ""
                 continue
             state.stable += 1
             if state.reported == stat or (stat[0] == 0 and state.stable < self._give_up):
                 continue
+            # unchanged since its modification time (since the change seen here when that
+            # time lies in the future: the clock of a network share may run ahead)
+            changed = stat[1] / 1e9
+            if now - (changed if changed <= now else state.since) < self.settle:
+                continue
             try:
-                self._validate(path)
+                n_frames = self._validate(path)
+                if self._stat(path) != stat:
+                    continue  # written to while it was read: look again at the next poll
             except Exception as exc:  # noqa: BLE001 - any failure means "not (yet) a frame file"
                 state.last_error = str(exc) or type(exc).__name__
                 if state.stable >= self._give_up:
@@ -199,12 +233,26 @@ class FolderWatcher:
                     reason = state.last_error if stat[0] else f"{path.name} is empty"
                     events.append(WatchEvent(path, "broken", reason))
                 continue
+            if state.reported is not None and state.n_frames is not None and isinstance(n_frames, int) \
+                    and n_frames > state.n_frames:
+                log.warning("%s grew from %d to %d frames after it was taken; it is taken again as a new input "
+                            "(raise the settle time if the camera appends frames slowly)", path.name,
+                            state.n_frames, n_frames)
             state.reported = stat
+            state.n_frames = n_frames if isinstance(n_frames, int) else None
             events.append(WatchEvent(path, "ready"))
         self._first = False
         from latticeread.runs.batch import _natural_key
 
         return sorted(events, key=lambda e: _natural_key(e.path))
+
+    @staticmethod
+    def _stat(path: Path) -> tuple | None:
+        try:
+            st = os.stat(path)
+        except OSError:
+            return None
+        return (st.st_size, st.st_mtime_ns)
 
     @property
     def pending(self) -> list[Path]:
@@ -280,10 +328,12 @@ class LiveRun:
         Stored with the run file when it is created.
     give_up_polls : int
         Polls after which an unchanged but unreadable file is recorded as a failure.
+    settle : float
+        Seconds a file must stay unchanged before it is taken (see :class:`FolderWatcher`).
     """
 
     def __init__(self, folder, *, calibration, out, include_existing: bool = True, retry_failed: bool = False,
-                 metadata: dict | None = None, give_up_polls: int = 10):
+                 metadata: dict | None = None, give_up_polls: int = 10, settle: float = DEFAULT_SETTLE_SECONDS):
         self._t_start = time.perf_counter()
         self.calibration = _as_calibration(calibration)
         self.out = Path(os.fspath(out))
@@ -293,7 +343,7 @@ class LiveRun:
         self._examples: list[str] = []
         self._queue: deque = deque()  # reported by the watcher, not handled yet
         self.watcher = FolderWatcher(folder, exclude=[self.out], include_existing=include_existing,
-                                     give_up_polls=give_up_polls)
+                                     give_up_polls=give_up_polls, settle=settle)
         meta = {"watched_folder": str(self.watcher.folder), **(metadata or {})}
         self._writer = RunWriter(self.out, calibration_json=calibration_to_json(self.calibration), metadata=meta)
         try:
@@ -390,7 +440,8 @@ class LiveRun:
 
 def watch_folder(folder, *, calibration, out, interval: float = 0.5, max_files: int | None = None,
                  timeout: float | None = None, include_existing: bool = True, on_shot=None,
-                 retry_failed: bool = False, metadata: dict | None = None, sleep=time.sleep) -> BatchSummary:
+                 retry_failed: bool = False, metadata: dict | None = None, sleep=time.sleep,
+                 settle: float = DEFAULT_SETTLE_SECONDS) -> BatchSummary:
     """Reconstruct frame files as they appear in ``folder`` and append them to a run file.
 
     Parameters
@@ -418,6 +469,8 @@ def watch_folder(folder, *, calibration, out, interval: float = 0.5, max_files: 
         Stored with the run file when it is created.
     sleep : callable
         Waits between polls (tests may replace it).
+    settle : float
+        Seconds a file must stay unchanged before it is taken (see :class:`FolderWatcher`).
 
     Returns
     -------
@@ -427,7 +480,7 @@ def watch_folder(folder, *, calibration, out, interval: float = 0.5, max_files: 
     """
     interrupted = False
     with LiveRun(folder, calibration=calibration, out=out, include_existing=include_existing,
-                 retry_failed=retry_failed, metadata=metadata) as live:
+                 retry_failed=retry_failed, metadata=metadata, settle=settle) as live:
         last_activity = time.monotonic()
         try:
             with interrupt_guard():

@@ -1,0 +1,165 @@
+"""Inputs that change under the program: a file replaced under the same name, a camera that
+appends frames to one TIFF. Each is a new input or an incomplete one, never stale pixels."""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+import numpy as np
+import pytest
+import tifffile
+
+from latticeread.io.run_file import ShotKey
+from latticeread.runs.batch import ShotFailure, ShotReconstructor, hash_file
+from latticeread.runs.watch import FolderWatcher, validate_frame_file
+
+from test_batch import make_dataset
+
+
+@pytest.fixture(scope="module")
+def dataset(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("changing")
+    return make_dataset(folder, n_files=2, frames_per_file=1, seed=21)
+
+
+def _key(path: Path, frame: int = 0) -> ShotKey:
+    return ShotKey(str(path), hash_file(path), frame)
+
+
+def test_a_file_replaced_under_the_same_name_is_read_again(dataset, tmp_path):
+    cal, paths, _ = dataset
+    shot = tmp_path / "shot.tif"
+    shot.write_bytes(paths[0].read_bytes())
+    rec = ShotReconstructor(cal)
+    first = rec(_key(shot))
+    tmp = tmp_path / ".incoming.tif"
+    tmp.write_bytes(paths[1].read_bytes())
+    os.replace(tmp, shot)  # the camera software replaces the file
+    second = rec(_key(shot))
+    fresh = ShotReconstructor(cal)(_key(paths[1]))
+    rec.close()
+    assert not isinstance(second, ShotFailure)
+    assert second.key.file_hash != first.key.file_hash
+    np.testing.assert_array_equal(second.amplitude, fresh.amplitude)
+    assert not np.array_equal(second.amplitude, first.amplitude)
+
+
+def test_a_file_rewritten_in_place_is_read_again(dataset, tmp_path):
+    cal, paths, _ = dataset
+    shot = tmp_path / "shot.tif"
+    shot.write_bytes(paths[0].read_bytes())
+    rec = ShotReconstructor(cal)
+    rec(_key(shot))
+    shot.write_bytes(paths[1].read_bytes())  # same size, same inode, new content
+    os.utime(shot, ns=(shot.stat().st_mtime_ns + 10**9,) * 2)
+    again = rec(_key(shot))
+    rec.close()
+    np.testing.assert_array_equal(again.amplitude, ShotReconstructor(cal)(_key(paths[1])).amplitude)
+
+
+def test_a_file_that_changed_since_it_was_listed_is_a_failure_not_a_result(dataset, tmp_path):
+    cal, paths, _ = dataset
+    shot = tmp_path / "shot.tif"
+    shot.write_bytes(paths[0].read_bytes())
+    listed = _key(shot)
+    shot.write_bytes(paths[1].read_bytes())
+    outcome = ShotReconstructor(cal)(listed)
+    assert isinstance(outcome, ShotFailure)
+    assert "changed after it was listed" in outcome.reason
+
+
+# --- an appending camera ---------------------------------------------------------------------
+
+class _Clock:
+    def __init__(self):
+        self.now = 2.0e9  # seconds on the wall clock, shared with the files' times
+
+    def __call__(self):
+        return self.now
+
+
+def _append_frame(path: Path, frame: np.ndarray, clock: _Clock) -> None:
+    tifffile.imwrite(path, frame, append=True, photometric="minisblack", metadata=None)
+    os.utime(path, ns=(int(clock.now * 1e9),) * 2)
+
+
+def test_a_file_that_grows_frame_by_frame_is_taken_once_when_complete(tmp_path):
+    frames = np.random.default_rng(5).integers(100, 1000, size=(8, 16, 16), dtype=np.uint16)
+    clock = _Clock()
+    shot = tmp_path / "shot.tif"
+    watcher = FolderWatcher(tmp_path, settle=1.0, clock=clock)
+    events = []
+    for k in range(8):  # one frame every 0.6 s; the watcher looks every 0.2 s
+        _append_frame(shot, frames[k], clock)
+        for _ in range(3):
+            events += watcher.poll()
+            clock.now += 0.2
+    assert events == []  # readable between frames, but never unchanged for the settle time
+    for _ in range(6):
+        events += watcher.poll()
+        clock.now += 0.2
+    assert [(e.path.name, e.status) for e in events] == [("shot.tif", "ready")]
+    assert validate_frame_file(shot) == 8
+
+
+def test_without_a_settle_time_a_pausing_writer_is_taken_too_early(tmp_path):
+    # the behaviour the settle time prevents: the same writer, taken at its first pause
+    frames = np.random.default_rng(5).integers(100, 1000, size=(3, 16, 16), dtype=np.uint16)
+    clock = _Clock()
+    watcher = FolderWatcher(tmp_path, settle=0, clock=clock)
+    _append_frame(tmp_path / "shot.tif", frames[0], clock)
+    events = watcher.poll() + watcher.poll()
+    assert [e.status for e in events] == ["ready"]
+
+
+def test_a_future_modification_time_waits_from_when_the_change_was_seen(tmp_path):
+    clock = _Clock()
+    frame = np.arange(256, dtype=np.uint16).reshape(16, 16)
+    shot = tmp_path / "shot.tif"
+    tifffile.imwrite(shot, frame, photometric="minisblack")
+    os.utime(shot, ns=(int((clock.now + 3600) * 1e9),) * 2)  # a share whose clock runs an hour ahead
+    watcher = FolderWatcher(tmp_path, settle=1.0, clock=clock)
+    events = []
+    for _ in range(4):
+        events += watcher.poll()
+        clock.now += 0.2
+    assert events == []
+    for _ in range(3):
+        events += watcher.poll()
+        clock.now += 0.2
+    assert [e.status for e in events] == ["ready"]
+
+
+def test_settle_time_must_not_be_negative(tmp_path):
+    with pytest.raises(ValueError, match="settle time must be 0 or more seconds"):
+        FolderWatcher(tmp_path, settle=-1)
+
+
+def test_watch_takes_an_appending_camera_file_once_with_every_frame(dataset, tmp_path):
+    from latticeread.io.run_file import read_run
+    from latticeread.runs.watch import watch_folder
+
+    cal, paths, _ = dataset
+    frames = np.concatenate([tifffile.imread(p)[None] if tifffile.imread(p).ndim == 2 else tifffile.imread(p)
+                             for p in paths] * 2)  # 4 frames
+    camera = tmp_path / "camera"
+    camera.mkdir()
+    shot = camera / "shot.tif"
+    written = {"n": 0, "polls": 0}
+
+    def camera_between_polls(_seconds):
+        import time
+
+        written["polls"] += 1
+        if written["polls"] % 3 == 1 and written["n"] < len(frames):  # a frame every 3 polls
+            tifffile.imwrite(shot, frames[written["n"]], append=True, photometric="minisblack", metadata=None)
+            written["n"] += 1
+        time.sleep(0.05)
+
+    summary = watch_folder(camera, calibration=cal, out=tmp_path / "live.h5", max_files=1, settle=1.0,
+                           sleep=camera_between_polls)
+    run = read_run(tmp_path / "live.h5")
+    assert written["n"] == len(frames)
+    assert summary.n_new == len(frames) and len(run.failures) == 0
+    assert sorted(run.frame_index.tolist()) == list(range(len(frames)))
