@@ -114,6 +114,7 @@ def run(args: argparse.Namespace) -> int:
         results = reconstruct_stack(stack, cal, method=args.method, mask=mask,
                                     refit_phase=not args.no_phase_refit, threshold=args.threshold,
                                     progress=progress)
+        results = _with_load_warnings(results, stack)
         protect = [args.frames] + ([args.calibration] if args.calibration is not None else [])
         if kind == "csv":
             written = write_sites_csv(out, results, calibration=cal, metadata=metadata, protect=protect)
@@ -125,3 +126,21 @@ def run(args: argparse.Namespace) -> int:
     print(f"wrote {out}: {n} frame(s), {written} {'rows' if kind == 'csv' else 'frames'}; "
           f"threshold {np.nan if cal.threshold is None else cal.threshold:.1f} photons")
     return 0
+
+
+def _with_load_warnings(results, stack):
+    """Attach the stack's new load warnings (constant frame, saturated pixels) to each result.
+
+    The frames are read one at a time just before their result is made, so the warnings
+    that appeared since the previous result belong to this frame; the writers store them
+    with the frame.
+    """
+    import dataclasses
+
+    seen = 0
+    for result in results:
+        new = stack.warnings[seen:]
+        seen = len(stack.warnings)
+        if new:
+            result = dataclasses.replace(result, warnings=(*new, *result.warnings))
+        yield result

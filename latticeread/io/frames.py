@@ -383,6 +383,46 @@ def _h5_candidates(h5) -> list[str]:
     return found
 
 
+def _describe_link(h5, dataset: str, exc: Exception) -> str:
+    """Why an HDF5 path cannot be opened, naming the file an external link points to."""
+    import h5py
+
+    try:
+        link = h5.get(dataset, getlink=True)
+    except (KeyError, OSError, ValueError):
+        link = None
+    if isinstance(link, h5py.ExternalLink):
+        return (f"it is a link to {link.path!r} in the file {link.filename}, which is missing or not an HDF5 "
+                "file")
+    return str(exc)
+
+
+def _check_external_sources(ds, path: Path, dataset: str) -> None:
+    """Refuse a dataset whose pixels live in other files that are missing.
+
+    HDF5 reads the missing parts of a virtual dataset as its fill value without an error:
+    the frames would look like blank images. Raw external storage is checked the same way.
+    """
+    folder = path.parent
+    missing = []
+    if getattr(ds, "is_virtual", False):
+        for source in ds.virtual_sources():
+            name = source.file_name
+            if name == "." or "%" in name:  # the same file, or a pattern of file names
+                continue
+            if not any(p.exists() for p in (Path(name), folder / name)):
+                missing.append(name)
+    for entry in ds.external or ():
+        name = entry[0].decode() if isinstance(entry[0], bytes) else str(entry[0])
+        if not any(p.exists() for p in (Path(name), folder / name)):
+            missing.append(name)
+    if missing:
+        files = ", ".join(sorted(set(missing)))
+        raise FrameFileError(f"dataset {dataset} of {path.name} takes its pixels from other files that are missing "
+                             f"({files}); HDF5 would read those frames as blank fill values. Put the files back "
+                             "beside it or use the original data")
+
+
 class _H5Reader:
     def __init__(self, path: Path, dataset: str | None):
         import h5py
@@ -405,9 +445,14 @@ class _H5Reader:
                 cands = _h5_candidates(self.h5)
                 hint = f"; candidates: {', '.join(cands)}" if cands else "; it holds no frame-like dataset"
                 raise FrameFileError(f"{name} has no dataset {dataset!r}{hint}")
-            ds = self.h5[dataset]
+            try:
+                ds = self.h5[dataset]
+            except (KeyError, OSError) as exc:
+                raise FrameFileError(f"{dataset!r} in {name} cannot be opened: {_describe_link(self.h5, dataset, exc)}"
+                                     ) from exc
             if not isinstance(ds, h5py.Dataset):
                 raise FrameFileError(f"{dataset!r} in {name} is a group, not a dataset")
+            _check_external_sources(ds, path, dataset)
             self.ds = ds
             self.dataset = ds.name
             self.shape = tuple(ds.shape)
@@ -514,6 +559,9 @@ class FrameStack:
         Pixel value (counts) at or above which a pixel counts as saturated.
     nonfinite : {"raise", "keep"}
         What to do with NaN/inf pixels.
+    warnings : list of str
+        Problems found in the frames handed out so far (constant frame, saturated pixels),
+        each once; also issued as :class:`~latticeread.errors.LatticeReadWarning`.
     """
 
     def __init__(self, reader, source: Path, *, dataset, roi, saturation, nonfinite, validate: bool):
@@ -538,6 +586,9 @@ class FrameStack:
             raise ValueError(f"nonfinite must be 'raise' or 'keep', got {nonfinite!r}")
         self.nonfinite = nonfinite
         self.validate = bool(validate)
+        #: Warnings about the frames handed out so far (constant frames, saturated pixels),
+        #: each once, in order: writers store them with the results.
+        self.warnings: list[str] = []
 
     # sequence protocol
     def __len__(self) -> int:
@@ -610,6 +661,8 @@ class FrameStack:
         for text in report.problems:
             if "non-finite" in text:
                 continue
+            if text not in self.warnings:
+                self.warnings.append(text)
             warnings.warn(text, LatticeReadWarning, stacklevel=3)
 
     def validate_frame(self, i) -> FrameReport:

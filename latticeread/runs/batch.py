@@ -393,14 +393,19 @@ class ShotReconstructor:
             stack = self._stack(key)
             # the declared frame size, before a pixel is decoded
             self.calibration.check_frame_shape(tuple(stack.frame_shape), where=f"the frames of {name}")
+            seen = len(getattr(stack, "warnings", ()))
             image = stack[key.frame_index]
+            load_warnings = tuple(getattr(stack, "warnings", ())[seen:])  # constant frame, saturation...
             if np.ndim(image) != 2:
                 raise ReconstructionError(f"frame {key.frame_index} of {name} has {np.ndim(image)} dimensions; "
                                           "a frame must be a 2-D image")
             self.calibration.check_frame_shape(np.shape(image), where=f"frame {key.frame_index} of {name}")
             with self._blas.limit(limits=1, user_api="blas"):
                 result = self._reconstructor(image, frame_index=key.frame_index)
-            return shot_record(key, result)
+            record = shot_record(key, result)
+            if load_warnings:
+                record = dataclasses.replace(record, warnings=tuple(dict.fromkeys((*load_warnings, *record.warnings))))
+            return record
         except LatticeReadError as exc:
             self._forget(key)
             return ShotFailure(key, type(exc).__name__, str(exc))
