@@ -103,3 +103,15 @@ def test_batch_stores_load_warnings_with_the_shot(stack_with_a_constant_frame):
     rec.close()
     assert any("frame 1 of f.tif is constant" in w for w in record.warnings)
     assert not any("constant" in w for w in good.warnings)
+
+
+def test_batch_never_suggests_an_option_it_lacks(tmp_path, capsys):
+    with h5py.File(tmp_path / "two.h5", "w") as f:
+        f["a"] = np.zeros((2, 8, 8), np.uint16)
+        f["b"] = np.zeros((2, 8, 8), np.uint16)
+    shutil.copy(SAMPLE / "demo_folded.calibration.json", tmp_path / "cal.json")
+    code = main(["batch", str(tmp_path / "two.h5"), "-c", str(tmp_path / "cal.json"), "-o", str(tmp_path / "r.h5"),
+                 "--workers", "0", "-q"])
+    out = capsys.readouterr().out
+    assert code == 3
+    assert "batch and watch need files holding a single frame dataset" in out

@@ -30,10 +30,11 @@ def _images(text: str) -> int:
 
 def add_parser(parser: argparse.ArgumentParser) -> None:
     parser.epilog = (
-        "The run file is written shot by shot; an interrupted run keeps every shot written so far, and "
-        "running the same command again skips them (shots are matched by file path, file content and "
-        "frame index). Failed shots are listed in the run file's failures table. Exit code 0 when at "
-        "least one shot was written or nothing was left to do, 3 when every shot of this run failed.")
+        "The run file holds one row per frame (camera image), written as the frames are done; an interrupted "
+        "run keeps every frame written so far, and running the same command again skips them (frames are "
+        "matched by file path, file content and frame index). Failed frames are listed in the run file's "
+        "failures table. HDF5 inputs must hold a single frame dataset. Exit code 0 when at least one frame was "
+        "written or nothing was left to do, 3 when every frame of this run failed.")
     parser.add_argument("inputs", nargs="+", metavar="INPUT",
                         help="frame files (TIFF, HDF5, .npy/.npz), folders of them, or glob patterns "
                              "(quote them: 'data/**/*.tif')")
@@ -54,7 +55,7 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
                         help="bootstrap replicates for the fidelity intervals (default 200; 0 = point estimates "
                              "only, faster)")
     parser.add_argument("--retry-failed", action="store_true",
-                        help="try again the shots that failed in an earlier run of this run file")
+                        help="try again the frames that failed in an earlier run of this run file")
     parser.add_argument("--quiet", "-q", action="store_true", help="no progress bar")
     parser.add_argument("--no-progress", dest="quiet", action="store_true", default=argparse.SUPPRESS,
                         help=argparse.SUPPRESS)  # older spelling of --quiet
@@ -75,7 +76,7 @@ def run(args: argparse.Namespace) -> int:
                             progress=not args.quiet, metadata={"command": "batch"},
                             images_per_shot=args.images_per_shot, fidelity_bootstrap=args.fidelity_bootstrap)
     except KeyboardInterrupt:
-        print(f"latticeread batch: interrupted; every shot written so far is kept in {args.out}. "
+        print(f"latticeread batch: interrupted; every frame written so far is kept in {args.out}. "
               "Run the same command again to continue.", file=sys.stderr)
         return 130
     if args.json:

@@ -52,7 +52,7 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
                         help="ignore the files already in the folder when the watch starts")
     parser.add_argument("--retry-failed", action="store_true",
                         help="try again files that failed in an earlier run of this run file")
-    parser.add_argument("--quiet", "-q", action="store_true", help="no line per shot, only the summary")
+    parser.add_argument("--quiet", "-q", action="store_true", help="no line per frame, only the summary")
 
 
 def run(args: argparse.Namespace) -> int:

@@ -51,6 +51,9 @@ _MAGIC = [
     (b"II*\x00", "tiff"), (b"MM\x00*", "tiff"), (b"II+\x00", "tiff"), (b"MM\x00+", "tiff"),
     (b"\x89HDF\r\n\x1a\n", "hdf5"), (b"\x93NUMPY", "npy"), (b"PK\x03\x04", "npz"), (b"PK\x05\x06", "npz"),
 ]
+#: How to pick one of several datasets, for every front end (batch and watch take whole files).
+_CHOOSE_DATASET = ("name the one to use: --dataset for calibrate, reconstruct and camera, dataset=... in Python; "
+                   "batch and watch need files holding a single frame dataset")
 _OTHER_MAGIC = [(b"\x89PNG", "a PNG image"), (b"\xff\xd8\xff", "a JPEG image"), (b"%PDF", "a PDF document"),
                 (b"GIF8", "a GIF image"), (b"SIMPLE  =", "a FITS file")]
 
@@ -439,7 +442,7 @@ class _H5Reader:
                     raise FrameFileError(f"{name} contains no 2-D or 3-D numeric dataset that could hold frames")
                 if len(cands) > 1:
                     raise FrameFileError(f"{name} holds several datasets that could be frames: "
-                                         f"{', '.join(cands)}; choose one with dataset=... (--dataset)")
+                                         f"{', '.join(cands)}; {_CHOOSE_DATASET}")
                 dataset = cands[0]
             if dataset not in self.h5:
                 cands = _h5_candidates(self.h5)
@@ -507,8 +510,7 @@ class _ArrayReader:
                     if dataset is None:
                         if len(keys) != 1:
                             raise FrameFileError(
-                                f"{name} holds {len(keys)} arrays ({', '.join(keys) or 'none'}); choose one with "
-                                "dataset=... (--dataset)")
+                                f"{name} holds {len(keys)} arrays ({', '.join(keys) or 'none'}); {_CHOOSE_DATASET}")
                         dataset = keys[0]
                     if dataset not in keys:
                         raise FrameFileError(f"{name} has no array {dataset!r}; it holds {', '.join(keys) or 'none'}")
