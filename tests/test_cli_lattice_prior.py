@@ -72,12 +72,17 @@ def test_a_prior_without_the_psf_is_refused_with_the_reason(stack, tmp_path, cap
 def test_bad_lattice_options(stack, tmp_path, capsys):
     _, path, _ = stack
     out = str(tmp_path / "c.json")
-    assert main(["calibrate", str(path), "--out", out, "--lattice-spacing", "-3"]) != 0
-    assert "one or two positive values" in capsys.readouterr().err
-    assert main(["calibrate", str(path), "--out", out, "--lattice-angle-between", "60"]) != 0
+    # values outside their range are usage errors of argparse (exit 2)
+    with pytest.raises(SystemExit) as exc:
+        main(["calibrate", str(path), "--out", out, "--lattice-spacing", "-3"])
+    assert exc.value.code == 2 and "two pixels per site at least" in capsys.readouterr().err
+    assert main(["calibrate", str(path), "--out", out, "--lattice-angle-between", "60"]) == 5
     assert "needs --lattice-angle" in capsys.readouterr().err
-    assert main(["calibrate", str(path), "--out", out, "--refine-frames", "0"]) != 0
-    assert "at least 1" in capsys.readouterr().err
+    with pytest.raises(SystemExit) as exc:
+        main(["calibrate", str(path), "--out", out, "--refine-frames", "0"])
+    assert exc.value.code == 2 and "at least 1" in capsys.readouterr().err
+    assert main(["calibrate", str(path), "--out", out, "--lattice-spacing", "4", "5", "6"]) == 5
+    assert "one or two positive values" in capsys.readouterr().err
 
 
 def test_lattice_fitted_from_a_rough_prior_below_the_cut_off(stack, tmp_path, capsys):

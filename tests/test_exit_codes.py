@@ -90,3 +90,42 @@ def test_readme_table_lists_every_exit_code_of_the_program():
 
 def test_every_refusal_code_of_the_table_is_exercised():
     assert {code for _, code, _ in REFUSALS} == {c for c in _readme_codes() if c not in (0, 1, 130)}
+
+
+# Option values outside their range: argparse refuses them (exit 2) before any file is read.
+OUT_OF_RANGE = [
+    (["calibrate", "f.tif", "-o", "c.json", "--max-frames", "0"], "must be a whole number at least 1"),
+    (["calibrate", "f.tif", "-o", "c.json", "--refine-frames", "-2"], "must be a whole number at least 1"),
+    (["calibrate", "f.tif", "-o", "c.json", "--psf", "gaussian", "--fwhm", "1e6"],
+     "must be a number above 0 up to 60 pixels"),
+    (["calibrate", "f.tif", "-o", "c.json", "--lattice-spacing", "0.3"], "two pixels per site at least: Nyquist"),
+    (["calibrate", "f.tif", "-o", "c.json", "--na", "2.5"], "must be a number above 0 up to 1.7"),
+    (["calibrate", "f.tif", "-o", "c.json", "--wavelength-nm", "nan"], "from 100 to 3000 nm"),
+    (["reconstruct", "f.tif", "-o", "s.csv", "--pixel-size-nm", "0"], "from 1 to 100000 nm"),
+    (["simulate", "x.tif", "--shots", "0"], "must be a whole number at least 1"),
+    (["simulate", "x.tif", "--size", "0", "10"], "from 16 to 16384 pixels"),
+    (["simulate", "x.tif", "--filling", "2"], "must be a number from 0 to 1"),
+    (["simulate", "x.tif", "--photons", "-5"], "above 0 up to 1e+07 photons"),
+    (["fidelity", "f.tif", "--images-per-shot", "1"], "must be a whole number at least 2"),
+    (["fidelity", "f.tif", "--radius", "-1"], "must be a number above 0 sites"),
+    (["camera", "d.tif", "--frames-per-level", "0"], "must be a whole number at least 2"),
+    (["watch", "d", "-c", "c.json", "-o", "l.h5", "--settle", "-1"], "must be 0 or a positive number of seconds"),
+]
+
+
+@pytest.mark.parametrize("argv, words", OUT_OF_RANGE, ids=[f"{a[0]}-{a[-2]}" for a, _ in OUT_OF_RANGE])
+def test_option_values_outside_their_range_are_usage_errors(argv, words, capsys):
+    with pytest.raises(SystemExit) as exc:
+        main(argv)
+    assert exc.value.code == 2
+    assert words in capsys.readouterr().err
+
+
+def test_simulating_more_than_the_memory_holds_is_refused(tmp_path, capsys, monkeypatch):
+    from latticeread.io import limits
+
+    monkeypatch.setattr(limits, "available_memory", lambda: 1 << 30)
+    assert main(["simulate", str(tmp_path / "x.tif"), "--size", "4096", "4096", "--shots", "50"]) == 2
+    assert "simulating 100 frames of 4096x4096 pixels needs about 25.0 GiB of memory but only 1.0 GiB" in \
+        capsys.readouterr().err
+    assert not (tmp_path / "x.tif").exists()

@@ -17,7 +17,13 @@ import argparse
 import logging
 from pathlib import Path
 
+from latticeread.commands._types import lattice_spacing, number, pixel_size_nm, psf_fwhm
 from latticeread.errors import CalibrationError
+
+#: Fluorescence wavelengths from the ultraviolet to the near infrared, nm (common practice, no source).
+WAVELENGTH_NM = number(low=100, high=3000, unit="nm")
+#: Numerical aperture of a dry or immersion objective (NA = n sin(theta), n at most about 1.7).
+NUMERICAL_APERTURE = number(low=0, high=1.7, low_open=True)
 
 log = logging.getLogger(__name__)
 
@@ -62,32 +68,34 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--dataset", default=None, help="dataset inside an HDF5/.npz file")
     parser.add_argument("--psf", choices=["estimate", "airy", "gaussian"], default="estimate",
                         help="PSF: measured from isolated atoms (default), ideal Airy, or Gaussian")
-    parser.add_argument("--wavelength-nm", type=float, default=None, help="fluorescence wavelength, nm (--psf airy)")
-    parser.add_argument("--na", type=float, default=None, help="numerical aperture of the objective (--psf airy)")
-    parser.add_argument("--pixel-size-nm", type=float, default=None,
+    parser.add_argument("--wavelength-nm", type=WAVELENGTH_NM, default=None,
+                        help="fluorescence wavelength, nm (--psf airy)")
+    parser.add_argument("--na", type=NUMERICAL_APERTURE, default=None,
+                        help="numerical aperture of the objective (--psf airy)")
+    parser.add_argument("--pixel-size-nm", type=pixel_size_nm, default=None,
                         help="camera pixel projected into the atom plane, nm (--psf airy; stored)")
-    parser.add_argument("--fwhm", type=float, default=None, help="PSF FWHM in pixels (--psf gaussian)")
+    parser.add_argument("--fwhm", type=psf_fwhm, default=None, help="PSF FWHM in pixels (--psf gaussian)")
     parser.add_argument("--threshold-method", choices=["mixture", "otsu", "minimum"], default="mixture",
                         help="threshold on the pooled histogram (default mixture)")
     parser.add_argument("--method", choices=["linear", "nonlinear", "wiener", "richardson_lucy"], default=None,
                         help="amplitude estimator (default: nonlinear below 0.7 FWHM spacing, else linear)")
-    parser.add_argument("--max-frames", type=int, default=50, help="use at most this many frames (default 50)")
+    parser.add_argument("--max-frames", type=number(low=1, integer=True), default=50, help="use at most this many frames (default 50)")
     parser.add_argument("--weighting", choices=["none", "camera"], default="none",
                         help="pixel weights of the amplitude fit: none (default) or camera (inverse camera-noise "
                              "variance of the mean frame, stored in the calibration)")
     lat = parser.add_argument_group("lattice (the lab's own knowledge, optional)")
-    lat.add_argument("--lattice-spacing", type=float, nargs="+", default=None, metavar="PX",
+    lat.add_argument("--lattice-spacing", type=lattice_spacing, nargs="+", default=None, metavar="PX",
                      help="lattice spacing in pixels (one value, or one per vector): held fixed by the estimate, "
                           "and the prior of the image-model fit when the Fourier peaks are invisible")
-    lat.add_argument("--lattice-angle", type=float, default=None, metavar="DEG",
+    lat.add_argument("--lattice-angle", type=number(), default=None, metavar="DEG",
                      help="direction of the first lattice vector, degrees from +x towards +y (image rows down)")
-    lat.add_argument("--lattice-angle-between", type=float, default=None, metavar="DEG",
+    lat.add_argument("--lattice-angle-between", type=number(low=0, high=180, low_open=True, unit="degrees"), default=None, metavar="DEG",
                      help="angle from the second to the first vector, degrees (default 90; 60 or 120 for "
                           "triangular lattices)")
     lat.add_argument("--refine-vectors", action="store_true",
                      help="refit the lattice vectors to the full image model (seconds to minutes; most useful "
                           "near or below one PSF FWHM); prints the 1-sigma spacing uncertainty")
-    lat.add_argument("--refine-frames", type=int, default=4, metavar="N",
+    lat.add_argument("--refine-frames", type=number(low=1, integer=True), default=4, metavar="N",
                      help="frames fitted together by the image-model fit (default 4; the spacing error falls "
                           "as 1/sqrt(N))")
     parser.add_argument("--force", action="store_true", help="overwrite an existing output file")

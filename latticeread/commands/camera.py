@@ -19,6 +19,7 @@ import logging
 import sys
 from pathlib import Path
 
+from latticeread.commands._types import number
 from latticeread.errors import FrameError, UsageError
 
 log = logging.getLogger(__name__)
@@ -45,13 +46,13 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
                         help="largest camera value in counts (default: maximum of the integer type)")
     parser.add_argument("--clock-induced-charge", type=float, default=0.0,
                         help="EMCCD spurious electrons per pixel per frame, copied into the model (default 0)")
-    parser.add_argument("--frames-per-level", type=int, default=None,
+    parser.add_argument("--frames-per-level", type=number(low=2, integer=True), default=None,
                         help="split each flat file into consecutive groups of this many frames, one light "
                              "level per group")
     parser.add_argument("--dataset", default=None, help="dataset name inside HDF5/.npz files")
     parser.add_argument("--bad-pixels", type=Path, default=None,
                         help="also write a bad-pixel mask (.npy, True = bad) found from the darks")
-    parser.add_argument("--n-sigma", type=float, default=6.0,
+    parser.add_argument("--n-sigma", type=number(low=0, low_open=True), default=6.0,
                         help="outlier limit for bad pixels, robust standard deviations (default 6)")
     parser.add_argument("--force", action="store_true",
                         help="replace the --out and --bad-pixels files when they exist")

@@ -22,6 +22,7 @@ from pathlib import Path
 
 import numpy as np
 
+from latticeread.commands._types import number
 from latticeread.errors import FidelityError
 
 log = logging.getLogger(__name__)
@@ -31,7 +32,7 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("stacks", nargs="+", type=Path, metavar="STACK",
                         help="PAIRS.tif (consecutive frames are repeated images), or FIRST.tif SECOND.tif, "
                              "or a results .h5 file from 'latticeread reconstruct', 'batch' or 'watch'")
-    parser.add_argument("--images-per-shot", type=int, default=2, metavar="N",
+    parser.add_argument("--images-per-shot", type=number(low=2, integer=True), default=2, metavar="N",
                         help="consecutive frames per shot in a single stack (default 2)")
     parser.add_argument("--calibration", "-c", type=Path, default=None, metavar="CAL.json",
                         help="calibration file (default: calibrate from the first stack)")
@@ -45,12 +46,13 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--false-negative-uncertainty", type=float, default=None, metavar="SIGMA",
                         help="standard deviation of the false-negative rate (default: binomial standard error "
                              "of the pooled histogram fit; none when --false-negative is given)")
-    parser.add_argument("--radius", type=float, default=2 ** 0.5, metavar="SITES",
+    parser.add_argument("--radius", type=number(low=0, low_open=True, unit="sites"), default=2 ** 0.5,
+                        metavar="SITES",
                         help="hop range in lattice sites (default 1.414: nearest and diagonal neighbours)")
     parser.add_argument("--fit-pair-loss", action="store_true",
                         help="fit the probability that two atoms meeting on a site are both lost "
                              "(default: fixed at 1, parity projection)")
-    parser.add_argument("--bootstrap", type=int, default=200, metavar="N",
+    parser.add_argument("--bootstrap", type=number(low=0, integer=True), default=200, metavar="N",
                         help="bootstrap replicates for the intervals, over shots or, with fewer than 10 shots, "
                              "over blocks of sites (default 200)")
     parser.add_argument("--seed", type=int, default=0, help="seed of the bootstrap (default 0)")

@@ -14,7 +14,14 @@ import logging
 import sys
 from pathlib import Path
 
-from latticeread.commands.calibrate import add_camera_arguments, camera_from_args, psf_from_args
+from latticeread.commands._types import pixel_size_nm, psf_fwhm
+from latticeread.commands.calibrate import (
+    NUMERICAL_APERTURE,
+    WAVELENGTH_NM,
+    add_camera_arguments,
+    camera_from_args,
+    psf_from_args,
+)
 log = logging.getLogger(__name__)
 
 _OUT_SUFFIXES = {".csv": "csv", ".h5": "hdf5", ".hdf5": "hdf5"}
@@ -54,10 +61,12 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
     est = parser.add_argument_group("without --calibration")
     est.add_argument("--psf", choices=["estimate", "airy", "gaussian"], default="estimate",
                      help="PSF: measured from isolated atoms (default), ideal Airy, or Gaussian")
-    est.add_argument("--wavelength-nm", type=float, default=None, help="fluorescence wavelength, nm (--psf airy)")
-    est.add_argument("--na", type=float, default=None, help="numerical aperture (--psf airy)")
-    est.add_argument("--pixel-size-nm", type=float, default=None, help="pixel in the atom plane, nm (--psf airy)")
-    est.add_argument("--fwhm", type=float, default=None, help="PSF FWHM in pixels (--psf gaussian)")
+    est.add_argument("--wavelength-nm", type=WAVELENGTH_NM, default=None,
+                     help="fluorescence wavelength, nm (--psf airy)")
+    est.add_argument("--na", type=NUMERICAL_APERTURE, default=None, help="numerical aperture (--psf airy)")
+    est.add_argument("--pixel-size-nm", type=pixel_size_nm, default=None,
+                     help="pixel in the atom plane, nm (--psf airy)")
+    est.add_argument("--fwhm", type=psf_fwhm, default=None, help="PSF FWHM in pixels (--psf gaussian)")
     add_camera_arguments(parser)
 
 

@@ -6,6 +6,7 @@ import argparse
 import logging
 from pathlib import Path
 
+from latticeread.commands._types import number
 from latticeread.errors import UsageError
 
 log = logging.getLogger(__name__)
@@ -15,18 +16,19 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("out", type=Path, help="output TIFF stack (the truth goes to OUT with .truth.h5)")
     parser.add_argument("--scenario", default="square", choices=["square", "folded", "triangular"],
                         help="invented demo setting: lattice, PSF and camera (default: square)")
-    parser.add_argument("--shots", type=int, default=4, help="independent shots (default 4)")
-    parser.add_argument("--images-per-shot", type=int, default=2,
+    parser.add_argument("--shots", type=number(low=1, integer=True), default=4, help="independent shots (default 4)")
+    parser.add_argument("--images-per-shot", type=number(low=1, integer=True), default=2,
                         help="consecutive images of the same atoms per shot (default 2)")
-    parser.add_argument("--size", type=int, nargs=2, default=(256, 256), metavar=("HEIGHT", "WIDTH"),
+    parser.add_argument("--size", type=number(low=16, high=16384, integer=True, unit="pixels"), nargs=2, default=(256, 256), metavar=("HEIGHT", "WIDTH"),
                         help="frame size in pixels (default 256 256)")
-    parser.add_argument("--filling", type=float, default=None, help="site filling 0..1 (scenario default 0.45)")
+    parser.add_argument("--filling", type=number(low=0, high=1), default=None,
+                        help="probability that a site of the region is loaded, 0..1 (scenario default 0.45)")
     parser.add_argument("--pattern", default="random", choices=["random", "mott", "checkerboard"],
                         help="occupation pattern (default random)")
-    parser.add_argument("--photons", type=float, default=None, help="mean detected photons per atom")
-    parser.add_argument("--loss", type=float, default=None, help="loss probability per atom and image")
-    parser.add_argument("--hop", type=float, default=None, help="hopping probability per atom and image")
-    parser.add_argument("--jitter", type=float, default=0.3,
+    parser.add_argument("--photons", type=number(low=0, low_open=True, high=1e7, unit="photons"), default=None, help="mean detected photons per atom")
+    parser.add_argument("--loss", type=number(low=0, high=1), default=None, help="loss probability per atom and image")
+    parser.add_argument("--hop", type=number(low=0, high=1), default=None, help="hopping probability per atom and image")
+    parser.add_argument("--jitter", type=number(low=0, high=1000, unit="pixels"), default=0.3,
                         help="RMS lattice displacement per frame in pixels (default 0.3)")
     parser.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
     parser.add_argument("--force", action="store_true",
@@ -38,6 +40,7 @@ def run(args: argparse.Namespace) -> int:
 
     from latticeread.core.simulate import demo_scenario, simulate_frames
     from latticeread.io.atomic import atomic_path
+    from latticeread.io.limits import describe_bytes, memory_shortfall
     from latticeread.io.outputs import check_outputs, check_suffix
     from latticeread.io.truth_file import write_truth
 
@@ -45,6 +48,13 @@ def run(args: argparse.Namespace) -> int:
     check_suffix(out, [".tif", ".tiff"], what="the output")
     truth_path = out.with_suffix(".truth.h5")
     check_outputs([out, truth_path], force=args.force)
+    n_frames = args.shots * args.images_per_shot
+    # float64 photons and the uint16 frames, with temporaries: about 16 bytes per pixel
+    short = memory_shortfall(tuple(args.size), n_frames=n_frames, itemsize=16)
+    if short is not None:
+        raise UsageError(f"simulating {n_frames} frames of {args.size[0]}x{args.size[1]} pixels needs about "
+                         f"{describe_bytes(short[0])} of memory but only {describe_bytes(short[1])} is available; "
+                         "simulate fewer or smaller frames")
     kw = demo_scenario(args.scenario, frame_shape=tuple(args.size))
     pixel_nm = kw.pop("pixel_size_nm")
     for key, value in (("filling", args.filling), ("photons_per_atom", args.photons),

@@ -22,8 +22,8 @@ import os
 
 from latticeread.errors import CalibrationError, FrameFileError
 
-__all__ = ["available_memory", "check_frame_memory", "check_calibration_values", "check_threshold",
-           "BYTES_PER_PIXEL_AT_WORK", "MEMORY_FRACTION"]
+__all__ = ["available_memory", "check_frame_memory", "memory_shortfall", "describe_bytes", "check_calibration_values", "check_threshold",
+           "BYTES_PER_PIXEL_AT_WORK", "MEMORY_FRACTION", "MIN_SPACING_PX", "MAX_PSF_FWHM_PX", "PIXEL_SIZE_NM_RANGE"]
 
 #: Memory the analysis of one frame takes per pixel: the frame as float64 plus the model,
 #: residual, weights and a few temporaries of the same size (about six float64 images).
@@ -38,6 +38,9 @@ MIN_SPACING_PX = 2.0
 #: Largest PSF radius (kernel half-width) in pixels; common practice, no source: a kernel
 #: truncated at 3 FWHM covers PSFs up to about 65 pixels FWHM, far beyond any microscope here.
 MAX_PSF_RADIUS_PX = 200
+#: Largest PSF FWHM in pixels: with the kernel cut at about 3 FWHM it stays within
+#: MAX_PSF_RADIUS_PX (common practice, no source).
+MAX_PSF_FWHM_PX = 60.0
 #: Supersampling of the PSF per pixel (the program's default is 5); common practice, no source.
 SUPERSAMPLE_RANGE = (1, 32)
 #: Largest supersampled kernel (elements) built from a calibration: 4096 x 4096 float64 = 128 MiB.
@@ -99,15 +102,32 @@ def check_frame_memory(frame_shape, *, where: str, n_frames: int = 1, itemsize: 
         The frames would need more than :data:`MEMORY_FRACTION` of the available memory.
     """
     h, w = (int(v) for v in frame_shape)
-    per_pixel = BYTES_PER_PIXEL_AT_WORK if itemsize is None else int(itemsize)
-    need = float(h) * float(w) * float(max(1, int(n_frames))) * per_pixel
-    have = available_memory() if available is None else int(available)
-    if need > MEMORY_FRACTION * have:
+    short = memory_shortfall(frame_shape, n_frames=n_frames, itemsize=itemsize, available=available)
+    if short is not None:
+        need, have = short
         count = "" if n_frames <= 1 else f"{int(n_frames)} "
         raise FrameFileError(
             f"{where} declares {count}{h}x{w}-pixel frame{'s' if n_frames > 1 else ''}: analysing "
             f"{'them' if n_frames > 1 else 'it'} would need about {_gib(need)} of memory but only {_gib(have)} is "
             "available; the file is damaged or not a camera frame file, or crop the frames first")
+
+
+def memory_shortfall(frame_shape, *, n_frames: int = 1, itemsize: int | None = None,
+                     available: int | None = None) -> tuple[float, int] | None:
+    """``(bytes needed, bytes available)`` when frames would not fit, else None.
+
+    See :func:`check_frame_memory` for the parameters.
+    """
+    h, w = (int(v) for v in frame_shape)
+    per_pixel = BYTES_PER_PIXEL_AT_WORK if itemsize is None else int(itemsize)
+    need = float(h) * float(w) * float(max(1, int(n_frames))) * per_pixel
+    have = available_memory() if available is None else int(available)
+    return (need, have) if need > MEMORY_FRACTION * have else None
+
+
+def describe_bytes(n: float) -> str:
+    """``"1.5 GiB"`` or ``"300 MiB"``."""
+    return _gib(n)
 
 
 def _spacing(v) -> float:
@@ -172,9 +192,9 @@ def check_calibration_values(data: dict, *, where: str = "calibration") -> None:
                 "plane (angle between them 6 to 174 degrees)")
     psf = data.get("psf") or {}
     fwhm = psf.get("fwhm")
-    if fwhm is not None and not (math.isfinite(float(fwhm)) and 0 < float(fwhm) <= MAX_PSF_RADIUS_PX):
+    if fwhm is not None and not (math.isfinite(float(fwhm)) and 0 < float(fwhm) <= MAX_PSF_FWHM_PX):
         raise CalibrationError(f"{where}: psf.fwhm is {fwhm!r} pixels; it must be above 0 and at most "
-                               f"{MAX_PSF_RADIUS_PX} pixels")
+                               f"{MAX_PSF_FWHM_PX:g} pixels")
     radius = psf.get("radius")
     if radius is not None and not (1 <= int(radius) <= MAX_PSF_RADIUS_PX):
         raise CalibrationError(f"{where}: psf.radius is {radius!r} pixels; the PSF kernel half-width must be "
