@@ -53,6 +53,7 @@ from psygnal import Signal
 from latticeread import __version__
 from latticeread.errors import (CalibrationError, ExportError, FrameError, FrameFileError, LatticeReadError,
                                 ReconstructionError)
+from latticeread.io.formats import check_format_version
 
 __all__ = ["Session", "DEFAULT_SETTINGS", "SESSION_FORMAT", "ReconstructBatch"]
 
@@ -1199,6 +1200,9 @@ class Session:
             raise FrameFileError(f"{path.name} is not a readable session file: {exc}") from exc
         if not isinstance(doc, dict) or doc.get("format") != SESSION_FORMAT:
             raise FrameFileError(f"{path.name} is not a latticeread session file")
+        check_format_version(SESSION_FORMAT, doc.get("format_version"), expected_format=SESSION_FORMAT,
+                             versions=range(1, SESSION_FORMAT_VERSION + 1), where=f"session file {path.name}",
+                             error=FrameFileError, default_version=1)
         session = cls(settings={k: v for k, v in doc.get("settings", {}).items() if k in DEFAULT_SETTINGS})
         session.load_state(path, doc)
         return session

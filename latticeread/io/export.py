@@ -66,6 +66,7 @@ from latticeread.errors import FrameFileError, ReconstructionError
 
 from .atomic import atomic_path, atomic_write
 from .calibration_file import from_jsonable, to_jsonable
+from .formats import check_format_version
 
 __all__ = [
     "CSV_COLUMNS",
@@ -592,6 +593,8 @@ def _read_occupation_v1(h5, path: Path, attrs: dict) -> OccupationFile:
     if missing:
         raise FrameFileError(f"{path.name} is not a latticeread occupation file: dataset(s) "
                              f"{', '.join(missing)} missing")
+    check_format_version(attrs.get("format"), attrs.get("format_version"), expected_format=_FORMAT_H5,
+                         versions=[1], where=path.name, error=FrameFileError, default_version=1)
     arrays = {k: h5[k][()] for k in [*_MATRIX_DATASETS, "frame_index", "offset", "threshold"]}
     warnings = tuple(w.decode("utf-8") if isinstance(w, bytes) else str(w) for w in h5["warnings"][()])
     return OccupationFile(**arrays, warnings=warnings, row_min=int(attrs.get("row_min", 0)),

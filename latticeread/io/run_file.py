@@ -80,6 +80,7 @@ import numpy as np
 
 from latticeread import __version__
 from latticeread.errors import ExportError, FrameFileError
+from latticeread.io.formats import check_format_version
 
 from .atomic import atomic_path, clean_stale_temps, describe_os_error, reserve_space
 from .run_lock import RunFileLock
@@ -926,6 +927,9 @@ def read_run(path, *, matrices: bool = True) -> RunData:
     with f:
         if f.attrs.get("format") != RUN_FORMAT:
             raise FrameFileError(f"{path} is an HDF5 file but not a latticeread run file")
+        check_format_version(RUN_FORMAT, f.attrs.get("format_version"), expected_format=RUN_FORMAT,
+                             versions=range(1, RUN_FORMAT_VERSION + 1), where=f"the run file {path}",
+                             error=FrameFileError, default_version=1)
         n, nf = _counts(f)
         s = f["shots"]
         wanted = set(_MATRICES) if matrices is True else set(matrices or ())
