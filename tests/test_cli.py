@@ -103,3 +103,14 @@ def test_a_mistyped_command_is_a_usage_error_with_a_suggestion(monkeypatch, caps
     assert "did you mean 'reconstruct'" in capsys.readouterr().err
     assert main(["--settings", "new.ini", "nonsense"]) == 2
     assert "'nonsense' is not a command" in capsys.readouterr().err
+
+
+def test_a_truncated_tiff_gives_one_message_without_tifffile_lines(tmp_path, capsys):
+    from pathlib import Path
+
+    sample = Path(__file__).resolve().parents[1] / "sample_data" / "demo_folded.tif"
+    (tmp_path / "cut.tif").write_bytes(sample.read_bytes()[:50000])
+    assert main(["calibrate", str(tmp_path / "cut.tif"), "-o", str(tmp_path / "c.json")]) == 3
+    err = capsys.readouterr().err
+    assert "cut.tif is truncated" in err
+    assert "tifffile" not in err and err.count("\n") == 1
