@@ -23,9 +23,13 @@ from __future__ import annotations
 
 
 class LatticeReadError(Exception):
-    """Base class of every error raised on purpose by latticeread."""
+    """Base class of every error raised on purpose by latticeread.
 
-    exit_code = 1
+    Raise one of the subclasses; the base class itself exits with 2 (usage), because a
+    refusal raised on purpose is never an internal error (exit code 1 is kept for bugs).
+    """
+
+    exit_code = 2
 
 
 class FrameError(LatticeReadError, ValueError):

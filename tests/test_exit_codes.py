@@ -129,3 +129,11 @@ def test_simulating_more_than_the_memory_holds_is_refused(tmp_path, capsys, monk
     assert "simulating 100 frames of 4096x4096 pixels needs about 25.0 GiB of memory but only 1.0 GiB" in \
         capsys.readouterr().err
     assert not (tmp_path / "x.tif").exists()
+
+
+def test_no_deliberate_error_class_exits_with_the_bug_code():
+    from latticeread import errors
+
+    classes = [c for c in vars(errors).values() if isinstance(c, type) and issubclass(c, errors.LatticeReadError)]
+    assert errors.LatticeReadError in classes and len(classes) > 5
+    assert all(c.exit_code != 1 for c in classes)
