@@ -70,11 +70,14 @@ def test_old_option_spellings_are_hidden_aliases_of_one_name(capsys):
         assert parser.parse_args([*command, "--no-progress"]).quiet is True
         assert parser.parse_args([*command, "-q"]).quiet is True
         assert parser.parse_args(command).quiet is False
+    assert parser.parse_args(["batch", "f.tif", "-c", "c.json", "-o", "r.h5", "--fidelity-bootstrap", "7"]).bootstrap == 7
+    assert parser.parse_args(["batch", "f.tif", "-c", "c.json", "-o", "r.h5", "--bootstrap", "7"]).bootstrap == 7
     for command in ("camera", "reconstruct", "batch", "fidelity"):
         with pytest.raises(SystemExit):
             parser.parse_args([command, "--help"])
         text = capsys.readouterr().out
         assert "--qe " not in text and "--kind " not in text and "--no-progress" not in text
+        assert "--fidelity-bootstrap" not in text
 
 
 def test_other_libraries_log_lines_stay_off_stderr_unless_debugging(monkeypatch, capsys):

@@ -7,6 +7,8 @@ import json
 import sys
 from pathlib import Path
 
+from latticeread.commands._types import number
+
 
 def _workers(text: str) -> int:
     try:
@@ -51,9 +53,11 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--images-per-shot", type=_images, default=1, metavar="N",
                         help="consecutive frames of each file that image the same atoms; with 2 or more the "
                              "summary estimates loss and hopping between them (default 1)")
-    parser.add_argument("--fidelity-bootstrap", type=_workers, default=200, metavar="N",
+    parser.add_argument("--bootstrap", type=number(low=0, integer=True), default=200, metavar="N",
                         help="bootstrap replicates for the fidelity intervals (default 200; 0 = point estimates "
                              "only, faster)")
+    parser.add_argument("--fidelity-bootstrap", dest="bootstrap", type=number(low=0, integer=True),
+                        default=argparse.SUPPRESS, help=argparse.SUPPRESS)  # older spelling of --bootstrap
     parser.add_argument("--retry-failed", action="store_true",
                         help="try again the frames that failed in an earlier run of this run file")
     parser.add_argument("--quiet", "-q", action="store_true", help="no progress bar")
@@ -74,7 +78,7 @@ def run(args: argparse.Namespace) -> int:
         summary = run_batch(args.inputs, calibration=args.calibration, out=args.out, workers=args.workers,
                             scheduler=args.scheduler, retry_failed=args.retry_failed,
                             progress=not args.quiet, metadata={"command": "batch"},
-                            images_per_shot=args.images_per_shot, fidelity_bootstrap=args.fidelity_bootstrap)
+                            images_per_shot=args.images_per_shot, fidelity_bootstrap=args.bootstrap)
     except KeyboardInterrupt:
         print(f"latticeread batch: interrupted; every frame written so far is kept in {args.out}. "
               "Run the same command again to continue.", file=sys.stderr)
