@@ -6,9 +6,9 @@ command line from a loop) and it returns the files that became complete since th
 call. A file counts as complete when its size and modification time did not change
 between two polls, have not changed for at least a settle time (``settle`` seconds since
 the file's modification time, or since the watcher saw the change when that time lies in
-the future), **and** it opens
-as a valid frame file whose last frame can be read, with the same size and time after
-reading as before (a TIFF still being written fails that test). The settle time covers a
+the future), **and** it opens as a valid frame file whose last frame can be read, with the
+same size and time after reading as before (a TIFF still being written fails that test).
+The settle time covers a
 camera that appends frames to one file: between two frames the file is unchanged and
 readable, but it is not complete. A file that stays unchanged but unreadable for
 ``give_up_polls`` polls is reported as broken, once. A file that changes after it was
