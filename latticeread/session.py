@@ -27,6 +27,7 @@ Signals (each emitted only when the value really changed)
 frames_changed(object)            the frame stack (or None)
 index_changed(int)                current frame index
 calibration_changed(object)       Calibration (or None)
+calibration_origin_changed(object) CalibrationOrigin: where the calibration in use came from
 amplitudes_changed(object)        tuple of frame indices whose amplitudes were stored; () = cleared
 classification_changed()          occupations changed (new threshold or new amplitudes)
 threshold_result_changed(object)  ThresholdResult (or None)
@@ -55,7 +56,7 @@ from latticeread.errors import (CalibrationError, ExportError, FrameError, Frame
                                 ReconstructionError)
 from latticeread.io.formats import check_format_version
 
-__all__ = ["Session", "DEFAULT_SETTINGS", "SESSION_FORMAT", "ReconstructBatch"]
+__all__ = ["Session", "DEFAULT_SETTINGS", "SESSION_FORMAT", "ReconstructBatch", "CalibrationOrigin"]
 
 log = logging.getLogger(__name__)
 
@@ -109,6 +110,40 @@ class ReconstructBatch:
     warnings: tuple
 
 
+@dataclasses.dataclass(frozen=True)
+class CalibrationOrigin:
+    """Where the calibration in use came from, for the window's status line and tool tips.
+
+    Attributes
+    ----------
+    kind : {"none", "file", "frames", "kept", "session", "set"}
+        ``file``: loaded from a calibration JSON; ``frames``: calibrated from the loaded
+        frames; ``kept``: made for another stack and still in use after new frames were
+        opened; ``session``: restored from a saved session; ``set``: given by a script.
+    path : str or None
+        The calibration file (``file``) or the session file (``session``).
+    stack : str or None
+        Name of the frame file the calibration was made with (``frames``) or for (``kept``).
+    edited : bool
+        Changed in this session since (threshold, geometry nudge, PSF, camera).
+    """
+
+    kind: str = "none"
+    path: str | None = None
+    stack: str | None = None
+    edited: bool = False
+
+    def describe(self) -> str:
+        """One line for a status bar, e.g. ``"demo.calibration.json (edited)"``."""
+        text = {"none": "none",
+                "file": Path(self.path).name if self.path else "a calibration file",
+                "frames": f"calibrated from {self.stack or 'the frames'}",
+                "kept": f"made for {self.stack or 'another stack'} (kept)",
+                "session": f"from session {Path(self.path).name if self.path else ''}".rstrip(),
+                "set": "set by a script"}.get(self.kind, self.kind)
+        return f"{text} (edited)" if self.edited and self.kind != "none" else text
+
+
 def _pipeline():
     from latticeread.core import pipeline
 
@@ -133,6 +168,7 @@ class Session:
     frames_changed = Signal(object)
     index_changed = Signal(int)
     calibration_changed = Signal(object)
+    calibration_origin_changed = Signal(object)
     amplitudes_changed = Signal(object)
     classification_changed = Signal()
     threshold_result_changed = Signal(object)
@@ -149,6 +185,7 @@ class Session:
         self._frame_lock = threading.Lock()
         self._index = 0
         self._calibration = None
+        self._origin = CalibrationOrigin()
         self._generation = 0           # bumped whenever stored amplitudes become invalid
         self._reconstructor = None
         self._reconstructor_generation = -1
@@ -227,8 +264,15 @@ class Session:
         stack = load_frames(path, dataset=dataset)
         self.set_frames(stack, source=str(Path(path).resolve()), dataset=dataset)
 
-    def load_calibration(self, path) -> None:
+    def load_calibration(self, path, *, for_new_frames: bool = False) -> None:
         """Use the calibration saved in ``path`` (JSON from ``latticeread calibrate`` or an export).
+
+        Parameters
+        ----------
+        for_new_frames : bool
+            The file belongs to frames just opened: the camera and pixel size it holds
+            replace those entered for the previous stack (Analysis settings), and the undo
+            history of the previous stack's calibration is dropped.
 
         Raises
         ------
@@ -237,8 +281,67 @@ class Session:
         """
         from latticeread.io import load_calibration
 
-        self.set_calibration(load_calibration(path))
+        cal = load_calibration(path)
+        if cal is not None and self._frames is not None:
+            cal.check_frame_shape(self.frame_shape, where=f"each frame of {self._source_name()}")
+        self._adopt_calibration_settings(cal)
+        if for_new_frames:
+            self._undo.clear()
+            self._redo.clear()
+        self.set_calibration(cal, record=not for_new_frames,
+                             origin=CalibrationOrigin("file", path=str(Path(path).resolve())))
+        if for_new_frames:
+            self.undo_changed.emit(self.can_undo, self.can_redo)
         self.message.emit(f"calibration loaded from {Path(path).name}")
+
+    def _adopt_calibration_settings(self, cal) -> None:
+        """The camera and pixel size of ``cal`` replace those entered in the settings.
+
+        The camera entered in the settings wins over the calibration's (see
+        :meth:`camera_model`); a camera entered for another stack would otherwise keep
+        converting counts to photons with the wrong gain.
+        """
+        changes: dict[str, Any] = {}
+        if self._settings.get("camera") is not None:
+            changes["camera"] = None
+        if cal is not None and cal.pixel_size_nm and cal.pixel_size_nm != self._settings.get("pixel_size_nm"):
+            changes["pixel_size_nm"] = float(cal.pixel_size_nm)
+        if changes:
+            self._settings = {**self._settings, **changes}
+            self.settings_changed.emit(dict(self._settings))
+
+    @property
+    def calibration_origin(self) -> CalibrationOrigin:
+        """Where the calibration in use came from (kind, file, stack, edited)."""
+        return self._origin
+
+    def _set_origin(self, origin: CalibrationOrigin) -> None:
+        if origin != self._origin:
+            self._origin = origin
+            self.calibration_origin_changed.emit(origin)
+
+    @property
+    def calibration_from_other_stack(self) -> bool:
+        """True while the calibration in use was made for frames opened before the current ones."""
+        return self._calibration is not None and self._origin.kind == "kept"
+
+    def keep_calibration(self) -> None:
+        """Confirm the calibration of the previous stack for the frames now loaded."""
+        if self.calibration_from_other_stack:
+            self.message.emit(f"calibration {self._origin.describe()} kept for {self._source_name()}")
+
+    def drop_calibration(self) -> None:
+        """Forget the calibration (to calibrate anew); the camera in use stays in the settings."""
+        if self._calibration is None:
+            return
+        camera = self.camera_model()
+        self._settings = {**self._settings, "camera": camera.to_dict()}
+        self.settings_changed.emit(dict(self._settings))
+        self._undo.clear()
+        self._redo.clear()
+        self.set_calibration(None, record=False, origin=CalibrationOrigin())
+        self.undo_changed.emit(False, False)
+        self.message.emit("calibration dropped; the camera stays as entered in Analysis settings")
 
     @staticmethod
     def sidecar_calibration(frames_path) -> Path | None:
@@ -266,6 +369,8 @@ class Session:
                 old_frames.close()
             except Exception:  # noqa: BLE001 - a failing close must not block loading new frames
                 log.debug("closing the previous frame file failed", exc_info=True)
+        old_name = self._source_name() if old_frames is not None else None
+        same_file = source is not None and source == self._frames_source
         self._frames = frames
         self._frames_source = source
         self._frames_dataset = dataset
@@ -276,9 +381,16 @@ class Session:
             self._undo.clear()
             self._redo.clear()
             self.calibration_changed.emit(None)
+            self._set_origin(CalibrationOrigin())
             self.undo_changed.emit(False, False)
             self.message.emit(f"calibration dropped: it was made for {old[0]}x{old[1]} frames, "
                               f"these are {shape[0]}x{shape[1]}")
+        elif self._calibration is not None and old_frames is not None and not same_file \
+                and self._origin.kind != "kept":
+            # made for (or with) the previous stack: still in use, but say so until the user decides
+            stack = self._origin.stack if self._origin.kind == "frames" else old_name
+            self._set_origin(CalibrationOrigin("kept", path=self._origin.path, stack=stack,
+                                               edited=self._origin.edited))
         self._invalidate_amplitudes(emit=False)
         self._index = 0
         self.frames_changed.emit(frames)
@@ -344,7 +456,8 @@ class Session:
         """Counter bumped whenever stored amplitudes become invalid."""
         return self._generation
 
-    def set_calibration(self, calibration, *, record: bool = True, group: str | None = None) -> None:
+    def set_calibration(self, calibration, *, record: bool = True, group: str | None = None,
+                        origin: CalibrationOrigin | None = None) -> None:
         """Replace the calibration, invalidating only what depends on the changed fields.
 
         Parameters
@@ -355,13 +468,26 @@ class Session:
         group : str, optional
             Consecutive edits with the same group name (e.g. ``"threshold"`` while dragging)
             make one undo step until :meth:`close_undo_group` is called.
+        origin : CalibrationOrigin, optional
+            Where ``calibration`` comes from; by default an edit of the calibration in use
+            (marked edited), or ``"set"`` when there was none.
         """
         old = self._calibration
         if calibration is not None and self._frames is not None:
             calibration.check_frame_shape(self.frame_shape, where=f"each frame of {self._source_name()}")
+        if origin is None:
+            if calibration is None:
+                origin = CalibrationOrigin()
+            elif old is None:
+                origin = CalibrationOrigin("set")
+            else:
+                origin = dataclasses.replace(self._origin, edited=True)
         if calibration is old or (calibration is not None and old is not None and calibration == old
                                   and _same_arrays(calibration, old)):
+            if origin.kind != self._origin.kind or origin.path != self._origin.path:
+                self._set_origin(origin)  # the same numbers, now from another file
             return
+        self._set_origin(origin)
         if record:
             if not (group is not None and group == self._undo_group and self._undo):
                 self._undo.append(old)
@@ -369,6 +495,10 @@ class Session:
             self._redo.clear()
         self._apply_calibration(old, calibration)
         self.undo_changed.emit(self.can_undo, self.can_redo)
+
+    def store_calibration_from_frames(self, calibration) -> None:
+        """Use a calibration made by :meth:`calibrate_job` from the frames now loaded."""
+        self.set_calibration(calibration, origin=CalibrationOrigin("frames", stack=self._source_name()))
 
     def close_undo_group(self) -> None:
         """End a run of merged edits (e.g. when the mouse button is released)."""
@@ -1227,7 +1357,8 @@ class Session:
                                      f"frames but the session was saved with {frames_info['n_frames']}")
             cal = doc.get("calibration")
             if cal is not None:
-                self.set_calibration(Calibration.from_dict(cal), record=False)
+                self.set_calibration(Calibration.from_dict(cal), record=False,
+                                     origin=CalibrationOrigin("session", path=str(path)))
             self._undo = [None if c is None else Calibration.from_dict(c) for c in doc.get("undo", [])]
             self.undo_changed.emit(self.can_undo, self.can_redo)
             if h5 is not None and "amplitude" in h5 and self._calibration is not None:

@@ -10,7 +10,7 @@ from PySide6 import QtCore, QtWidgets
 
 from latticeread import __version__
 
-__all__ = ["show_error", "show_info", "ask_yes_no", "show_about", "AnalysisSettingsDialog",
+__all__ = ["show_error", "show_info", "ask_yes_no", "ask_choice", "show_about", "AnalysisSettingsDialog",
            "SAFETY_TEXT", "error_title"]
 
 SAFETY_TEXT = (
@@ -63,6 +63,42 @@ def ask_yes_no(parent, title: str, text: str, on_answer) -> QtWidgets.QMessageBo
     box.setWindowModality(QtCore.Qt.WindowModal)
     box.setAttribute(QtCore.Qt.WA_DeleteOnClose, True)
     box.finished.connect(lambda code: on_answer(box.clickedButton() is box.button(QtWidgets.QMessageBox.Yes)))
+    box.open()
+    return box
+
+
+def ask_choice(parent, title: str, text: str, choices, on_answer, *, default: str | None = None,
+               object_name: str = "latticeread_choice") -> QtWidgets.QMessageBox:
+    """Non-blocking question with one button per choice.
+
+    Parameters
+    ----------
+    choices : sequence of (key, label, tooltip)
+        One button each; the button carries its key as the ``choice`` property.
+    on_answer : callable
+        Called with the key of the button pressed, or None when the box is closed otherwise.
+    default : str, optional
+        Key of the default button (Enter).
+    """
+    box = QtWidgets.QMessageBox(QtWidgets.QMessageBox.Question, title, text, QtWidgets.QMessageBox.NoButton,
+                                parent)
+    box.setObjectName(object_name)
+    buttons = {}
+    for key, label, tip in choices:
+        button = box.addButton(label, QtWidgets.QMessageBox.AcceptRole)
+        button.setProperty("choice", key)
+        button.setToolTip(tip)
+        buttons[key] = button
+    if default in buttons:
+        box.setDefaultButton(buttons[default])
+    box.setWindowModality(QtCore.Qt.WindowModal)
+    box.setAttribute(QtCore.Qt.WA_DeleteOnClose, True)
+
+    def finished(_code):
+        clicked = box.clickedButton()
+        on_answer(None if clicked is None else clicked.property("choice"))
+
+    box.finished.connect(finished)
     box.open()
     return box
 

@@ -271,7 +271,12 @@ class MainWindow(QtWidgets.QMainWindow):
         self.cancel_button.setIcon(_icon("cancel"))
         self.cancel_button.setVisible(False)
         self.cancel_button.clicked.connect(self.cancel_work)
+        self.calibration_label = QtWidgets.QLabel("")
+        self.calibration_label.setObjectName("calibration_label")
+        self.calibration_label.setTextInteractionFlags(QtCore.Qt.TextSelectableByMouse)
+        self.calibration_label.setMaximumWidth(380)
         bar.addWidget(self.status_label, 1)
+        bar.addPermanentWidget(self.calibration_label)
         bar.addPermanentWidget(self.hover_label)
         bar.addPermanentWidget(self.progress)
         bar.addPermanentWidget(self.cancel_button)
@@ -493,6 +498,7 @@ class MainWindow(QtWidgets.QMainWindow):
         for sig, slot in ((session.frames_changed, self._on_frames),
                           (session.index_changed, lambda _i: self._mark("frame", "classification")),
                           (session.calibration_changed, self._on_calibration),
+                          (session.calibration_origin_changed, lambda _o: self._update_calibration_label()),
                           (session.amplitudes_changed, self._on_amplitudes),
                           (session.classification_changed, lambda: self._mark("classification")),
                           (session.threshold_result_changed, lambda _r: self._mark("threshold")),
@@ -505,6 +511,7 @@ class MainWindow(QtWidgets.QMainWindow):
             self._connections.append((sig, slot))
         self._on_undo_state(session.can_undo, session.can_redo)
         self._on_modified(session.modified)
+        self._update_calibration_label()
         self.image_pane.clear()
         self.occupation_view.clear()
         for p in self.panels.values():
@@ -528,6 +535,8 @@ class MainWindow(QtWidgets.QMainWindow):
 
     def _on_frames(self, _frames) -> None:
         self.workers.cancel()
+        # another stack: its display levels, zoom and model come from its own frames
+        self.image_pane.clear()
         self._mark("frames", "frame", "amplitudes", "classification")
         s = self.session
         if s.source:
@@ -535,7 +544,40 @@ class MainWindow(QtWidgets.QMainWindow):
             self._update_recent_menu()
         self._update_title()
 
+    def _update_calibration_label(self) -> None:
+        """The calibration in use and where it came from, always visible in the status bar."""
+        s = self.session
+        cal = None if s is None else s.calibration
+        if cal is None:
+            self.calibration_label.setText("Calibration: none")
+            self.calibration_label.setToolTip("No calibration in use: open frames with a calibration file "
+                                              "beside them, load one (File > Load calibration) or "
+                                              "calibrate from the frames (Analysis > Calibrate from frames)")
+            return
+        origin = s.calibration_origin
+        text = f"Calibration: {origin.describe()}"
+        metrics = self.calibration_label.fontMetrics()
+        self.calibration_label.setText(metrics.elidedText(text, QtCore.Qt.ElideMiddle,
+                                                          self.calibration_label.maximumWidth() - 8))
+        g = cal.geometry
+        camera = cal.camera
+        lines = [f"Calibration in use: {origin.describe()}"]
+        if origin.path:
+            lines.append(f"file: {origin.path}")
+        lines.append(f"lattice spacings {g.spacings[0]:.3f}, {g.spacings[1]:.3f} px, "
+                     f"angle between vectors {np.degrees(g.angle_between):.1f} deg")
+        lines.append(f"camera: {camera.kind}, EM gain {camera.em_gain:g}, "
+                     f"{camera.counts_per_electron:g} counts per electron, bias {camera.bias:g} counts")
+        lines.append(f"PSF: {cal.psf.kind}, FWHM {cal.psf.fwhm:.2f} px")
+        if cal.pixel_size_nm:
+            lines.append(f"pixel size in the atom plane: {cal.pixel_size_nm:g} nm")
+        if origin.kind == "kept":
+            lines.append("Made for another stack: load the calibration of these frames or calibrate anew "
+                         "if they were taken with another lattice or camera.")
+        self.calibration_label.setToolTip("\n".join(lines))
+
     def _on_calibration(self, cal) -> None:
+        self._update_calibration_label()
         old, self._shown_calibration = getattr(self, "_shown_calibration", None), cal
         fields = ("geometry", "psf", "camera", "frame_shape", "amplitude_method", "pixel_size_nm")
         if old is not None and cal is not None and all(getattr(old, f) is getattr(cal, f) for f in fields):
@@ -808,7 +850,8 @@ class MainWindow(QtWidgets.QMainWindow):
             return
         job = s.calibrate_job(constraints=getattr(self, "_constraints", None) or None)
         self._start("calibrate", job, "calibrating: lattice, PSF and threshold",
-                    on_result=lambda cal: self._apply(lambda: s.set_calibration(cal), "calibration done"))
+                    on_result=lambda cal: self._apply(lambda: s.store_calibration_from_frames(cal),
+                                                      "calibration done"))
 
     def estimate_geometry(self) -> None:
         s = self.session
@@ -1018,28 +1061,58 @@ class MainWindow(QtWidgets.QMainWindow):
         if not self._guard(lambda: self.session.open_frames(path)):
             return False
         sidecar = Session.sidecar_calibration(path)
-        if sidecar is not None and self.session.calibration is None:
+        if sidecar is not None:
             opened = self.status_label.text()
-            if self.load_calibration(sidecar):
+            if self.load_calibration(sidecar, for_new_frames=True):
                 self.show_status(f"{opened}; calibration loaded from {sidecar.name}")
+                return True
+        if self.session.calibration_from_other_stack:
+            self._ask_calibration_for_new_frames()
         return True
 
-    def load_calibration(self, path) -> bool:
+    def _ask_calibration_for_new_frames(self) -> None:
+        """New frames arrived without a calibration of their own: keep, load or calibrate anew."""
+        s = self.session
+        origin = s.calibration_origin
+        name = Path(s.source).name if s.source else "these frames"
+        text = (f"{name} has no calibration file beside it. The calibration in use was {origin.describe()}.\n\n"
+                "Keep it only if these frames were taken with the same lattice, camera and optics; "
+                "otherwise load their calibration file or calibrate from these frames.")
+        dialogs.ask_choice(
+            self, "Calibration for the new frames", text,
+            (("keep", "Keep the calibration in use", "Analyse the new frames with the calibration in use"),
+             ("load", "Load a calibration file...", "Choose the calibration JSON of these frames"),
+             ("calibrate", "Calibrate from these frames",
+              "Estimate lattice, PSF and threshold from the new frames (the camera in Analysis settings "
+              "is kept)")),
+            self._calibration_choice, default="calibrate", object_name="calibration_choice")
+
+    def _calibration_choice(self, choice) -> None:
+        s = self.session
+        if choice == "load":
+            self._load_calibration_dialog(for_new_frames=True)
+        elif choice == "calibrate":
+            s.drop_calibration()
+            self.calibrate()
+        else:  # "keep", or the box was closed: the status bar keeps saying where it came from
+            s.keep_calibration()
+
+    def load_calibration(self, path, *, for_new_frames: bool = False) -> bool:
         """Use a calibration JSON for the open frames; errors (wrong frame size...) go to a dialog."""
         path = Path(path)
         if self.session.frames is None:
             self.show_status("open a frame file first, then load its calibration")
             return False
-        ok = self._guard(lambda: self.session.load_calibration(path))
+        ok = self._guard(lambda: self.session.load_calibration(path, for_new_frames=for_new_frames))
         if ok:
             self.show_status(f"calibration loaded from {path.name}")
         return ok
 
-    def _load_calibration_dialog(self) -> None:
+    def _load_calibration_dialog(self, *, for_new_frames: bool = False) -> None:
         name, _ = QtWidgets.QFileDialog.getOpenFileName(self, "Load calibration", str(self._default_dir()),
                                                         CALIBRATION_FILTER)
         if name:
-            self.load_calibration(name)
+            self.load_calibration(name, for_new_frames=for_new_frames)
 
     def open_session(self, path) -> bool:
         try:
