@@ -508,24 +508,24 @@ def test_replaced_frame_is_counted_again(session):
 def test_sorted_copy_counts_like_a_comparison_with_nan_inf_and_ties():
     """Binary search on each site's sorted amplitudes = numpy ``(a > t).sum(axis=0)``
     (common practice, no source), including NaN (never above), +-inf and values equal to t."""
-    from latticeread.session import _add_sorted_index, _count_above_sorted
+    from latticeread.pooled_stats import PooledStats, count_above_sorted
 
     rng = np.random.default_rng(3)
     for n_frames in (1, 2, 7, 64):
         a = np.round(rng.normal(300.0, 400.0, (n_frames, 40)))  # rounded: many exact ties
         a[rng.random(a.shape) < 0.1] = np.nan
         a[0, 0], a[-1, 1], a[:, 2] = np.inf, -np.inf, np.nan  # site 2: no finite amplitude at all
-        stats = {}
-        _add_sorted_index(stats, a)
+        stats = PooledStats.empty(0, 0.0, np.ones(n_frames, bool), a.shape[1])
+        stats.add_sorted_index(a)
         for t in np.concatenate([[-1e9, 1e9], a[np.isfinite(a)][:20]]):
             want = (np.nan_to_num(a, nan=-np.inf) > t).sum(axis=0)
-            np.testing.assert_array_equal(_count_above_sorted(stats["sorted"], stats["n_not_nan"], float(t)), want)
+            np.testing.assert_array_equal(count_above_sorted(stats.sorted, stats.n_not_nan, float(t)), want)
 
 
 def test_drag_after_the_background_fit_uses_the_sorted_copy_and_stays_exact(session):
     session.reconstruct([0, 1, 2])
     session.store_threshold_fit(session.fit_threshold_job()())
-    assert session._stats_cache.get("sorted") is not None
+    assert session._stats_cache.sorted is not None
     amps = session.all_amplitudes()
     ties = np.sort(amps[np.isfinite(amps)])[:: max(1, amps.size // 7)]
     for t in list(ties) + [200.0, 450.0]:  # thresholds equal to stored amplitudes: strictly above only
@@ -533,13 +533,13 @@ def test_drag_after_the_background_fit_uses_the_sorted_copy_and_stays_exact(sess
         occupied, empty, mean = _direct_pooled(session)
         assert (session.pooled_counts()["occupied"], session.pooled_counts()["empty"]) == (occupied, empty)
         np.testing.assert_array_equal(session.mean_occupation(), mean)
-    assert session._stats_cache.get("sorted") is not None
+    assert session._stats_cache.sorted is not None
     session.reconstruct([3])  # a new frame, then a new threshold: re-count the old frames, add the new one
     session.set_threshold(300.0)
     occupied, empty, mean = _direct_pooled(session)
     assert (session.pooled_counts()["occupied"], session.pooled_counts()["empty"]) == (occupied, empty)
     np.testing.assert_array_equal(session.mean_occupation(), mean)
-    assert session._stats_cache.get("sorted") is None  # it no longer covers every frame
+    assert session._stats_cache.sorted is None  # it no longer covers every frame
     session.set_threshold(310.0)  # re-counted by comparison now
     occupied, empty, mean = _direct_pooled(session)
     assert (session.pooled_counts()["occupied"], session.pooled_counts()["empty"]) == (occupied, empty)

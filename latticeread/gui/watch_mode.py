@@ -274,7 +274,7 @@ class LiveWatchController(QtCore.QObject):
         """Open (or resume) the run file on the watch thread and start polling."""
         if self._running:
             return
-        from latticeread.gui.main_window import import_core
+        from latticeread.gui.workers import import_core
 
         import_core()  # scipy & co. imported on the GUI thread, never first on the worker
         import latticeread.runs.watch  # noqa: F401

@@ -19,9 +19,31 @@ from typing import Callable
 
 from PySide6 import QtCore
 
-__all__ = ["Task", "WorkerPool"]
+__all__ = ["Task", "WorkerPool", "import_core", "CORE_MODULES"]
 
 log = logging.getLogger(__name__)
+
+
+#: Core modules the background tasks use. They are imported on the GUI thread before the first
+#: task starts: importing them (scipy...) in a worker thread while the Qt binding's import
+#: hook runs on another thread has crashed the process.
+CORE_MODULES = ("latticeread.core.pipeline", "latticeread.core.lattice", "latticeread.core.classify",
+                "latticeread.core.psf_estimate", "latticeread.core.fidelity", "latticeread.core.psf",
+                "latticeread.io")
+
+
+def import_core() -> None:
+    """Import every core module a background task may need (GUI thread, once)."""
+    import gc
+    import importlib
+
+    for name in CORE_MODULES:
+        importlib.import_module(name)
+    if gc.get_freeze_count() == 0:
+        # Move the objects alive now (modules, classes, Qt wrappers: hundreds of thousands)
+        # out of the collector's reach, once per process: a full collection then no longer
+        # walks them, which paused the GUI thread for 60-150 ms at random moments.
+        gc.freeze()
 
 
 class Task(QtCore.QObject):
