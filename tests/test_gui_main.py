@@ -438,7 +438,7 @@ def test_deferred_panels_are_built_after_show(qtbot, tmp_path, sim_tif):
     qtbot.waitUntil(lambda: hasattr(w.histogram_panel, "set_amplitudes"), timeout=5000)
     s = _calibrated(w, sim_tif)
     assert w.histogram_panel.counts_label.text().startswith(f"occupied {s.pooled_counts()['occupied']}")
-    assert w.docks["histogram_panel"].widget() is w.histogram_panel
+    assert w.dock_content("histogram_panel") is w.histogram_panel
 
 
 def test_analysis_settings_dialog_updates_the_session(window, sim_tif):

@@ -26,7 +26,7 @@ from latticeread.gui import dialogs
 from latticeread.gui.image_pane import VIEW_MODES, ImagePane
 from latticeread.gui.occupation_view import OccupationView
 from latticeread.gui.settings import AppSettings
-from latticeread.gui.workers import WorkerPool
+from latticeread.gui.workers import WorkerPool, import_core
 from latticeread.session import Session
 
 __all__ = ["MainWindow", "FRAME_FILTER"]
@@ -53,6 +53,9 @@ HISTOGRAM_INTERVAL_S = 1.0    # re-histogram period while a stack is processed
 #: worker processes for reconstructing a stack (keeps the interpreter lock free for the GUI)
 RECONSTRUCT_PROCESSES = max(1, min(4, (os.cpu_count() or 2)))
 AUTOSAVE_INTERVAL_S = 60
+#: narrowest a panel's dock may get (pixels); narrower panels scroll. With the image pane's own
+#: minimum this keeps the window's minimum width well under a 1366-pixel laptop screen.
+DOCK_MIN_WIDTH = 240
 #: toolbar and window icons: top-level icons/, linked here as package data (pyproject.toml), so
 #: wheel installs have them too
 ICON_DIR = Path(__file__).resolve().parent / "icons"
@@ -68,28 +71,6 @@ PANELS = (
     ("histogram_panel", "HistogramPanel", "Amplitude histogram", "right",
      "Site amplitudes (photons), fitted components and the draggable threshold"),
 )
-
-
-#: Core modules the background tasks use. They are imported on the GUI thread before the first
-#: task starts: importing them (scipy...) in a worker thread while the Qt binding's import
-#: hook runs on another thread has crashed the process.
-CORE_MODULES = ("latticeread.core.pipeline", "latticeread.core.lattice", "latticeread.core.classify",
-                "latticeread.core.psf_estimate", "latticeread.core.fidelity", "latticeread.core.psf",
-                "latticeread.io")
-
-
-def import_core() -> None:
-    """Import every core module a background task may need (GUI thread, once)."""
-    import gc
-    import importlib
-
-    for name in CORE_MODULES:
-        importlib.import_module(name)
-    if gc.get_freeze_count() == 0:
-        # Move the objects alive now (modules, classes, Qt wrappers: hundreds of thousands)
-        # out of the collector's reach, once per process: a full collection then no longer
-        # walks them, which paused the GUI thread for 60-150 ms at random moments.
-        gc.freeze()
 
 
 def _icon(name: str) -> QtGui.QIcon:
@@ -137,7 +118,7 @@ class MainWindow(QtWidgets.QMainWindow):
         self.setWindowTitle("latticeread")
         self.setWindowIcon(_icon("latticeread"))
         self.setAcceptDrops(True)
-        self.resize(1500, 940)
+        self._fit_to_screen(1500, 940)
 
         self.image_pane = ImagePane()
         self.setCentralWidget(self.image_pane)
@@ -170,7 +151,7 @@ class MainWindow(QtWidgets.QMainWindow):
         self._wire_views()
         self._cache_axes()
         self.set_session(session or Session())
-        self.app_settings.restore_window(self)
+        self._layout_restored = self.app_settings.restore_window(self)
         self._restore_view_options()
         if defer_panels:
             QtCore.QTimer.singleShot(0, self.load_panels)
@@ -178,6 +159,14 @@ class MainWindow(QtWidgets.QMainWindow):
             QtCore.QTimer.singleShot(0, self._offer_restore)
 
     # ================================================================== construction
+    def _fit_to_screen(self, width: int, height: int) -> None:
+        """Start at ``width`` x ``height`` pixels, or the screen's free area when it is smaller."""
+        screen = self.screen()
+        if screen is not None:
+            free = screen.availableGeometry()
+            width, height = min(width, free.width()), min(height, free.height())
+        self.resize(width, height)
+
     def _build_docks(self, *, defer: bool = False) -> None:
         self.setDockNestingEnabled(True)
         for attr, cls_name, title, area, tip in PANELS:
@@ -192,7 +181,7 @@ class MainWindow(QtWidgets.QMainWindow):
             setattr(self, attr, widget)
             self._add_dock(attr, title, widget, area, tip)
         self._add_dock("occupation", "Occupation", self.occupation_view, "right",
-                       "Occupation matrix of this frame and the mean over the reconstructed frames")
+                       "Occupation matrix of this frame and the mean over the reconstructed frames", scroll=False)
         self.tabifyDockWidget(self.docks["geometry_panel"], self.docks["psf_panel"])
         self.tabifyDockWidget(self.docks["psf_panel"], self.docks["fidelity_panel"])
         self.docks["geometry_panel"].raise_()
@@ -221,7 +210,12 @@ class MainWindow(QtWidgets.QMainWindow):
             old = self.panels[attr]
             self.panels[attr] = widget
             setattr(self, attr, widget)
-            self.docks[attr].setWidget(widget)
+            holder = self.docks[attr].widget()
+            if isinstance(holder, QtWidgets.QScrollArea):
+                holder.takeWidget()
+                holder.setWidget(widget)
+            else:
+                self.docks[attr].setWidget(widget)
             old.deleteLater()
         self._wire_panels()
         self._cache_axes()
@@ -244,10 +238,26 @@ class MainWindow(QtWidgets.QMainWindow):
                 if isinstance(item, pg.AxisItem):
                     item.setCacheMode(QtWidgets.QGraphicsItem.DeviceCoordinateCache)
 
-    def _add_dock(self, key: str, title: str, widget, area: str, tip: str) -> None:
+    def dock_content(self, key: str) -> QtWidgets.QWidget:
+        """The panel shown in dock ``key`` (inside its scroll area, if any)."""
+        holder = self.docks[key].widget()
+        return holder.widget() if isinstance(holder, QtWidgets.QScrollArea) else holder
+
+    def _add_dock(self, key: str, title: str, widget, area: str, tip: str, *, scroll: bool = True) -> None:
+        """A dock holding ``widget``; with ``scroll`` the dock may be smaller than the panel's
+        minimum size (scroll bars appear), so the window fits small screens."""
         dock = QtWidgets.QDockWidget(title, self)
         dock.setObjectName(f"dock_{key}")
-        dock.setWidget(widget)
+        if scroll:
+            holder = QtWidgets.QScrollArea()
+            holder.setMinimumWidth(DOCK_MIN_WIDTH)
+            holder.setObjectName(f"scroll_{key}")
+            holder.setWidgetResizable(True)
+            holder.setFrameShape(QtWidgets.QFrame.NoFrame)
+            holder.setWidget(widget)
+            dock.setWidget(holder)
+        else:
+            dock.setWidget(widget)
         dock.setToolTip(tip)
         dock.toggleViewAction().setToolTip(f"Show or hide the {title.lower()} panel")
         dock.toggleViewAction().setStatusTip(tip)
@@ -261,7 +271,11 @@ class MainWindow(QtWidgets.QMainWindow):
         self.hover_label = QtWidgets.QLabel("")
         self.hover_label.setToolTip("Site under the cursor: indices (row along a1, col along a2), "
                                     "amplitude in photons, posterior probability of an atom")
-        self.hover_label.setMinimumWidth(420)
+        # labels may shrink (text cut) rather than push the window wider than the screen
+        self.status_label.setSizePolicy(QtWidgets.QSizePolicy.Ignored, QtWidgets.QSizePolicy.Preferred)
+        self.status_label.setMinimumWidth(120)
+        self.hover_label.setSizePolicy(QtWidgets.QSizePolicy.Ignored, QtWidgets.QSizePolicy.Preferred)
+        self.hover_label.setMinimumWidth(200)
         self.progress = QtWidgets.QProgressBar()
         self.progress.setMaximumWidth(220)
         self.progress.setToolTip("Progress of the running analysis")
@@ -840,6 +854,7 @@ class MainWindow(QtWidgets.QMainWindow):
         self.tabifyDockWidget(self.docks["geometry_panel"], self.docks["psf_panel"])
         self.tabifyDockWidget(self.docks["psf_panel"], self.docks["fidelity_panel"])
         self.docks["geometry_panel"].raise_()
+        self.size_docks()
 
     # ================================================================== analysis
     def calibrate(self) -> None:
@@ -1343,6 +1358,24 @@ class MainWindow(QtWidgets.QMainWindow):
             self.image_pane.set_lattice(cal.geometry.with_offset(shot.offset), None)
         self.show_status(f"live: {Path(shot.source).name}[{shot.frame_index}] filling {shot.filling:.3f} "
                          f"(shot {shot.shot_number})")
+
+    # ---------------------------------------------------------------- layout
+    def showEvent(self, event: QtGui.QShowEvent) -> None:
+        super().showEvent(event)
+        if not getattr(self, "_layout_restored", True) and not getattr(self, "_docks_sized", False):
+            self._docks_sized = True
+            QtCore.QTimer.singleShot(0, self.size_docks)
+
+    def size_docks(self) -> None:
+        """Share the window's width: about a quarter for the left panels, a third for the right."""
+        width = max(self.width(), 800)
+        left = int(np.clip(0.275 * width, DOCK_MIN_WIDTH, 520))
+        right = int(np.clip(0.30 * width, DOCK_MIN_WIDTH, 600))
+        self.resizeDocks([self.docks["geometry_panel"], self.docks["histogram_panel"]], [left, right],
+                         QtCore.Qt.Horizontal)
+        height = self.height()
+        self.resizeDocks([self.docks["histogram_panel"], self.docks["occupation"]],
+                         [int(0.55 * height), int(0.45 * height)], QtCore.Qt.Vertical)
 
     # ---------------------------------------------------------------- close
     def closeEvent(self, event: QtGui.QCloseEvent) -> None:

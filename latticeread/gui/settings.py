@@ -81,13 +81,27 @@ class AppSettings:
         self._q.setValue("recent_files", [])
 
     # --- window -----------------------------------------------------------------------------
+    @staticmethod
+    def screen_key(window) -> str:
+        """``"WxH"`` of the screen area available to ``window`` (layouts are kept per screen size)."""
+        screen = window.screen() if hasattr(window, "screen") else None
+        if screen is None:
+            return "unknown"
+        size = screen.availableGeometry().size()
+        return f"{size.width()}x{size.height()}"
+
     def save_window(self, window) -> None:
-        self._q.setValue("window/geometry", window.saveGeometry())
-        self._q.setValue("window/state", window.saveState())
+        """Remember the window's geometry and dock layout for the screen size it is on."""
+        key = self.screen_key(window)
+        self._q.setValue(f"window/{key}/geometry", window.saveGeometry())
+        self._q.setValue(f"window/{key}/state", window.saveState())
 
     def restore_window(self, window) -> bool:
-        geometry = self._q.value("window/geometry")
-        state = self._q.value("window/state")
+        """Restore the layout saved on a screen of the same size; False when there is none
+        (a layout made on a large screen is not forced onto a laptop)."""
+        key = self.screen_key(window)
+        geometry = self._q.value(f"window/{key}/geometry")
+        state = self._q.value(f"window/{key}/state")
         ok = False
         if geometry is not None:
             ok = bool(window.restoreGeometry(geometry))

@@ -91,7 +91,7 @@ class GeometryPanel(QtWidgets.QWidget):
             "Red crosses: detected reciprocal-lattice peaks; green circles: where the primitive "
             "reciprocal vectors ±b1, ±b2 of the geometry shown here fall (they follow the manual "
             "adjustments). Scroll to zoom, drag to pan.")
-        self.spectrum_plot.setMinimumSize(240, 240)
+        self.spectrum_plot.setMinimumSize(200, 200)
         sp = self.spectrum_plot.getPlotItem()
         sp.setAspectLocked(True)
         sp.invertY(True)
@@ -150,9 +150,11 @@ class GeometryPanel(QtWidgets.QWidget):
         info.addWidget(self.reestimate_button)
         info.addStretch(1)
 
-        top = QtWidgets.QHBoxLayout()
+        # spectrum beside the numbers in a wide dock, above them in a narrow one (resizeEvent)
+        top = QtWidgets.QBoxLayout(QtWidgets.QBoxLayout.LeftToRight)
         top.addWidget(self.spectrum_plot, 3)
         top.addLayout(info, 2)
+        self._top_layout = top
 
         # --- constraints -------------------------------------------------------------
         cons = QtWidgets.QGroupBox("Constraints from the lab calibration")
@@ -188,6 +190,8 @@ class GeometryPanel(QtWidgets.QWidget):
         self.between_box.setValue(90.0)
         self.between_box.setSuffix(" °")
         self.between_box.setToolTip("Angle between a1 and a2 in degrees")
+        for box in (self.spacing_box, self.angle_box, self.between_box):
+            box.setMinimumWidth(90)  # narrower than its widest value: the dock may be narrow
         self.fill_constraints_button = QtWidgets.QPushButton("From current")
         self.fill_constraints_button.setToolTip("Copy spacing, direction and angle of the geometry "
                                                 "shown into the constraint boxes")
@@ -222,6 +226,7 @@ class GeometryPanel(QtWidgets.QWidget):
                 box.setPrefix(f"{comp} ")
                 box.setSuffix(" px")
                 box.setKeyboardTracking(False)
+                box.setMinimumWidth(96)  # narrower than its widest value: the dock may be narrow
                 box.setToolTip(f"{comp} component of {text.split()[0]} in pixels; use the arrows, "
                                "the mouse wheel or arrow keys for steps of the size set below")
                 box.valueChanged.connect(lambda value, k=key, i=c: self._on_box_changed(k, i, value))
@@ -259,12 +264,15 @@ class GeometryPanel(QtWidgets.QWidget):
         row.addWidget(QtWidgets.QLabel("rotate"))
         row.addWidget(self.rotate_minus)
         row.addWidget(self.rotate_plus)
-        row.addWidget(QtWidgets.QLabel("scale"))
-        row.addWidget(self.scale_minus)
-        row.addWidget(self.scale_plus)
         row.addStretch(1)
-        row.addWidget(self.revert_button)
         ng.addLayout(row, 3, 0, 1, 3)
+        row2 = QtWidgets.QHBoxLayout()
+        row2.addWidget(QtWidgets.QLabel("scale"))
+        row2.addWidget(self.scale_minus)
+        row2.addWidget(self.scale_plus)
+        row2.addStretch(1)
+        row2.addWidget(self.revert_button)
+        ng.addLayout(row2, 4, 0, 1, 3)
 
         # --- drift -----------------------------------------------------------------------
         self.drift_plot = pg.PlotWidget(background="w")
@@ -289,6 +297,7 @@ class GeometryPanel(QtWidgets.QWidget):
         for c in self._drift_curves + self._trend_curves:
             dp.addItem(c)
         self.drift_label = QtWidgets.QLabel("no drift data")
+        self.drift_label.setWordWrap(True)
         self.drift_label.setToolTip("Spread of the phase over the stack and the slope of the "
                                     "linear trend per frame")
 
@@ -300,6 +309,16 @@ class GeometryPanel(QtWidgets.QWidget):
         layout.addWidget(self.drift_plot, 2)
         layout.addWidget(self.drift_label)
         self._set_nudges_enabled(False)
+
+    #: below this panel width (pixels) the numbers go under the spectrum
+    STACK_BELOW_WIDTH = 560
+
+    def resizeEvent(self, event) -> None:
+        super().resizeEvent(event)
+        direction = (QtWidgets.QBoxLayout.TopToBottom if event.size().width() < self.STACK_BELOW_WIDTH
+                     else QtWidgets.QBoxLayout.LeftToRight)
+        if self._top_layout.direction() != direction:
+            self._top_layout.setDirection(direction)
 
     # ------------------------------------------------------------------ data in
     def set_geometry(self, geometry: LatticeGeometry | None, *, pixel_size_nm: float | None = None) -> None:

@@ -206,7 +206,7 @@ class HistogramPanel(QtWidgets.QWidget):
             item.addItem(c)
         self.threshold_line = pg.InfiniteLine(
             pos=0.0, angle=90, movable=True, pen=_LINE_PEN, hoverPen=_LINE_HOVER_PEN,
-            label="threshold {value:.4g}",
+            label="threshold {value:.1f}",  # the precision of the threshold box
             labelOpts={"position": 0.92, "color": (170, 0, 0), "fill": (255, 255, 255, 200),
                        "movable": True})
         self.threshold_line.setZValue(10)
@@ -236,20 +236,23 @@ class HistogramPanel(QtWidgets.QWidget):
                                       "and press Enter to set it exactly")
         self.threshold_box.valueChanged.connect(self._on_box_changed)
 
-        controls = QtWidgets.QHBoxLayout()
-        controls.addWidget(QtWidgets.QLabel("method"))
-        controls.addWidget(self.method_combo)
-        controls.addSpacing(8)
-        controls.addWidget(QtWidgets.QLabel("threshold"))
-        controls.addWidget(self.threshold_box)
-        controls.addSpacing(8)
-        controls.addWidget(self.log_check)
-        controls.addStretch(1)
+        self.threshold_box.setSuffix(" photons")
+        self.threshold_box.setMinimumWidth(110)
+        # two rows, so the panel fits a narrow dock
+        controls = QtWidgets.QGridLayout()
+        controls.addWidget(QtWidgets.QLabel("method"), 0, 0)
+        controls.addWidget(self.method_combo, 0, 1)
+        controls.addWidget(QtWidgets.QLabel("threshold"), 1, 0)
+        controls.addWidget(self.threshold_box, 1, 1)
+        controls.addWidget(self.log_check, 1, 2)
+        controls.setColumnStretch(3, 1)
 
         self.counts_label = QtWidgets.QLabel("occupied - · empty - · uncertain -")
         self.counts_label.setToolTip("Sites classified with the current threshold "
                                      "(uncertain: posterior probability far from 0 and 1)")
+        self.counts_label.setWordWrap(True)
         self.rates_label = QtWidgets.QLabel("false positives - · false negatives -")
+        self.rates_label.setWordWrap(True)
         self.rates_label.setToolTip(
             "Estimated from the overlap of the fitted components: false positive = an empty site "
             "read as occupied, false negative = an occupied site read as empty (per site of "
@@ -280,6 +283,7 @@ class HistogramPanel(QtWidgets.QWidget):
         finite = a[np.isfinite(a)]
         self._unit = str(unit)
         self.plot_widget.getPlotItem().setLabel("bottom", f"site amplitude ({self._unit})")
+        self.threshold_box.setSuffix(f" {self._unit}")
         n_bad = a.size - finite.size
         self._n_finite = int(finite.size)
         if finite.size == 0:

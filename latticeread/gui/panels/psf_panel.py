@@ -104,7 +104,7 @@ class PSFPanel(QtWidgets.QWidget):
             line.setVisible(False)
             pp.addItem(line, ignoreBounds=True)
 
-        plots = QtWidgets.QHBoxLayout()
+        plots = QtWidgets.QBoxLayout(QtWidgets.QBoxLayout.LeftToRight)
         plots.addWidget(self.image_plot, 2)
         plots.addWidget(self.profile_plot, 3)
 
@@ -150,9 +150,10 @@ class PSFPanel(QtWidgets.QWidget):
         right.addStretch(1)
         right.addWidget(self.log_check)
         right.addWidget(self.estimate_button)
-        bottom = QtWidgets.QHBoxLayout()
+        bottom = QtWidgets.QBoxLayout(QtWidgets.QBoxLayout.LeftToRight)
         bottom.addWidget(optics, 2)
         bottom.addLayout(right, 3)
+        self._rows = (plots, bottom)  # side by side in a wide dock, stacked in a narrow one
 
         layout = QtWidgets.QVBoxLayout(self)
         layout.setContentsMargins(4, 4, 4, 4)
@@ -162,6 +163,17 @@ class PSFPanel(QtWidgets.QWidget):
         for box in (self.na_box, self.wavelength_box, self.pixel_box):
             box.valueChanged.connect(self._on_optics_changed)
         self._redraw()
+
+    #: below this panel width (pixels) the plots and the boxes are stacked
+    STACK_BELOW_WIDTH = 600
+
+    def resizeEvent(self, event) -> None:
+        super().resizeEvent(event)
+        direction = (QtWidgets.QBoxLayout.TopToBottom if event.size().width() < self.STACK_BELOW_WIDTH
+                     else QtWidgets.QBoxLayout.LeftToRight)
+        for row in self._rows:
+            if row.direction() != direction:
+                row.setDirection(direction)
 
     def _spin(self, lo, hi, decimals, value, step, suffix, tip) -> QtWidgets.QDoubleSpinBox:
         box = QtWidgets.QDoubleSpinBox()

@@ -1,0 +1,84 @@
+"""The window fits common lab screens: 1366x768 laptops and up.
+
+Screen sizes: 1366x768, 1600x900 and 1920x1080 are the common laptop and desktop panel
+resolutions (common practice, no source). The window's minimum size must fit the smallest,
+and at that size no panel may need a horizontal scroll bar (vertical scrolling is allowed).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+
+pytest.importorskip("pytestqt")
+
+from PySide6 import QtWidgets  # noqa: E402
+
+from latticeread.gui.app import make_app  # noqa: E402
+from latticeread.gui.main_window import MainWindow  # noqa: E402
+from latticeread.gui.settings import AppSettings  # noqa: E402
+
+ROOT = Path(__file__).resolve().parents[1]
+SAMPLE = ROOT / "sample_data" / "demo_square.tif"
+
+
+def _window(qtbot, tmp_path, size=None) -> MainWindow:
+    make_app()
+    w = MainWindow(settings=AppSettings(tmp_path / "settings.ini"), synchronous=True, offer_restore=False,
+                   autosave_interval_s=0)
+    qtbot.addWidget(w)
+    if size is not None:
+        w.resize(*size)
+    w.show()
+    qtbot.waitExposed(w)
+    return w
+
+
+def test_minimum_size_fits_a_1366x768_screen(qtbot, tmp_path):
+    w = _window(qtbot, tmp_path)
+    assert w.open_path(SAMPLE), w.last_error
+    w.flush()
+    hint = w.minimumSizeHint()
+    assert hint.width() <= 1366 and hint.height() <= 768, f"minimum size {hint.width()}x{hint.height()}"
+    assert w.minimumSize().width() <= 1366 and w.minimumSize().height() <= 768
+
+
+def test_at_1366x768_the_size_is_honoured_and_no_panel_scrolls_sideways(qtbot, tmp_path):
+    w = _window(qtbot, tmp_path, size=(1366, 768))
+    assert w.open_path(SAMPLE), w.last_error
+    qtbot.waitUntil(lambda: w.session.result(0) is not None, timeout=20000)
+    w.flush()
+    qtbot.wait(50)
+    assert (w.width(), w.height()) == (1366, 768)
+    assert w.centralWidget().width() >= 500  # the image keeps most of the room
+    for key in ("geometry_panel", "histogram_panel"):
+        area = w.docks[key].widget()
+        assert isinstance(area, QtWidgets.QScrollArea)
+        assert w.docks[key].isVisible()
+        assert area.widget().width() <= area.viewport().width(), f"{key} scrolls sideways"
+        assert not area.horizontalScrollBar().isVisible(), f"{key} has a horizontal scroll bar"
+
+
+def test_layout_is_remembered_per_screen_size(qtbot, tmp_path, monkeypatch):
+    settings = AppSettings(tmp_path / "layout.ini")
+    make_app()
+    w = MainWindow(settings=settings, synchronous=True, offer_restore=False, autosave_interval_s=0)
+    qtbot.addWidget(w)
+    w.show()
+    qtbot.waitExposed(w)
+    w.docks["histogram_panel"].hide()
+    settings.save_window(w)
+    key = AppSettings.screen_key(w)
+    assert settings.value(f"window/{key}/state") is not None
+    # the same screen size gets the saved layout back
+    again = MainWindow(settings=settings, synchronous=True, offer_restore=False, autosave_interval_s=0)
+    qtbot.addWidget(again)
+    assert again._layout_restored
+    assert not again.docks["histogram_panel"].isVisibleTo(again)
+    # a screen of another size starts with the default layout, fitted to that screen
+    monkeypatch.setattr(AppSettings, "screen_key", staticmethod(lambda window: "1366x768"))
+    other = MainWindow(settings=settings, synchronous=True, offer_restore=False, autosave_interval_s=0)
+    qtbot.addWidget(other)
+    assert not other._layout_restored
+    assert other.docks["histogram_panel"].isVisibleTo(other)
