@@ -167,19 +167,20 @@ class AnalysisSettingsDialog(QtWidgets.QDialog):
         self.camera_kind.setCurrentIndex(0 if cam.get("kind", "emccd") == "emccd" else 1)
         self.camera_kind.setToolTip("Camera type: sets the noise model (EMCCD doubles the shot-noise variance)")
         self.camera_boxes = {}
-        for key, label, lo, hi, dec, default, tip in (
-                ("em_gain", "EM gain", 1.0, 10000.0, 1, 1.0, "Electron-multiplying gain (1 for sCMOS)"),
-                ("counts_per_electron", "Counts per electron", 1e-4, 1000.0, 4, 1.0,
+        for key, label, lo, hi, dec, default, suffix, tip in (
+                ("em_gain", "EM gain", 1.0, 10000.0, 1, 1.0, " \u00d7", "Electron-multiplying gain (1 for sCMOS)"),
+                ("counts_per_electron", "Counts per electron", 1e-4, 1000.0, 4, 1.0, " counts/e\u207b",
                  "Read-out conversion, counts (ADU) per electron after multiplication"),
-                ("bias", "Bias", 0.0, 1e6, 1, 0.0, "Offset added to every pixel, counts"),
-                ("read_noise", "Read noise", 0.0, 1e5, 2, 0.0, "RMS read noise, counts"),
-                ("quantum_efficiency", "Quantum efficiency", 0.01, 1.0, 3, 1.0,
-                 "Probability that a photon gives a photoelectron"),
-                ("clock_induced_charge", "Clock-induced charge", 0.0, 10.0, 4, 0.0,
+                ("bias", "Bias", 0.0, 1e6, 1, 0.0, " counts", "Offset added to every pixel, counts"),
+                ("read_noise", "Read noise", 0.0, 1e5, 2, 0.0, " counts rms", "RMS read noise, counts"),
+                ("quantum_efficiency", "Quantum efficiency", 0.01, 1.0, 3, 1.0, " e\u207b/photon",
+                 "Probability that a photon gives a photoelectron (0.01 to 1)"),
+                ("clock_induced_charge", "Clock-induced charge", 0.0, 10.0, 4, 0.0, " e\u207b/pixel/frame",
                  "Spurious electrons per pixel per frame (EMCCD)")):
             box = QtWidgets.QDoubleSpinBox()
             box.setRange(lo, hi)
             box.setDecimals(dec)
+            box.setSuffix(suffix)
             box.setValue(float(cam.get(key, default)))
             box.setToolTip(tip + "; changing the camera recomputes the amplitudes (photons)")
             self.camera_boxes[key] = (label, box)

@@ -45,9 +45,50 @@ VIEW_MODE_TIPS = {
     "blend": "raw frame (photons) blended with the model; the slider sets the weight",
 }
 
-OCCUPIED_COLOR = (255, 140, 26)
-EMPTY_COLOR = (80, 200, 255)
-UNCERTAIN_COLOR = (255, 60, 220)
+#: Colour maps of the image and, for each, marker colours (occupied, empty, uncertain) that
+#: stand out from every colour of that map: CIE76 colour difference of at least 40 (checked in
+#: tests/test_gui_image_pane_colours.py with scikit-image; about 2.3 is just noticeable).
+COLOR_MAPS = {
+    "inferno": {"occupied": (0, 230, 255), "empty": (255, 255, 255), "uncertain": (255, 0, 255)},
+    "viridis": {"occupied": (255, 40, 40), "empty": (255, 255, 255), "uncertain": (255, 140, 26)},
+    "cividis": {"occupied": (255, 0, 255), "empty": (0, 230, 255), "uncertain": (255, 40, 40)},
+    "grey": {"occupied": (255, 40, 40), "empty": (60, 140, 255), "uncertain": (255, 230, 0)},
+}
+COLOR_MAP_NAMES = {"inferno": "Inferno (black-red-yellow)", "viridis": "Viridis (blue-green-yellow)",
+                   "cividis": "Cividis (colour-blind safe)", "grey": "Grey"}
+MARKER_LABELS = {"occupied": "occupied", "empty": "empty",
+                 "uncertain": "uncertain (0.1 ≤ P(atom) ≤ 0.9)"}
+
+
+def color_map(name: str):
+    """The pyqtgraph ColorMap called ``name`` (one of :data:`COLOR_MAPS`)."""
+    if name not in COLOR_MAPS:
+        raise ValueError(f"unknown colour map {name!r}; use one of {', '.join(COLOR_MAPS)}")
+    if name == "grey":
+        return pg.ColorMap([0.0, 1.0], [(0, 0, 0), (255, 255, 255)])
+    full = pg.colormap.get(name)
+    stops = np.linspace(0.0, 1.0, 17)  # enough stops to follow the map; few enough to edit
+    return pg.ColorMap(stops, full.map(stops, mode="byte"))
+
+
+#: opacity of the small empty-site markers (many of them; they must not hide the image)
+EMPTY_ALPHA = 150
+
+
+def _marker_pen(state: str, cmap: str, width: float = 1):
+    r, g, b = COLOR_MAPS[cmap][state]
+    return pg.mkPen((r, g, b, EMPTY_ALPHA if state == "empty" else 255), width=width)
+
+
+def nice_scale_length_um(frame_width_um: float) -> float:
+    """A round scale-bar length (1, 2 or 5 times a power of ten, micrometres) near a fifth of
+    the frame width."""
+    target = max(frame_width_um / 5.0, 1e-6)
+    power = 10.0 ** np.floor(np.log10(target))
+    for step in (5.0, 2.0, 1.0):
+        if step * power <= target:
+            return float(step * power)
+    return float(power)
 
 
 def grid_segments(geometry, frame_shape) -> tuple[np.ndarray, np.ndarray]:
@@ -137,7 +178,8 @@ class ImagePane(QtWidgets.QWidget):
         self.model_view = self.graphics.addViewBox(row=0, col=1, lockAspect=True, invertY=True)
         self.model_item = pg.ImageItem(axisOrder="row-major")
         self.model_view.addItem(self.model_item)
-        self.model_item.setColorMap(pg.colormap.get("inferno"))
+        self._cmap = "inferno"
+        self.model_item.setColorMap(color_map(self._cmap))
         self.model_view.setVisible(False)
         # the two views show the same region; synchronised by hand because pyqtgraph's axis
         # links fight the locked aspect ratio when both axes are linked
@@ -145,8 +187,14 @@ class ImagePane(QtWidgets.QWidget):
         self.view.sigRangeChanged.connect(lambda *_: self._sync_views(self.view, self.model_view))
         self.model_view.sigRangeChanged.connect(lambda *_: self._sync_views(self.model_view, self.view))
         self.lut = pg.HistogramLUTItem(image=self.image_item)
-        self.lut.gradient.loadPreset("inferno")
+        self.lut.gradient.setColorMap(color_map(self._cmap))
+        self.lut.gradient.showTicks(False)
+        self.lut.axis.setLabel("counts")
         self.graphics.addItem(self.lut, row=0, col=2)
+        self.lut.setToolTip("Colour scale of the image (counts for the raw frame, photons for the "
+                            "model and the blend): drag the handles to change the contrast")
+        self._pixel_size_nm = None
+        self.scale_bar = None
 
         self.grid_item = pg.PlotCurveItem(pen=pg.mkPen((120, 255, 120, 110), width=1), connect="pairs",
                                           antialias=False)
@@ -156,11 +204,23 @@ class ImagePane(QtWidgets.QWidget):
         # site markers: rings in frame pixels (they zoom with the image), one polyline per
         # state with NaN breaks -- a single vectorised path, fast for tens of thousands of sites
         self._marker_radius = {"occupied": 0.3, "uncertain": 0.3, "empty": 0.11}  # x lattice spacing
-        for state, color in (("empty", EMPTY_COLOR), ("occupied", OCCUPIED_COLOR), ("uncertain", UNCERTAIN_COLOR)):
-            item = pg.PlotCurveItem(pen=pg.mkPen(color, width=1), connect="finite", antialias=False)
+        for state in ("empty", "occupied", "uncertain"):
+            item = pg.PlotCurveItem(pen=_marker_pen(state, self._cmap), connect="finite", antialias=False)
             item.setZValue(6)
             self.view.addItem(item)
             self.site_items[state] = item
+        # legend of the markers, fixed in the view's top-left corner (not in frame pixels)
+        self.legend = pg.LegendItem(offset=(6, 6), labelTextColor=(235, 235, 235), brush=pg.mkBrush(0, 0, 0, 170),
+                                    pen=pg.mkPen(90, 90, 90))
+        self.legend.setParentItem(self.view)
+        self._legend_samples = {}
+        for state in ("occupied", "empty", "uncertain"):
+            sample = pg.PlotDataItem([0], [0], pen=None, symbol="o" if state != "empty" else "d",
+                                     symbolSize=9 if state != "empty" else 6, symbolBrush=None,
+                                     symbolPen=pg.mkPen(COLOR_MAPS[self._cmap][state], width=2))
+            self._legend_samples[state] = sample
+            self.legend.addItem(sample, MARKER_LABELS[state])
+        self.legend.setVisible(False)
         self.hover_item = pg.ScatterPlotItem(size=10, pxMode=True, pen=pg.mkPen("w", width=2),
                                              brush=pg.mkBrush(None), symbol="s")
         self._marker_px = None
@@ -183,16 +243,17 @@ class ImagePane(QtWidgets.QWidget):
         self.slider.setFocusPolicy(QtCore.Qt.NoFocus)
         self.spin = QtWidgets.QSpinBox()
         self.spin.setToolTip("Frame index (0-based); type a number to jump")
-        self.count_label = QtWidgets.QLabel("/ 0")
+        self.count_label = QtWidgets.QLabel("of 0")
         self.count_label.setMinimumWidth(48)
-        self.count_label.setToolTip("Number of frames in the stack")
+        self.count_label.setToolTip("Number of frames in the stack (numbered from 0)")
         self.grid_check = QtWidgets.QCheckBox("Grid")
         self.grid_check.setChecked(True)
         self.grid_check.setToolTip("Show the lattice cell boundaries (G)")
         self.sites_check = QtWidgets.QCheckBox("Sites")
         self.sites_check.setChecked(True)
-        self.sites_check.setToolTip("Mark site centres: orange = occupied, blue ring = empty, "
-                                    "magenta = uncertain (posterior between 0.1 and 0.9)")
+        self.sites_check.setToolTip("Mark site centres: large rings = occupied, small diamonds = empty, "
+                                    "rings of the third colour = uncertain (posterior between 0.1 and "
+                                    "0.9); the legend in the image gives the colours")
         self.mode_combo = QtWidgets.QComboBox()
         for i, (key, text) in enumerate(VIEW_MODES.items()):
             self.mode_combo.addItem(text, key)
@@ -238,7 +299,9 @@ class ImagePane(QtWidgets.QWidget):
             w.blockSignals(True)
             w.setRange(0, max(0, n - 1))
             w.blockSignals(False)
-        self.count_label.setText(f"/ {max(0, n - 1)}")
+        self.count_label.setText(f"of {max(0, n)}")
+        self.count_label.setToolTip(f"{n} frame(s) in the stack, numbered 0 to {max(0, n - 1)}" if n
+                                    else "No frames")
         enabled = n > 1
         for w in (self.slider, self.spin, self.prev_button, self.next_button):
             w.setEnabled(enabled)
@@ -258,6 +321,7 @@ class ImagePane(QtWidgets.QWidget):
         self._update_display(auto_levels=first)
         if first:
             self.view.autoRange(padding=0.02)
+            self._update_scale_bar()
         if self._mode != "raw":
             self.modelWanted.emit()
 
@@ -267,6 +331,7 @@ class ImagePane(QtWidgets.QWidget):
         self.model_item.clear()
         self.set_lattice(None, None)
         self.set_frame_count(0)
+        self._update_scale_bar()
 
     def _slider_moved(self, value: int) -> None:
         self.frameRequested.emit(int(value))
@@ -351,6 +416,58 @@ class ImagePane(QtWidgets.QWidget):
         visible = self.sites_check.isChecked()
         for item in self.site_items.values():
             item.setVisible(visible)
+        self._update_legend()
+
+    def _update_legend(self) -> None:
+        self.legend.setVisible(self.sites_check.isChecked() and self._occupied is not None
+                               and self._sites is not None)
+
+    # ------------------------------------------------------------------ colours and scale
+    @property
+    def color_map_name(self) -> str:
+        return self._cmap
+
+    def set_color_map(self, name: str) -> None:
+        """Use colour map ``name`` (:data:`COLOR_MAPS`) for the image, the model and the markers."""
+        cmap = color_map(name)
+        self._cmap = name
+        levels = self.lut.getLevels()
+        self.lut.gradient.setColorMap(cmap)
+        self.lut.gradient.showTicks(False)
+        self.lut.setLevels(*levels)
+        self.model_item.setColorMap(cmap)
+        for state, item in self.site_items.items():
+            item.setPen(_marker_pen(state, name))
+            self._legend_samples[state].setSymbolPen(pg.mkPen(COLOR_MAPS[name][state], width=2))
+        self.overlaysChanged.emit(self.overlays())
+
+    def marker_colors(self) -> dict:
+        """(r, g, b) of the occupied / empty / uncertain markers in the current colour map."""
+        return dict(COLOR_MAPS[self._cmap])
+
+    def set_pixel_size(self, pixel_size_nm) -> None:
+        """Pixel size in the atom plane (nm) for the scale bar; None hides the bar."""
+        self._pixel_size_nm = float(pixel_size_nm) if pixel_size_nm else None
+        self._update_scale_bar()
+
+    def _update_scale_bar(self) -> None:
+        if self._pixel_size_nm is None or self._image is None:
+            if self.scale_bar is not None:
+                self.scale_bar.setVisible(False)
+            return
+        um_per_px = self._pixel_size_nm / 1000.0
+        length_um = nice_scale_length_um(self._image.shape[1] * um_per_px)
+        if self.scale_bar is None:
+            self.scale_bar = pg.ScaleBar(size=1.0, width=4, brush=pg.mkBrush(255, 255, 255), pen=pg.mkPen(0, 0, 0),
+                                         offset=(-12, -12))
+            self.scale_bar.setParentItem(self.view)
+        bar = self.scale_bar
+        bar.size = length_um / um_per_px  # frame pixels: the bar zooms with the image
+        bar.updateBar()
+        bar.text.setText(f"{length_um:g} \u00b5m")
+        bar.setToolTip(f"{length_um:g} micrometres in the atom plane ({self._pixel_size_nm:g} nm per pixel)")
+        bar.setVisible(True)
+        self.scale_bar_length_um = length_um
 
     def shows_result(self, sites, occupied) -> bool:
         """True when the markers already show exactly these (identical) site and occupation arrays."""
@@ -369,10 +486,12 @@ class ImagePane(QtWidgets.QWidget):
         self.grid_item.setVisible(self.grid_check.isChecked())
         for item in self.site_items.values():
             item.setVisible(self.sites_check.isChecked())
+        self._update_legend()
         self.overlaysChanged.emit(self.overlays())
 
     def overlays(self) -> dict:
-        return {"grid": self.grid_check.isChecked(), "sites": self.sites_check.isChecked(), "mode": self._mode}
+        return {"grid": self.grid_check.isChecked(), "sites": self.sites_check.isChecked(), "mode": self._mode,
+                "colormap": self._cmap}
 
     # ------------------------------------------------------------------ raw vs model
     @property
@@ -426,6 +545,7 @@ class ImagePane(QtWidgets.QWidget):
             w = self.blend_slider.value() / 100.0
             raw = self._photons if self._photons is not None else self._image.astype(float)
             shown = (1 - w) * raw + w * self._model
+        self.lut.axis.setLabel("counts" if shown is self._image else "photons")
         self.image_item.setImage(shown, autoLevels=auto_levels)
         if auto_levels:
             finite = np.asarray(shown, dtype=float)

@@ -23,7 +23,7 @@ from PySide6 import QtCore, QtGui, QtWidgets
 
 from latticeread.errors import LatticeReadError
 from latticeread.gui import dialogs
-from latticeread.gui.image_pane import VIEW_MODES, ImagePane
+from latticeread.gui.image_pane import COLOR_MAP_NAMES, VIEW_MODES, ImagePane
 from latticeread.gui.occupation_view import OccupationView
 from latticeread.gui.settings import AppSettings
 from latticeread.gui.workers import WorkerPool, import_core
@@ -381,6 +381,16 @@ class MainWindow(QtWidgets.QMainWindow):
                                   tip="Version, purpose and the safety note")
         a["safety"] = self._action("&Safety note", lambda: dialogs.show_info(self, "Safety", dialogs.SAFETY_TEXT),
                                    tip="What this program does and does not do")
+        self.colormap_actions = QtGui.QActionGroup(self)
+        for key, text in COLOR_MAP_NAMES.items():
+            act = QtGui.QAction(text, self, checkable=True)
+            act.setData(key)
+            act.setToolTip(f"Show the image in the {text.split(' (')[0].lower()} colour map; the site markers "
+                           "take colours that stay visible on it")
+            act.setStatusTip(act.toolTip())
+            act.setChecked(key == "inferno")
+            act.triggered.connect(lambda _c=False, k=key: self.image_pane.set_color_map(k))
+            self.colormap_actions.addAction(act)
         self.mode_actions = QtGui.QActionGroup(self)
         for key, text in VIEW_MODES.items():
             act = QtGui.QAction(text, self, checkable=True)
@@ -444,6 +454,10 @@ class MainWindow(QtWidgets.QMainWindow):
         modes.setToolTipsVisible(True)
         for act in self.mode_actions.actions():
             modes.addAction(act)
+        cmaps = m.addMenu("&Colour map")
+        cmaps.setToolTipsVisible(True)
+        for act in self.colormap_actions.actions():
+            cmaps.addAction(act)
         m.addSeparator()
         for dock in self.docks.values():
             m.addAction(dock.toggleViewAction())
@@ -650,9 +664,10 @@ class MainWindow(QtWidgets.QMainWindow):
         cal = s.calibration
         st = s.settings
         gp, pp, hp = self.geometry_panel, self.psf_panel, self.histogram_panel
+        pixel_size_nm = st.get("pixel_size_nm") or (cal.pixel_size_nm if cal is not None else None)
+        self.image_pane.set_pixel_size(pixel_size_nm)
         if hasattr(gp, "set_geometry"):
-            gp.set_geometry(None if cal is None else cal.geometry, pixel_size_nm=st.get("pixel_size_nm")
-                            or (cal.pixel_size_nm if cal is not None else None))
+            gp.set_geometry(None if cal is None else cal.geometry, pixel_size_nm=pixel_size_nm)
         if hasattr(pp, "set_psf"):
             pp.set_psf(None if cal is None else cal.psf)
             pp.set_optics(numerical_aperture=st["numerical_aperture"], wavelength_nm=st["wavelength_nm"],
@@ -817,6 +832,8 @@ class MainWindow(QtWidgets.QMainWindow):
             a[key].blockSignals(False)
         for act in self.mode_actions.actions():
             act.setChecked(act.data() == overlays["mode"])
+        for act in self.colormap_actions.actions():
+            act.setChecked(act.data() == overlays.get("colormap"))
         for k, v in overlays.items():
             self.app_settings.set_value(f"view/{k}", v)
 
@@ -827,6 +844,9 @@ class MainWindow(QtWidgets.QMainWindow):
         mode = st.value("view/mode", "raw", str)
         if mode in VIEW_MODES:
             self.image_pane.set_view_mode(mode)
+        cmap = st.value("view/colormap", "inferno", str)
+        if cmap in COLOR_MAP_NAMES:
+            self.image_pane.set_color_map(cmap)
         if hasattr(self.histogram_panel, "set_log_scale"):
             self.histogram_panel.set_log_scale(st.value("view/histogram_log", False, bool))
 

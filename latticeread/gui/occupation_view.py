@@ -62,6 +62,13 @@ class OccupationView(QtWidgets.QWidget):
         self.colorbar = pg.ColorBarItem(values=(0, 1), colorMap=pg.colormap.get("viridis"), width=12,
                                         interactive=False, label="mean occupation")
         self.colorbar.setImageItem(self.mean_item, insert_in=self.mean_plot)
+        # what the colours of the frame's matrix mean, in one row under it
+        self.legend = pg.LegendItem(labelTextColor=(220, 220, 220), colCount=3)
+        for color, text in ((_OCCUPIED, "occupied"), (_EMPTY, "empty"), (_OUTSIDE, "outside the region")):
+            sample = pg.PlotDataItem([0], [0], pen=None, symbol="s", symbolSize=10, symbolBrush=color,
+                                     symbolPen=pg.mkPen(150, 150, 150))
+            self.legend.addItem(sample, text)
+        self.graphics.addItem(self.legend, row=1, col=0, colspan=2)
         self.summary = QtWidgets.QLabel("no occupation yet: reconstruct the frames")
         self.summary.setToolTip("Atoms counted in this frame, sites in the region and the filling fraction")
         self.summary.setWordWrap(True)

@@ -23,6 +23,8 @@ import numpy as np
 import pyqtgraph as pg
 from PySide6 import QtCore, QtWidgets
 
+from latticeread.gui.axes import IntegerAxis
+
 __all__ = ["LiveShot", "LiveStats", "LiveWatchController", "LiveWatchPanel", "POLL_INTERVAL_MS"]
 
 log = logging.getLogger(__name__)
@@ -46,7 +48,7 @@ class LiveShot:
     frame_index : int
         Frame within that file.
     shot_number : int
-        1-based count of shots written in this watch.
+        Index of the shot in this watch, counted from 0 like frames.
     image : (H, W) ndarray
         The raw frame (counts).
     occupation : (rows, cols) ndarray of uint8
@@ -154,7 +156,7 @@ class _StepWorker(QtCore.QObject):
             shot = None
             if newest is not None:
                 shot = LiveShot(source=newest.key.source, frame_index=int(newest.key.frame_index),
-                                shot_number=live.stats.n_shots, image=_read_frame(newest.key),
+                                shot_number=live.stats.n_shots - 1, image=_read_frame(newest.key),
                                 occupation=np.array(newest.occupation), filling=float(newest.filling),
                                 offset=tuple(float(v) for v in newest.offset), threshold=float(newest.threshold),
                                 warnings=tuple(newest.warnings))
@@ -441,14 +443,14 @@ class LiveWatchPanel(QtWidgets.QWidget):
         counts.setColumnStretch(1, 1)
         layout.addLayout(counts)
 
-        self.filling_plot = pg.PlotWidget()
+        self.filling_plot = pg.PlotWidget(axisItems={"bottom": IntegerAxis("bottom")})
         self.filling_plot.setToolTip("Filling fraction of every shot of this watch against the shot number")
         self.filling_plot.setLabel("left", "filling")
         self.filling_plot.setLabel("bottom", "shot")
         self.filling_plot.showGrid(x=True, y=True, alpha=0.3)
         self.filling_curve = self.filling_plot.plot([], [], pen=pg.mkPen("#1f77b4", width=1.5), symbol="o",
                                                     symbolSize=5, symbolBrush="#1f77b4", name="filling")
-        self.offset_plot = pg.PlotWidget()
+        self.offset_plot = pg.PlotWidget(axisItems={"bottom": IntegerAxis("bottom")})
         self.offset_plot.setToolTip("Lattice offset x and y (pixels) of every shot against the shot number: "
                                     "a drifting phase shows up here")
         self.offset_plot.setLabel("left", "offset (px)")
@@ -509,7 +511,7 @@ class LiveWatchPanel(QtWidgets.QWidget):
     def show_stats(self, stats: LiveStats) -> None:
         self.shots_label.setText(str(stats.n_shots))
         self.failed_label.setText(str(stats.n_failed))
-        shots = np.arange(1, stats.n_shots + 1)
+        shots = np.arange(stats.n_shots)  # numbered from 0, like frames
         self.filling_curve.setData(shots, stats.filling)
         if stats.n_shots:
             self.offset_x_curve.setData(shots, stats.offsets[:, 0])

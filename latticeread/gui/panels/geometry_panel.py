@@ -56,6 +56,7 @@ import pyqtgraph as pg
 from PySide6 import QtCore, QtWidgets
 
 from latticeread.core.geometry import LatticeGeometry
+from latticeread.gui.axes import IntegerAxis
 from latticeread.gui.panels import WARNING_STYLE, fmt, show_warnings
 
 __all__ = ["GeometryPanel"]
@@ -275,7 +276,7 @@ class GeometryPanel(QtWidgets.QWidget):
         ng.addLayout(row2, 4, 0, 1, 3)
 
         # --- drift -----------------------------------------------------------------------
-        self.drift_plot = pg.PlotWidget(background="w")
+        self.drift_plot = pg.PlotWidget(background="w", axisItems={"bottom": IntegerAxis("bottom")})
         self.drift_plot.setToolTip("Lattice phase of every frame against frame index, as the change "
                                    "since the first frame shown, with the fitted linear trend (dashed)")
         self.drift_plot.setMinimumHeight(150)
