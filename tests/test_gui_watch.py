@@ -83,7 +83,7 @@ def test_new_file_reaches_panel_and_frame_signal_within_one_second(qtbot, tmp_pa
     np.testing.assert_array_equal(shot.image, reference)
     assert shot.frame_index == 0 and Path(shot.source).name == "shot_0000.tif"
     xs, ys = panel.filling_curve.getData()
-    np.testing.assert_array_equal(xs, [1])
+    np.testing.assert_array_equal(xs, [0])  # shots are numbered from 0
     assert ys[0] == pytest.approx(shot.filling)
     ox, oy = panel.offset_x_curve.getData()[1], panel.offset_y_curve.getData()[1]
     assert (ox[0], oy[0]) == pytest.approx(shot.offset)
@@ -210,10 +210,23 @@ def test_window_shows_each_new_file_in_the_image_pane(qtbot, tmp_path, demo, req
         qtbot.waitUntil(lambda n=n: panel.shots_label.text() == str(n), timeout=1000)
         qtbot.waitUntil(lambda i=index: window.image_pane._image is not None
                         and np.array_equal(window.image_pane._image, frames[i]), timeout=1000)
-        assert window.status_label.text().startswith(f"live: live_{n:03d}.tif[0]")
-    assert len(panel.filling_curve.getData()[0]) == 2
+        # shots are numbered from 0, like frames
+        assert window.status_label.text().startswith(f"live shot {n - 1} ")
+        assert f"live_{n:03d}.tif[0]" in window.status_label.text()
+        # site markers of the live shot: its occupied sites, at its lattice phase
+        shot = controller.last_shot
+        assert window.image_pane.marker_counts["occupied"] == int(np.count_nonzero(shot.occupation == 1))
+    xs = panel.filling_curve.getData()[0]
+    assert list(xs) == [0, 1]
     # the grid follows the phase of the newest shot
     assert window.image_pane._geometry.offset == pytest.approx(controller.last_shot.offset)
+    # frame stepping goes through the shots of the watch
+    assert window.image_pane.count_label.text() == "of 2"
+    window.actions_by_name["prev"].trigger()
+    assert np.array_equal(window.image_pane._image, frames[5])
+    assert window.image_pane.spin.value() == 0
+    window.actions_by_name["next"].trigger()
+    assert np.array_equal(window.image_pane._image, frames[2])
 
     window.close()  # closing the window stops the watch and closes the run file
     assert not controller.is_running and not controller.timer_active

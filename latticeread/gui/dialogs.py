@@ -10,7 +10,8 @@ from PySide6 import QtCore, QtWidgets
 
 from latticeread import __version__
 
-__all__ = ["show_error", "show_info", "ask_yes_no", "ask_choice", "show_about", "AnalysisSettingsDialog",
+__all__ = ["show_error", "show_info", "ask_yes_no", "ask_choice", "PlotSizeDialog", "in_window_terms",
+           "readme_text", "show_text", "shortcut_table", "show_about", "AnalysisSettingsDialog",
            "SAFETY_TEXT", "error_title"]
 
 SAFETY_TEXT = (
@@ -32,6 +33,36 @@ def error_title(exc: BaseException) -> str:
         if isinstance(exc, cls):
             return title
     return "Unexpected error"
+
+
+#: Command-line options named in messages of the shared library, and where the same choice
+#: is made in the window. Longest first, so a whole group is replaced before its parts.
+WINDOW_TERMS = (
+    ("--psf airy --wavelength-nm --na --pixel-size-nm",
+     "Edit > Analysis settings: PSF when calibrating = ideal Airy pattern, with the wavelength, NA and "
+     "pixel size"),
+    ("--psf estimate", "Edit > Analysis settings: PSF when calibrating = estimate from isolated atoms"),
+    ("--psf airy", "Edit > Analysis settings: PSF when calibrating = ideal Airy pattern"),
+    ("--pixel-size-nm", "the pixel size (Edit > Analysis settings)"),
+    ("--wavelength-nm", "the wavelength (Edit > Analysis settings)"),
+    ("--na", "the NA (Edit > Analysis settings)"),
+    ("--counts-per-electron", "Counts per electron (Edit > Analysis settings)"),
+    ("--em-gain", "EM gain (Edit > Analysis settings)"),
+    ("--lattice-spacing", "the spacing constraint (Lattice geometry panel)"),
+    ("--lattice-angle", "the a1 direction constraint (Lattice geometry panel)"),
+)
+
+
+def in_window_terms(text: str) -> str:
+    """``text`` with command-line options replaced by where the window sets the same thing.
+
+    Options that have no place in the window are kept and marked as command-line options.
+    """
+    import re
+
+    for flag, where in WINDOW_TERMS:
+        text = re.sub(re.escape(flag) + r"(?![\w-])", where, text)
+    return re.sub(r"(?<![\w-])(--[a-z][a-z0-9-]+)", r"the command-line option \1", text)
 
 
 def _box(parent, icon, title: str, text: str, details: str | None = None) -> QtWidgets.QMessageBox:
@@ -218,3 +249,114 @@ class AnalysisSettingsDialog(QtWidgets.QDialog):
         cam = {"kind": self.camera_kind.currentData(), "saturation": self._saturation}
         cam.update({k: float(box.value()) for k, (_label, box) in self.camera_boxes.items()})
         return cam
+
+
+class PlotSizeDialog(QtWidgets.QDialog):
+    """Ask the size of an exported plot in pixels (the plot is laid out at that size)."""
+
+    #: common choices: on screen, a one-column and a two-column journal figure at 300 dpi
+    PRESETS = (("as on screen", None), ("one column, 85 mm at 300 dpi", (1004, 753)),
+               ("two columns, 175 mm at 300 dpi", (2067, 1240)))
+
+    def __init__(self, width: int, height: int, title: str, parent=None):
+        super().__init__(parent)
+        self.setWindowTitle(f"Export {title.lower()}: size")
+        form = QtWidgets.QFormLayout(self)
+        self.preset = QtWidgets.QComboBox()
+        self.preset.setToolTip("Start from a common size; the boxes below can still be changed")
+        self.width_box = QtWidgets.QSpinBox()
+        self.height_box = QtWidgets.QSpinBox()
+        for box, value, what in ((self.width_box, width, "Width"), (self.height_box, height, "Height")):
+            box.setRange(50, 20000)
+            box.setSuffix(" px")
+            box.setValue(int(value))
+            box.setToolTip(f"{what} of the exported plot in pixels; text and lines keep their size, the "
+                           "plot area grows")
+        for text, size in self.PRESETS:
+            self.preset.addItem(text, size or (int(width), int(height)))
+        self.preset.currentIndexChanged.connect(self._preset_chosen)
+        form.addRow("Size", self.preset)
+        form.addRow("Width", self.width_box)
+        form.addRow("Height", self.height_box)
+        buttons = QtWidgets.QDialogButtonBox(QtWidgets.QDialogButtonBox.Ok | QtWidgets.QDialogButtonBox.Cancel)
+        buttons.button(QtWidgets.QDialogButtonBox.Ok).setToolTip("Write the file")
+        buttons.button(QtWidgets.QDialogButtonBox.Cancel).setToolTip("Do not export")
+        buttons.accepted.connect(self.accept)
+        buttons.rejected.connect(self.reject)
+        form.addRow(buttons)
+
+    def _preset_chosen(self, index: int) -> None:
+        w, h = self.preset.itemData(index)
+        self.width_box.setValue(int(w))
+        self.height_box.setValue(int(h))
+
+    def size_px(self) -> tuple[int, int]:
+        return int(self.width_box.value()), int(self.height_box.value())
+
+
+def readme_text() -> tuple[str, str | None]:
+    """The user guide (README) shipped with the installed package, and the folder its pictures
+    are relative to (None when only the text is available).
+
+    The text comes from the package metadata (the README is the long description of every
+    install, wheel or editable); a source checkout also has the file and its docs/ pictures.
+    """
+    from importlib import metadata
+    from pathlib import Path
+
+    checkout = Path(__file__).resolve().parents[2] / "README.md"
+    if checkout.is_file():
+        return checkout.read_text(encoding="utf-8"), str(checkout.parent)
+    try:
+        md = metadata.metadata("latticeread")
+        text = md.get_payload() or md.get("Description") or ""
+    except metadata.PackageNotFoundError:
+        text = ""
+    if not text.strip():
+        text = ("The user guide was not installed with this copy of latticeread. It is the README.md file "
+                "of the project's source.")
+    return text, None
+
+
+def show_text(parent, title: str, text: str, *, markdown: bool = False, search_path: str | None = None,
+              object_name: str = "latticeread_text") -> QtWidgets.QDialog:
+    """A non-modal window showing ``text`` (plain or Markdown) with a Close button."""
+    dlg = QtWidgets.QDialog(parent)
+    dlg.setObjectName(object_name)
+    dlg.setWindowTitle(title)
+    dlg.setAttribute(QtCore.Qt.WA_DeleteOnClose, True)
+    layout = QtWidgets.QVBoxLayout(dlg)
+    browser = QtWidgets.QTextBrowser()
+    browser.setObjectName("text")
+    browser.setOpenExternalLinks(True)
+    if search_path:
+        browser.setSearchPaths([search_path])
+    if markdown:
+        browser.setMarkdown(text)
+    else:
+        browser.setPlainText(text)
+    layout.addWidget(browser)
+    buttons = QtWidgets.QDialogButtonBox(QtWidgets.QDialogButtonBox.Close)
+    buttons.rejected.connect(dlg.close)
+    buttons.button(QtWidgets.QDialogButtonBox.Close).setToolTip("Close this window")
+    layout.addWidget(buttons)
+    screen = parent.screen().availableGeometry() if parent is not None and parent.screen() else None
+    dlg.resize(min(900, screen.width() - 80) if screen else 900, min(700, screen.height() - 80) if screen else 700)
+    dlg.show()
+    return dlg
+
+
+def shortcut_table(actions, extra=()) -> str:
+    """Markdown table of the keyboard shortcuts of ``actions`` (QActions), plus ``extra``
+    (key, what) rows for mouse and view gestures."""
+    from PySide6 import QtGui
+
+    rows = []
+    for act in actions:
+        keys = [k.toString(QtGui.QKeySequence.NativeText) for k in act.shortcuts()]
+        if keys:
+            rows.append((", ".join(keys), act.text().replace("&", "").rstrip(".")))
+    rows.extend(extra)
+    lines = ["| keys | what it does |", "|---|---|"]
+    lines += [f"| {k} | {w} |" for k, w in rows]
+    return "\n".join(lines)

@@ -16,6 +16,7 @@ import logging
 import os
 import time
 import traceback
+from collections import deque
 from pathlib import Path
 
 import numpy as np
@@ -53,6 +54,12 @@ HISTOGRAM_INTERVAL_S = 1.0    # re-histogram period while a stack is processed
 #: worker processes for reconstructing a stack (keeps the interpreter lock free for the GUI)
 RECONSTRUCT_PROCESSES = max(1, min(4, (os.cpu_count() or 2)))
 AUTOSAVE_INTERVAL_S = 60
+#: live shots kept in the window while a folder is watched (frame stepping goes through them)
+LIVE_SHOTS_KEPT = 50
+#: Dialog titles of background work: the step the user took, as named in the menus
+STEP_TITLES = {"calibrate": "Calibrate from frames", "geometry": "Re-estimate geometry", "psf": "Estimate PSF",
+               "reconstruct": "Reconstruct all frames", "fidelity": "Estimate fidelity",
+               "threshold": "Fit the threshold", "watch": "Watch a folder"}
 #: narrowest a panel's dock may get (pixels); narrower panels scroll. With the image pane's own
 #: minimum this keeps the window's minimum width well under a 1366-pixel laptop screen.
 DOCK_MIN_WIDTH = 240
@@ -115,6 +122,10 @@ class MainWindow(QtWidgets.QMainWindow):
         self._progress_done = 0
         self._closing = False
         self._last_histogram = 0.0
+        #: newest live shots of a watch (frame stepping moves through them), and the one shown
+        self._live_shots: deque = deque(maxlen=LIVE_SHOTS_KEPT)
+        self._live_position = 0
+        self._live_shown = None
         self.setWindowTitle("latticeread")
         self.setWindowIcon(_icon("latticeread"))
         self.setAcceptDrops(True)
@@ -377,6 +388,10 @@ class MainWindow(QtWidgets.QMainWindow):
         a["sites"].setChecked(True)
         a["reset_layout"] = self._action("Reset &layout", self.reset_layout,
                                          tip="Put every panel back in its default place")
+        a["shortcuts"] = self._action("&Keyboard shortcuts", self.show_shortcuts,
+                                      tip="List every keyboard shortcut and mouse gesture", shortcut="F1")
+        a["guide"] = self._action("&User guide", self.show_guide,
+                                  tip="The bundled user guide (README): a tour of the window and the commands")
         a["about"] = self._action("&About latticeread", lambda: dialogs.show_about(self),
                                   tip="Version, purpose and the safety note")
         a["safety"] = self._action("&Safety note", lambda: dialogs.show_info(self, "Safety", dialogs.SAFETY_TEXT),
@@ -422,11 +437,12 @@ class MainWindow(QtWidgets.QMainWindow):
         for k in ("export_csv", "export_h5", "export_cal"):
             exp.addAction(a[k])
         exp.addSeparator()
-        self.plot_menu = exp.addMenu("&Plot as PNG or SVG")
+        self.plot_menu = exp.addMenu("&Plot (PNG or SVG)")
         self.plot_menu.setToolTipsVisible(True)
         for key, title in self._plot_targets().items():
             act = self.plot_menu.addAction(f"{title}...")
-            act.setToolTip(f"Save the {title.lower()} as a PNG bitmap or an SVG vector file")
+            act.setToolTip(f"Save the {title.lower()} alone (axes, colour bar, legend) as a PNG bitmap or an "
+                           "SVG vector file, in a size you choose")
             act.triggered.connect(lambda _c=False, k=key: self._export_plot_dialog(k))
         m.addSeparator()
         m.addAction(a["quit"])
@@ -464,6 +480,9 @@ class MainWindow(QtWidgets.QMainWindow):
         m.addAction(a["reset_layout"])
         m = menu.addMenu("&Help")
         m.setToolTipsVisible(True)
+        m.addAction(a["shortcuts"])
+        m.addAction(a["guide"])
+        m.addSeparator()
         m.addAction(a["about"])
         m.addAction(a["safety"])
 
@@ -483,13 +502,43 @@ class MainWindow(QtWidgets.QMainWindow):
             ext.setToolTip("More toolbar actions")
 
     def _plot_targets(self) -> dict[str, str]:
-        return {"image": "Image pane", "occupation": "Occupation view", "histogram": "Amplitude histogram",
-                "geometry": "Lattice geometry panel", "psf": "PSF panel", "fidelity": "Fidelity panel"}
+        return {"image": "Image with colour bar", "occupation": "Occupation matrices",
+                "histogram": "Amplitude histogram", "spectrum": "Fourier spectrum", "drift": "Lattice phase drift",
+                "psf_image": "PSF image", "psf_profile": "PSF radial profile", "fidelity": "Loss and hopping per shot"}
 
-    def _plot_widget(self, key: str) -> QtWidgets.QWidget:
-        return {"image": self.image_pane.graphics, "occupation": self.occupation_view.graphics,
-                "histogram": self.histogram_panel, "geometry": self.geometry_panel, "psf": self.psf_panel,
-                "fidelity": self.fidelity_panel}[key]
+    def _plot_widget(self, key: str):
+        """The pyqtgraph view holding plot ``key`` (only the plot: no buttons or boxes around it)."""
+        gp, pp = self.geometry_panel, self.psf_panel
+        views = {"image": lambda: self.image_pane.graphics, "occupation": lambda: self.occupation_view.graphics,
+                 "histogram": lambda: self.histogram_panel.plot_widget, "spectrum": lambda: gp.spectrum_plot,
+                 "drift": lambda: gp.drift_plot, "psf_image": lambda: pp.image_plot,
+                 "psf_profile": lambda: pp.profile_plot, "fidelity": lambda: self.fidelity_panel.trend_plot}
+        try:
+            return views[key]()
+        except AttributeError:
+            from latticeread.errors import ExportError
+
+            raise ExportError(f"the {self._plot_targets()[key].lower()} is not available yet: its panel is "
+                              "still loading") from None
+
+    #: what the mouse does in the plots (not QActions, so listed here for the shortcut list)
+    MOUSE_GESTURES = (
+        ("mouse wheel", "zoom the image or a plot"),
+        ("drag with the left button", "pan the image or a plot; on the red line: move the threshold"),
+        ("right click", "view options of a plot (View All, ranges)"),
+        ("hover over a site", "its indices, amplitude and P(atom) in the status bar"),
+    )
+
+    def show_shortcuts(self):
+        """Open the list of shortcuts, made from the window's own actions."""
+        table = dialogs.shortcut_table(self.actions_by_name.values(), self.MOUSE_GESTURES)
+        return dialogs.show_text(self, "Keyboard shortcuts", "# Keyboard shortcuts\n\n" + table, markdown=True,
+                                 object_name="shortcuts")
+
+    def show_guide(self):
+        """Open the bundled user guide."""
+        text, folder = dialogs.readme_text()
+        return dialogs.show_text(self, "User guide", text, markdown=True, search_path=folder, object_name="guide")
 
     # ================================================================== wiring
     def _wire_views(self) -> None:
@@ -687,6 +736,8 @@ class MainWindow(QtWidgets.QMainWindow):
         return cal.geometry, None
 
     def _refresh_frame(self) -> None:
+        if self._live_shots:
+            return  # the image pane shows the watch's shots until it stops
         s = self.session
         try:
             image = s.frame()
@@ -725,7 +776,9 @@ class MainWindow(QtWidgets.QMainWindow):
     def _refresh_classification(self) -> None:
         s = self.session
         res = s.result()
-        if res is None:
+        if self._live_shots:
+            pass  # the image pane shows a live shot with its own markers
+        elif res is None:
             geometry, sites = self._current_geometry()
             self.image_pane.set_lattice(geometry, None)
             self.occupation_view.set_current(None)
@@ -750,7 +803,7 @@ class MainWindow(QtWidgets.QMainWindow):
             counts = s.pooled_counts()
             if counts is not None:
                 hp.set_counts(counts["occupied"], counts["empty"], counts["uncertain"])
-        if self.image_pane.view_mode != "raw":
+        if self.image_pane.view_mode != "raw" and not self._live_shots:
             self._compute_model()
 
     def _update_spectrum(self) -> None:
@@ -767,11 +820,17 @@ class MainWindow(QtWidgets.QMainWindow):
 
     # ================================================================== frames
     def set_frame_index(self, index: int) -> None:
+        if self._live_shots:
+            self._show_live(int(index))
+            return
         if self.session.frames is not None:
             self.session.set_index(index)
             self.image_pane.set_frame_count(self.session.n_frames)
 
     def step_frame(self, step: int) -> None:
+        if self._live_shots:
+            self._show_live(self._live_position + step)
+            return
         self.set_frame_index(self.session.index + step)
 
     def _process_current_frame(self) -> None:
@@ -786,14 +845,16 @@ class MainWindow(QtWidgets.QMainWindow):
         except LatticeReadError as exc:
             self.show_status(str(exc))
             return
-        self.workers.submit("current", job, on_yield=s.store_batch, on_error=self._task_failed)
+        self.workers.submit("current", job, on_yield=s.store_batch, on_error=self._failed_step("Reconstruct this frame"))
 
     # ================================================================== user actions
     def _threshold_dragged(self, value: float) -> None:
         if self.session.calibration is None:
             return
+        # one drag = one undo step, however long the mouse is held: the step is closed when the
+        # button is released (_threshold_committed), not by a timer
+        self._undo_group_timer.stop()
         self.session.set_threshold(value, group="threshold")
-        self._undo_group_timer.start()
 
     def _threshold_committed(self, value: float) -> None:
         if self.session.calibration is None:
@@ -945,18 +1006,35 @@ class MainWindow(QtWidgets.QMainWindow):
         job = s.fit_threshold_job()
         self.workers.submit("threshold", job,
                             on_result=lambda r: self._apply(lambda: s.store_threshold_fit(r), done_message),
-                            on_error=self._task_failed)
+                            on_error=self._failed_step(STEP_TITLES["threshold"]))
 
     def estimate_fidelity(self) -> None:
         s = self.session
+        step = STEP_TITLES["fidelity"]
+        ips = int(s.settings["images_per_shot"])
+        if ips < 2:
+            dialogs.show_error(
+                self, f"{step}: needs repeated images",
+                "Fidelity compares consecutive images of the same atoms, but the analysis settings say each "
+                f"shot has {ips} image.\n\nFix: Edit > Analysis settings > Images per shot: enter how many images "
+                "were taken of the same atoms (2 or more), then choose Estimate fidelity again.")
+            self._last_error = "fidelity needs 'Images per shot' of 2 or more"
+            return
+        if s.frames is not None and not s.done.all():
+            dialogs.show_error(
+                self, f"{step}: frames not reconstructed yet",
+                f"Fidelity uses every frame; {int(s.done.sum())} of {s.n_frames} are reconstructed.\n\n"
+                "Fix: Analysis > Reconstruct all frames (Ctrl+R), then choose Estimate fidelity again.")
+            self._last_error = "fidelity needs every frame reconstructed"
+            return
         try:
             job = s.fidelity_job()
         except Exception as exc:  # noqa: BLE001
-            self._report(exc)
+            self._report(exc, step=step)
             return
 
         def done(output):
-            if self._guard(lambda: s.store_fidelity(output)) and s.fidelity is not None:
+            if self._guard(lambda: s.store_fidelity(output), step=step) and s.fidelity is not None:
                 self.docks["fidelity_panel"].raise_()
 
         self._start("fidelity", job, "estimating loss and hopping", on_result=done)
@@ -964,11 +1042,12 @@ class MainWindow(QtWidgets.QMainWindow):
     def _compute_model(self) -> None:
         s = self.session
         res = s.result()
-        if res is None or s.calibration is None or s.frames is None:
+        if res is None or s.calibration is None or s.frames is None or self._live_shots:
             self.image_pane.set_model(None)
             return
         job = s.model_job()
-        self.workers.submit("model", job, on_result=self.image_pane.set_model, on_error=self._task_failed)
+        self.workers.submit("model", job, on_result=self.image_pane.set_model,
+                            on_error=self._failed_step("Model image"))
 
     def _start(self, key: str, job, text: str, *, on_result, on_yield=None, total: int = 0) -> None:
         self.show_status(text + " ...")
@@ -976,7 +1055,8 @@ class MainWindow(QtWidgets.QMainWindow):
         self.progress.setValue(0)
         self.progress.setVisible(True)
         self.cancel_button.setVisible(True)
-        self.workers.submit(key, job, on_yield=on_yield, on_result=on_result, on_error=self._task_failed)
+        self.workers.submit(key, job, on_yield=on_yield, on_result=on_result,
+                            on_error=self._failed_step(STEP_TITLES.get(key, text.capitalize())))
 
     def _apply(self, fn, message: str) -> None:
         if self._guard(fn):
@@ -998,21 +1078,26 @@ class MainWindow(QtWidgets.QMainWindow):
     def show_status(self, text: str) -> None:
         self.status_label.setText(text)
 
-    def _guard(self, fn) -> bool:
-        """Run ``fn``; show LatticeReadErrors (and bugs) in a dialog. True on success."""
+    def _guard(self, fn, *, step: str | None = None) -> bool:
+        """Run ``fn``; show LatticeReadErrors (and bugs) in a dialog titled by ``step`` (what the
+        user asked for). True on success."""
         try:
             fn()
             return True
         except Exception as exc:  # noqa: BLE001 - every failure is shown, the window stays usable
-            self._report(exc)
+            self._report(exc, step=step)
             return False
 
-    def _task_failed(self, exc: BaseException) -> None:
-        self._report(exc)
+    def _task_failed(self, exc: BaseException, step: str | None = None) -> None:
+        self._report(exc, step=step)
 
-    def _report(self, exc: BaseException) -> None:
+    def _failed_step(self, step: str):
+        """An ``on_error`` callback whose dialog is titled by ``step``."""
+        return lambda exc: self._report(exc, step=step)
+
+    def _report(self, exc: BaseException, *, step: str | None = None) -> None:
         if isinstance(exc, LatticeReadError):
-            text, details = str(exc), None
+            text, details = dialogs.in_window_terms(str(exc)), None
         else:
             log.error("unexpected error", exc_info=(type(exc), exc, exc.__traceback__))
             text = f"{type(exc).__name__}: {exc}\n\nThis is a bug; please report it with the details below."
@@ -1020,7 +1105,8 @@ class MainWindow(QtWidgets.QMainWindow):
         self._last_error = text
         self.show_status(f"error: {text.splitlines()[0]}")
         if not self._closing:
-            dialogs.show_error(self, dialogs.error_title(exc), text, details=details)
+            title = f"{step}: {dialogs.error_title(exc).lower()}" if step else dialogs.error_title(exc)
+            dialogs.show_error(self, title, text, details=details)
 
     @property
     def last_error(self) -> str | None:
@@ -1144,8 +1230,7 @@ class MainWindow(QtWidgets.QMainWindow):
         return ok
 
     def _load_calibration_dialog(self, *, for_new_frames: bool = False) -> None:
-        name, _ = QtWidgets.QFileDialog.getOpenFileName(self, "Load calibration", str(self._default_dir()),
-                                                        CALIBRATION_FILTER)
+        name = self.ask_open_file("Load calibration", CALIBRATION_FILTER)
         if name:
             self.load_calibration(name, for_new_frames=for_new_frames)
 
@@ -1170,23 +1255,44 @@ class MainWindow(QtWidgets.QMainWindow):
     def _save_session(self, ask: bool = False) -> None:
         path = getattr(self, "_session_path", None)
         if ask or path is None:
-            start = str(self._default_dir() / "session.json")
-            name, _ = QtWidgets.QFileDialog.getSaveFileName(self, "Save session", start, SESSION_FILTER)
+            name = self.ask_save_file("Save session", "session.json", SESSION_FILTER)
             if not name:
                 return
             path = Path(name)
         self.save_session(path)
 
     def _open_dialog(self) -> None:
-        names, _ = QtWidgets.QFileDialog.getOpenFileNames(self, "Open frames", str(self._default_dir()), FRAME_FILTER)
-        for name in names[:1]:
+        name = self.ask_open_file("Open frames", FRAME_FILTER)
+        if name:
             self.open_path(name)
-            self.app_settings.set_value("last_dir", str(Path(name).parent))
 
     def _open_session_dialog(self) -> None:
-        name, _ = QtWidgets.QFileDialog.getOpenFileName(self, "Open session", str(self._default_dir()), SESSION_FILTER)
+        name = self.ask_open_file("Open session", SESSION_FILTER)
         if name:
             self.open_session(name)
+
+    # file dialogs: each starts in the folder the user chose last (any dialog) and remembers it
+    def ask_open_file(self, title: str, filters: str) -> str:
+        """Ask for an existing file; '' when cancelled."""
+        name, _ = QtWidgets.QFileDialog.getOpenFileName(self, title, str(self._default_dir()), filters)
+        self._remember_dir(name)
+        return name
+
+    def ask_save_file(self, title: str, suggested: str, filters: str) -> str:
+        """Ask for a file to write, suggesting ``suggested`` in the last folder; '' when cancelled."""
+        name, _ = QtWidgets.QFileDialog.getSaveFileName(self, title, str(self._default_dir() / suggested), filters)
+        self._remember_dir(name)
+        return name
+
+    def ask_folder(self, title: str) -> str:
+        folder = QtWidgets.QFileDialog.getExistingDirectory(self, title, str(self._default_dir()))
+        if folder:
+            self.app_settings.set_value("last_dir", str(Path(folder)))
+        return folder
+
+    def _remember_dir(self, name: str) -> None:
+        if name:
+            self.app_settings.set_value("last_dir", str(Path(name).parent))
 
     def _default_dir(self) -> Path:
         last = self.app_settings.value("last_dir", "", str)
@@ -1219,11 +1325,11 @@ class MainWindow(QtWidgets.QMainWindow):
               "cal": self.session.export_calibration}[kind]
         return self._guard(lambda: fn(path))
 
-    def export_plot(self, key: str, path) -> bool:
-        """Save one plot as PNG or SVG (by the file suffix)."""
+    def export_plot(self, key: str, path, *, size=None) -> bool:
+        """Save one plot (axes, colour bar, legend; no controls) as PNG or SVG (by the file suffix),
+        laid out at ``size`` = (width, height) pixels, or as on screen."""
         from latticeread.gui import plot_export
 
-        widget = self._plot_widget(key)
         path = Path(path)
         protect = [self.session.source] if self.session.source else []
 
@@ -1232,28 +1338,36 @@ class MainWindow(QtWidgets.QMainWindow):
                 from latticeread.errors import ExportError
 
                 raise ExportError(f"refusing to overwrite the input frames {path}; choose another file name")
-            if path.suffix.lower() == ".svg":
-                plot_export.export_svg(widget, path)
-            else:
-                plot_export.export_widget_png(widget, path)
+            plot_export.export_plot(self._plot_widget(key), path, size=size)
             self.show_status(f"{self._plot_targets()[key].lower()} saved to {path.name}")
 
-        return self._guard(write)
+        return self._guard(write, step=f"Export {self._plot_targets()[key].lower()}")
 
     def _export_dialog(self, kind: str) -> None:
         suffix, filt = {"csv": (".csv", "CSV table (*.csv)"), "h5": (".h5", "HDF5 (*.h5 *.hdf5)"),
                         "cal": (".json", "Calibration (*.json)")}[kind]
         stem = Path(self.session.source).stem if self.session.source else "latticeread"
-        start = str(self._default_dir() / f"{stem}_{ {'csv': 'sites', 'h5': 'occupation', 'cal': 'calibration'}[kind]}{suffix}")
-        name, _ = QtWidgets.QFileDialog.getSaveFileName(self, "Export", start, filt)
+        title = {"csv": "Export the per-site table (CSV)", "h5": "Export the occupation matrices (HDF5)",
+                 "cal": "Export the calibration (JSON)"}[kind]
+        part = {'csv': 'sites', 'h5': 'occupation', 'cal': 'calibration'}[kind]
+        name = self.ask_save_file(title, f"{stem}_{part}{suffix}", filt)
         if name:
             self.export(kind, name)
 
     def _export_plot_dialog(self, key: str) -> None:
-        start = str(self._default_dir() / f"{key}.png")
-        name, _ = QtWidgets.QFileDialog.getSaveFileName(self, "Save plot", start, "PNG image (*.png);;SVG vector (*.svg)")
-        if name:
-            self.export_plot(key, name)
+        title = self._plot_targets()[key]
+        name = self.ask_save_file(f"Export {title.lower()}", f"{key}.png", "PNG image (*.png);;SVG vector (*.svg)")
+        if not name:
+            return
+        try:
+            view = self._plot_widget(key)
+        except LatticeReadError as exc:
+            self._report(exc, step=f"Export {title.lower()}")
+            return
+        dlg = dialogs.PlotSizeDialog(view.width(), view.height(), title, self)
+        dlg.setAttribute(QtCore.Qt.WA_DeleteOnClose, True)
+        dlg.accepted.connect(lambda: self.export_plot(key, name, size=dlg.size_px()))
+        dlg.open()
 
     # ---------------------------------------------------------------- autosave
     def autosave(self) -> None:
@@ -1331,11 +1445,10 @@ class MainWindow(QtWidgets.QMainWindow):
         if self.session.calibration is None:
             self.show_status("calibrate first: the watch reconstructs new files with the current calibration")
             return
-        folder = QtWidgets.QFileDialog.getExistingDirectory(self, "Folder to watch", str(self._default_dir()))
+        folder = self.ask_folder("Watch a folder: folder the camera writes into")
         if not folder:
             return
-        out, _ = QtWidgets.QFileDialog.getSaveFileName(self, "Run file for the watched shots",
-                                                       str(Path(folder) / "run.h5"), "HDF5 run file (*.h5)")
+        out = self.ask_save_file("Watch a folder: run file for the shots", "run.h5", "HDF5 run file (*.h5)")
         if out:
             self.start_watch(folder, out)
 
@@ -1369,15 +1482,64 @@ class MainWindow(QtWidgets.QMainWindow):
         if controller is not None and controller.is_running:
             controller.stop()
             self.show_status("watch stopped; the run file is closed")
+        if self._live_shots:
+            # back to the frames of the session
+            self._live_shots.clear()
+            self.image_pane.clear()
+            self._mark("frames", "frame", "classification")
 
     def _show_live_shot(self, shot) -> None:
+        """A new shot from the watch: shown at once unless the user stepped back to an older one."""
+        follow = not self._live_shots or self._live_position >= len(self._live_shots) - 1
+        self._live_shots.append(shot)
+        if follow:
+            self._show_live(len(self._live_shots) - 1)
+        else:
+            # the shot shown keeps its place; the deque may have dropped the oldest one
+            shown = self._live_shown
+            numbers = [x.shot_number for x in self._live_shots]
+            self._show_live(numbers.index(shown) if shown in numbers else 0)
+
+    def _show_live(self, position: int) -> None:
+        """Show kept live shot ``position`` (0 = oldest kept) with its lattice and site markers."""
+        shots = self._live_shots
+        position = int(np.clip(position, 0, len(shots) - 1))
+        self._live_position = position
+        shot = shots[position]
+        self._live_shown = shot.shot_number
         cal = self.session.calibration
         photons = None if cal is None else cal.camera.counts_to_photons(shot.image)
-        self.image_pane.set_frame(shot.image, index=0, n_frames=1, photons=photons)
+        self.image_pane.set_frame_count(len(shots))
+        self.image_pane.set_frame(shot.image, index=position, n_frames=len(shots), photons=photons)
         if cal is not None:
-            self.image_pane.set_lattice(cal.geometry.with_offset(shot.offset), None)
-        self.show_status(f"live: {Path(shot.source).name}[{shot.frame_index}] filling {shot.filling:.3f} "
-                         f"(shot {shot.shot_number})")
+            geometry = cal.geometry.with_offset(shot.offset)
+            sites, occupied = self._live_sites(geometry, shot.occupation)
+            self.image_pane.set_lattice(geometry, sites)
+            if sites is not None:
+                self.image_pane.set_site_states(occupied, None, None)
+        self.show_status(f"live shot {shot.shot_number} ({position} of the {len(shots)} kept): "
+                         f"{Path(shot.source).name}[{shot.frame_index}], filling {shot.filling:.3f}")
+
+    def _live_sites(self, geometry, occupation):
+        """The calibration's site set placed at a live shot's lattice offset, and its occupations
+        (from the shot's matrix); (None, None) when the matrix does not match the site set."""
+        from latticeread.core.geometry import SiteGrid
+
+        s = self.session
+        try:
+            base = s.sites if s.sites is not None else s.reconstructor().sites
+        except LatticeReadError as exc:
+            log.info("no site markers for the live shot: %s", exc)
+            return None, None
+        occupation = np.asarray(occupation)
+        if occupation.shape != (base.n_rows, base.n_cols):
+            log.info("live shot matrix %s does not match the site set %s", occupation.shape,
+                     (base.n_rows, base.n_cols))
+            return None, None
+        x, y = geometry.site_positions(base.rows, base.cols)
+        sites = SiteGrid(base.rows, base.cols, x, y, base.row_min, base.col_min, base.n_rows, base.n_cols)
+        occupied = (occupation[base.rows - base.row_min, base.cols - base.col_min] == 1).astype(np.uint8)
+        return sites, occupied
 
     # ---------------------------------------------------------------- layout
     def showEvent(self, event: QtGui.QShowEvent) -> None:

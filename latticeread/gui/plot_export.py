@@ -12,6 +12,9 @@ Functions
 ---------
 ``export_widget_png(widget_or_plotitem, path, *, scale=1.0) -> Path``
 ``export_svg(widget_or_plotitem, path, *, title=None) -> Path``
+``export_plot(view, path, *, size=None) -> Path``
+    The plot of a pyqtgraph view only (axes, colour bar, legend; no buttons or boxes around
+    it), laid out afresh at ``size`` pixels, as PNG or SVG by the file suffix.
 """
 
 from __future__ import annotations
@@ -24,7 +27,7 @@ from PySide6 import QtCore, QtGui, QtSvg, QtWidgets
 from latticeread.errors import ExportError
 from latticeread.io.atomic import atomic_path
 
-__all__ = ["export_widget_png", "export_svg"]
+__all__ = ["export_widget_png", "export_svg", "export_plot"]
 
 
 class _Source:
@@ -87,7 +90,10 @@ def export_widget_png(widget_or_plotitem, path, *, scale: float = 1.0) -> Path:
     """
     if not (scale > 0):
         raise ValueError(f"scale must be positive, got {scale}")
-    source = _Source(widget_or_plotitem)
+    return _write_png(_Source(widget_or_plotitem), path, scale)
+
+
+def _write_png(source: _Source, path, scale: float = 1.0) -> Path:
     w = max(1, round(source.size.width() * scale))
     h = max(1, round(source.size.height() * scale))
     image = QtGui.QImage(w, h, QtGui.QImage.Format.Format_ARGB32)
@@ -126,7 +132,10 @@ def export_svg(widget_or_plotitem, path, *, title: str | None = None) -> Path:
     ExportError
         Folder missing or read-only, disk full, nothing to render.
     """
-    source = _Source(widget_or_plotitem)
+    return _write_svg(_Source(widget_or_plotitem), path, title)
+
+
+def _write_svg(source: _Source, path, title: str | None = None) -> Path:
     path = Path(os.fspath(path))
     with atomic_path(path) as tmp:
         generator = QtSvg.QSvgGenerator()
@@ -148,3 +157,56 @@ def export_svg(widget_or_plotitem, path, *, title: str | None = None) -> Path:
         if os.path.getsize(tmp) == 0:
             raise ExportError(f"cannot write {path}: Qt wrote an empty SVG file")
     return path
+
+
+class _ViewSource(_Source):
+    """The central item of a pyqtgraph GraphicsView (a PlotItem or a GraphicsLayout) only."""
+
+    def __init__(self, view, size=None):
+        central = getattr(view, "centralWidget", None)
+        if central is None or central.scene() is None:
+            raise ExportError("cannot export the plot: it is not shown in any window yet")
+        self.widget, self.scene = None, central.scene()
+        self.central = central
+        self.old_geometry = central.geometry()
+        if size is not None:
+            w, h = (int(v) for v in size)
+            if w < 50 or h < 50 or w > 20000 or h > 20000:
+                raise ExportError(f"a plot of {w} x {h} pixels cannot be exported: choose 50 to 20000 pixels a side")
+            # lay the plot out afresh at the chosen size: fonts and lines keep their size
+            central.setGeometry(QtCore.QRectF(0, 0, w, h))
+        self.rect = central.sceneBoundingRect()
+        self.size = self.rect.size().toSize()
+        brush = view.backgroundBrush()
+        self.background = brush.color() if brush.style() != QtCore.Qt.BrushStyle.NoBrush else QtGui.QColor("white")
+        if self.size.width() < 1 or self.size.height() < 1:
+            raise ExportError("cannot export the plot: it has no size yet (is the window shown?)")
+
+    def restore(self) -> None:
+        self.central.setGeometry(self.old_geometry)
+
+
+def export_plot(view, path, *, size=None) -> Path:
+    """Save the plot of a pyqtgraph view (no surrounding widgets) as PNG or SVG.
+
+    Parameters
+    ----------
+    view : pyqtgraph.GraphicsView
+        A ``PlotWidget`` or ``GraphicsLayoutWidget`` shown in a window.
+    path : str or PathLike
+        ``.svg`` gives a vector file, anything else a PNG.
+    size : (int, int), optional
+        Width and height in pixels; the plot is laid out at that size (default: as on screen).
+
+    Raises
+    ------
+    ExportError
+        Size out of range, folder missing or read-only, nothing to render.
+    """
+    source = _ViewSource(view, size)
+    try:
+        if Path(os.fspath(path)).suffix.lower() == ".svg":
+            return _write_svg(source, path)
+        return _write_png(source, path)
+    finally:
+        source.restore()

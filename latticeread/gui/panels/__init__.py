@@ -87,7 +87,9 @@ def rate_pct(rate, digits: int = 2) -> str:
 
 def show_warnings(label, warnings) -> None:
     """Put ``warnings`` (iterable of str) into a QLabel styled with WARNING_STYLE; hide it when empty."""
-    items = [str(w) for w in (warnings or ()) if str(w)]
+    from latticeread.gui.dialogs import in_window_terms
+
+    items = [in_window_terms(str(w)) for w in (warnings or ()) if str(w)]
     label.setText("\n".join(f"\u26a0 {w}" for w in items))
     label.setVisible(bool(items))
 
