@@ -6,9 +6,10 @@ Opens the bundled demo stack (sample_data/demo_square.tif: invented sodium-23 at
 NA 0.70, 160 nm pixels, EMCCD at gain 150, frames in pairs), calibrates it with the ideal
 Airy PSF for those optics, reconstructs every frame, estimates the fidelity, and saves:
 
-    main_window.png            whole window, lattice geometry panel in front
-    main_window_psf.png        whole window, PSF panel in front
-    main_window_fidelity.png   whole window, fidelity panel in front
+    main_window_1366x768.png   whole window on a 1366x768 laptop screen, geometry panel in front
+    main_window_1920x1080.png  whole window on a 1920x1080 screen
+    main_window_psf.png        whole window (1366x768), PSF panel in front
+    main_window_fidelity.png   whole window (1366x768), fidelity panel in front
     image_pane_zoom.png        image pane zoomed in: grid, site rings, site under the cursor
     image_pane_side_by_side.png  raw frame next to the model image
     occupation_view.png        occupation matrix of one frame and the mean over the stack
@@ -62,9 +63,10 @@ def main() -> int:
     app = make_app()
     tmp = tempfile.mkdtemp()
     w = MainWindow(settings=AppSettings(Path(tmp) / "settings.ini"), offer_restore=False, autosave_interval_s=0)
-    w.resize(1600, 1000)
+    w.resize(1366, 768)
     w.show()
     settle(app)
+    w.size_docks()
     if not w.open_path(ROOT / "sample_data" / "demo_square.tif"):
         print(w.last_error, file=sys.stderr)
         return 1
@@ -93,7 +95,7 @@ def main() -> int:
         pane._mouse_moved(scene_pos)
 
     shots = []
-    for dock, name in (("geometry_panel", "main_window.png"), ("psf_panel", "main_window_psf.png"),
+    for dock, name in (("geometry_panel", "main_window_1366x768.png"), ("psf_panel", "main_window_psf.png"),
                        ("fidelity_panel", "main_window_fidelity.png")):
         w.docks[dock].raise_()
         pane.view.autoRange(padding=0.02)
@@ -102,6 +104,20 @@ def main() -> int:
         settle(app, 0.2)
         w.grab().save(str(out / name))
         shots.append(name)
+    w.resize(1920, 1080)
+    settle(app)
+    w.size_docks()
+    w.docks["geometry_panel"].raise_()
+    pane.view.autoRange(padding=0.02)
+    settle(app, 0.5)
+    hover_site()
+    settle(app, 0.2)
+    w.grab().save(str(out / "main_window_1920x1080.png"))
+    shots.append("main_window_1920x1080.png")
+    w.resize(1366, 768)
+    settle(app)
+    w.size_docks()
+    settle(app)
 
     pane.view.setRange(xRange=(res.sites.x[k] - 22, res.sites.x[k] + 22),
                        yRange=(res.sites.y[k] - 16, res.sites.y[k] + 16), padding=0)

@@ -80,6 +80,51 @@ PANELS = (
 )
 
 
+class FitScrollArea(QtWidgets.QScrollArea):
+    """A scroll area whose panel fills the visible area and scrolls only below its minimum size.
+
+    QScrollArea's own resizing gives a panel with word-wrapped labels the height of its
+    preferred size (plots prefer 480 pixels), so the panel scrolled even where it fitted.
+    """
+
+    def setWidget(self, widget) -> None:  # noqa: N802 - Qt's name
+        super().setWidget(widget)
+        widget.installEventFilter(self)
+        self._fit()
+
+    def takeWidget(self):  # noqa: N802 - Qt's name
+        widget = super().takeWidget()
+        if widget is not None:
+            widget.removeEventFilter(self)
+        return widget
+
+    def eventFilter(self, obj, event) -> bool:  # noqa: N802 - Qt's name
+        if obj is self.widget() and event.type() == QtCore.QEvent.Type.LayoutRequest:
+            QtCore.QTimer.singleShot(0, self._fit)
+        return super().eventFilter(obj, event)
+
+    def resizeEvent(self, event) -> None:  # noqa: N802 - Qt's name
+        super().resizeEvent(event)
+        self._fit()
+
+    def _fit(self) -> None:
+        widget = self.widget()
+        if widget is None:
+            return
+        least = widget.minimumSizeHint().expandedTo(widget.minimumSize())
+        for _ in range(2):  # a scroll bar that appears takes room from the other direction
+            room = self.viewport().size()
+            width = max(room.width(), least.width())
+            height = max(room.height(), least.height())
+            if least.height() > room.height():
+                # it scrolls anyway: give it its comfortable height, not its most squeezed one
+                hint = widget.heightForWidth(width) if widget.hasHeightForWidth() else widget.sizeHint().height()
+                height = max(height, min(hint, int(1.4 * room.height())))
+            size = QtCore.QSize(width, height)
+            if size != widget.size():
+                widget.resize(size)
+
+
 def _icon(name: str) -> QtGui.QIcon:
     path = ICON_DIR / f"{name}.svg"
     return QtGui.QIcon(str(path)) if path.exists() else QtGui.QIcon()
@@ -260,10 +305,9 @@ class MainWindow(QtWidgets.QMainWindow):
         dock = QtWidgets.QDockWidget(title, self)
         dock.setObjectName(f"dock_{key}")
         if scroll:
-            holder = QtWidgets.QScrollArea()
+            holder = FitScrollArea()
             holder.setMinimumWidth(DOCK_MIN_WIDTH)
             holder.setObjectName(f"scroll_{key}")
-            holder.setWidgetResizable(True)
             holder.setFrameShape(QtWidgets.QFrame.NoFrame)
             holder.setWidget(widget)
             dock.setWidget(holder)
@@ -285,7 +329,6 @@ class MainWindow(QtWidgets.QMainWindow):
         # labels may shrink (text cut) rather than push the window wider than the screen
         self.status_label.setSizePolicy(QtWidgets.QSizePolicy.Ignored, QtWidgets.QSizePolicy.Preferred)
         self.status_label.setMinimumWidth(120)
-        self.hover_label.setSizePolicy(QtWidgets.QSizePolicy.Ignored, QtWidgets.QSizePolicy.Preferred)
         self.hover_label.setMinimumWidth(200)
         self.progress = QtWidgets.QProgressBar()
         self.progress.setMaximumWidth(220)
@@ -1557,7 +1600,7 @@ class MainWindow(QtWidgets.QMainWindow):
                          QtCore.Qt.Horizontal)
         height = self.height()
         self.resizeDocks([self.docks["histogram_panel"], self.docks["occupation"]],
-                         [int(0.55 * height), int(0.45 * height)], QtCore.Qt.Vertical)
+                         [int(0.6 * height), int(0.4 * height)], QtCore.Qt.Vertical)
 
     # ---------------------------------------------------------------- close
     def closeEvent(self, event: QtGui.QCloseEvent) -> None:

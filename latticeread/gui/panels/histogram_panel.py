@@ -187,7 +187,7 @@ class HistogramPanel(QtWidgets.QWidget):
         self.plot_widget.setToolTip(
             "Histogram of site amplitudes. Drag the red line to move the occupancy threshold; "
             "blue: empty-site component, orange: occupied-site component, dashed: their sum.")
-        self.plot_widget.setMinimumSize(320, 200)
+        self.plot_widget.setMinimumSize(260, 170)
         item = self.plot_widget.getPlotItem()
         item.setLabel("bottom", "site amplitude", units=None)
         item.setLabel("left", "sites per bin")
