@@ -1033,6 +1033,58 @@ class Session:
 
         return job
 
+    def site_evidence(self, row: int, col: int, *, index: int | None = None, half_width: int | None = None):
+        """Everything the window shows about one site: image and model patches of frame
+        ``index`` (default: the current one) and its amplitude, posterior and flags in every
+        reconstructed frame. None when the site is not in the calibration's site set or the
+        frame is not reconstructed.
+
+        Returns
+        -------
+        dict
+            ``row``, ``col``; ``frames`` (n,) indices of the reconstructed frames;
+            ``amplitude`` (n,) photons; ``p_occupied`` (n,); ``flags`` (n,) uint8;
+            ``threshold`` photons; ``index``, ``x``, ``y`` (pixels, in frame ``index``);
+            ``origin`` (x0, y0) pixel of the patches' top-left corner; ``image`` photons,
+            ``model`` photons (sum of amplitude x PSF of the sites near it) and ``residual``
+            = image - model, each (2 h + 1, 2 h + 1) with ``h = half_width`` (default: one
+            and a half lattice spacings), NaN outside the frame.
+        """
+        i = self._index if index is None else int(index)
+        res = self.result(i)
+        if res is None or self._sites is None:
+            return None
+        match = np.flatnonzero((self._sites.rows == int(row)) & (self._sites.cols == int(col)))
+        if match.size == 0:
+            return None
+        k = int(match[0])
+        cal = self._calibration
+        frames = np.flatnonzero(self._done)
+        amps = self._amplitudes[frames, k]
+        classifier = self._classifier()
+        _occ, p = _classify_module().classify(amps, classifier)
+        x, y = float(res.sites.x[k]), float(res.sites.y[k])
+        h = int(half_width) if half_width is not None else int(np.ceil(1.5 * max(cal.geometry.spacings)))
+        x0, y0 = int(round(x)) - h, int(round(y)) - h
+        size = 2 * h + 1
+        photons = cal.camera.counts_to_photons(self.frame(i).astype(float))
+        image = np.full((size, size), np.nan)
+        height, width = photons.shape
+        ys, xs = slice(max(y0, 0), min(y0 + size, height)), slice(max(x0, 0), min(x0 + size, width))
+        image[ys.start - y0:ys.stop - y0, xs.start - x0:xs.stop - x0] = photons[ys, xs]
+        from latticeread.core.psf import render_sites
+
+        reach = h + cal.psf.radius + 1
+        near = (np.abs(res.sites.x - x) <= reach) & (np.abs(res.sites.y - y) <= reach)
+        near_amps = np.nan_to_num(np.asarray(res.amplitudes, dtype=float)[near])
+        model = render_sites((size, size), res.sites.x[near] - x0, res.sites.y[near] - y0, near_amps, cal.psf)
+        model = model + float(res.background)
+        model[np.isnan(image)] = np.nan
+        return {"row": int(row), "col": int(col), "frames": frames, "amplitude": amps,
+                "p_occupied": np.asarray(p, dtype=float), "flags": self._flags[frames, k].copy(),
+                "threshold": self.threshold, "index": i, "x": x, "y": y, "origin": (x0, y0),
+                "image": image, "model": model, "residual": image - model}
+
     def counts(self, index: int | None = None) -> dict | None:
         """Occupied / empty / uncertain site counts of a frame (uncertain: posterior in [0.1, 0.9])."""
         cls = self.classify_frame(index)

@@ -20,6 +20,7 @@ Signals
 frameRequested(int)     the user moved the frame slider / spin box
 siteHovered(object)     dict with x, y (pixels), value (counts) and, over a site, row, col,
                         amplitude (photons), p_occupied, occupied; None when the cursor leaves
+siteClicked(object)     the same dict for a left click on a site (to inspect it)
 modelWanted()           the view mode needs a model image that has not been given yet
 overlaysChanged(dict)   {"grid": bool, "sites": bool, "mode": str} after a user toggle
 """
@@ -151,6 +152,7 @@ class ImagePane(QtWidgets.QWidget):
 
     frameRequested = QtCore.Signal(int)
     siteHovered = QtCore.Signal(object)
+    siteClicked = QtCore.Signal(object)
     modelWanted = QtCore.Signal()
     overlaysChanged = QtCore.Signal(dict)
 
@@ -230,6 +232,7 @@ class ImagePane(QtWidgets.QWidget):
         self.hover_item.setZValue(7)
         self.view.addItem(self.hover_item)
         self.graphics.scene().sigMouseMoved.connect(self._mouse_moved)
+        self.graphics.scene().sigMouseClicked.connect(self._mouse_clicked)
 
         # --- controls -------------------------------------------------------------------
         self.prev_button = QtWidgets.QToolButton()
@@ -594,3 +597,14 @@ class ImagePane(QtWidgets.QWidget):
         else:
             self.hover_item.setData([], [])
         self.siteHovered.emit(info)
+
+    def _mouse_clicked(self, event) -> None:
+        if self._image is None or event.button() != QtCore.Qt.MouseButton.LeftButton or event.double():
+            return
+        pos = event.scenePos()
+        if not self.view.sceneBoundingRect().contains(pos):
+            return
+        p = self.view.mapSceneToView(pos)
+        info = self.site_at(p.x(), p.y())
+        if "row" in info:
+            self.siteClicked.emit(info)

@@ -238,6 +238,14 @@ class MainWindow(QtWidgets.QMainWindow):
             self._add_dock(attr, title, widget, area, tip)
         self._add_dock("occupation", "Occupation", self.occupation_view, "right",
                        "Occupation matrix of this frame and the mean over the reconstructed frames", scroll=False)
+        from latticeread.gui.site_inspector import SiteInspector
+
+        self.site_inspector = SiteInspector()
+        self._add_dock("inspector", "Site inspector", self.site_inspector, "right",
+                       "Click a site in the image: its image, model and residual, and its amplitude and "
+                       "P(atom) in every frame")
+        self.tabifyDockWidget(self.docks["occupation"], self.docks["inspector"])
+        self.docks["occupation"].raise_()
         self.tabifyDockWidget(self.docks["geometry_panel"], self.docks["psf_panel"])
         self.tabifyDockWidget(self.docks["psf_panel"], self.docks["fidelity_panel"])
         self.docks["geometry_panel"].raise_()
@@ -587,6 +595,8 @@ class MainWindow(QtWidgets.QMainWindow):
     def _wire_views(self) -> None:
         self.image_pane.frameRequested.connect(self.set_frame_index)
         self.image_pane.siteHovered.connect(self._show_hover)
+        self.image_pane.siteClicked.connect(lambda info: self.inspect_site(info["row"], info["col"]))
+        self.site_inspector.frameRequested.connect(self.set_frame_index)
         self.image_pane.modelWanted.connect(self._compute_model)
         self.image_pane.overlaysChanged.connect(self._overlays_changed)
         self.occupation_view.siteHovered.connect(self._show_matrix_hover)
@@ -634,6 +644,8 @@ class MainWindow(QtWidgets.QMainWindow):
         self._update_calibration_label()
         self.image_pane.clear()
         self.occupation_view.clear()
+        self.site_inspector.clear()
+        self._inspected = None
         for p in self.panels.values():
             if hasattr(p, "clear") and not p.property("placeholder"):
                 p.clear()
@@ -848,6 +860,8 @@ class MainWindow(QtWidgets.QMainWindow):
                 hp.set_counts(counts["occupied"], counts["empty"], counts["uncertain"])
         if self.image_pane.view_mode != "raw" and not self._live_shots:
             self._compute_model()
+        if self.docks["inspector"].isVisible():
+            self._refresh_inspector()
 
     def _update_spectrum(self) -> None:
         gp = self.geometry_panel
@@ -889,6 +903,31 @@ class MainWindow(QtWidgets.QMainWindow):
             self.show_status(str(exc))
             return
         self.workers.submit("current", job, on_yield=s.store_batch, on_error=self._failed_step("Reconstruct this frame"))
+
+    def inspect_site(self, row: int, col: int) -> bool:
+        """Show site (row, col) of the shown frame in the site inspector; False when it has no
+        evidence yet (frame not reconstructed, site outside the region, live view)."""
+        if self._live_shots:
+            self.show_status("the site inspector works on the frames of the session, not on live shots")
+            return False
+        evidence = self.session.site_evidence(row, col)
+        if evidence is None:
+            self.show_status(f"site ({row}, {col}): nothing to inspect yet (reconstruct this frame first)")
+            return False
+        self._inspected = (int(row), int(col))
+        self.site_inspector.set_evidence(evidence)
+        self.docks["inspector"].show()
+        self.docks["inspector"].raise_()
+        return True
+
+    def _refresh_inspector(self) -> None:
+        inspected = getattr(self, "_inspected", None)
+        if inspected is None or self._live_shots:
+            return
+        evidence = self.session.site_evidence(*inspected)
+        self.site_inspector.set_evidence(evidence)
+        if evidence is None:
+            self._inspected = None
 
     # ================================================================== user actions
     def _threshold_dragged(self, value: float) -> None:
@@ -975,6 +1014,9 @@ class MainWindow(QtWidgets.QMainWindow):
             self.addDockWidget(QtCore.Qt.LeftDockWidgetArea if area == "left" else QtCore.Qt.RightDockWidgetArea,
                                self.docks[attr])
         self.addDockWidget(QtCore.Qt.RightDockWidgetArea, self.docks["occupation"])
+        self.addDockWidget(QtCore.Qt.RightDockWidgetArea, self.docks["inspector"])
+        self.tabifyDockWidget(self.docks["occupation"], self.docks["inspector"])
+        self.docks["occupation"].raise_()
         self.tabifyDockWidget(self.docks["geometry_panel"], self.docks["psf_panel"])
         self.tabifyDockWidget(self.docks["psf_panel"], self.docks["fidelity_panel"])
         self.docks["geometry_panel"].raise_()
