@@ -43,6 +43,19 @@ def _session(frames) -> Session:
     return s
 
 
+def test_reopened_session_keeps_its_fidelity_estimate(frames, tmp_path):
+    s = _session(frames)
+    s.update_settings(images_per_shot=2, bootstrap_resamples=20)
+    s.reconstruct()
+    s.finish_reconstruction()
+    s.compute_fidelity()
+    assert s.fidelity is not None
+    path = s.save(tmp_path / "with_fidelity.json")
+    again = Session.open(path)
+    assert again.fidelity is not None, "the reopened session lost its fidelity estimate"
+    assert again.fidelity.to_dict() == s.fidelity.to_dict()
+
+
 def test_calibration_origin_survives_save_and_open(frames, tmp_path):
     s = _session(frames)
     s.set_threshold(300.0)  # an edit of the calibration in use
