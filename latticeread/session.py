@@ -202,6 +202,9 @@ class Session:
         self._settings = {**DEFAULT_SETTINGS, **(settings or {})}
         self._undo: list = []
         self._redo: list = []
+        #: where each calibration that was in use came from (by object id), so undo and redo
+        #: show the origin of the calibration they go back to
+        self._origin_of: dict[int, CalibrationOrigin] = {}
         self._undo_group: str | None = None
         self._modified = False
 
@@ -492,11 +495,20 @@ class Session:
             self._undo_group = group
             self._redo.clear()
         self._apply_calibration(old, calibration)
+        self._remember_origin(calibration)
         self.undo_changed.emit(self.can_undo, self.can_redo)
 
     def store_calibration_from_frames(self, calibration) -> None:
         """Use a calibration made by :meth:`calibrate_job` from the frames now loaded."""
         self.set_calibration(calibration, origin=CalibrationOrigin("frames", stack=self._source_name()))
+
+    def _remember_origin(self, calibration) -> None:
+        if calibration is None:
+            return
+        self._origin_of[id(calibration)] = self._origin
+        if len(self._origin_of) > 200:  # keep only the calibrations that undo or redo can reach
+            alive = {id(c) for c in (*self._undo, *self._redo, self._calibration) if c is not None}
+            self._origin_of = {k: v for k, v in self._origin_of.items() if k in alive}
 
     def close_undo_group(self) -> None:
         """End a run of merged edits (e.g. when the mouse button is released)."""
@@ -574,6 +586,8 @@ class Session:
         previous = self._undo.pop()
         self._redo.append(self._calibration)
         self._apply_calibration(self._calibration, previous)
+        self._set_origin(self._origin_of.get(id(previous), self._origin) if previous is not None
+                         else CalibrationOrigin())
         self.undo_changed.emit(self.can_undo, self.can_redo)
         self.message.emit("undone")
         return True
@@ -585,6 +599,7 @@ class Session:
         nxt = self._redo.pop()
         self._undo.append(self._calibration)
         self._apply_calibration(self._calibration, nxt)
+        self._set_origin(self._origin_of.get(id(nxt), self._origin) if nxt is not None else CalibrationOrigin())
         self.undo_changed.emit(self.can_undo, self.can_redo)
         self.message.emit("redone")
         return True

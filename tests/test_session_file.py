@@ -104,3 +104,20 @@ def test_an_unwritable_record_leaves_no_file(tmp_path):
     with pytest.raises(TypeError, match="cannot store object in a session file"):
         write_session(tmp_path / "odd.json", record)
     assert list(tmp_path.iterdir()) == []
+
+
+def test_undo_and_redo_restore_where_the_calibration_came_from(frames, tmp_path):
+    from latticeread.io import save_calibration
+
+    s = Session()
+    s.set_frames(frames.copy())
+    path = tmp_path / "lab.calibration.json"
+    save_calibration(path, Calibration(geometry=GEOMETRY, psf=PSF, camera=CAMERA, frame_shape=SHAPE))
+    s.load_calibration(path)
+    assert s.calibration_origin.kind == "file" and not s.calibration_origin.edited
+    s.set_threshold(300.0)
+    assert s.calibration_origin.edited
+    s.undo()
+    assert s.calibration_origin.kind == "file" and not s.calibration_origin.edited
+    s.redo()
+    assert s.calibration_origin.edited
