@@ -42,6 +42,7 @@ import numpy as np
 from latticeread import __version__
 from latticeread.errors import FrameFileError
 from latticeread.io.atomic import atomic_path, atomic_write
+from latticeread.io.formats import check_format_version
 
 __all__ = ["SESSION_FORMAT", "SESSION_FORMAT_VERSION", "SessionRecord", "SessionResults", "write_session",
            "read_session"]
@@ -209,10 +210,9 @@ def read_session(path) -> SessionRecord:
         raise FrameFileError(f"{path.name} is not a readable session file: {exc}") from exc
     if not isinstance(doc, dict) or doc.get("format") != SESSION_FORMAT:
         raise FrameFileError(f"{path.name} is not a latticeread session file")
-    version = int(doc.get("format_version", 1))
-    if version > SESSION_FORMAT_VERSION:
-        raise FrameFileError(f"{path.name} was written by a newer latticeread (session format {version}; "
-                             f"this version reads up to {SESSION_FORMAT_VERSION}): update latticeread")
+    version = check_format_version(doc.get("format"), doc.get("format_version"), expected_format=SESSION_FORMAT,
+                                   versions=range(1, SESSION_FORMAT_VERSION + 1),
+                                   where=f"session file {path.name}", error=FrameFileError, default_version=1)
     frames_info = doc.get("frames") or {}
     h5_path = path.parent / doc.get("results_file", path.with_suffix(".h5").name)
     frames, results = _read_results(h5_path) if h5_path.exists() else (None, None)
