@@ -115,3 +115,15 @@ def test_batch_never_suggests_an_option_it_lacks(tmp_path, capsys):
     out = capsys.readouterr().out
     assert code == 3
     assert "batch and watch need files holding a single frame dataset" in out
+
+
+def test_calibrate_stores_load_warnings_in_the_calibration(stack_with_a_constant_frame, capsys):
+    d = stack_with_a_constant_frame
+    frames = tifffile.imread(SAMPLE / "demo_folded.tif").copy()
+    frames[2] = 300
+    tifffile.imwrite(d / "f4.tif", frames, photometric="minisblack")
+    with pytest.warns(LatticeReadWarning):
+        assert main(["calibrate", str(d / "f4.tif"), "-o", str(d / "new.json")]) == 0
+    notes = json.loads((d / "new.json").read_text())["notes"]
+    assert any("frame 2 of f4.tif is constant" in w for w in notes["warnings"])
+    assert "warning: frame 2 of f4.tif is constant" in capsys.readouterr().out

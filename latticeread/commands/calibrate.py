@@ -168,7 +168,10 @@ def run(args: argparse.Namespace) -> int:
             cal = with_camera_weighting(cal, stack, max_frames=args.max_frames)
     finally:
         stack.close()
-    cal = cal.replace(notes=dict(cal.notes, source=str(args.frames)))
+    notes = dict(cal.notes, source=str(args.frames))
+    if stack.warnings:  # constant frames, saturated pixels: stored with the calibration
+        notes["warnings"] = list(dict.fromkeys([*notes.get("warnings", []), *stack.warnings]))
+    cal = cal.replace(notes=notes)
     save_calibration(out, cal, protect=[args.frames])
     a1, a2 = cal.geometry.spacings
     print(f"wrote {out}: spacings {a1:.3f}, {a2:.3f} px, PSF {cal.psf.kind} FWHM {cal.psf.fwhm:.3f} px, "
