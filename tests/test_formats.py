@@ -69,3 +69,18 @@ def test_occupation_file_with_an_unknown_version_is_refused(tmp_path):
         f.attrs["format_version"] = 7
     with pytest.raises(FrameFileError, match=r"occ\.h5 has format_version 7"):
         read_occupation_hdf5(tmp_path / "occ.h5")
+
+
+@pytest.mark.parametrize("version", [0, -3, 1.5])
+def test_calibration_with_an_impossible_format_version_is_refused(version):
+    import json
+    from pathlib import Path
+
+    from latticeread.io.calibration_file import calibration_from_json
+
+    sample = Path(__file__).resolve().parents[1] / "sample_data" / "demo_folded.calibration.json"
+    data = json.loads(sample.read_text())
+    data["format_version"] = version
+    with pytest.raises(CalibrationError, match=rf"format version {version!r} is not one this program knows "
+                                               r"\(whole numbers 1 to \d\)"):
+        calibration_from_json(json.dumps(data), where="cal.json")

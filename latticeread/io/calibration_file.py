@@ -223,6 +223,9 @@ def _check_schema(data, where: str) -> None:
     if fmt != "latticeread-calibration":
         raise CalibrationError(f"{where}: this is not a latticeread calibration (format is {fmt!r})")
     version = data.get("format_version", 1)
+    if _is_number(version) and (version != int(version) or version < 1):
+        raise CalibrationError(f"{where}: calibration format version {version!r} is not one this program knows "
+                               f"(whole numbers 1 to {FORMAT_VERSION})")
     if not _is_number(version) or version > FORMAT_VERSION:
         raise CalibrationError(
             f"{where}: calibration format version {version!r} is newer than this program understands "
