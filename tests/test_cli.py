@@ -117,3 +117,15 @@ def test_a_truncated_tiff_gives_one_message_without_tifffile_lines(tmp_path, cap
     err = capsys.readouterr().err
     assert "cut.tif is truncated" in err
     assert "tifffile" not in err and err.count("\n") == 1
+
+
+def test_existing_files_and_no_arguments_still_open_the_window(monkeypatch, tmp_path):
+    import latticeread.commands.gui as gui
+
+    opened = []
+    monkeypatch.setattr(gui, "run", lambda args: opened.append(list(args.files)) or 0)
+    (tmp_path / "frames.tif").write_bytes(b"II*\x00")
+    assert main([str(tmp_path / "frames.tif")]) == 0
+    assert main([]) == 0
+    assert main(["--settings", str(tmp_path / "new.ini")]) == 0
+    assert opened == [[str(tmp_path / "frames.tif")], [], []]
