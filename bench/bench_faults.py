@@ -1,0 +1,108 @@
+"""Many kills and Ctrl-Cs of ``batch`` / ``watch`` at random moments (run by hand; prints counts).
+
+The test suite hurts each command a few times; this script does it as often as asked and
+counts what a user would notice: exit codes, run files that no longer open, shots written
+twice, shots missing after running the same command again, and the time from the signal to
+the end of the process (for Ctrl-C the aim is under one second; on a busy machine it is longer).
+
+Scenario (invented): the "square" demo setting, one TIFF of 60 frames (4 simulated frames
+repeated), a fixed calibration; the signal comes 0-2 s after the run file appears.
+
+Usage::
+
+    .venv/bin/python bench/bench_faults.py --command batch --signal SIGKILL --trials 10
+    .venv/bin/python bench/bench_faults.py --command watch --signal SIGINT --trials 6
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import signal
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+import tifffile
+
+N_FRAMES = 60
+
+
+def make_data(folder: Path) -> None:
+    from latticeread.core.calibration import Calibration
+    from latticeread.core.simulate import demo_scenario, simulate_frames
+    from latticeread.io.calibration_file import save_calibration
+
+    kw = demo_scenario("square", frame_shape=(128, 128))
+    kw.pop("pixel_size_nm")
+    kw["region"] = ("rectangle", 16, 16)
+    frames, truth = simulate_frames(**kw, n_shots=4, images_per_shot=1, rng=11)
+    (folder / "data").mkdir(parents=True)
+    tifffile.imwrite(folder / "data" / "shot_0.tif", np.tile(frames, (N_FRAMES // 4, 1, 1)),
+                     photometric="minisblack")
+    rows, cols = truth.sites.rows, truth.sites.cols
+    bounds = [int(rows.min()), int(rows.max()), int(cols.min()), int(cols.max())]
+    cal = Calibration(geometry=kw["geometry"], psf=kw["psf"], camera=kw["camera"], frame_shape=(128, 128),
+                      threshold=450.0, notes={"index_bounds": bounds})
+    save_calibration(folder / "cal.json", cal)
+
+
+def trial(folder: Path, command: str, sig: int, rng, out: Path) -> dict:
+    from latticeread.io.run_file import read_run
+
+    cal, data = str(folder / "cal.json"), str(folder / "data")
+    if command == "batch":
+        args = ["batch", data, "-c", cal, "-o", str(out), "--workers", "2", "--no-progress"]
+    else:
+        args = ["watch", data, "-c", cal, "-o", str(out), "--interval", "0.1", "--quiet"]
+    proc = subprocess.Popen([sys.executable, "-m", "latticeread", *args], stdout=subprocess.DEVNULL,
+                            stderr=subprocess.DEVNULL)
+    while not out.exists() and proc.poll() is None:
+        time.sleep(0.01)
+    time.sleep(rng.uniform(0.0, 2.0))
+    sent = time.monotonic()
+    proc.send_signal(sig)
+    proc.wait(timeout=120)
+    result = {"exit": proc.returncode, "seconds": time.monotonic() - sent}
+    try:
+        keys = read_run(out, matrices=False).keys
+    except Exception:  # noqa: BLE001 - counted, whatever the reason
+        return {**result, "unreadable": True}
+    result["duplicated"] = len(keys) - len(set(keys))
+    again = subprocess.run([sys.executable, "-m", "latticeread", "batch", data, "-c", cal, "-o", str(out),
+                            "--workers", "0", "--no-progress"], capture_output=True)
+    frames = sorted(read_run(out, matrices=False).frame_index.tolist())
+    result["missing_after_resume"] = N_FRAMES - len(set(frames)) + (again.returncode != 0)
+    return result
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser()
+    ap.add_argument("--command", choices=["batch", "watch"], default="batch")
+    ap.add_argument("--signal", choices=["SIGKILL", "SIGINT", "SIGTERM"], default="SIGKILL")
+    ap.add_argument("--trials", type=int, default=10)
+    args = ap.parse_args()
+    rng = np.random.default_rng()
+    with tempfile.TemporaryDirectory() as tmp:
+        folder = Path(tmp)
+        make_data(folder)
+        results = [trial(folder, args.command, getattr(signal, args.signal), rng, folder / f"run_{k}.h5")
+                   for k in range(args.trials)]
+    seconds = np.array([r["seconds"] for r in results])
+    exits: dict = {}
+    for r in results:
+        exits[r["exit"]] = exits.get(r["exit"], 0) + 1
+    print(json.dumps({
+        "command": args.command, "signal": args.signal, "trials": len(results), "exit_codes": exits,
+        "unreadable_files": sum(bool(r.get("unreadable")) for r in results),
+        "runs_with_duplicated_shots": sum(r.get("duplicated", 0) > 0 for r in results),
+        "runs_missing_shots_after_resume": sum(r.get("missing_after_resume", 0) > 0 for r in results),
+        "signal_to_exit_seconds": {"median": float(np.median(seconds)), "max": float(seconds.max())},
+    }, indent=2))
+
+
+if __name__ == "__main__":
+    main()
