@@ -163,3 +163,13 @@ def test_watch_takes_an_appending_camera_file_once_with_every_frame(dataset, tmp
     assert written["n"] == len(frames)
     assert summary.n_new == len(frames) and len(run.failures) == 0
     assert sorted(run.frame_index.tolist()) == list(range(len(frames)))
+
+
+def test_the_command_line_and_the_window_share_one_settle_default():
+    from latticeread.cli import build_parser
+    from latticeread.commands import watch as command
+    from latticeread.runs import watch
+
+    assert command.DEFAULT_SETTLE_SECONDS == watch.DEFAULT_SETTLE_SECONDS
+    args = build_parser().parse_args(["watch", "folder", "-c", "c.json", "-o", "l.h5"])
+    assert args.settle == watch.DEFAULT_SETTLE_SECONDS

@@ -6,6 +6,10 @@ import argparse
 import sys
 from pathlib import Path
 
+#: Default of --settle: the same as latticeread.runs.watch.DEFAULT_SETTLE_SECONDS (a test checks),
+#: written here so that building the parser does not import the watch machinery.
+DEFAULT_SETTLE_SECONDS = 0.3
+
 
 def _positive(kind):
     def check(text: str):
@@ -42,8 +46,9 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
                         help="run file to create, or to continue when it exists")
     parser.add_argument("--interval", type=_positive(float), default=0.5, metavar="SECONDS",
                         help="time between two looks at the folder (default 0.5 s)")
-    parser.add_argument("--settle", type=_non_negative, default=0.5, metavar="SECONDS",
-                        help="a file must stay unchanged this long before it is taken (default 0.5 s)")
+    parser.add_argument("--settle", type=_non_negative, default=DEFAULT_SETTLE_SECONDS, metavar="SECONDS",
+                        help="a file must stay unchanged this long before it is taken; longer than the pause "
+                             f"of a camera that appends frames to one file (default {DEFAULT_SETTLE_SECONDS:g} s)")
     parser.add_argument("--max-files", type=_positive(int), default=None, metavar="N",
                         help="stop after N files (default: run until Ctrl-C)")
     parser.add_argument("--timeout", type=_positive(float), default=None, metavar="SECONDS",

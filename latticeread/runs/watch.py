@@ -108,9 +108,10 @@ class _FileState:
     n_frames: int | None = None  # frames when it was reported
 
 
-#: Seconds a file must stay unchanged before it is taken (a camera appending frames to one
-#: file pauses between frames; common practice, no source: longer than one readout).
-DEFAULT_SETTLE_SECONDS = 0.5
+#: Seconds a file must stay unchanged before it is taken: longer than the pause of a camera
+#: appending the frames of one shot to one file (a readout, tens to a hundred milliseconds),
+#: short enough that the window shows a new file within a second (common practice, no source).
+DEFAULT_SETTLE_SECONDS = 0.3
 
 
 class FolderWatcher:
