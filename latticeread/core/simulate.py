@@ -89,7 +89,53 @@ class SimulationTruth:
         ``hot_pixel_electrons`` (mean dark electrons per exposure, Poisson in every frame);
         ``cosmic_frame``, ``cosmic_index``, ``cosmic_electrons`` (electrons deposited in
         each pixel of each hit) and ``cosmic_hit`` (hit number, one per track or blob).
+    frame_positions : (n_frames, N, 2) ndarray or None
+        True ``(x, y)`` of every site in every frame (drift and distortion included), pixels.
+    illumination : (N,) ndarray or None
+        Relative brightness of each site in the imaging beam (None: uniform).
+    background_maps : (n_frames, H, W) float32 ndarray or None
+        Structured background added to the uniform one, photons per pixel (None: none).
+    zone_psfs : tuple of PSFModel
+        PSFs of the field tiles when the PSF varies across the field (empty: ``psf`` everywhere).
+    zone_centres : (Z, 2) ndarray or None
+        Tile centres ``(x, y)``, pixels; a site uses the PSF of the nearest centre.
     """
+
+    def positions(self, frame: int) -> tuple[np.ndarray, np.ndarray]:
+        """True site centres ``(x, y)`` in ``frame``, pixels."""
+        if self.frame_positions is not None:
+            return self.frame_positions[frame, :, 0], self.frame_positions[frame, :, 1]
+        dx, dy = np.subtract(self.geometries[frame].offset, self.geometry.offset)
+        return self.sites.x + dx, self.sites.y + dy
+
+    def site_brightness(self, frame: int = 0) -> np.ndarray:
+        """Relative brightness of each site from the illumination profile (1 = beam centre)."""
+        return np.ones(len(self.sites)) if self.illumination is None else self.illumination
+
+    def background_map(self, frame: int) -> np.ndarray:
+        """Expected background photons per pixel in ``frame`` (uniform plus structured)."""
+        out = np.full(self.frame_shape, self.background)
+        return out if self.background_maps is None else out + self.background_maps[frame]
+
+    def site_psfs(self, frame: int = 0) -> list:
+        """The PSF of every site in ``frame`` (the zone PSF of the nearest tile centre)."""
+        if not self.zone_psfs:
+            return [self.psf] * len(self.sites)
+        x, y = self.positions(frame)
+        zone = np.argmin((x[:, None] - self.zone_centres[None, :, 0]) ** 2 +
+                         (y[:, None] - self.zone_centres[None, :, 1]) ** 2, axis=1)
+        return [self.zone_psfs[z] for z in zone]
+
+    def artefact_mask(self, frame: int) -> np.ndarray:
+        """Pixels holding cosmic-ray charge (over half an electron) in ``frame`` or a hot pixel."""
+        mask = np.zeros(self.frame_shape, bool)
+        a = self.artefacts
+        if "hot_pixel_index" in a:
+            mask.ravel()[a["hot_pixel_index"]] = True
+        if "cosmic_frame" in a:
+            sel = (a["cosmic_frame"] == frame) & (a["cosmic_electrons"] > 0.5)
+            mask.ravel()[a["cosmic_index"][sel]] = True
+        return mask
 
     geometry: LatticeGeometry
     geometries: tuple
@@ -108,6 +154,11 @@ class SimulationTruth:
     photons_per_atom: float = 0.0
     settings: dict = field(default_factory=dict)
     artefacts: dict = field(default_factory=dict, repr=False)
+    frame_positions: np.ndarray | None = field(default=None, repr=False)
+    illumination: np.ndarray | None = field(default=None, repr=False)
+    background_maps: np.ndarray | None = field(default=None, repr=False)
+    zone_psfs: tuple = ()
+    zone_centres: np.ndarray | None = field(default=None, repr=False)
 
     @property
     def n_frames(self) -> int:
@@ -362,7 +413,10 @@ def simulate_frames(*, geometry: LatticeGeometry, frame_shape=(256, 256), psf: P
                     images_per_shot: int = 1, loss_probability: float = 0.0, hop_probability: float = 0.0,
                     phase_jitter: float = 0.0, phase_drift=(0.0, 0.0), edge_radius: float | None = None,
                     margin: float | None = None, hot_pixels: int = 0, hot_pixel_electrons=(50.0, 3000.0),
-                    cosmic_rays: float = 0.0, cosmic_electrons=(500.0, 3000.0), rng=None):
+                    cosmic_rays: float = 0.0, cosmic_electrons=(500.0, 3000.0),
+                    illumination_waist: float | None = None, illumination_centre=(0.0, 0.0),
+                    background_structure: float = 0.0, distortion_k1: float = 0.0, distortion_centre=(0.0, 0.0),
+                    psf_field: float = 0.0, psf_zones: int = 4, rng=None):
     """Simulate camera frames of atoms in a lattice, and record the truth.
 
     Parameters
@@ -398,6 +452,19 @@ def simulate_frames(*, geometry: LatticeGeometry, frame_shape=(256, 256), psf: P
     cosmic_rays : float
         Mean number of cosmic-ray hits per frame (streaks and blobs, total charge log-uniform
         over ``cosmic_electrons`` electrons; :func:`latticeread.core.simulate_features.cosmic_rays`).
+    illumination_waist : float, optional
+        1/e^2 radius (pixels) of a Gaussian imaging beam centred ``illumination_centre``
+        pixels from the frame centre: atoms shine ``exp(-2 r^2 / waist^2)`` as bright.
+    background_structure : float
+        Photons per pixel of a stray-light pattern that changes from frame to frame (a
+        gradient and two broad humps; :func:`latticeread.core.simulate_features.structured_background`).
+    distortion_k1 : float
+        Radial lens distortion (1 / pixels^2; negative = barrel) about ``distortion_centre``
+        pixels from the frame centre, applied to the site positions.
+    psf_field : float
+        Aberrations at the corner of the frame, waves rms (defocus and astigmatism growing as
+        the squared field height, coma linearly), in ``psf_zones x psf_zones`` tiles each
+        with its own PSF computed from the pupil (needs an Airy ``psf``).
     rng : int or numpy.random.Generator
 
     Returns
@@ -445,6 +512,23 @@ def simulate_frames(*, geometry: LatticeGeometry, frame_shape=(256, 256), psf: P
         dark = np.zeros(frame_shape)
         dark.ravel()[index] = mean
     cosmic_parts: list = []
+    from latticeread.core import simulate_features as features
+
+    illum = None
+    if illumination_waist is not None:
+        illum = features.illumination(sites.x, sites.y, frame_shape=frame_shape, waist=illumination_waist,
+                                      centre=illumination_centre)
+    zone_psfs, zone_centres = (), None
+    if psf_field:
+        if psf.kind != "airy":
+            raise ValueError("a PSF that varies across the field is computed from the pupil: give an Airy PSF")
+        zone_psfs, zone_centres = features.field_psfs(frame_shape=frame_shape,
+                                                      lambda_over_na=float(psf.params["lambda_over_na"]),
+                                                      strength=psf_field, zones=psf_zones)
+        zone_psfs = tuple(zone_psfs)
+    positions = np.zeros((n_frames, n, 2))
+    bg_maps = np.zeros((n_frames, *frame_shape), np.float32) if background_structure else None
+    bg_params = []
     for shot in range(n_shots):
         occ = make_occupation(sites, pattern=pattern, filling=filling, occupation=occupation,
                               edge_radius=edge_radius, rng=rng)
@@ -458,10 +542,27 @@ def simulate_frames(*, geometry: LatticeGeometry, frame_shape=(256, 256), psf: P
             fin, shine, lost[f], hop_target[f], brightness = _expose(
                 occ, brightness, neighbours, loss_probability=loss_probability,
                 hop_probability=hop_probability, rng=rng)
-            photons[f] = photons_per_atom * shine
+            photons[f] = photons_per_atom * shine * (1.0 if illum is None else illum)
             x = sites.x + shift[0] if np.ndim(shift) else sites.x
             y = sites.y + shift[1] if np.ndim(shift) else sites.y
-            photon_image = render_sites(frame_shape, x, y, photons[f], psf) + background
+            if distortion_k1:
+                x, y = features.distort(x, y, frame_shape=frame_shape, k1=distortion_k1, centre=distortion_centre)
+            positions[f, :, 0], positions[f, :, 1] = x, y
+            if zone_psfs:
+                zone = np.argmin((x[:, None] - zone_centres[None, :, 0]) ** 2 +
+                                 (y[:, None] - zone_centres[None, :, 1]) ** 2, axis=1)
+                photon_image = np.full(frame_shape, float(background))
+                for z, zpsf in enumerate(zone_psfs):
+                    sel = zone == z
+                    if sel.any():
+                        photon_image += render_sites(frame_shape, x[sel], y[sel], photons[f][sel], zpsf)
+            else:
+                photon_image = render_sites(frame_shape, x, y, photons[f], psf) + background
+            if bg_maps is not None:
+                extra, params = features.structured_background(frame_shape, amplitude=background_structure, rng=rng)
+                bg_maps[f] = extra
+                bg_params.append(params)
+                photon_image = photon_image + extra
             deposited = None
             if cosmic_rays:
                 from latticeread.core.simulate_features import cosmic_rays as draw_cosmic_rays
@@ -489,8 +590,15 @@ def simulate_frames(*, geometry: LatticeGeometry, frame_shape=(256, 256), psf: P
                   "phase_jitter": phase_jitter, "phase_drift": list(map(float, drift)),
                   "region": None if region is None else (list(region) if isinstance(region, tuple) else "mask"),
                   "hot_pixels": int(hot_pixels), "hot_pixel_electrons": list(map(float, hot_pixel_electrons)),
-                  "cosmic_rays": float(cosmic_rays), "cosmic_electrons": list(map(float, cosmic_electrons))},
-        artefacts=artefacts,
+                  "cosmic_rays": float(cosmic_rays), "cosmic_electrons": list(map(float, cosmic_electrons)),
+                  "illumination_waist": None if illumination_waist is None else float(illumination_waist),
+                  "illumination_centre": list(map(float, illumination_centre)),
+                  "background_structure": float(background_structure), "background_patterns": bg_params,
+                  "distortion_k1": float(distortion_k1), "distortion_centre": list(map(float, distortion_centre)),
+                  "psf_field": float(psf_field), "psf_zones": int(psf_zones),
+                  "zone_fwhm": [float(p.fwhm) for p in zone_psfs]},
+        artefacts=artefacts, frame_positions=positions, illumination=illum, background_maps=bg_maps,
+        zone_psfs=zone_psfs, zone_centres=zone_centres,
     )
     return frames, truth
 
