@@ -42,6 +42,9 @@ from latticeread.core.artefacts import (
 )
 from latticeread.core.calibration import Calibration, ReconstructionOptions, ReferenceImage
 from latticeread.core.camera import CameraModel
+from latticeread.core.frame_check import (EXPLAINED_WARN, OUTSIDE_REFUSE, OUTSIDE_WARN, RESIDUAL_WARN,
+                                           amplitude_unit, check_frame)
+from latticeread.core.frame_check import WARNING_PREFIX as MODEL_WARNING
 from latticeread.core.classify import ThresholdResult, classify, select_threshold
 from latticeread.core.geometry import LatticeGeometry, SiteGrid, lattice_sites
 from latticeread.core.psf import PSFModel
@@ -435,7 +438,27 @@ class Reconstructor:
         if poor:
             flags = flags | np.uint8(site_flags.POOR_FIT)
             amp = dataclasses.replace(amp, flags=flags)
+        self.last_check = None
+        if amp.method in ("linear", "nonlinear"):
+            self.last_check = self._check_model(image, photons, amp, art, saturated)
+            warnings = list(warnings) + list(self.last_check.warnings)
         return geometry, amp, tuple(warnings) + amp.warnings
+
+    def _check_model(self, image, photons, amp, art, saturated):
+        """Does the fitted site model explain this frame? (:func:`latticeread.core.frame_check.check_frame`)."""
+        crop = self.basis.crop
+        whole = (crop[0].start, crop[0].stop, crop[1].start, crop[1].stop) == (0, self.frame_shape[0], 0,
+                                                                                 self.frame_shape[1])
+        full = photons if whole or self.camera.offset_map is not None else self.camera.counts_to_photons(image)
+        exclude = None
+        for part in (art, self.hot_pixels, saturated):
+            if part is not None:
+                exclude = part if exclude is None else exclude | part
+        if getattr(self, "_pixel_model", None) is None:
+            self._pixel_model = PixelModel(self.calibration.psf)
+        return check_frame(full, crop=crop, x=amp.x, y=amp.y, amplitudes=amp.amplitudes, background=amp.background,
+                           model=self._pixel_model, camera=self.camera, exclude=exclude,
+                           unit=amplitude_unit(self.camera))
 
     def _fit_around(self, photons, filled, art, *, offset, saturated, steps: int = 2) -> AmplitudeResult:
         """Amplitudes with this frame's cosmic-ray pixels left out, by filling them with the fit.
@@ -778,6 +801,7 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
             rec = Reconstructor(draft, method="linear", mask=mask, refit_phase=rec.refit_phase)
             pooled, pooled_flags, warnings = _pooled(rec, chosen)
             tr = select_threshold(pooled, method=threshold_method, camera=camera, flags=pooled_flags)
+    _check_region(rec, notes, psf_warnings)
     if np.isfinite(tr.threshold):
         # the histogram of the sites where atoms occur: sites that never hold an atom (corners of
         # the bounding box, the margin) have no neighbours' light and would make the empty peak
@@ -932,14 +956,44 @@ def _estimate_geometry(stack, estimate_lattice) -> LatticeGeometry:
     return max(found, key=lambda g: (g.quality.is_reliable, g.quality.peak_to_background))
 
 
+def _check_region(rec: Reconstructor, notes: dict, warnings: list) -> None:
+    """Refuse a region that leaves most of the light outside; note how well the model explains the frames."""
+    checks = getattr(rec, "checks", [])
+    if not checks:
+        return
+    med = {key: float(np.nanmedian([getattr(c, key) for c in checks])) if any(
+        np.isfinite(getattr(c, key)) for c in checks) else float("nan")
+        for key in ("outside_fraction", "residual_ratio", "explained_fraction")}
+    notes["model_check"] = med
+    frac = med["outside_fraction"]
+    bounds = rec.index_bounds
+    where = f"sites {bounds[0]}..{bounds[1]} x {bounds[2]}..{bounds[3]}" if bounds else "the frame"
+    if frac > OUTSIDE_REFUSE:
+        raise CalibrationError(f"{100 * frac:.0f} % of the light above background lies outside the analysed region "
+                               f"({where}) in the calibration frames: the region misses most of the atoms (bright "
+                               "artefacts, a second cloud?); check the frames or give the region")
+    if frac > OUTSIDE_WARN:
+        warnings.append(f"{100 * frac:.0f} % of the light above background lies outside the analysed region "
+                        f"({where}) in the calibration frames")
+    if np.isfinite(med["residual_ratio"]) and med["residual_ratio"] > RESIDUAL_WARN:
+        warnings.append(f"the image model leaves residuals {med['residual_ratio']:.1f} times the camera's expected "
+                        "noise in the calibration frames (wrong PSF, background or camera description?)")
+    if np.isfinite(med["explained_fraction"]) and med["explained_fraction"] < EXPLAINED_WARN:
+        warnings.append(f"the site model accounts for only {100 * med['explained_fraction']:.0f} % of the bright "
+                        "light in the calibration frames")
+
+
 def _pooled(rec: Reconstructor, frames, *, atoms: bool = False):
     amps, flags, warnings, fitted = [], [], [], []
+    rec.checks = []
     for i, frame in enumerate(frames):
         _, amp, warn = rec.extract_full(frame, where=f"calibration frame {i}")
         amps.append(amp.amplitudes)
         flags.append(amp.flags)
-        # the calibration summarises cosmic-ray hits in notes["artefacts"] instead of one line per frame
-        warnings.extend(w for w in warn if not w.startswith(ARTEFACT_WARNING))
+        # the calibration summarises cosmic-ray hits and the image-model checks instead of one line per frame
+        warnings.extend(w for w in warn if not w.startswith((ARTEFACT_WARNING, MODEL_WARNING)))
+        if rec.last_check is not None:
+            rec.checks.append(rec.last_check)
         if atoms and amp.method == "nonlinear" and getattr(rec.basis, "last_atom_photons", None):
             fitted.append(float(rec.basis.last_atom_photons))
     out = (np.concatenate(amps), np.concatenate(flags), sorted(set(warnings)))
