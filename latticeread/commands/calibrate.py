@@ -143,6 +143,7 @@ def psf_from_args(args):
 
 
 def run(args: argparse.Namespace) -> int:
+    from latticeread.core.frame_check import amplitude_unit
     from latticeread.core.pipeline import calibrate, with_camera_weighting
     from latticeread.io import save_calibration
     from latticeread.io.frames import load_frames
@@ -175,7 +176,7 @@ def run(args: argparse.Namespace) -> int:
     save_calibration(out, cal, protect=[args.frames])
     a1, a2 = cal.geometry.spacings
     print(f"wrote {out}: spacings {a1:.3f}, {a2:.3f} px, PSF {cal.psf.kind} FWHM {cal.psf.fwhm:.3f} px, "
-          f"{cal.amplitude_method} amplitudes, threshold {cal.threshold:.1f} photons"
+          f"{cal.amplitude_method} amplitudes, threshold {cal.threshold:.1f} {amplitude_unit(cal.camera)}"
           + (", camera-noise weights" if cal.options.weighting == "camera" else ""))
     for key, what in (("geometry_from_prior", "lattice fitted from the given spacing and angle"),
                       ("vectors_model_fit", "lattice vectors refined by the image-model fit")):

@@ -74,6 +74,7 @@ def run(args: argparse.Namespace) -> int:
     import numpy as np
     from tqdm import tqdm
 
+    from latticeread.core.frame_check import amplitude_unit
     from latticeread.core.pipeline import calibrate, reconstruct_stack, with_camera_weighting
     from latticeread.io import load_calibration, write_occupation_hdf5, write_sites_csv
     from latticeread.io.frames import load_frames, load_mask
@@ -133,7 +134,7 @@ def run(args: argparse.Namespace) -> int:
         bar.close()
         stack.close()
     print(f"wrote {out}: {n} frame(s), {written} {'rows' if kind == 'csv' else 'frames'}; "
-          f"threshold {np.nan if cal.threshold is None else cal.threshold:.1f} photons")
+          f"threshold {np.nan if cal.threshold is None else cal.threshold:.1f} {amplitude_unit(cal.camera)}")
     return 0
 
 

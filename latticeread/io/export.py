@@ -112,6 +112,24 @@ UNITS = {
     "threshold": "photons",
 }
 
+
+
+def units_for(calibration) -> dict:
+    """:data:`UNITS` with the amplitude and threshold in photons only when the camera description makes them photons.
+
+    Without a camera description (1 count = 1 photon) they are camera counts above the bias.
+    """
+    if calibration is None:
+        return dict(UNITS)
+    from latticeread.core.frame_check import amplitude_unit
+
+    unit = amplitude_unit(calibration.camera)
+    if unit == "photons":
+        return dict(UNITS)
+    return dict(UNITS, amplitude="counts (no camera description: not converted to photons)",
+                threshold="counts (no camera description: not converted to photons)")
+
+
 _FORMAT_CSV = "latticeread-sites-csv"
 _FORMAT_H5 = "latticeread-occupation"
 
@@ -194,7 +212,7 @@ def _settings(calibration, metadata: Mapping | None, *, fmt: str) -> dict:
         "format_version": 1,
         "program_version": __version__,
         "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
-        "units": UNITS,
+        "units": units_for(calibration),
         "inputs": _input_names(meta.pop("inputs", [])),
         "calibration": None if calibration is None else calibration.to_dict(),
         "fidelity": meta.pop("fidelity", None),
@@ -299,7 +317,7 @@ def write_sites_csv(path, results: Iterable, *, calibration=None, metadata: Mapp
             n_frames += 1
         settings["n_frames"] = n_frames
         settings["n_rows"] = n_rows
-        settings["columns"] = {name: UNITS[name] for name in CSV_COLUMNS}
+        settings["columns"] = {name: settings["units"][name] for name in CSV_COLUMNS}
         settings["frame_warnings"] = warnings_by_frame
         side.write(json.dumps(settings, indent=2, allow_nan=False) + "\n")
     log.info("wrote %d site rows of %d frames to %s", n_rows, n_frames, path)
@@ -422,7 +440,7 @@ def write_occupation_hdf5(path, results: Iterable, *, calibration=None, metadata
     with atomic_path(path, protect=protect) as tmp:
         tmp.unlink()  # the run writer creates it (under its own temporary name)
         row_min = col_min = n_r = n_c = 0
-        attrs = {"units": UNITS, "inputs": inputs, "fidelity": settings["fidelity"],
+        attrs = {"units": settings["units"], "inputs": inputs, "fidelity": settings["fidelity"],
                  **{key: None if cal is None else cal[key] for key in ("geometry", "psf", "camera")},
                  "threshold": np.nan if cal is None or cal["threshold"] is None else float(cal["threshold"])}
         pending: list = []
