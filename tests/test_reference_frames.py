@@ -48,7 +48,6 @@ GEOMETRY_XFAIL = {
 FIDELITY_XFAIL = {
     "r2_mott_disk": "no lattice found",
     "r3_triangular": "fidelity 0.9971 against the oracle's 0.9998 (-0.26 pp)",
-    "r5_field_and_drift": "fidelity 0.9874 against the oracle's 0.9983 (-1.10 pp)",
 }
 
 
