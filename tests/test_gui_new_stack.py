@@ -93,6 +93,7 @@ def test_second_stack_without_a_calibration_asks_and_can_calibrate_anew(window, 
     qtbot.waitUntil(lambda: _choice_box(window) is not None, timeout=5000)
     box = _choice_box(window)
     assert "lone.tif has no calibration file" in box.text()
+    assert "was made for demo_triangular.tif." in box.text()
     _press(box, "calibrate")
     qtbot.waitUntil(lambda: s.calibration is not None and s.calibration_origin.kind == "frames", timeout=60000)
     assert s.calibration.geometry != triangular.geometry

@@ -1281,7 +1281,8 @@ class MainWindow(QtWidgets.QMainWindow):
         s = self.session
         origin = s.calibration_origin
         name = Path(s.source).name if s.source else "these frames"
-        text = (f"{name} has no calibration file beside it. The calibration in use was {origin.describe()}.\n\n"
+        made = f"made for {origin.stack}" if origin.kind == "kept" and origin.stack else origin.describe()
+        text = (f"{name} has no calibration file beside it. The calibration in use was {made}.\n\n"
                 "Keep it only if these frames were taken with the same lattice, camera and optics; "
                 "otherwise load their calibration file or calibrate from these frames.")
         dialogs.ask_choice(
