@@ -43,7 +43,6 @@ from __future__ import annotations
 import dataclasses
 import json
 import logging
-import os
 import threading
 from pathlib import Path
 from typing import Any, Callable, Iterator
@@ -260,9 +259,9 @@ class Session:
         FrameFileError, FrameError
             The file cannot be read; the session is left unchanged.
         """
-        from latticeread.io import load_frames
+        from latticeread.analysis.service import open_stack  # NaN pixels flag their sites, as everywhere
 
-        stack = load_frames(path, dataset=dataset)
+        stack = open_stack(path, dataset=dataset)
         self.set_frames(stack, source=str(Path(path).resolve()), dataset=dataset)
 
     def load_calibration(self, path, *, for_new_frames: bool = False) -> None:
@@ -727,37 +726,34 @@ class Session:
         return job
 
     def _process_batches(self, cal, generation, chunks, frame, name, processes, should_stop):
-        """Run chunks of frames through worker processes; yield batches as they complete."""
-        import concurrent.futures as cf
-        import multiprocessing
+        """Run chunks of frames through the executor layer's worker processes; yield batches as they complete."""
+        from latticeread.analysis.executor import ImageTask, PoolExecutor
+        from latticeread.io.calibration_file import calibration_to_json
 
-        cal_key = json.dumps(cal.to_dict(), sort_keys=True, default=_json_default)
-        ctx = multiprocessing.get_context("spawn")
-        pool = cf.ProcessPoolExecutor(max_workers=int(processes), mp_context=ctx, initializer=_worker_priority)
-        pending: set = set()
+        # workers run at a lower scheduling priority than the window (niceness 10)
+        pool = PoolExecutor(calibration_to_json(cal), workers=int(processes), niceness=10)
         todo = list(chunks)
         try:
-            while todo or pending:
-                while todo and len(pending) < 2 * int(processes):
+            while todo or pool.pending:
+                while todo and pool.pending < 2 * int(processes):
                     if should_stop():
                         return
                     chunk = todo.pop(0)
-                    images = np.stack([frame(i) for i in chunk])
-                    pending.add(pool.submit(_extract_in_process, cal_key, cal, chunk, images, name))
+                    pool.submit(0, ImageTask(tuple(chunk), np.stack([frame(i) for i in chunk]), name))
                 # while the workers run, this thread builds the session's own Reconstructor
                 # (site set and positions for the results); cached after the first pass
                 self._reconstructor_for(cal, generation)
-                done, pending = cf.wait(pending, timeout=0.5, return_when=cf.FIRST_COMPLETED)
+                finished = pool.next_done(timeout=0.5)
                 if should_stop():
                     return
-                for fut in done:
-                    rows = fut.result()
+                if finished is not None:
+                    rows = finished[1]
                     yield ReconstructBatch(
                         generation, tuple(r[0] for r in rows), tuple(r[1] for r in rows),
                         np.stack([r[2] for r in rows]), np.stack([r[3] for r in rows]),
                         np.asarray([r[4] for r in rows], dtype=float), tuple(r[5] for r in rows))
         finally:
-            pool.shutdown(wait=False, cancel_futures=True)
+            pool.close(cancel=True)
 
     def store_batch(self, batch: ReconstructBatch) -> bool:
         """Store amplitudes from a reconstruct job; returns False for a stale batch (dropped)."""
@@ -823,12 +819,12 @@ class Session:
 
     def _refresh_threshold_result(self) -> None:
         amps = self.all_amplitudes()
-        amps = amps[np.isfinite(amps)]
-        if amps.size == 0 or self._calibration is None:
+        if not np.isfinite(amps).any() or self._calibration is None:
             self._set_threshold_result(None)
             return
         cal = self._calibration
-        tr = _classify_module().select_threshold(amps, method=cal.threshold_method, camera=cal.camera)
+        # the one pooled threshold of every front end (order-independent, same flags)
+        tr = _pipeline().pooled_threshold(amps, calibration=cal, flags=self._flags[self._done].ravel())
         if cal.threshold is not None:
             tr = tr.with_threshold(float(cal.threshold))
         self._set_threshold_result(tr)
@@ -975,6 +971,7 @@ class Session:
         # when the job was made, and a new generation replaces the whole array), so the worker
         # can read them from the live array.
         amplitudes = self._amplitudes
+        flags = self._flags
         cal = self._calibration
         generation = self._generation
 
@@ -983,10 +980,9 @@ class Session:
                 return generation, None, None
             block = amplitudes if done.all() else amplitudes[done]
             amps = block.ravel()
-            amps = amps[np.isfinite(amps)]
-            if amps.size == 0:
+            if not np.isfinite(amps).any():
                 return generation, None, None
-            tr = _classify_module().select_threshold(amps, method=cal.threshold_method, camera=cal.camera)
+            tr = _pipeline().pooled_threshold(amps, calibration=cal, flags=(flags if done.all() else flags[done]).ravel())
             if cal.threshold is not None:
                 tr = tr.with_threshold(float(cal.threshold))
             stats = PooledStats.empty(generation, tr, done, block.shape[1])
@@ -1194,7 +1190,9 @@ class Session:
 
         def job(should_stop: Callable[[], bool] = lambda: False):
             stack = np.stack([frame(i) for i in range(n)])
-            kwargs: dict[str, Any] = {"pixel_size_nm": settings["pixel_size_nm"], "camera": camera}
+            # what the frames cannot tell (pixel size, optics) is kept from the loaded calibration
+            pixel_size = settings["pixel_size_nm"] or (old.pixel_size_nm if old is not None else None)
+            kwargs: dict[str, Any] = {"pixel_size_nm": pixel_size, "camera": camera}
             if old is not None:
                 kwargs["threshold_method"] = old.threshold_method
             prior = {key: (constraints or {}).get(key) for key in ("spacing_px", "angle_deg", "angle_between_deg")}
@@ -1207,7 +1205,9 @@ class Session:
                                          numerical_aperture=settings["numerical_aperture"],
                                          pixel_size_nm=settings["pixel_size_nm"])
             try:
-                return _pipeline().calibrate(stack, **kwargs)
+                from latticeread.analysis.service import merge_calibration
+
+                return merge_calibration(_pipeline().calibrate(stack, **kwargs), base=old)
             except ReconstructionError as exc:
                 if "psf" in kwargs or "isolated" not in str(exc):
                     raise
@@ -1496,32 +1496,6 @@ class Session:
         """Input files that an output must never overwrite."""
         return [self._frames_source] if self._frames_source else []
 
-
-#: Reconstructors built inside a worker process, by calibration (process-local cache so a
-#: worker factorises the site basis once per calibration, not once per chunk of frames).
-_WORKER_RECONSTRUCTORS: dict = {}
-
-
-def _worker_priority() -> None:
-    """Run reconstruction workers at a lower scheduling priority than the program's window."""
-    try:
-        os.nice(10)
-    except (AttributeError, OSError):  # not available on every platform
-        pass
-
-
-def _extract_in_process(cal_key: str, calibration, indices, images, name: str) -> list:
-    """Amplitudes of a few frames, computed in a worker process (see Session.reconstruct_job)."""
-    rec = _WORKER_RECONSTRUCTORS.get(cal_key)
-    if rec is None:
-        _WORKER_RECONSTRUCTORS.clear()
-        rec = _WORKER_RECONSTRUCTORS[cal_key] = _pipeline().Reconstructor(calibration)
-    rows = []
-    for i, image in zip(indices, images):
-        g, amp, w = rec.extract_full(image, where=f"frame {i} of {name}")
-        rows.append((int(i), g, np.asarray(amp.amplitudes, dtype=float), np.asarray(amp.flags, dtype=np.uint8),
-                     float(np.mean(amp.background)), tuple(str(x) for x in w)))
-    return rows
 
 
 def _differs(a, b) -> bool:

@@ -66,28 +66,28 @@ def _frames_to_occupations(args):
     """Reconstruct the stacks; return occupations, per-frame amplitudes and thresholds, calibration."""
     from tqdm import tqdm
 
-    from latticeread.core.pipeline import Reconstructor, calibrate
-    from latticeread.io import load_calibration, load_frames
+    from latticeread.analysis.service import analyse_stack, open_stack
+    from latticeread.core.pipeline import calibrate
+    from latticeread.io import load_calibration
 
-    stacks = [load_frames(p) for p in args.stacks]
+    stacks = [open_stack(p) for p in args.stacks]
     if len(stacks) == 2 and len(stacks[0]) != len(stacks[1]):
         raise FidelityError(f"{args.stacks[0].name} has {len(stacks[0])} frames but {args.stacks[1].name} has "
                             f"{len(stacks[1])}; the two stacks must hold the same shots")
     calibration = load_calibration(args.calibration) if args.calibration else calibrate(stacks[0])
-    rec = Reconstructor(calibration)
     per_stack, amplitudes, thresholds = [], [], []
     total = sum(len(s) for s in stacks)
     with tqdm(total=total, desc="reconstructing", unit="frame", file=sys.stderr,
               disable=args.quiet) as bar:
         for stack in stacks:
             mats, amps, ts = [], [], []
-            for i in range(len(stack)):
-                res = rec(stack[i], frame_index=i)
+            # the one analysis path: the calibration's threshold policy (pooled over the stack
+            # by default) and frame policy, as in the window, reconstruct, batch and watch
+            for res in analyse_stack(stack, calibration, progress=lambda done, total: bar.update(1)):
                 mats.append(res.occupation_matrix(fill=255))
                 amps.append(np.asarray(res.amplitudes, float))
                 t = res.threshold
                 ts.append(float(getattr(t, "threshold", t)))
-                bar.update(1)
             per_stack.append(np.stack(mats))
             amplitudes.append(amps)
             thresholds.append(ts)

@@ -71,15 +71,14 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    import numpy as np
     from tqdm import tqdm
 
+    from latticeread.analysis.service import analyse_stack, open_stack
     from latticeread.core.frame_check import amplitude_unit
-    from latticeread.core.pipeline import calibrate, reconstruct_stack, with_camera_weighting
+    from latticeread.core.pipeline import calibrate, with_camera_weighting
     from latticeread.io import load_calibration, write_occupation_hdf5, write_sites_csv
-    from latticeread.io.frames import load_frames, load_mask
-
     from latticeread.io.export import sidecar_path
+    from latticeread.io.frames import load_mask
     from latticeread.io.outputs import check_outputs, check_suffix
 
     out = Path(args.out)
@@ -90,11 +89,10 @@ def run(args: argparse.Namespace) -> int:
                           "bad-pixel mask": args.bad_pixels, "camera description": getattr(args, "camera", None)})
     if args.calibration is not None:
         cal = load_calibration(args.calibration)
-        stack = load_frames(args.frames, dataset=args.dataset, saturation=cal.camera.saturation,
-                            nonfinite="keep", frame_shape=tuple(cal.frame_shape))
+        stack = open_stack(args.frames, cal, dataset=args.dataset)
     else:
         camera = camera_from_args(args)
-        stack = load_frames(args.frames, dataset=args.dataset, saturation=camera.saturation, nonfinite="keep")
+        stack = open_stack(args.frames, dataset=args.dataset)
         log.info("no calibration given: estimating geometry, PSF and threshold from %s", args.frames)
         cal = calibrate(stack, psf=psf_from_args(args), camera=camera, pixel_size_nm=args.pixel_size_nm,
                         method=args.method)
@@ -104,6 +102,13 @@ def run(args: argparse.Namespace) -> int:
         cal = with_camera_weighting(cal, stack)
     elif weighting == "none":
         cal = cal.with_options(weighting="none")
+    # command-line settings become part of the calibration, so they are stored with the results
+    if args.method is not None:
+        cal = cal.replace(amplitude_method=args.method)
+    if args.no_phase_refit:
+        cal = cal.with_options(refit_phase=False)
+    if args.threshold is not None:
+        cal = cal.replace(threshold=float(args.threshold))
     mask = None
     if args.bad_pixels is not None:
         mask = ~load_mask(args.bad_pixels, frame_shape=tuple(cal.frame_shape))
@@ -121,9 +126,7 @@ def run(args: argparse.Namespace) -> int:
     if args.calibration is not None:
         metadata["calibration_file"] = str(args.calibration)
     try:
-        results = reconstruct_stack(stack, cal, method=args.method, mask=mask,
-                                    refit_phase=not args.no_phase_refit, threshold=args.threshold,
-                                    progress=progress)
+        results = analyse_stack(stack, cal, mask=mask, progress=progress)
         results = _with_load_warnings(results, stack)
         protect = [args.frames] + ([args.calibration] if args.calibration is not None else [])
         if kind == "csv":
@@ -134,7 +137,8 @@ def run(args: argparse.Namespace) -> int:
         bar.close()
         stack.close()
     print(f"wrote {out}: {n} frame(s), {written} {'rows' if kind == 'csv' else 'frames'}; "
-          f"threshold {np.nan if cal.threshold is None else cal.threshold:.1f} {amplitude_unit(cal.camera)}")
+          + (f"threshold {cal.threshold:.1f} {amplitude_unit(cal.camera)}" if cal.threshold is not None
+             else f"threshold: {cal.threshold_policy.describe()}"))
     return 0
 
 

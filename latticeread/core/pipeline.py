@@ -50,8 +50,8 @@ from latticeread.core.geometry import LatticeGeometry, SiteGrid, lattice_sites
 from latticeread.core.psf import PSFModel
 from latticeread.errors import CalibrationError, FrameError, LatticeNotFound, ReconstructionError
 
-__all__ = ["FrameResult", "Reconstructor", "calibrate", "reconstruct_stack", "reclassify",
-           "with_camera_weighting", "NONLINEAR_BELOW", "UNCERTAIN_RANGE"]
+__all__ = ["FrameResult", "Reconstructor", "calibrate", "reconstruct_stack", "reclassify", "pooled_threshold",
+           "with_camera_weighting", "uncertain", "frame_iter", "NONLINEAR_BELOW", "UNCERTAIN_RANGE"]
 
 log = logging.getLogger(__name__)
 
@@ -124,7 +124,8 @@ class FrameResult:
         return self.sites.to_matrix(self.amplitudes.astype(float), fill=np.nan)
 
 
-def _uncertain(p_occupied) -> np.ndarray:
+def uncertain(p_occupied) -> np.ndarray:
+    """True where the posterior lies inside :data:`UNCERTAIN_RANGE` (the UNCERTAIN flag)."""
     lo, hi = UNCERTAIN_RANGE
     with np.errstate(invalid="ignore"):
         return (p_occupied > lo) & (p_occupied < hi)
@@ -148,10 +149,47 @@ def reclassify(result: FrameResult, threshold) -> FrameResult:
         threshold = result.threshold_result.with_threshold(float(threshold))
     occupied, p = classify(result.amplitudes, threshold)
     flags = result.flags & np.uint8(~site_flags.UNCERTAIN & 0xFF)
-    flags = flags | (_uncertain(p) * site_flags.UNCERTAIN).astype(np.uint8)
+    flags = flags | (uncertain(p) * site_flags.UNCERTAIN).astype(np.uint8)
     t = threshold.threshold if isinstance(threshold, ThresholdResult) else float(threshold)
     return dataclasses.replace(result, occupied=occupied, p_occupied=p, flags=flags, threshold=float(t),
                                threshold_result=threshold if isinstance(threshold, ThresholdResult) else None)
+
+
+def pooled_threshold(amplitudes, *, calibration: Calibration, flags=None) -> ThresholdResult:
+    """The threshold fit on one histogram of amplitudes, with the calibration's method and camera.
+
+    The one function behind every automatic threshold: the pooled histogram of a stack
+    (the window, ``reconstruct``, ``batch`` and ``watch`` per input file) and each frame's
+    own histogram (policy ``per_frame``). Non-finite amplitudes are left out, and the rest is
+    sorted first, so the result does not depend on the order in which frames were
+    reconstructed or pooled (the fit sums in floating point).
+
+    Parameters
+    ----------
+    amplitudes : array_like of float
+        Site amplitudes in photons (any shape).
+    calibration : Calibration
+        Gives ``threshold_method`` and the camera (noise-model-aware mixture).
+    flags : array_like of uint8, optional
+        Per-site flags, same size (saturated sites are reported in the fit's warnings).
+
+    Returns
+    -------
+    ThresholdResult
+
+    Raises
+    ------
+    ReconstructionError
+        Fewer than 3 finite amplitudes.
+    """
+    a = np.asarray(amplitudes, dtype=float).ravel()
+    keep = np.isfinite(a)
+    order = np.argsort(a[keep], kind="stable")
+    a = a[keep][order]
+    if flags is not None:
+        flags = np.asarray(flags, dtype=np.uint8).ravel()[keep][order]
+    return select_threshold(a, method=calibration.threshold_method or "mixture", camera=calibration.camera,
+                            flags=flags)
 
 
 def _calibration_threshold(calibration: Calibration):
@@ -489,7 +527,7 @@ class Reconstructor:
         geometry, amp, _ = self.extract_full(image)
         return geometry, amp.amplitudes, amp.flags
 
-    def __call__(self, image, *, frame_index: int = 0, threshold=None) -> FrameResult:
+    def __call__(self, image, *, frame_index: int = 0, threshold=None, where: str | None = None) -> FrameResult:
         """Reconstruct one frame (counts): phase refit, amplitudes, classification.
 
         Parameters
@@ -500,13 +538,28 @@ class Reconstructor:
             Index recorded in the result (and used in error messages).
         threshold : ThresholdResult or float, optional
             Threshold in photons; default: the calibration's, else chosen from this frame's
-            histogram with the calibration's threshold method.
+            histogram with the calibration's threshold method (:func:`pooled_threshold` on one
+            frame). A pooled threshold over a stack is applied by :func:`reconstruct_stack`.
+        where : str, optional
+            How error messages name the frame (default ``"frame <frame_index>"``).
         """
-        geometry, amp, warnings = self.extract_full(image, where=f"frame {frame_index}")
+        geometry, amp, warnings = self.extract_full(image, where=where or f"frame {frame_index}")
+        return self.classify(geometry, amp, warnings, frame_index=frame_index, threshold=threshold)
+
+    def classify(self, geometry, amp, warnings=(), *, frame_index: int = 0, threshold=None) -> FrameResult:
+        """The :class:`FrameResult` of an extraction (:meth:`extract_full`) against a threshold.
+
+        Parameters
+        ----------
+        geometry, amp, warnings :
+            The output of :meth:`extract_full`.
+        frame_index : int
+        threshold : ThresholdResult or float, optional
+            As for :meth:`__call__`.
+        """
         threshold = threshold if threshold is not None else self.threshold
         if threshold is None:
-            threshold = select_threshold(amp.amplitudes, method=self.calibration.threshold_method or "mixture",
-                                         camera=self.camera, flags=amp.flags)
+            threshold = pooled_threshold(amp.amplitudes, calibration=self.calibration, flags=amp.flags)
         elif not isinstance(threshold, ThresholdResult):
             threshold = float(threshold)
         sites = _with_positions(self.sites, amp.x, amp.y)
@@ -613,7 +666,8 @@ def _n_frames(frames) -> int:
         return -1
 
 
-def _frame_iter(frames) -> Iterator[np.ndarray]:
+def frame_iter(frames) -> Iterator[np.ndarray]:
+    """The (H, W) frames of a stack, an array or any iterable of frames, one at a time."""
     if isinstance(frames, np.ndarray):
         if frames.ndim == 2:
             yield frames
@@ -626,9 +680,15 @@ def _frame_iter(frames) -> Iterator[np.ndarray]:
 
 
 def reconstruct_stack(frames: Iterable, calibration: Calibration, *, method: str | None = None, mask=None,
-                      refit_phase: bool = True, threshold=None,
+                      refit_phase: bool | None = None, threshold=None,
                       progress: Callable[[int, int], None] | None = None) -> Iterator[FrameResult]:
-    """Reconstruct frames one by one (a generator: memory stays flat in the number of frames).
+    """Reconstruct and classify the frames of one stack under the calibration's threshold policy.
+
+    With a fixed threshold (the calibration's or ``threshold``) or the ``per_frame`` policy,
+    each frame is yielded as soon as it is done (memory stays flat in the number of frames).
+    With the ``pooled`` policy (the default of a calibration without a fixed threshold) every
+    frame is reconstructed first (their amplitudes are kept), then all are classified against
+    the threshold of their pooled histogram (:func:`pooled_threshold`).
 
     Parameters
     ----------
@@ -640,18 +700,30 @@ def reconstruct_stack(frames: Iterable, calibration: Calibration, *, method: str
     threshold : ThresholdResult or float, optional
         Fixed threshold in photons for every frame.
     progress : callable(done, total), optional
-        Called after each frame (``total`` is -1 when unknown).
+        Called after each frame's reconstruction (``total`` is -1 when unknown).
 
     Yields
     ------
     FrameResult
+        In frame order.
     """
     rec = Reconstructor(calibration, method=method, mask=mask, refit_phase=refit_phase)
     total = _n_frames(frames)
-    for i, frame in enumerate(_frame_iter(frames)):
-        yield rec(frame, frame_index=i, threshold=threshold)
+    pooled = threshold is None and calibration.threshold_policy.kind == "pooled"
+    kept = []
+    for i, frame in enumerate(frame_iter(frames)):
+        if pooled:
+            kept.append((i, *rec.extract_full(frame, where=f"frame {i}")))
+        else:
+            yield rec(frame, frame_index=i, threshold=threshold)
         if progress is not None:
             progress(i + 1, total)
+    if not kept:
+        return
+    fit = pooled_threshold(np.concatenate([amp.amplitudes for _, _, amp, _ in kept]), calibration=calibration,
+                           flags=np.concatenate([amp.flags for _, _, amp, _ in kept]))
+    for i, geometry, amp, warnings in kept:
+        yield rec.classify(geometry, amp, warnings, frame_index=i, threshold=fit)
 
 
 def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None = None,

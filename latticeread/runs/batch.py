@@ -1,13 +1,17 @@
 """Reconstruct a whole data set into one resumable run file.
 
 The main process finds the input files, hashes them, lists the shots (file, hash, frame)
-not yet in the run file, and hands them out to workers: by default a process pool on this
-machine, optionally a Dask cluster (:mod:`latticeread.runs.cluster`) or this process alone.
-Each worker builds the :class:`~latticeread.core.pipeline.Reconstructor` once (the
-factorisation is never rebuilt per frame) and receives only the file path and frame index,
-never the pixels. Results come back as :class:`~latticeread.io.run_file.ShotRecord` and
-are written by the main process alone, in input order, one shot at a time (so the run file
-of a run is the same whatever ran the shots, and a kill loses nothing already written).
+not yet in the run file, and hands them out to an executor of
+:mod:`latticeread.analysis.executor`: by default a process pool on this machine, optionally
+a Dask cluster or this process alone. Each worker builds the
+:class:`~latticeread.analysis.service.FrameAnalyser` once (the factorisation is never rebuilt
+per frame) and receives only the file path and frame index, never the pixels. Results come
+back as :class:`~latticeread.io.run_file.ShotRecord` and are written by the main process
+alone, in input order (so the run file of a run is the same whatever ran the shots, and a
+kill loses nothing already written). With the pooled threshold policy (a calibration
+without a fixed threshold) the shots of a file are classified together, against the
+threshold of their pooled histogram, when the last of them is back
+(:func:`latticeread.analysis.service.classify_records`), and then written.
 
 A shot that fails (corrupt file, no lattice, wrong frame size) is recorded in the run
 file's failures table with its reason and the run goes on. Running the same command again
@@ -17,30 +21,43 @@ unchanged, so they would fail again; ``retry_failed=True`` tries them anyway).
 
 from __future__ import annotations
 
-import contextlib
 import dataclasses
 import glob
-import hashlib
 import logging
-import multiprocessing
 import os
 import re
-import signal
 import sys
 import time
-from collections import OrderedDict, deque
-from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wait
-from concurrent.futures.process import BrokenProcessPool
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
+from latticeread.analysis.executor import (  # noqa: F401 - names kept for callers of this module
+    PoolExecutor,
+    SerialExecutor,
+    calibration_digest,
+    make_executor,
+    worker_analyser,
+)
+from latticeread.analysis.service import (  # noqa: F401 - names kept for callers of this module
+    FrameAnalyser,
+    ShotFailure,
+    classify_records,
+    close_stack,
+    hash_file,
+    open_stack,
+    shot_record,
+)
 from latticeread.core.calibration import Calibration
-from latticeread.errors import CalibrationError, ExportError, FrameFileError, LatticeReadError, ReconstructionError
-from latticeread.io.calibration_file import calibration_from_json, calibration_to_json, load_calibration
+from latticeread.errors import ExportError, FrameFileError
+from latticeread.io.calibration_file import calibration_to_json, load_calibration
 from latticeread.io.run_file import RunWriter, ShotKey, ShotRecord, describe_keys, read_run
-from latticeread.runs.stopping import POLL_SECONDS, die_with_parent, interrupt_guard, raise_if_interrupted
+from latticeread.runs.stopping import interrupt_guard, raise_if_interrupted
+
+#: Earlier names of the executor layer's parts.
+ShotReconstructor, SerialRunner, PoolRunner, worker_reconstructor = (FrameAnalyser, SerialExecutor, PoolExecutor,
+                                                                     worker_analyser)
 
 __all__ = [
     "FRAME_SUFFIXES",
@@ -61,7 +78,6 @@ log = logging.getLogger(__name__)
 #: File name endings recognised as frame files when a folder or glob pattern is given.
 FRAME_SUFFIXES = (".tif", ".tiff", ".h5", ".hdf5", ".npy", ".npz")
 _GLOB_CHARS = re.compile(r"[*?\[]")
-_BLAS_ENV = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
 
 
 # --- input files ---------------------------------------------------------------------------
@@ -123,34 +139,7 @@ def find_input_files(inputs, *, exclude=()) -> list[Path]:
     return unique
 
 
-def hash_file(path, *, block_size: int = 1 << 20) -> str:
-    """Hex BLAKE2b-128 digest of a file's bytes (32 characters): the identity of its content."""
-    digest = hashlib.blake2b(digest_size=16)
-    with open(path, "rb") as fh:
-        while chunk := fh.read(block_size):
-            digest.update(chunk)
-    return digest.hexdigest()
-
-
 # --- planning ------------------------------------------------------------------------------
-
-@dataclass(frozen=True)
-class ShotFailure:
-    """A shot (or a whole file, ``key.frame_index == -1``) that could not be reconstructed.
-
-    Attributes
-    ----------
-    key : ShotKey
-    error : str
-        Exception class name (``FrameFileError``, ``LatticeNotFound``...).
-    reason : str
-        The message, written for a physicist.
-    """
-
-    key: ShotKey
-    error: str
-    reason: str
-
 
 @dataclass(frozen=True)
 class ShotPlan:
@@ -178,47 +167,10 @@ class ShotPlan:
 
 
 def _open_stack(path):
-    from latticeread.io.frames import load_frames  # imported late: heavy readers
-
-    return load_frames(path)
+    return open_stack(path)
 
 
-def _close_stack(stack) -> None:
-    close = getattr(stack, "close", None)
-    if callable(close):
-        with contextlib.suppress(Exception):
-            close()
-
-
-def _file_identity(path) -> tuple | None:
-    """(size, modification time in ns, inode, device) of a file; None when it is gone."""
-    try:
-        st = os.stat(path)
-    except OSError:
-        return None
-    return (st.st_size, st.st_mtime_ns, st.st_ino, st.st_dev)
-
-
-def _open_verified(key: ShotKey) -> tuple:
-    """Open ``key.source`` and check that it still holds the content ``key.file_hash`` names.
-
-    Returns ``(stack, identity)``. The file is hashed after opening; an unchanged identity
-    before and after shows that the open handle and the hashed bytes are the same file.
-    """
-    name = Path(key.source).name
-    before = _file_identity(key.source)
-    stack = _open_stack(key.source)
-    try:
-        digest = hash_file(key.source)
-        after = _file_identity(key.source)
-    except OSError as exc:
-        _close_stack(stack)
-        raise FrameFileError(f"{name} cannot be read again: {exc.strerror or exc}") from exc
-    if before != after or digest != key.file_hash:
-        _close_stack(stack)
-        raise FrameFileError(f"{name} changed after it was listed for this run (replaced or still being written); "
-                             "its frames were not taken. Run again to take the new version")
-    return stack, after
+_close_stack = close_stack
 
 
 def _count_frames(path: Path) -> int:
@@ -284,286 +236,6 @@ def plan_shots(files, *, done=frozenset(), failed=frozenset(), retry_failed: boo
             else:
                 tasks.append(key)
     return ShotPlan(tasks, failures, n_files, n_done, n_failed)
-
-
-# --- one shot -------------------------------------------------------------------------------
-
-def shot_record(key: ShotKey, result) -> ShotRecord:
-    """Turn a pipeline ``FrameResult`` into the record stored in the run file.
-
-    Parameters
-    ----------
-    key : ShotKey
-        The shot's file, hash and frame index.
-    result : FrameResult
-        Output of :class:`latticeread.core.pipeline.Reconstructor` for that frame.
-
-    Returns
-    -------
-    ShotRecord
-        Per-site values placed in (rows, cols) matrices: occupation (fill 255), amplitude
-        in photons, posterior, site centres in pixels (fill NaN), flags (fill 0).
-    """
-    sites = result.sites
-    occupation = sites.to_matrix(np.asarray(result.occupied, dtype=np.uint8), fill=255, dtype=np.uint8)
-    amplitude = sites.to_matrix(np.asarray(result.amplitudes, dtype=np.float64), fill=np.nan, dtype=np.float64)
-    p_occ = sites.to_matrix(np.asarray(result.p_occupied, dtype=np.float64), fill=np.nan, dtype=np.float64)
-    x = sites.to_matrix(np.asarray(sites.x, dtype=np.float64), fill=np.nan, dtype=np.float64)
-    y = sites.to_matrix(np.asarray(sites.y, dtype=np.float64), fill=np.nan, dtype=np.float64)
-    flags = getattr(result, "flags", None)
-    flags = np.zeros(len(sites), np.uint8) if flags is None else np.asarray(flags, dtype=np.uint8)
-    flags = sites.to_matrix(flags, fill=0, dtype=np.uint8)
-    geometry = result.geometry
-    threshold = result.threshold
-    if threshold is not None and hasattr(threshold, "threshold"):
-        threshold = threshold.threshold
-    fit = getattr(result, "threshold_result", None)
-    fp = float(getattr(fit, "false_positive_rate", float("nan"))) if fit is not None else float("nan")
-    fn = float(getattr(fit, "false_negative_rate", float("nan"))) if fit is not None else float("nan")
-    warnings: list[str] = []
-    for source in (result, fit, geometry.quality):
-        for w in getattr(source, "warnings", ()) or ():
-            if str(w) not in warnings:
-                warnings.append(str(w))
-    return ShotRecord(
-        key=key, occupation=occupation, amplitude=amplitude, p_occupied=p_occ, x=x, y=y, flags=flags,
-        offset=tuple(geometry.offset), a1=tuple(geometry.a1), a2=tuple(geometry.a2),
-        threshold=float("nan") if threshold is None else float(threshold),
-        peak_to_background=float(geometry.quality.peak_to_background),
-        lattice_residual=float(geometry.quality.residual), warnings=tuple(warnings),
-        false_positive_rate=fp, false_negative_rate=fn, origin=(int(sites.row_min), int(sites.col_min)))
-
-
-class ShotReconstructor:
-    """Reconstruct shots given by (file, hash, frame) keys; one per worker process.
-
-    The :class:`~latticeread.core.pipeline.Reconstructor` (and its factorisation) is built
-    once here; a few recently used files are kept open so the frames of a stack are read
-    without reopening the file. BLAS runs on one thread inside (so results do not depend
-    on where the shot ran; parallelism comes from the worker processes).
-
-    Parameters
-    ----------
-    calibration : Calibration or str
-        The calibration, or its JSON text.
-    keep_open : int
-        Number of input files kept open.
-    """
-
-    def __init__(self, calibration, *, keep_open: int = 2):
-        if isinstance(calibration, str):
-            calibration = calibration_from_json(calibration)
-        from threadpoolctl import ThreadpoolController
-
-        from latticeread.core.pipeline import Reconstructor
-
-        self.calibration: Calibration = calibration
-        # One BLAS thread: the thread count changes amplitudes in the last bits, and every
-        # run (this process, a pool worker, a Dask worker) must give identical results.
-        self._blas = ThreadpoolController()
-        with self._blas.limit(limits=1, user_api="blas"):
-            self._reconstructor = Reconstructor(calibration)
-        self._stacks: OrderedDict = OrderedDict()
-        self._keep_open = max(1, int(keep_open))
-
-    def _stack(self, key: ShotKey):
-        """The open stack of ``key``'s file, holding exactly the content ``key.file_hash`` names.
-
-        Open stacks are cached by (path, content hash) and remembered with the file's size,
-        modification time and inode: a file replaced or rewritten under the same name is a
-        new input, opened (and checked against its hash) again, never read from a stale
-        handle.
-        """
-        cache_key = (key.source, key.file_hash)
-        entry = self._stacks.pop(cache_key, None)
-        if entry is not None and entry[1] != _file_identity(key.source):
-            _close_stack(entry[0])
-            entry = None
-        if entry is None:
-            entry = _open_verified(key)
-        self._stacks[cache_key] = entry
-        while len(self._stacks) > self._keep_open:
-            _close_stack(self._stacks.popitem(last=False)[1][0])
-        return entry[0]
-
-    def __call__(self, key: ShotKey) -> ShotRecord | ShotFailure:
-        """Reconstruct one shot; every exception becomes a :class:`ShotFailure`."""
-        name = Path(key.source).name
-        try:
-            stack = self._stack(key)
-            # the declared frame size, before a pixel is decoded
-            self.calibration.check_frame_shape(tuple(stack.frame_shape), where=f"the frames of {name}")
-            seen = len(getattr(stack, "warnings", ()))
-            image = stack[key.frame_index]
-            load_warnings = tuple(getattr(stack, "warnings", ())[seen:])  # constant frame, saturation...
-            if np.ndim(image) != 2:
-                raise ReconstructionError(f"frame {key.frame_index} of {name} has {np.ndim(image)} dimensions; "
-                                          "a frame must be a 2-D image")
-            self.calibration.check_frame_shape(np.shape(image), where=f"frame {key.frame_index} of {name}")
-            with self._blas.limit(limits=1, user_api="blas"):
-                result = self._reconstructor(image, frame_index=key.frame_index)
-            record = shot_record(key, result)
-            if load_warnings:
-                record = dataclasses.replace(record, warnings=tuple(dict.fromkeys((*load_warnings, *record.warnings))))
-            return record
-        except LatticeReadError as exc:
-            self._forget(key)
-            return ShotFailure(key, type(exc).__name__, str(exc))
-        except Exception as exc:  # noqa: BLE001 - a bug on one shot must not stop thousands
-            self._forget(key)
-            log.warning("unexpected error on frame %d of %s", key.frame_index, key.source, exc_info=True)
-            return ShotFailure(key, type(exc).__name__, f"internal error on frame {key.frame_index} of {name}: "
-                                                        f"{type(exc).__name__}: {exc}")
-
-    def _forget(self, key: ShotKey) -> None:
-        entry = self._stacks.pop((key.source, key.file_hash), None)
-        if entry is not None:
-            _close_stack(entry[0])
-
-    def close(self) -> None:
-        while self._stacks:
-            _close_stack(self._stacks.popitem()[1][0])
-
-
-def calibration_digest(calibration_json: str) -> str:
-    """Short hex digest identifying a calibration text (worker caches are keyed by it)."""
-    return hashlib.blake2b(calibration_json.encode("utf-8"), digest_size=16).hexdigest()
-
-
-# Per-process cache of worker reconstructors. It is only filled inside worker processes
-# (pool initializer, Dask tasks): building the factorisation once per process is the point.
-_WORKER_CACHE: dict[str, ShotReconstructor] = {}
-_WORKER_INIT_ERROR: dict[str, str] = {}
-
-
-def worker_reconstructor(calibration_json: str | None, digest: str) -> ShotReconstructor:
-    """The worker process's reconstructor for a calibration, built on first use.
-
-    Raises
-    ------
-    CalibrationError
-        The reconstructor cannot be built from this calibration (the same message in every
-        worker; the run stops instead of failing every shot).
-    """
-    rec = _WORKER_CACHE.get(digest)
-    if rec is None:
-        if digest in _WORKER_INIT_ERROR:
-            raise CalibrationError(_WORKER_INIT_ERROR[digest])
-        if calibration_json is None:
-            raise ReconstructionError("this worker process was started without a calibration")
-        for old in _WORKER_CACHE.values():
-            old.close()
-        _WORKER_CACHE.clear()
-        try:
-            rec = _WORKER_CACHE[digest] = ShotReconstructor(calibration_json)
-        except Exception as exc:  # noqa: BLE001 - reported to the main process by every task
-            _WORKER_INIT_ERROR[digest] = f"the calibration cannot be used for reconstruction: {exc}"
-            raise CalibrationError(_WORKER_INIT_ERROR[digest]) from exc
-    return rec
-
-
-def _init_pool_worker(calibration_json: str, digest: str) -> None:
-    # Ctrl-C in the terminal reaches the whole process group; the main process alone
-    # handles it (cancels pending shots, waits for running ones, closes the run file).
-    signal.signal(signal.SIGINT, signal.SIG_IGN)
-    # A worker never outlives the run, even when the run is killed with SIGKILL.
-    die_with_parent()
-    try:
-        worker_reconstructor(calibration_json, digest)
-    except CalibrationError:
-        pass  # remembered; every task raises it so the main process stops with the reason
-
-
-def _pool_task(digest: str, key: ShotKey) -> ShotRecord | ShotFailure:
-    return worker_reconstructor(None, digest)(key)
-
-
-# --- executors -------------------------------------------------------------------------------
-
-class SerialRunner:
-    """Reconstruct the shots in this process, one after the other."""
-
-    description = "this process"
-
-    def __init__(self, calibration_json: str):
-        self._rec = ShotReconstructor(calibration_json)
-        self._queue: deque = deque()
-        self.n_workers = 1
-
-    def submit(self, index: int, key: ShotKey) -> None:
-        self._queue.append((index, key))
-
-    def next_done(self):
-        raise_if_interrupted()
-        index, key = self._queue.popleft()
-        return index, self._rec(key)
-
-    def close(self, *, cancel: bool = False) -> None:
-        self._queue.clear()
-        self._rec.close()
-
-
-@contextlib.contextmanager
-def _single_thread_blas():
-    """Worker processes get one BLAS thread each (N workers on N cores; same arithmetic as Dask)."""
-    saved = {k: os.environ.get(k) for k in _BLAS_ENV}
-    os.environ.update({k: "1" for k in _BLAS_ENV})
-    try:
-        yield
-    finally:
-        for k, v in saved.items():
-            if v is None:
-                os.environ.pop(k, None)
-            else:
-                os.environ[k] = v
-
-
-class PoolRunner:
-    """Reconstruct the shots in a pool of worker processes on this machine.
-
-    Each worker builds its reconstructor once, in the pool initializer, and then receives
-    only (file, hash, frame) keys.
-    """
-
-    def __init__(self, calibration_json: str, *, workers: int):
-        self.n_workers = int(workers)
-        self.description = f"{self.n_workers} worker processes"
-        digest = calibration_digest(calibration_json)
-        methods = multiprocessing.get_all_start_methods()
-        ctx = multiprocessing.get_context("forkserver" if "forkserver" in methods else "spawn")
-        with _single_thread_blas():
-            if ctx.get_start_method() == "forkserver":
-                ctx.set_forkserver_preload(["latticeread.runs.forkserver_child", "latticeread.runs.batch"])
-                from multiprocessing import forkserver
-
-                forkserver.ensure_running()
-            self._pool = ProcessPoolExecutor(max_workers=self.n_workers, mp_context=ctx,
-                                             initializer=_init_pool_worker, initargs=(calibration_json, digest))
-        self._digest = digest
-        self._futures: dict[Future, int] = {}
-        self._ready: deque = deque()
-
-    def submit(self, index: int, key: ShotKey) -> None:
-        with _single_thread_blas():  # spawn platforms start workers lazily
-            future = self._pool.submit(_pool_task, self._digest, key)
-        self._futures[future] = (index, key)
-
-    def next_done(self):
-        while not self._ready:
-            raise_if_interrupted()
-            done, _ = wait(list(self._futures), timeout=POLL_SECONDS, return_when=FIRST_COMPLETED)
-            for future in done:
-                self._ready.append((future, *self._futures.pop(future)))
-        future, index, key = self._ready.popleft()
-        try:
-            return index, future.result()
-        except BrokenProcessPool as exc:
-            raise ReconstructionError(
-                "a worker process died (out of memory, or a crash in a file reader); every shot written so far "
-                "is kept: run the same command again to continue") from exc
-
-    def close(self, *, cancel: bool = False) -> None:
-        self._pool.shutdown(wait=True, cancel_futures=cancel)
 
 
 # --- summary ---------------------------------------------------------------------------------
@@ -858,12 +530,12 @@ def run_batch(inputs, *, calibration, out, workers: int | None = None, scheduler
             log.warning("%s", _describe_failure(failure))
         description = "nothing to do"
         if plan.tasks:
-            runner = _make_runner(cal_json, workers=workers, scheduler=scheduler)
+            runner = make_executor(cal_json, workers=workers, scheduler=scheduler)
             description = runner.description
             try:
                 with interrupt_guard():
                     _drive(runner, plan.tasks, writer, counts, examples, progress=progress,
-                           window=window or _default_window(runner))
+                           window=window or _default_window(runner), calibration=cal)
             finally:
                 runner.close(cancel=True)
     return summarize_run(out, cal, counts=counts, seconds=time.perf_counter() - t_start, workers=description,
@@ -874,19 +546,6 @@ def run_batch(inputs, *, calibration, out, workers: int | None = None, scheduler
 def _default_window(runner) -> int:
     """Shots in flight: about three tasks per worker, at least 48 so that blocks of 32 fill."""
     return max(48, 3 * runner.n_workers * getattr(runner, "shots_per_task", 1))
-
-
-def _make_runner(cal_json: str, *, workers: int | None, scheduler: str | None):
-    if scheduler:
-        from latticeread.runs.cluster import DaskRunner
-
-        return DaskRunner(cal_json, scheduler=scheduler)
-    n = (os.cpu_count() or 1) if workers is None else int(workers)
-    if n < 0:
-        raise ValueError(f"--workers must be 0 (this process) or a positive number, got {n}")
-    if n == 0:
-        return SerialRunner(cal_json)
-    return PoolRunner(cal_json, workers=n)
 
 
 class _BlockWriter:
@@ -923,8 +582,33 @@ class _BlockWriter:
         self._last = time.monotonic()
 
 
+class _FileClassifier:
+    """Hold the shots of one input file until the last is back, then classify them together.
+
+    Used with the pooled threshold policy: the threshold of a file comes from the histogram
+    of all its shots (:func:`latticeread.analysis.service.classify_records`), as in the
+    window and ``reconstruct``. Shots arrive in input order, so a file is complete when a
+    shot of another file arrives, or at the end.
+    """
+
+    def __init__(self, out: _BlockWriter, calibration: Calibration):
+        self.out, self.calibration = out, calibration
+        self._held: list = []
+
+    def add(self, outcome) -> None:
+        if self._held and outcome.key.source != self._held[0].key.source:
+            self.flush()
+        self._held.append(outcome)
+
+    def flush(self) -> None:
+        held, self._held = self._held, []
+        for outcome in classify_records(held, self.calibration):
+            self.out.add(outcome)
+        self.out.flush()
+
+
 def _drive(runner, tasks: list, writer: RunWriter, counts: dict, examples: list, *, progress: bool,
-           window: int, block_size: int = 32) -> None:
+           window: int, block_size: int = 32, calibration: Calibration | None = None) -> None:
     """Submit shots (at most ``window`` unwritten at once) and write them in input order.
 
     Raises
@@ -936,6 +620,8 @@ def _drive(runner, tasks: list, writer: RunWriter, counts: dict, examples: list,
     buffered: dict[int, object] = {}
     next_submit = next_write = 0
     out = _BlockWriter(writer, counts, examples, block_size=block_size)
+    if calibration is not None and calibration.threshold_policy.kind == "pooled":
+        out = _FileClassifier(out, calibration)
     bar = _progress_bar(len(tasks), progress, "reconstructing")
     try:
         while next_write < len(tasks):

@@ -31,8 +31,9 @@ from pathlib import Path
 
 import numpy as np
 
-from latticeread.io.calibration_file import calibration_to_json
+from latticeread.analysis.service import classify_records
 from latticeread.errors import ExportError
+from latticeread.io.calibration_file import calibration_to_json
 from latticeread.io.run_file import RunWriter, ShotKey, describe_keys
 from latticeread.runs.stopping import interrupt_guard, raise_if_interrupted
 from latticeread.runs.batch import (
@@ -368,11 +369,12 @@ class LiveRun:
         plan = plan_shots([event.path], done=writer.done, failed=writer.failed, retry_failed=self.retry_failed)
         self.counts["skipped_done"] += plan.n_done_before
         self.counts["skipped_failed"] += plan.n_failed_before
-        outcomes = list(plan.failures)
+        shots = []
         for key in plan.tasks:
             raise_if_interrupted()
-            outcomes.append(self._reconstruct(key))
-        return outcomes
+            shots.append(self._reconstruct(key))
+        # the shots of one file are classified together (pooled threshold policy)
+        return list(plan.failures) + classify_records(shots, self.calibration)
 
     def step(self, *, on_shot=None, max_files: int | None = None) -> list:
         """Poll the folder once and handle the files that became complete.

@@ -1,0 +1,136 @@
+"""One analysis path: the same stack gives the same occupation matrices in every front end.
+
+A small stack (four 128x128 frames from the project's forward model, one NaN pixel under
+the lattice) with a calibration that has no fixed threshold (the default policy: one
+threshold from the pooled histogram of the stack) goes through the window's session (in
+this thread and in worker processes), ``latticeread reconstruct``, ``batch`` (process pool
+and a Dask LocalCluster) and ``watch``. Every route must give bit-identical occupation
+matrices, the same threshold, and flag the site under the NaN pixel instead of failing the
+frame. Equality is the check (common practice, no source): any second implementation of a
+policy shows up as a difference.
+"""
+
+from __future__ import annotations
+
+import h5py
+import numpy as np
+import pytest
+import tifffile
+
+from latticeread.core import flags as site_flags
+from latticeread.core.calibration import Calibration
+from latticeread.core.camera import CameraModel
+from latticeread.core.geometry import LatticeGeometry
+from latticeread.core.psf import gaussian_psf
+from latticeread.io.calibration_file import load_calibration, save_calibration
+
+GEOMETRY = LatticeGeometry(a1=(0.3, 4.0), a2=(4.0, -0.3), offset=(64.2, 63.7))
+PSF = gaussian_psf(fwhm=3.0)
+CAMERA = CameraModel(kind="scmos", counts_per_electron=0.5, bias=100.0, read_noise=1.0, quantum_efficiency=0.8)
+SHAPE = (128, 128)
+NAN_PIXEL = (1, 64, 64)  # frame, row, col: the middle of the cloud
+
+
+@pytest.fixture(scope="module")
+def data(tmp_path_factory):
+    from latticeread.core.simulate import simulate_frames
+
+    root = tmp_path_factory.mktemp("equivalence")
+    frames, _ = simulate_frames(geometry=GEOMETRY, frame_shape=SHAPE, psf=PSF, camera=CAMERA, region=("disk", 10),
+                                filling=0.4, photons_per_atom=800.0, n_shots=2, images_per_shot=2,
+                                loss_probability=0.02, rng=5)
+    frames = frames.astype(np.float32)
+    frames[NAN_PIXEL] = np.nan
+    (root / "camera").mkdir()
+    stack = root / "camera" / "stack.tif"
+    tifffile.imwrite(stack, frames, photometric="minisblack")
+    cal_path = root / "cal.json"
+    save_calibration(cal_path, Calibration(geometry=GEOMETRY, psf=PSF, camera=CAMERA, frame_shape=SHAPE))
+    assert load_calibration(cal_path).threshold_policy.kind == "pooled"  # no fixed threshold
+    return root, stack, cal_path
+
+
+def _session(stack, cal_path, processes: int):
+    from latticeread.session import Session
+
+    s = Session()
+    s.open_frames(stack)
+    s.set_calibration(load_calibration(cal_path), record=False)
+    for batch in s.reconstruct_job(batch_size=1, processes=processes)():
+        s.store_batch(batch)
+    s.finish_reconstruction()
+    flags = s._sites.to_matrix(s._flags[NAN_PIXEL[0]], fill=0, dtype=np.uint8)
+    return s.occupation_stack(), s.threshold, flags
+
+
+def _reconstruct(root, stack, cal_path):
+    from latticeread.cli import main
+
+    out = root / "sites.h5"
+    assert main(["reconstruct", str(stack), "-c", str(cal_path), "-o", str(out), "--quiet", "--force"]) == 0
+    with h5py.File(out, "r") as h5:
+        occ = h5["occupation"][()]
+        flags = h5["flags"][NAN_PIXEL[0]]
+    return occ, None, flags
+
+
+def _run_file(path):
+    from latticeread.io.run_file import read_run
+
+    run = read_run(path)
+    assert len(run.failures) == 0, "a frame failed instead of flagging its NaN pixel"
+    assert [int(i) for i in run.frame_index] == [0, 1, 2, 3]
+    thresholds = np.unique(run.threshold)
+    assert thresholds.size == 1  # one pooled threshold for the stack
+    return run.occupation, float(thresholds[0]), run.flags[NAN_PIXEL[0]]
+
+
+def _batch(root, stack, cal_path, scheduler=None):
+    from latticeread.runs.batch import run_batch
+
+    out = root / f"batch_{scheduler or 'pool'}.h5"
+    run_batch([stack], calibration=cal_path, out=out, workers=2, scheduler=scheduler, progress=False)
+    return _run_file(out)
+
+
+def _watch(root, stack, cal_path):
+    from latticeread.runs.watch import watch_folder
+
+    out = root / "live.h5"
+    watch_folder(stack.parent, calibration=cal_path, out=out, max_files=1, interval=0.05, timeout=60)
+    return _run_file(out)
+
+
+@pytest.fixture(scope="module")
+def reference(data):
+    root, stack, cal_path = data
+    return _session(stack, cal_path, processes=0)
+
+
+ROUTES = {
+    "session in worker processes": lambda root, stack, cal: _session(stack, cal, processes=2),
+    "reconstruct": _reconstruct,
+    "batch, process pool": _batch,
+    "batch, Dask LocalCluster": lambda root, stack, cal: _batch(root, stack, cal, scheduler="local"),
+    "watch": _watch,
+}
+
+
+def test_the_session_flags_the_nan_pixel_and_pools_one_threshold(reference):
+    occupation, threshold, flags = reference
+    assert occupation.shape[0] == 4 and np.isfinite(threshold)
+    assert (occupation == 1).sum() > 50  # atoms were found
+    assert np.any(flags & site_flags.NONFINITE)  # the site under the NaN pixel is flagged, the frame kept
+
+
+@pytest.mark.parametrize("route", list(ROUTES))
+def test_every_front_end_gives_the_same_occupation_matrices(data, reference, route):
+    if route == "batch, Dask LocalCluster":
+        pytest.importorskip("distributed")
+    root, stack, cal_path = data
+    occupation, threshold, flags = ROUTES[route](root, stack, cal_path)
+    ref_occ, ref_threshold, ref_flags = reference
+    np.testing.assert_array_equal(occupation, ref_occ)
+    np.testing.assert_array_equal(flags, ref_flags)
+    if threshold is not None:
+        assert threshold == ref_threshold
