@@ -399,7 +399,9 @@ class Session:
         self.classification_changed.emit()
         self._set_modified(True)
         name = Path(source).name if source else "memory"
-        self.message.emit(f"loaded {len(frames)} frame(s) of {shape[0]}x{shape[1]} pixels from {name}")
+        note = self._nonfinite_note(0)
+        self.message.emit(f"loaded {len(frames)} frame(s) of {shape[0]}x{shape[1]} pixels from {name}"
+                          + (f"; {note}" if note else ""))
 
     # ------------------------------------------------------------------ index
     @property
@@ -414,6 +416,25 @@ class Session:
         if index != self._index:
             self._index = index
             self.index_changed.emit(index)
+            note = self._nonfinite_note(index)
+            if note:
+                self.message.emit(note)
+
+    def _nonfinite_note(self, index: int) -> str:
+        """What the user must know about NaN/inf pixels of frame ``index`` (empty when it has none)."""
+        try:
+            frame = self.frame(index)
+        except LatticeReadError:
+            return ""
+        if frame.dtype.kind != "f":
+            return ""
+        n_bad = int(frame.size - np.count_nonzero(np.isfinite(frame)))
+        if not n_bad:
+            return ""
+        if n_bad == frame.size:
+            return f"frame {index} has no finite pixel (all {n_bad} are non-finite pixels): it cannot be analysed"
+        return (f"frame {index} has {n_bad} non-finite pixel(s): they are left out of the fit and the sites on them "
+                "are flagged (flag 8)")
 
     # ------------------------------------------------------------------ settings
     @property
@@ -532,6 +553,9 @@ class Session:
                 self._threshold_result = None
                 self._refresh_threshold_result()
             self._reclassify()
+        if new is not None and new.threshold is None and new.threshold_scope == "per_frame":
+            self.message.emit("this calibration asks for a threshold per frame; the window pools all frames of the "
+                              "stack (fix a threshold on the histogram to get the same result everywhere)")
         self.calibration_changed.emit(new)
         self._set_modified(True)
 
@@ -1124,12 +1148,12 @@ class Session:
         n = min(self.n_frames, int(self._settings["geometry_frames"]))
         frame = self._frame_reader()
         kwargs = self._constraint_kwargs(constraints or {})
+        camera = self.camera_model()
 
         def job(should_stop: Callable[[], bool] = lambda: False):
-            from latticeread.core.lattice import estimate_lattice
-
+            # the routine of calibrate: summed stack and single frames, the clearest peaks win
             stack = np.stack([frame(i).astype(float) for i in range(n)])
-            return estimate_lattice(stack, **kwargs)
+            return _pipeline().estimate_geometry(stack, camera=camera, **kwargs)
 
         return job
 

@@ -51,6 +51,7 @@ from latticeread.core.psf import PSFModel
 from latticeread.errors import CalibrationError, FrameError, LatticeNotFound, ReconstructionError
 
 __all__ = ["FrameResult", "Reconstructor", "calibrate", "reconstruct_stack", "reclassify", "pooled_threshold",
+           "estimate_geometry",
            "with_camera_weighting", "uncertain", "frame_iter", "NONLINEAR_BELOW", "UNCERTAIN_RANGE"]
 
 log = logging.getLogger(__name__)
@@ -959,13 +960,54 @@ def lattice_constraint_kwargs(prior: dict | None, *, angle_between: float = np.p
     return kwargs
 
 
+def estimate_geometry(frames, *, camera: CameraModel | None = None, **constraints) -> LatticeGeometry:
+    """Lattice geometry of a stack: the one routine of ``calibrate`` and the window.
+
+    The frames are converted to photons (non-finite pixels replaced by the median), the
+    lattice is estimated from the summed stack and from four single frames spread over it,
+    and the clearest Fourier peaks win (:func:`_estimate_geometry`); the vectors come back in
+    the canonical basis (:func:`latticeread.core.lattice.canonical_basis`), so a site has the
+    same ``(row, col)`` however the lattice was found.
+
+    Parameters
+    ----------
+    frames : (n, H, W) or (H, W) ndarray
+        Raw camera frames in counts.
+    camera : CameraModel, optional
+        Counts-to-photons conversion (default: 1 count = 1 photon).
+    **constraints
+        ``fixed_spacing`` / ``fixed_angle`` of :func:`latticeread.core.lattice.estimate_lattice`
+        (from :func:`lattice_constraint_kwargs`).
+
+    Returns
+    -------
+    LatticeGeometry
+
+    Raises
+    ------
+    LatticeNotFound
+        Neither the summed stack nor a single frame shows a lattice.
+    """
+    from latticeread.core.lattice import canonical_geometry, estimate_lattice
+
+    stack = np.asarray(frames, dtype=float)
+    if stack.ndim == 2:
+        stack = stack[None]
+    if stack.ndim != 3 or len(stack) == 0:
+        raise FrameError(f"expected a frame (H, W) or a stack (n, H, W), got shape {stack.shape}")
+    photons = (camera or CameraModel()).counts_to_photons(stack)
+    finite = np.isfinite(photons)
+    clean = photons if finite.all() else np.where(finite, photons, np.nanmedian(photons))
+    return canonical_geometry(_estimate_geometry(clean, lambda image: estimate_lattice(image, **constraints)))
+
+
 def _geometry_from_frames(clean, *, psf, prior, n_fit, notes) -> LatticeGeometry:
-    """The Fourier estimate (with the prior's fixed values), or a model fit from the prior."""
-    from latticeread.core.lattice import estimate_lattice
+    """The Fourier estimate (with the prior's fixed values), or a model fit from the prior; canonical basis."""
+    from latticeread.core.lattice import canonical_geometry, estimate_lattice
 
     kwargs = lattice_constraint_kwargs(prior)
     try:
-        return _estimate_geometry(clean, lambda image: estimate_lattice(image, **kwargs))
+        return canonical_geometry(_estimate_geometry(clean, lambda image: estimate_lattice(image, **kwargs)))
     except LatticeNotFound as exc:
         if kwargs.get("fixed_spacing") is None or "fixed_angle" not in kwargs:
             raise LatticeNotFound(f"{exc}. Below about one PSF FWHM the lattice's Fourier peaks vanish: give the "
@@ -977,8 +1019,10 @@ def _geometry_from_frames(clean, *, psf, prior, n_fit, notes) -> LatticeGeometry
 
     a1_dir, a2_dir = kwargs["fixed_angle"]
     k = max(1, min(int(n_fit), len(clean)))
-    geometry = lattice_from_prior(clean[:k], psf=psf, spacing=kwargs["fixed_spacing"], angle=a2_dir,
-                                  angle_between=a1_dir - a2_dir)
+    # the prior names a1 along the lab's angle; the result is put in the canonical basis like
+    # every other route, so the same site gets the same (row, col) however it was calibrated
+    geometry = canonical_geometry(lattice_from_prior(clean[:k], psf=psf, spacing=kwargs["fixed_spacing"],
+                                                     angle=a2_dir, angle_between=a1_dir - a2_dir))
     notes["geometry_from_prior"] = {"prior": dict(prior), "n_frames": k,
                                     "spacing_sigma": float(geometry.quality.spacing_sigma),
                                     "sigma_px": float(geometry.quality.residual)}
@@ -1006,7 +1050,9 @@ def _refine_vectors(clean, geometry, *, psf, n_fit, notes, warnings: list) -> La
     notes["vectors_model_fit"] = {"before": [list(geometry.a1), list(geometry.a2)], "n_frames": k,
                                   "sigma_px": float(fitted.quality.residual),
                                   "spacing_sigma": float(fitted.quality.spacing_sigma)}
-    return fitted
+    from latticeread.core.lattice import canonical_geometry
+
+    return canonical_geometry(fitted)
 
 
 def _estimate_geometry(stack, estimate_lattice) -> LatticeGeometry:
