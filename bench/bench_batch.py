@@ -17,6 +17,8 @@ Usage::
     .venv/bin/python bench/bench_batch.py                 # 1,000 frames, pool and Dask
     .venv/bin/python bench/bench_batch.py --frames 200    # quicker
     .venv/bin/python bench/bench_batch.py --data /tmp/lr_bench_frames   # reuse the frames
+    .venv/bin/python bench/bench_batch.py --frames 200 --modes 2,2:pooled   # also without a fixed
+        # threshold: the pooled policy, each file's shots classified together in the main process
 """
 
 from __future__ import annotations
@@ -125,17 +127,24 @@ def one_run(data: Path, n_frames: int, mode: str, out: Path) -> dict:
     from latticeread.runs.batch import run_batch
 
     files = sorted(data.glob("shot_*.tif"))[:n_frames]
+    calibration = data / "cal.json"
+    if mode.endswith(":pooled"):  # the calibration without its fixed threshold: pooled policy
+        from latticeread.io.calibration_file import load_calibration, save_calibration
+
+        mode = mode.split(":")[0]
+        calibration = data / "cal_pooled.json"
+        save_calibration(calibration, load_calibration(data / "cal.json").replace(threshold=None))
     sampler = _Sampler()
     sampler.start()
     t0 = time.perf_counter()
     kwargs = {"scheduler": "local", "workers": 2} if mode == "dask" else {"workers": int(mode)}
-    summary = run_batch(files, calibration=data / "cal.json", out=out, progress=False, **kwargs)
+    summary = run_batch(files, calibration=calibration, out=out, progress=False, **kwargs)
     wall = time.perf_counter() - t0
     sampler.stop()
     self_kib = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
     child_kib = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
     return {
-        "mode": mode, "frames": summary.n_new, "failed": summary.n_failed, "wall_s": wall,
+        "mode": mode + (" pooled" if calibration.name == "cal_pooled.json" else ""), "frames": summary.n_new, "failed": summary.n_failed, "wall_s": wall,
         "frames_per_s": summary.n_new / wall, "main_peak_MiB": self_kib / 1024,
         "largest_child_peak_MiB": child_kib / 1024, "tree_peak_MiB": sampler.peak_kib / 1024,
         "mean_filling": summary.mean_filling, "workers": summary.workers,
@@ -173,7 +182,8 @@ def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--frames", type=int, default=1000)
     parser.add_argument("--data", type=Path, default=Path(tempfile.gettempdir()) / "latticeread_bench_frames")
-    parser.add_argument("--modes", default="2,dask", help="comma list of worker counts and/or 'dask'")
+    parser.add_argument("--modes", default="2,dask", help="comma list of worker counts and/or 'dask'; "
+                        "append ':pooled' to run without the fixed threshold (e.g. 2:pooled)")
     parser.add_argument("--flat", type=int, default=200, help="also run the pool on this many frames (memory)")
     parser.add_argument("--one-run", nargs=3, metavar=("N", "MODE", "OUT"), help=argparse.SUPPRESS)
     args = parser.parse_args()
@@ -202,7 +212,8 @@ def main() -> int:
                 return 1
             r = json.loads(proc.stdout.strip().splitlines()[-1])
             results.append(r)
-            print(f"{r['frames']:5d} frames  {r['workers']:<42s} {r['wall_s']:7.1f} s  "
+            who = r["workers"] + (", pooled threshold" if "pooled" in r["mode"] else "")
+            print(f"{r['frames']:5d} frames  {who:<42s} {r['wall_s']:7.1f} s  "
                   f"{r['frames_per_s']:6.1f} frames/s  peak: main {r['main_peak_MiB']:.0f} MiB, largest child "
                   f"{r['largest_child_peak_MiB']:.0f} MiB, all processes together {r['tree_peak_MiB']:.0f} MiB; "
                   f"run file {r['run_file_MiB']:.1f} MiB; filling {r['mean_filling']:.3f}", flush=True)
