@@ -134,3 +134,60 @@ def test_every_front_end_gives_the_same_occupation_matrices(data, reference, rou
     np.testing.assert_array_equal(flags, ref_flags)
     if threshold is not None:
         assert threshold == ref_threshold
+
+
+# --- fidelity: the same report from every route (core.fidelity.fidelity_from_frames) -----------
+
+N_BOOT = 20
+
+
+def _report_text(report) -> str:
+    import json
+
+    return json.dumps(report.to_dict() if hasattr(report, "to_dict") else report, sort_keys=True, default=str)
+
+
+def _fidelity_from_session(root, stack, cal_path):
+    from latticeread.session import Session
+
+    s = Session()
+    s.open_frames(stack)
+    s.update_settings(images_per_shot=2, bootstrap_resamples=N_BOOT)
+    s.set_calibration(load_calibration(cal_path), record=False)
+    s.reconstruct()
+    s.finish_reconstruction()
+    s.compute_fidelity()
+    return s.fidelity.to_dict()
+
+
+def _fidelity_from_batch(root, stack, cal_path):
+    from latticeread.runs.batch import run_batch
+
+    summary = run_batch([stack], calibration=cal_path, out=root / "batch_fidelity.h5", workers=0, progress=False,
+                        images_per_shot=2, fidelity_bootstrap=N_BOOT)
+    return summary.fidelity.to_dict()
+
+
+def _fidelity_command(root, source, cal_path, name):
+    import json
+
+    from latticeread.cli import main
+
+    out = root / f"{name}.json"
+    args = ["fidelity", str(source), "--images-per-shot", "2", "--bootstrap", str(N_BOOT), "--seed", "0",
+            "-c", str(cal_path), "-o", str(out), "--force", "--quiet"]
+    assert main(args) == 0
+    data = json.loads(out.read_text())
+    data.pop("inputs"), data.pop("calibration_file")
+    return data
+
+
+def test_every_route_gives_the_same_fidelity_report(data):
+    root, stack, cal_path = data
+    session = _fidelity_from_session(root, stack, cal_path)
+    routes = {"batch": _fidelity_from_batch(root, stack, cal_path),
+              "fidelity command on the frames": _fidelity_command(root, stack, cal_path, "frames")}
+    routes["fidelity command on the batch run file"] = _fidelity_command(root, root / "batch_fidelity.h5", cal_path,
+                                                                         "run")
+    for name, report in routes.items():
+        assert _report_text(report) == _report_text(session), f"{name} differs from the window"
