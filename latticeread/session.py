@@ -1213,7 +1213,7 @@ class Session:
         camera = self.camera_model()
 
         def job(should_stop: Callable[[], bool] = lambda: False):
-            stack = np.stack([frame(i) for i in range(n)])
+            stack = _frames_for_calibration(frame, n, self._source_name())
             # what the frames cannot tell (pixel size, optics) is kept from the loaded calibration
             pixel_size = settings["pixel_size_nm"] or (old.pixel_size_nm if old is not None else None)
             kwargs: dict[str, Any] = {"pixel_size_nm": pixel_size, "camera": camera}
@@ -1520,6 +1520,29 @@ class Session:
         """Input files that an output must never overwrite."""
         return [self._frames_source] if self._frames_source else []
 
+
+
+def _frames_for_calibration(frame, n: int, name: str) -> np.ndarray:
+    """The first ``n`` frames for calibrating; a frame without any finite pixel is refused by name.
+
+    NaN pixels are kept everywhere (they flag their sites), but a frame that is NaN or
+    infinite everywhere holds nothing to calibrate from. Warnings of the frame reader while
+    reading (constant frame, saturation) are logged; calibrating reports what follows from them.
+    """
+    import warnings
+
+    images = []
+    for i in range(n):
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            image = frame(i)
+        if image.dtype.kind == "f" and not np.isfinite(image).any():
+            raise FrameError(f"frame {i} of {name} has no finite pixel (NaN or infinite everywhere); it cannot be "
+                             "calibrated from: was the camera triggered?")
+        for w in caught:
+            log.warning("%s", w.message)
+        images.append(image)
+    return np.stack(images)
 
 
 def _differs(a, b) -> bool:
