@@ -28,6 +28,7 @@ COMMANDS = [
     ("batch", "batch", "reconstruct a whole data set into one resumable HDF5 run file"),
     ("watch", "watch", "reconstruct new frames as the camera writes them"),
     ("camera", "camera", "estimate bias, read noise and gain from dark and flat frames"),
+    ("observables", "observables", "density, profiles, atom numbers, correlations and order from occupation matrices"),
 ]
 
 
