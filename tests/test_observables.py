@@ -223,22 +223,26 @@ def test_markov_chain_correlations_recovered():
     assert abs(c.radial[i1] - truth[k, k + 1] / 2) < 4 * c.radial_err[i1]
 
 
-def test_structure_factor_equals_direct_sum():
+@pytest.mark.parametrize("shape", [(5, 6), (4, 7)])
+def test_structure_factor_equals_direct_sum(shape):
     # Direct sum over sites: S(q) = <|sum_j s_j exp(-i q.r_j)|^2> / N_s.
     rng = np.random.default_rng(13)
-    occ = (rng.random((6, 5, 6)) < 0.4).astype(np.uint8)
+    occ = (rng.random((6, *shape)) < 0.4).astype(np.uint8)
     occ[:, 0, 0] = 255
     region = occ[0] != 255
     sf = ob.structure_factor(occ)
     ii, jj = np.nonzero(region)
-    direct = np.zeros((5, 6))
+    direct = np.zeros(shape)
+    per_shot = np.zeros((6, *shape))
     for a, q1 in enumerate(sf.q1):
         for b, q2 in enumerate(sf.q2):
             phase = np.exp(-1j * (q1 * ii + q2 * jj))
             vals = [abs(np.sum((2.0 * s[ii, jj] - 1) * phase)) ** 2 for s in occ]
             direct[a, b] = np.mean(vals) / region.sum()
+            per_shot[:, a, b] = np.asarray(vals) / region.sum()
     np.testing.assert_allclose(sf.s, direct, rtol=1e-5, atol=1e-5)
-    assert sf.n_sites == 29
+    np.testing.assert_allclose(sf.err, per_shot.std(axis=0, ddof=1) / np.sqrt(6), rtol=1e-4, atol=1e-5)
+    assert sf.n_sites == shape[0] * shape[1] - 1
 
 
 # --- order ---------------------------------------------------------------------------------

@@ -59,7 +59,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from scipy import fft as _fft
-from scipy import ndimage, sparse, stats
+from scipy import sparse, stats
 
 from latticeread.errors import LatticeReadError
 
@@ -146,8 +146,11 @@ def region_of(occupation, *, mask=None) -> tuple[np.ndarray, np.ndarray, int]:
             raise ObservablesError("occupation probabilities must lie between 0 and 1 (NaN outside the region)")
     else:
         inside = occ != OUTSIDE
-        vals = occ[inside]
-        if vals.size and not np.isin(np.unique(vals), (0, 1)).all():
+        if occ.dtype == np.uint8:
+            bad = bool(np.bincount(occ.ravel(), minlength=256)[2:OUTSIDE].any())
+        else:
+            bad = bool(((occ != 0) & (occ != 1) & inside).any())
+        if bad:
             raise ObservablesError("occupation matrices must hold only 0 (empty), 1 (occupied) and 255 (outside "
                                    "the region)")
     every = inside.all(axis=0)
@@ -769,7 +772,9 @@ def _window(full: np.ndarray, k: int) -> np.ndarray:
 def _autocorr(a: np.ndarray, shape) -> np.ndarray:
     """sum_x a(x) a(x + d) for every d (circular on ``shape``), batched over leading axes."""
     f = _fft.rfft2(a, s=shape, workers=-1)
-    return _fft.irfft2((f * f.conj()).real, s=shape, workers=-1)
+    power = np.square(f.real)
+    power += np.square(f.imag)
+    return _fft.irfft2(power, s=shape, workers=-1)
 
 
 def correlator(occupation, *, mask=None, max_distance: int = 4, vectors=None, n_bootstrap: int = 200,
@@ -819,10 +824,13 @@ def _correlator(occ, region, *, max_distance, vectors, n_bootstrap, rng) -> Corr
     m = region.astype(np.float32)
     pairs = np.rint(_window(_autocorr(m, shape), k)).astype(np.int64)
     per_shot = _window(_autocorr(occ, shape), k).reshape(n, -1)                  # (N, W) sum n_i n_{i+d}
-    flat = occ.reshape(n, -1)
+    inside = np.flatnonzero(region.ravel())
+    flat = occ.reshape(n, -1)[:, inside]                                           # region sites only
     weights = rng.multinomial(n, np.full(n, 1.0 / n), size=b).astype(np.float32) / n   # (B, N)
     g_all = np.vstack([per_shot.mean(axis=0, dtype=np.float64)[None], weights @ per_shot])
-    nbar = np.vstack([flat.mean(axis=0, dtype=np.float64)[None].astype(np.float32), weights @ flat])
+    nbar = np.zeros((b + 1, R * C), np.float32)
+    nbar[0, inside] = flat.mean(axis=0, dtype=np.float64)
+    nbar[1:, inside] = weights @ flat
     p_all = _window(_autocorr(nbar.reshape(-1, R, C), shape), k).reshape(b + 1, -1)
     with np.errstate(invalid="ignore", divide="ignore"):
         c_all = (n / (n - 1)) * (g_all - p_all) / pairs.reshape(1, -1)
@@ -849,7 +857,7 @@ def _correlator(occ, region, *, max_distance, vectors, n_bootstrap, rng) -> Corr
     return Correlator(displacement=d, map=cmap, err=err, n_pairs=pairs, distance=dist, radial=rad,
                       radial_err=rad_reps.std(axis=0, ddof=1), chi2=chi2, dof=dof,
                       p_value=float(stats.chi2.sf(chi2, dof)) if dof else float("nan"),
-                      mean_density=float(flat.sum(dtype=np.float64) / (n * region.sum())), n_shots=n, n_bootstrap=b,
+                      mean_density=float(nbar[0].sum(dtype=np.float64) / region.sum()), n_shots=n, n_bootstrap=b,
                       replicates=reps)
 
 
@@ -897,14 +905,43 @@ def structure_factor(occupation, *, mask=None) -> StructureFactor:
 def _structure_factor(occ, region) -> StructureFactor:
     n, R, C = occ.shape
     _need_shots(n, "the structure factor")
-    s = np.where(region[None], 2 * occ - 1, 0).astype(np.float32)
-    f = _fft.fft2(s, workers=-1)
+    s = 2 * occ - region.astype(np.float32)[None]                 # +-1 inside the region, 0 outside
+    f = _fft.rfft2(s, workers=-1)                                  # (N, R, C//2 + 1): S(-q) = S(q) for real s
     ns = int(region.sum())
-    power = (f.real ** 2 + f.imag ** 2) / ns
-    mean = _fft.fftshift(power.mean(axis=0, dtype=np.float64))
-    err = _fft.fftshift(power.std(axis=0, ddof=1, dtype=np.float64)) / math.sqrt(n)
+    power = np.square(f.real)
+    power += np.square(f.imag)
+    half_mean = power.mean(axis=0, dtype=np.float64) / ns
+    half_sq = np.einsum("nij,nij->ij", power, power, dtype=np.float64) / (n * ns * ns)
+    half_err = np.sqrt(np.maximum(half_sq - half_mean ** 2, 0.0) * n / (n - 1) / n)
+    mean = _fft.fftshift(_full_spectrum(half_mean, C))
+    err = _fft.fftshift(_full_spectrum(half_err, C))
     return StructureFactor(q1=_fft.fftshift(2 * np.pi * _fft.fftfreq(R)), q2=_fft.fftshift(2 * np.pi * _fft.fftfreq(C)),
                            s=mean, err=err, n_sites=ns)
+
+
+def _full_spectrum(half: np.ndarray, n_cols: int) -> np.ndarray:
+    """Full (R, C) grid from the rfft half of a symmetric function, S(-q) = S(q)."""
+    full = np.empty((half.shape[0], n_cols), half.dtype)
+    m = half.shape[1]
+    full[:, :m] = half
+    if n_cols > m:
+        cols = np.arange(m, n_cols)
+        rows = (-np.arange(half.shape[0])) % half.shape[0]
+        full[:, m:] = half[rows[:, None], (n_cols - cols)[None, :]]
+    return full
+
+
+def _box_sum(a: np.ndarray, w: int) -> np.ndarray:
+    """Sum over a w x w window centred on each element of the last two axes (zeros beyond the edge)."""
+    h = w // 2
+    out = a
+    for axis in (-2, -1):
+        pad = [(0, 0)] * out.ndim
+        pad[axis] = (h + 1, h)
+        c = np.cumsum(np.pad(out, pad), axis=axis, dtype=np.float32)
+        n = out.shape[axis]
+        out = np.take(c, np.arange(w, w + n), axis=axis) - np.take(c, np.arange(0, n), axis=axis)
+    return out
 
 
 # --- order -------------------------------------------------------------------------------
@@ -977,8 +1014,8 @@ def _staggered(occ, region, *, origin, window, n_bins) -> StaggeredOrder:
     ns = int(region.sum())
     m = z.reshape(n, -1).sum(axis=1, dtype=np.float64) / ns
     s_pp = ns * m ** 2
-    local_sum = ndimage.uniform_filter(z, size=(1, window, window), mode="constant")
-    norm = ndimage.uniform_filter(region.astype(np.float32), size=window, mode="constant")
+    local_sum = _box_sum(z, window)
+    norm = _box_sum(region.astype(np.float32), window)
     with np.errstate(invalid="ignore", divide="ignore"):
         local = np.abs(local_sum / norm[None]).mean(axis=0)
     hist, edges = np.histogram(m, bins=n_bins, range=(-1, 1))
@@ -1226,7 +1263,7 @@ def compute_observables(occupation, *, mask=None, p_occupied=None, vectors=None,
     if n_partial:
         warns.append(f"{n_partial} site(s) outside the region in some shots were left out of every observable")
     dens = _density(occ, region)
-    c = _centre(centre, occ, region)
+    c = dens.centroid if centre is None else _centre(centre, occ, region)
     if not bin_width > 0:
         raise ObservablesError(f"the bin width must be positive (lattice units); got {bin_width}")
     if int(window) < 1 or int(window) % 2 == 0:
