@@ -1081,7 +1081,10 @@ class CorrectedObservables:
         Corrected mean occupation; its statistical error, its error from the rates'
         uncertainties, and both in quadrature.
     density_flag : (R, C) ndarray of bool
-        True where the correction is larger than the statistical error of the read density.
+        True where the correction is larger than the statistical error of the read density
+        (at least the binomial error of ``(k + 1/2) / (N + 1)`` for ``k`` of ``N`` shots read
+        occupied, so that a site read empty in every shot is not flagged for a zero error).
+        The corrected density of such a site is slightly negative: the unbiased estimate.
     filling, filling_stat_err, filling_rate_err : float
         Corrected mean occupation over the region.
     correlator, correlator_stat_err, correlator_rate_err, correlator_err : (2K+1, 2K+1) ndarray
@@ -1178,7 +1181,12 @@ def correct_misreads(density: DensityMap, corr: Correlator | None = None, *, rat
     d_rate = np.sqrt(var_d)
     c_stat_corr = c_stat / (a - b) ** 2
     c_rate = np.sqrt(var_c)
-    d_flag = np.abs(dens - density.mean) > density.stderr
+    # a site read empty (or occupied) in every shot has a zero sample error; compare with the
+    # binomial error of a regularised estimate (k + 1/2) / (N + 1) instead
+    n = density.n_shots
+    p_reg = (density.mean * n + 0.5) / (n + 1)
+    d_floor = np.maximum(density.stderr, np.sqrt(p_reg * (1 - p_reg) / n))
+    d_flag = np.abs(dens - density.mean) > d_floor
     c_flag = np.abs(cor - cmap) > c_stat
     d_flag &= density.region
     warns = []

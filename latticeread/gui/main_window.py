@@ -77,6 +77,8 @@ PANELS = (
      "Loss and hopping between consecutive images, with confidence intervals"),
     ("histogram_panel", "HistogramPanel", "Amplitude histogram", "right",
      "Site amplitudes (photons), fitted components and the draggable threshold"),
+    ("observables_panel", "ObservablesPanel", "Observables", "right",
+     "Density, profiles, correlations and staggered order of the reconstructed frames"),
 )
 
 
@@ -248,7 +250,9 @@ class MainWindow(QtWidgets.QMainWindow):
         self.docks["occupation"].raise_()
         self.tabifyDockWidget(self.docks["geometry_panel"], self.docks["psf_panel"])
         self.tabifyDockWidget(self.docks["psf_panel"], self.docks["fidelity_panel"])
+        self.tabifyDockWidget(self.docks["occupation"], self.docks["observables_panel"])
         self.docks["geometry_panel"].raise_()
+        self.docks["occupation"].raise_()
         self.resizeDocks([self.docks["geometry_panel"], self.docks["histogram_panel"]], [430, 430],
                          QtCore.Qt.Horizontal)
 
@@ -604,6 +608,12 @@ class MainWindow(QtWidgets.QMainWindow):
 
     def _wire_panels(self) -> None:
         hp, gp, pp = self.histogram_panel, self.geometry_panel, self.psf_panel
+        feed = getattr(self, "observables_feed", None)
+        if (hasattr(self.observables_panel, "set_observables")
+                and getattr(feed, "panel", None) is not self.observables_panel):
+            from latticeread.gui.observables_feed import ObservablesFeed
+
+            self.observables_feed = ObservablesFeed(self, self.observables_panel)
         if hasattr(hp, "thresholdDragged"):
             hp.thresholdDragged.connect(self._threshold_dragged)
             hp.thresholdCommitted.connect(self._threshold_committed)
@@ -751,6 +761,8 @@ class MainWindow(QtWidgets.QMainWindow):
                     self.histogram_panel.set_threshold(s.threshold)
             if "classification" in dirty:
                 self._refresh_classification()
+                if getattr(self, "observables_feed", None) is not None:
+                    self.observables_feed.request()
             if "fidelity" in dirty and hasattr(self.fidelity_panel, "set_report"):
                 if s.fidelity is None:
                     self.fidelity_panel.clear()
@@ -1019,7 +1031,9 @@ class MainWindow(QtWidgets.QMainWindow):
         self.docks["occupation"].raise_()
         self.tabifyDockWidget(self.docks["geometry_panel"], self.docks["psf_panel"])
         self.tabifyDockWidget(self.docks["psf_panel"], self.docks["fidelity_panel"])
+        self.tabifyDockWidget(self.docks["occupation"], self.docks["observables_panel"])
         self.docks["geometry_panel"].raise_()
+        self.docks["occupation"].raise_()
         self.size_docks()
 
     # ================================================================== analysis

@@ -17,6 +17,8 @@ HistogramPanel     :mod:`latticeread.gui.panels.histogram_panel` -- site-amplitu
                    histogram, fitted components, draggable threshold, FP/FN rates.
 FidelityPanel      :mod:`latticeread.gui.panels.fidelity_panel` -- loss and hopping with
                    intervals, per-shot trend, P(site read correctly), warnings.
+ObservablesPanel   :mod:`latticeread.gui.panels.observables_panel` -- density map,
+                   profiles, connected correlator, staggered order of the shots.
 =================  =====================================================================
 
 Panel classes are imported lazily (``from latticeread.gui.panels import HistogramPanel``
@@ -28,14 +30,15 @@ from __future__ import annotations
 import importlib
 import math
 
-__all__ = ["GeometryPanel", "PSFPanel", "HistogramPanel", "FidelityPanel", "WARNING_STYLE", "fmt", "rate_pct",
-           "show_warnings"]
+__all__ = ["GeometryPanel", "PSFPanel", "HistogramPanel", "FidelityPanel", "ObservablesPanel", "WARNING_STYLE", "fmt",
+           "rate_pct", "show_warnings"]
 
 _LAZY = {
     "GeometryPanel": "latticeread.gui.panels.geometry_panel",
     "PSFPanel": "latticeread.gui.panels.psf_panel",
     "HistogramPanel": "latticeread.gui.panels.histogram_panel",
     "FidelityPanel": "latticeread.gui.panels.fidelity_panel",
+    "ObservablesPanel": "latticeread.gui.panels.observables_panel",
 }
 
 #: Style sheet of the label that lists warnings (red, bold, framed) in every panel.
