@@ -14,19 +14,23 @@ from latticeread.cli import main
 
 ROOT = Path(__file__).resolve().parents[1]
 
-#: (file name, scenario, shots, images per shot, seed)
+#: (file name, scenario, shots, images per shot, seed, further simulate options)
 SAMPLES = [
-    ("demo_square.tif", "square", 6, 2, 20261),
-    ("demo_folded.tif", "folded", 2, 2, 20262),
-    ("demo_triangular.tif", "triangular", 2, 2, 20263),
+    ("demo_square.tif", "square", 6, 2, 20261, []),
+    ("demo_folded.tif", "folded", 2, 2, 20262, []),
+    ("demo_triangular.tif", "triangular", 2, 2, 20263, []),
+    # for the observables: many single images of an ordered state (invented scenarios)
+    ("demo_checkerboard.tif", "square", 40, 1, 20264,
+     ["--pattern", "checkerboard", "--filling", "0.9", "--size", "128", "128"]),
+    ("demo_mott.tif", "square", 40, 1, 20265, ["--pattern", "mott", "--filling", "0.93", "--size", "128", "128"]),
 ]
 
 
 def make_all(folder: Path = ROOT / "sample_data") -> None:
     folder.mkdir(exist_ok=True)
-    for name, scenario, shots, images, seed in SAMPLES:
+    for name, scenario, shots, images, seed, extra in SAMPLES:
         code = main(["simulate", str(folder / name), "--scenario", scenario, "--shots", str(shots),
-                     "--images-per-shot", str(images), "--seed", str(seed)])
+                     "--images-per-shot", str(images), "--seed", str(seed), *extra])
         if code != 0:
             sys.exit(code)
 

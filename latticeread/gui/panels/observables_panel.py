@@ -258,12 +258,17 @@ class ObservablesPanel(QtWidgets.QWidget):
         k = (cmap.shape[0] - 1) // 2
         show = cmap.copy()
         show[k, k] = np.nan
-        self.corr_image.setImage(show, autoLevels=False)
-        self.corr_image.setRect(QtCore.QRectF(-k - 0.5, -k - 0.5, 2 * k + 1, 2 * k + 1))
         vals = show[np.isfinite(show)]
         span = float(np.abs(vals).max()) if vals.size else 0.01
         span = span if span > 0 else 0.01
-        self.corr_bar.setLevels((-span, span))
+        # small correlations are shown in units of a power of ten, so the colour bar has ticks
+        exponent = int(math.floor(math.log10(span)))
+        scale = 10.0 ** -exponent if exponent < -2 else 1.0
+        self.corr_image.setImage(show * scale, autoLevels=False)
+        self.corr_image.setRect(QtCore.QRectF(-k - 0.5, -k - 0.5, 2 * k + 1, 2 * k + 1))
+        self.corr_bar.setLevels((-span * scale, span * scale))
+        self.corr_bar.getAxis("left").setLabel("C(d)" if scale == 1.0 else f"C(d) × 1e{exponent}")
+        self.corr_scale = scale
         self.corr_plot.getPlotItem().setTitle("connected correlator C(d)" + (" (corrected)" if corrected else ""),
                                               color=(40, 40, 40), size="9pt")
 
