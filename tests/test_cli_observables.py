@@ -165,10 +165,20 @@ def test_occupation_file_input(tmp_path):
         results.append(SimpleNamespace(sites=sites, amplitudes=occ * 900.0, occupied=occ,
                                        p_occupied=occ * 0.98 + 0.01, frame_index=i, threshold=400.0,
                                        geometry=SimpleNamespace(offset=(0.0, 0.0))))
+    from pathlib import Path
+
+    from latticeread.io import load_calibration
+
+    cal = load_calibration(Path(__file__).resolve().parents[1] / "sample_data" / "demo_mott.calibration.json")
+    assert cal.threshold_fit is not None
     path = tmp_path / "sites.h5"
-    write_occupation_hdf5(path, results)
+    write_occupation_hdf5(path, results, calibration=cal)
     inp = read_occupation_input(path)
     assert inp.kind == "occupation" and inp.origin == (2, -1) and inp.occupation.shape == (6, 6, 7)
+    # misread rates and lattice vectors come from the stored calibration
+    np.testing.assert_array_equal(inp.false_positive, cal.threshold_fit.false_positive_rate)
+    np.testing.assert_array_equal(inp.false_negative, cal.threshold_fit.false_negative_rate)
+    np.testing.assert_allclose(inp.vectors, [cal.geometry.a1, cal.geometry.a2])
     out = tmp_path / "o.h5"
     assert main(["observables", str(path), "--out", str(out), "--bootstrap", "20", "-q"]) == 0
     with h5py.File(out, "r") as h5:

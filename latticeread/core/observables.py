@@ -1190,6 +1190,9 @@ def correct_misreads(density: DensityMap, corr: Correlator | None = None, *, rat
     c_flag = np.abs(cor - cmap) > c_stat
     d_flag &= density.region
     warns = []
+    if rates.false_positive_err == 0 and rates.false_negative_err == 0 and rates.loss_err == 0:
+        warns.append("the misread rates were given without uncertainties: the corrected errors hold the "
+                     "statistical part only")
     fill_change = fill - density.filling
     if abs(fill_change) > density.filling_err:
         warns.append(f"the misread correction changes the mean density by {fill_change:+.4f} atoms per site, more "

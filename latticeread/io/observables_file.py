@@ -158,11 +158,15 @@ def read_occupation_input(path) -> OccupationInput:
     if isinstance(geo, dict) and "a1" in geo and "a2" in geo:
         vectors = np.array([geo["a1"], geo["a2"]], dtype=float)
     fp = fn = float("nan")
-    notes = cal.get("notes") if isinstance(cal, dict) else None
-    fit = notes.get("threshold_result") if isinstance(notes, dict) else None
-    if isinstance(fit, dict):
-        fp = float(fit.get("false_positive_rate", math.nan))
-        fn = float(fit.get("false_negative_rate", math.nan))
+    try:
+        calibration = data.calibration          # both calibration formats; the fit's misread rates
+    except (LatticeReadError, ValueError, KeyError, TypeError) as exc:
+        log.warning("%s: stored calibration unreadable (%s); no misread rates from it", path.name, exc)
+        calibration = None
+    fit = getattr(calibration, "threshold_fit", None)
+    if fit is not None:
+        fp = float(getattr(fit, "false_positive_rate", math.nan))
+        fn = float(getattr(fit, "false_negative_rate", math.nan))
     prov = {"path": str(path.resolve()), "format": str(data.attrs.get("format", "latticeread-occupation")),
             "program_version": str(data.attrs.get("program_version", "")), "n_shots": int(n),
             "calibration": cal or None, "inputs": data.attrs.get("inputs"),
