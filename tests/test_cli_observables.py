@@ -164,7 +164,7 @@ def test_occupation_file_input(tmp_path):
         sites = SimpleNamespace(rows=rows.ravel(), cols=cols.ravel(), x=cols.ravel() * 5.0, y=rows.ravel() * 5.0)
         results.append(SimpleNamespace(sites=sites, amplitudes=occ * 900.0, occupied=occ,
                                        p_occupied=occ * 0.98 + 0.01, frame_index=i, threshold=400.0,
-                                       geometry=SimpleNamespace(offset=(0.0, 0.0))))
+                                       geometry=SimpleNamespace(offset=(0.0, 0.0), a1=(0.0, 5.0), a2=(5.0, 0.0))))
     from pathlib import Path
 
     from latticeread.io import load_calibration
@@ -174,11 +174,11 @@ def test_occupation_file_input(tmp_path):
     path = tmp_path / "sites.h5"
     write_occupation_hdf5(path, results, calibration=cal)
     inp = read_occupation_input(path)
-    assert inp.kind == "occupation" and inp.origin == (2, -1) and inp.occupation.shape == (6, 6, 7)
-    # misread rates and lattice vectors come from the stored calibration
+    assert inp.origin == (2, -1) and inp.occupation.shape == (6, 6, 7)
+    # without per-shot rates the misread rates come from the stored calibration's threshold fit
     np.testing.assert_array_equal(inp.false_positive, cal.threshold_fit.false_positive_rate)
     np.testing.assert_array_equal(inp.false_negative, cal.threshold_fit.false_negative_rate)
-    np.testing.assert_allclose(inp.vectors, [cal.geometry.a1, cal.geometry.a2])
+    np.testing.assert_allclose(inp.vectors, [(0.0, 5.0), (5.0, 0.0)])
     out = tmp_path / "o.h5"
     assert main(["observables", str(path), "--out", str(out), "--bootstrap", "20", "-q"]) == 0
     with h5py.File(out, "r") as h5:
@@ -274,3 +274,17 @@ def test_bad_inputs(tmp_path, capsys, make, match):
 def test_wrong_output_suffix(run_file, tmp_path, capsys):
     assert main(["observables", str(run_file), "--out", str(tmp_path / "o.csv")]) == 2
     assert "must end in .h5 or .hdf5" in capsys.readouterr().err
+
+
+def test_shots_with_different_origins_are_aligned():
+    from latticeread.io.observables_file import _aligned
+
+    occ = np.array([[[1, 0], [0, 1]], [[0, 1], [1, 1]]], np.uint8)
+    post = occ.astype(float)
+    out, p, origin = _aligned(occ, post, [(3, 5), (4, 4)])
+    assert origin == (3, 4) and out.shape == (2, 3, 3)
+    np.testing.assert_array_equal(out[0], [[255, 1, 0], [255, 0, 1], [255, 255, 255]])
+    np.testing.assert_array_equal(out[1], [[255, 255, 255], [0, 1, 255], [1, 1, 255]])
+    assert np.isnan(p[1, 0, 0]) and p[1, 2, 1] == 1
+    same, _, o = _aligned(occ, post, [(1, 2), (1, 2)])
+    assert same is occ and o == (1, 2)

@@ -3,10 +3,9 @@
 Input
 -----
 :func:`read_occupation_input` reads the occupation matrices, posteriors, lattice vectors,
-misread rates and provenance from either file kind latticeread writes: a run file
-(``latticeread batch`` / ``watch``, :func:`latticeread.io.run_file.read_run`) or an
-occupation HDF5 file (``latticeread reconstruct``,
-:func:`latticeread.io.export.read_occupation_hdf5`).
+misread rates and provenance from a results file (``latticeread batch`` / ``watch`` /
+``reconstruct``, :func:`latticeread.io.results.read_results`) or from an occupation HDF5
+file in the older layout (:func:`latticeread.io.export.read_occupation_hdf5`).
 
 :func:`read_shot_parameters` reads a table of per-shot parameters: shot index (0-based
 position in the input file) -> named values. CSV: a header line with a ``shot`` column (or
@@ -116,8 +115,48 @@ def _h5_format(path: Path) -> str:
                          "an occupation file from 'latticeread reconstruct'")
 
 
+def _aligned(occupation, p_occupied, origins):
+    """Put matrices whose element [0, 0] is a different lattice site into one common frame."""
+    origins = np.asarray(origins, dtype=np.int64).reshape(-1, 2)
+    if origins.shape[0] == 0 or (origins == origins[0]).all():
+        return occupation, p_occupied, (tuple(int(v) for v in origins[0]) if origins.shape[0] else (0, 0))
+    n, rows, cols = occupation.shape
+    lo = origins.min(axis=0)
+    hi = origins.max(axis=0) + (rows, cols)
+    occ = np.full((n, *(hi - lo)), 255, np.uint8)
+    post = None if p_occupied is None else np.full(occ.shape, np.nan)
+    for k, (r, c) in enumerate(origins - lo):
+        occ[k, r:r + rows, c:c + cols] = occupation[k]
+        if post is not None:
+            post[k, r:r + rows, c:c + cols] = p_occupied[k]
+    log.info("shots have %d different site origins: matrices aligned on the lattice indices",
+             len({tuple(o) for o in origins}))
+    return occ, post, (int(lo[0]), int(lo[1]))
+
+
+def _fit_rates(calibration_dict, n) -> tuple[np.ndarray, np.ndarray]:
+    """Misread rates of the calibration's stored threshold fit (NaN when none)."""
+    from latticeread.core.calibration import Calibration
+
+    fp = fn = float("nan")
+    try:
+        fit = Calibration.from_dict(calibration_dict).threshold_fit if calibration_dict else None
+    except (LatticeReadError, ValueError, KeyError, TypeError) as exc:
+        log.warning("stored calibration unreadable (%s); no misread rates from it", exc)
+        fit = None
+    if fit is not None:
+        fp = float(getattr(fit, "false_positive_rate", math.nan))
+        fn = float(getattr(fit, "false_negative_rate", math.nan))
+    return np.full(n, fp), np.full(n, fn)
+
+
 def read_occupation_input(path) -> OccupationInput:
-    """Read occupation matrices from a run file or an occupation HDF5 file.
+    """Read occupation matrices from a results file (run layout) or an older occupation file.
+
+    Results files (``latticeread batch``, ``watch``, ``reconstruct``, the window's export) are
+    read with :func:`latticeread.io.results.read_results`; files in the older occupation
+    layout with :func:`latticeread.io.export.read_occupation_hdf5`. Shots whose matrices start
+    at different lattice sites are aligned on the lattice indices.
 
     Raises
     ------
@@ -127,25 +166,26 @@ def read_occupation_input(path) -> OccupationInput:
     path = Path(os.fspath(path))
     kind = _h5_format(path)
     if kind == "run":
-        from .run_file import read_run
+        from .results import read_results
 
-        run = read_run(path, matrices=("occupation", "p_occupied"))
-        if len(run) == 0:
-            raise FrameFileError(f"the run file {path.name} holds no completed shots")
-        vectors = np.array([np.nanmedian(run.a1, axis=0), np.nanmedian(run.a2, axis=0)])
-        prov = {"path": str(path.resolve()), "format": "latticeread-run", "program_version": run.program_version,
-                "n_shots": len(run), "calibration": run.calibration,
+        arrays, settings = read_results(path)
+        n = int(arrays["frame_index"].size)
+        if n == 0:
+            raise FrameFileError(f"the results file {path.name} holds no completed shots")
+        vectors = np.array([np.nanmedian(arrays["a1"], axis=0), np.nanmedian(arrays["a2"], axis=0)])
+        occ, post, origin = _aligned(arrays["occupation"], arrays["p_occupied"], arrays["origin"])
+        fp = np.asarray(arrays["false_positive_rate"], float)
+        fn = np.asarray(arrays["false_negative_rate"], float)
+        if not (np.isfinite(fp).any() and np.isfinite(fn).any()):
+            fp, fn = _fit_rates(settings.get("calibration"), n)
+        prov = {"path": str(path.resolve()), "format": "latticeread-run",
+                "program_version": settings.get("program_version", ""), "n_shots": n,
+                "calibration": settings.get("calibration"), "metadata": settings.get("metadata"),
                 "shots": [{"source": str(s), "file_hash": str(h), "frame_index": int(i)}
-                          for s, h, i in zip(run.source, run.file_hash, run.frame_index)]}
-        origin = (0, 0)
-        geo = (run.calibration or {}).get("geometry") or {}
-        if "row_min" in geo and "col_min" in geo:
-            origin = (int(geo["row_min"]), int(geo["col_min"]))
-        return OccupationInput(occupation=run.occupation, p_occupied=run.p_occupied,
-                               vectors=None if not np.isfinite(vectors).all() else vectors, origin=origin,
-                               false_positive=np.asarray(run.false_positive_rate, float),
-                               false_negative=np.asarray(run.false_negative_rate, float), kind="run",
-                               provenance=prov)
+                          for s, h, i in zip(arrays["source"], arrays["file_hash"], arrays["frame_index"])]}
+        return OccupationInput(occupation=occ, p_occupied=post,
+                               vectors=vectors if np.isfinite(vectors).all() else None, origin=origin,
+                               false_positive=fp, false_negative=fn, kind="run", provenance=prov)
     from .export import read_occupation_hdf5
 
     data = read_occupation_hdf5(path)
@@ -157,23 +197,14 @@ def read_occupation_input(path) -> OccupationInput:
     vectors = None
     if isinstance(geo, dict) and "a1" in geo and "a2" in geo:
         vectors = np.array([geo["a1"], geo["a2"]], dtype=float)
-    fp = fn = float("nan")
-    try:
-        calibration = data.calibration          # both calibration formats; the fit's misread rates
-    except (LatticeReadError, ValueError, KeyError, TypeError) as exc:
-        log.warning("%s: stored calibration unreadable (%s); no misread rates from it", path.name, exc)
-        calibration = None
-    fit = getattr(calibration, "threshold_fit", None)
-    if fit is not None:
-        fp = float(getattr(fit, "false_positive_rate", math.nan))
-        fn = float(getattr(fit, "false_negative_rate", math.nan))
+    fp, fn = _fit_rates(cal if isinstance(cal, dict) else None, n)
     prov = {"path": str(path.resolve()), "format": str(data.attrs.get("format", "latticeread-occupation")),
             "program_version": str(data.attrs.get("program_version", "")), "n_shots": int(n),
             "calibration": cal or None, "inputs": data.attrs.get("inputs"),
             "frame_index": data.frame_index.tolist()}
     return OccupationInput(occupation=data.occupation, p_occupied=data.p_occupied, vectors=vectors,
-                           origin=(data.row_min, data.col_min), false_positive=np.full(n, fp),
-                           false_negative=np.full(n, fn), kind="occupation", provenance=prov)
+                           origin=(data.row_min, data.col_min), false_positive=fp, false_negative=fn,
+                           kind="occupation", provenance=prov)
 
 
 # --- per-shot parameters -------------------------------------------------------------------
