@@ -249,11 +249,11 @@ def test_command_errors(run_file, params, tmp_path, capsys, extra, match):
 def test_refuses_to_overwrite_without_force(run_file, tmp_path, capsys):
     out = tmp_path / "obs.h5"
     out.write_bytes(b"keep me")
-    assert main(["observables", str(run_file), "--out", str(out), "-q"]) == 1
+    assert main(["observables", str(run_file), "--out", str(out), "-q"]) != 0
     assert "exists; pass --force to overwrite it" in capsys.readouterr().err
     assert out.read_bytes() == b"keep me"
     (tmp_path / "obs2.profiles.csv").write_text("keep")
-    assert main(["observables", str(run_file), "--out", str(tmp_path / "obs2.h5"), "-q"]) == 1
+    assert main(["observables", str(run_file), "--out", str(tmp_path / "obs2.h5"), "-q"]) != 0
     assert main(["observables", str(run_file), "--out", str(out), "--force", "--bootstrap", "20", "-q"]) == 0
     assert read_observables_attrs(out)["format"] == "latticeread-observables"
 
