@@ -1,0 +1,709 @@
+"""Locate single atoms in frames and read the lattice from their positions.
+
+Where the lattice's Fourier peaks in the image are weak or absent (an ideal Airy PSF passes no
+spatial frequency above the incoherent cut-off 2 NA / lambda, so a lattice whose spacing is
+below lambda / (2 NA) ~ 0.97 FWHM leaves no peak at all; Born & Wolf, Principles of Optics,
+ch. 8.5 and 9.5, from memory), the positions of the atoms themselves still sit on the lattice.
+A list of positions has no optical cut-off: its own Fourier transform (the structure factor of
+the point pattern) shows the lattice however wide the PSF.
+
+Method
+------
+1. **Candidates** (:func:`locate_atoms`): the frame (photons) minus a smooth background
+   (low percentile of blocks of about eight FWHM, smoothed) is smoothed lightly (a Gaussian of
+   0.4 times the PSF's width: a filter as wide as the PSF would merge atoms one spacing apart);
+   local maxima (3 x 3) above 5 robust standard deviations of the smoothed frame are candidates.
+2. **Sub-pixel fit**: a circular 2-D Gaussian (centre, width, amplitude and a constant
+   background: five parameters) is fitted to a window of about one FWHM radius around every
+   candidate (a window of 0.8 FWHM radius), all candidates at once (vectorised Gauss-Newton). The 1-sigma position error
+   comes from the fit's covariance scaled by its own residual (for a Gaussian spot it reaches
+   the localisation precision sigma_psf / sqrt(N photons) in the photon-limited case;
+   Thompson, Larson & Webb, Biophys. J. 82, 2775 (2002), from memory).
+3. **Atoms that stand apart**: two atoms closer than about one FWHM merge into one wider and
+   brighter spot whose centre lies between them. A candidate is kept as a single atom when its
+   fitted width is within 15 % of the PSF's (FWHM / 2.355, widened by the pixel) and its
+   photons within -40 %/+45 % of the median of those narrow spots (a merged pair has twice the
+   photons and a width at least 15 % larger at a separation of 0.8 FWHM), and when no other
+   candidate lies within one FWHM.
+4. **Lattice from the points** (:func:`lattice_from_atoms`): the points of every frame are
+   spread onto a pixel grid (bilinear weights) and the power spectra of the frames are
+   summed (the sum of per-frame power spectra does not care how the lattice moves between
+   frames). The two shortest non-collinear strong peaks give the reciprocal basis. When too
+   few atoms stand apart for that (high filling), approximate vectors from elsewhere (the
+   Fourier estimate of the image) can stand in; the positions fit below refines them.
+5. **Positions fit**: every atom is given the integer indices of its nearest site, and the
+   vectors (shared) and one offset per frame follow from a linear least-squares fit of
+   ``r = offset_f + i a1 + j a2`` weighted by the atoms' position errors, with atoms more than
+   3.5 robust standard deviations off the grid dropped. The fit starts on the atoms within a
+   few spacings of the frame centre and grows outwards, so an error of the Fourier vectors
+   never assigns a wrong index.
+
+The basis is put in the form of :func:`latticeread.core.lattice.canonical_basis`.
+Units: positions in pixels (x = column, y = row, centre of pixel (0, 0) at (0, 0)); images in
+photons per pixel.
+"""
+
+from __future__ import annotations
+
+import logging
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import ndimage
+
+from latticeread.core.geometry import LatticeGeometry, LatticeQuality
+from latticeread.errors import FrameError, LatticeNotFound
+
+__all__ = ["LocatedAtoms", "locate_atoms", "lattice_from_atoms", "offset_from_atoms", "FrameOffset", "check_geometry",
+           "GeometryCheck", "MIN_LATTICE_ATOMS"]
+
+log = logging.getLogger(__name__)
+
+#: Fewer single atoms than this (all frames together) cannot define a lattice.
+MIN_LATTICE_ATOMS = 40
+#: Candidates need a matched-filter peak this many robust standard deviations above the median.
+DETECTION_SIGMA = 5.0
+#: Accepted ranges of a single atom's fitted width and photons relative to the median candidate.
+WIDTH_RANGE = (0.85, 1.15)
+PHOTON_RANGE = (0.6, 1.45)
+#: A peak of the points' spectrum counts above this multiple of the spectrum's mean in the band.
+PEAK_RATIO = 20.0
+#: Atoms farther than this many robust standard deviations from their site are dropped.
+OUTLIER_SIGMA = 3.5
+_FWHM_TO_SIGMA = 1.0 / (2.0 * np.sqrt(2.0 * np.log(2.0)))
+
+
+@dataclass(frozen=True)
+class LocatedAtoms:
+    """Atoms found in one frame or a stack.
+
+    Attributes
+    ----------
+    x, y : (N,) ndarray of float
+        Fitted centres, pixels.
+    photons : (N,) ndarray of float
+        Fitted photons of the spot (integral of the Gaussian above its background).
+    width : (N,) ndarray of float
+        Fitted Gaussian standard deviation, pixels.
+    sigma : (N,) ndarray of float
+        1-sigma position error per axis, pixels (from the fit).
+    frame : (N,) ndarray of int
+        Index of the frame each atom was found in.
+    single : (N,) ndarray of bool
+        Passed the single-atom tests (width, photons, no close neighbour).
+    n_frames : int
+        Frames searched.
+    """
+
+    x: np.ndarray
+    y: np.ndarray
+    photons: np.ndarray
+    width: np.ndarray
+    sigma: np.ndarray
+    frame: np.ndarray
+    single: np.ndarray
+    n_frames: int = 1
+
+    def __len__(self) -> int:
+        return int(self.x.size)
+
+    def in_frame(self, index: int) -> "LocatedAtoms":
+        """The atoms of one frame, as if located in that frame alone."""
+        m = self.frame == int(index)
+        return LocatedAtoms(x=self.x[m], y=self.y[m], photons=self.photons[m], width=self.width[m],
+                            sigma=self.sigma[m], frame=np.zeros(int(m.sum()), int), single=self.single[m], n_frames=1)
+
+
+def _as_stack(image_or_stack) -> np.ndarray:
+    data = np.asarray(image_or_stack, dtype=float)
+    if data.ndim == 2:
+        data = data[None]
+    if data.ndim != 3:
+        raise FrameError(f"expected a frame (H, W) or a stack (n, H, W), got shape {data.shape}")
+    if min(data.shape[1:]) < 16:
+        raise FrameError(f"the frame is only {data.shape[1]}x{data.shape[2]} pixels; at least 16x16 are needed")
+    if not np.all(np.isfinite(data)):
+        raise FrameError("the frame holds NaN or infinite pixels; replace them before locating atoms")
+    return data
+
+
+def _background(frame: np.ndarray, block: int) -> np.ndarray:
+    """Smooth background: 20th percentile of blocks of ``block`` pixels, smoothed and resampled."""
+    h, w = frame.shape
+    nb_y, nb_x = max(1, h // block), max(1, w // block)
+    ys = np.linspace(0, h, nb_y + 1).astype(int)
+    xs = np.linspace(0, w, nb_x + 1).astype(int)
+    low = np.empty((nb_y, nb_x))
+    for i in range(nb_y):
+        for j in range(nb_x):
+            low[i, j] = np.percentile(frame[ys[i]:ys[i + 1], xs[j]:xs[j + 1]], 20)
+    if low.size == 1:
+        return np.full(frame.shape, low[0, 0])
+    low = ndimage.median_filter(low, size=3, mode="nearest")
+    # bilinear interpolation of the block values at the pixel centres
+    cy = (ys[:-1] + ys[1:] - 1) / 2.0
+    cx = (xs[:-1] + xs[1:] - 1) / 2.0
+    yi = np.interp(np.arange(h), cy, np.arange(nb_y))
+    xi = np.interp(np.arange(w), cx, np.arange(nb_x))
+    yy, xx = np.meshgrid(yi, xi, indexing="ij")
+    return ndimage.map_coordinates(low, [yy, xx], order=1, mode="nearest")
+
+
+def _windows(py: np.ndarray, px: np.ndarray, shape, radius: int):
+    """Row and column indices (N, P) of the square windows of ``radius`` around integer pixels."""
+    h, w = shape
+    off = np.arange(-radius, radius + 1)
+    oy, ox = np.meshgrid(off, off, indexing="ij")
+    yy = np.clip(py[:, None, None] + oy[None], 0, h - 1).reshape(py.size, -1)
+    xx = np.clip(px[:, None, None] + ox[None], 0, w - 1).reshape(py.size, -1)
+    return yy, xx
+
+
+def _fit_spots(frame: np.ndarray, py: np.ndarray, px: np.ndarray, *, width0: float, radius: int, n_iter: int = 8):
+    """Vectorised Gauss-Newton fit of a circular Gaussian plus constant to windows around peaks.
+
+    Returns x, y, photons, width, position sigma, ok (all (N,) arrays).
+    """
+    yy, xx = _windows(py, px, frame.shape, radius)
+    return _fit_windows(frame[yy, xx], xx.astype(float), yy.astype(float), px, py, width0=width0, radius=radius,
+                        n_iter=n_iter)
+
+
+def _fit_windows(data, gx, gy, px, py, *, width0: float, radius: int, n_iter: int = 8):
+    """The fit of :func:`_fit_spots` on windows already cut out: ``data`` (N, P) at pixels ``gx``, ``gy``."""
+    n = px.size
+    # parameters: x0, y0, amplitude (peak height), s (width), background
+    p = np.empty((n, 5))
+    p[:, 0], p[:, 1] = px, py
+    p[:, 4] = np.percentile(data, 10, axis=1)
+    p[:, 3] = width0
+    p[:, 2] = np.maximum(data.max(axis=1) - p[:, 4], 1e-6)
+    ok = np.ones(n, bool)
+    for _ in range(n_iter):
+        dx, dy = gx - p[:, :1], gy - p[:, 1:2]
+        s2 = p[:, 3:4] ** 2
+        g = np.exp(-(dx * dx + dy * dy) / (2 * s2))
+        model = p[:, 2:3] * g + p[:, 4:5]
+        r = data - model
+        jac = np.stack([p[:, 2:3] * g * dx / s2, p[:, 2:3] * g * dy / s2, g,
+                        p[:, 2:3] * g * (dx * dx + dy * dy) / (s2 * p[:, 3:4]), np.ones_like(g)], axis=2)
+        jtj = np.einsum("npi,npj->nij", jac, jac)
+        jtr = np.einsum("npi,np->ni", jac, r)
+        jtj += 1e-9 * np.eye(5)[None] * np.maximum(np.trace(jtj, axis1=1, axis2=2), 1e-12)[:, None, None]
+        try:
+            step = np.linalg.solve(jtj, jtr[..., None])[..., 0]
+        except np.linalg.LinAlgError:
+            ok[:] = False
+            break
+        # keep steps bounded: centres by at most half a pixel, width within a factor 1.5
+        step[:, :2] = np.clip(step[:, :2], -0.5, 0.5)
+        p += step
+        p[:, 3] = np.clip(p[:, 3], width0 / 1.5, width0 * 1.5)
+    dx, dy = gx - p[:, :1], gy - p[:, 1:2]
+    s2 = p[:, 3:4] ** 2
+    g = np.exp(-(dx * dx + dy * dy) / (2 * s2))
+    r = data - (p[:, 2:3] * g + p[:, 4:5])
+    dof = max(data.shape[1] - 5, 1)
+    var = np.sum(r * r, axis=1) / dof
+    try:
+        cov = np.linalg.inv(jtj)
+        sigma = np.sqrt(np.maximum(0.5 * (cov[:, 0, 0] + cov[:, 1, 1]) * var, 0))
+    except np.linalg.LinAlgError:
+        sigma = np.full(n, np.nan)
+    inside = (np.abs(p[:, 0] - px) <= radius) & (np.abs(p[:, 1] - py) <= radius)
+    ok &= inside & np.isfinite(sigma) & (p[:, 2] > 0) & np.all(np.isfinite(p), axis=1)
+    photons = 2 * np.pi * p[:, 2] * p[:, 3] ** 2
+    return p[:, 0], p[:, 1], photons, p[:, 3], sigma, ok
+
+
+def locate_atoms(image_or_stack, *, fwhm: float, detection_sigma: float = DETECTION_SIGMA) -> LocatedAtoms:
+    """Find atoms and fit their centres to a fraction of a pixel.
+
+    Parameters
+    ----------
+    image_or_stack : (H, W) or (n_frames, H, W) array_like
+        Frame(s) in photons per pixel (counts work too: only relative levels matter), finite.
+    fwhm : float
+        Full width at half maximum of the PSF, pixels (sets the filter, the fit window and the
+        first guess of the width).
+    detection_sigma : float
+        Candidates need a filtered peak this many robust standard deviations above the median.
+
+    Returns
+    -------
+    LocatedAtoms
+        Every fitted candidate; ``single`` marks those that pass the single-atom tests.
+
+    Raises
+    ------
+    FrameError
+        Not a frame or stack, smaller than 16x16 pixels, or non-finite pixels.
+    ValueError
+        Non-positive ``fwhm``.
+    """
+    if not (np.isfinite(fwhm) and fwhm > 0):
+        raise ValueError(f"fwhm must be a positive number of pixels, got {fwhm!r}")
+    data = _as_stack(image_or_stack)
+    s0 = float(fwhm) * _FWHM_TO_SIGMA
+    radius = max(2, int(np.ceil(0.8 * fwhm)))
+    block = max(16, int(8 * fwhm))
+    parts = []
+    for f, frame in enumerate(data):
+        clean = frame - _background(frame, block)
+        # light smoothing only: a filter as wide as the PSF would merge atoms one spacing apart
+        smooth = ndimage.gaussian_filter(clean, max(0.6, 0.4 * s0))
+        med = np.median(smooth)
+        mad = 1.4826 * np.median(np.abs(smooth - med))
+        if not np.isfinite(mad) or mad <= 0:
+            continue
+        peak = (smooth == ndimage.maximum_filter(smooth, size=3)) & (smooth > med + detection_sigma * mad)
+        edge = radius
+        peak[:edge], peak[-edge:], peak[:, :edge], peak[:, -edge:] = False, False, False, False
+        py, px = np.nonzero(peak)
+        if py.size == 0:
+            continue
+        x, y, photons, width, sigma, ok = _fit_spots(clean, py, px, width0=s0, radius=radius)
+        parts.append((x[ok], y[ok], photons[ok], width[ok], sigma[ok], np.full(int(ok.sum()), f)))
+    if not parts:
+        empty = np.zeros(0)
+        return LocatedAtoms(empty, empty, empty, empty, empty, np.zeros(0, int), np.zeros(0, bool), len(data))
+    x, y, photons, width, sigma, frame = (np.concatenate(v) for v in zip(*parts))
+    single = np.zeros(x.size, bool)
+    if x.size:
+        # the width a single atom's spot should have: the PSF's Gaussian width widened by the
+        # pixel (a uniform pixel adds 1/12 pixel^2 of variance); merged groups are wider
+        expect = np.sqrt(s0**2 + 1.0 / 12.0)
+        narrow = (width > WIDTH_RANGE[0] * expect) & (width < WIDTH_RANGE[1] * expect)
+        med_p = np.median(photons[narrow]) if narrow.sum() >= 5 else np.median(photons)
+        single = narrow & (photons > PHOTON_RANGE[0] * med_p) & (photons < PHOTON_RANGE[1] * med_p)
+        # no other candidate (single or not) within one FWHM in the same frame
+        from scipy.spatial import cKDTree
+
+        for f in np.unique(frame):
+            sel = np.flatnonzero(frame == f)
+            tree = cKDTree(np.column_stack([x[sel], y[sel]]))
+            counts = np.array([len(v) for v in tree.query_ball_point(np.column_stack([x[sel], y[sel]]), r=fwhm)])
+            single[sel[counts > 1]] = False
+    return LocatedAtoms(x=x, y=y, photons=photons, width=width, sigma=sigma, frame=frame.astype(int), single=single,
+                        n_frames=len(data))
+
+
+def _splat(shape, x, y) -> np.ndarray:
+    """Points spread onto the pixel grid with bilinear weights."""
+    h, w = shape
+    img = np.zeros((h + 1, w + 1))
+    x0, y0 = np.floor(x).astype(int), np.floor(y).astype(int)
+    fx, fy = x - x0, y - y0
+    ok = (x0 >= 0) & (y0 >= 0) & (x0 < w) & (y0 < h)
+    for dy, dx, wgt in ((0, 0, (1 - fx) * (1 - fy)), (0, 1, fx * (1 - fy)), (1, 0, (1 - fx) * fy), (1, 1, fx * fy)):
+        np.add.at(img, (y0[ok] + dy, x0[ok] + dx), wgt[ok])
+    return img[:h, :w]
+
+
+def _reciprocal_from_points(shape, x, y, frame, *, kmin: float, kmax: float):
+    """Two reciprocal vectors (cycles/pixel) from the summed power spectra of the point patterns."""
+    h, w = shape
+    power = np.zeros((h, w))
+    for f in np.unique(frame):
+        sel = frame == f
+        img = _splat(shape, x[sel], y[sel])
+        img -= img.mean()
+        power += np.abs(np.fft.fft2(img)) ** 2
+    ky = np.fft.fftfreq(h)[:, None]
+    kx = np.fft.fftfreq(w)[None, :]
+    kr = np.hypot(kx, ky)
+    band = (kr >= kmin) & (kr <= kmax) & ((ky > 0) | ((ky == 0) & (kx > 0)))  # half plane: P(k) = P(-k)
+    if not band.any():
+        raise LatticeNotFound("the frame is too small to show the lattice of the located atoms")
+    # the spectrum of random points is exponentially distributed about its mean: 20 times the
+    # mean is exceeded by chance with probability exp(-20) ~ 2e-9 per bin
+    level = np.mean(power[band])
+    local_max = power == ndimage.maximum_filter(power, size=3, mode="wrap")
+    cand = np.flatnonzero((band & local_max & (power > PEAK_RATIO * level)).ravel())
+    if cand.size < 2:
+        raise LatticeNotFound("the located atoms show no periodic arrangement (no peak in the spectrum of their "
+                              "positions)")
+    cand = cand[np.argsort(power.ravel()[cand])[::-1]][:12]
+    ks = []
+    for c in cand:
+        iy, ix = divmod(int(c), w)
+        # sub-bin position: parabola through the neighbours along each axis (log power)
+        lp = np.log(np.maximum(power, 1e-300))
+        def vertex(m, c0, p):
+            denom = m - 2 * c0 + p
+            return 0.5 * (m - p) / denom if denom < 0 else 0.0
+        dy = vertex(lp[(iy - 1) % h, ix], lp[iy, ix], lp[(iy + 1) % h, ix])
+        dx = vertex(lp[iy, (ix - 1) % w], lp[iy, ix], lp[iy, (ix + 1) % w])
+        ks.append(np.array([kx[0, ix] + dx / w, ky[iy, 0] + dy / h]))
+    ks = np.array(ks)
+    peak_ratio = float(power.ravel()[cand[0]] / level)
+    # the shortest strong peak and the shortest strong peak not collinear with it
+    order = np.argsort(np.hypot(ks[:, 0], ks[:, 1]))
+    first = ks[order[0]]
+    for j in order[1:]:
+        sin = abs(first[0] * ks[j, 1] - first[1] * ks[j, 0]) / (np.linalg.norm(first) * np.linalg.norm(ks[j]))
+        if sin > 0.3:
+            return np.array([first, ks[j]]), peak_ratio
+    raise LatticeNotFound("the located atoms line up along one direction only; no 2-D lattice")
+
+
+def _fit_positions(x, y, frame, sig, a1, a2, offsets, *, centre, radius=None):
+    """Robust weighted least squares of shared vectors and per-frame offsets on assigned atoms.
+
+    Returns a1, a2, offsets (n_frames, 2), the covariance of (a1, a2) and the used mask.
+    """
+    basis = np.column_stack([a1, a2])
+    inv = np.linalg.inv(basis)
+    rel = np.stack([x, y]) - offsets[frame].T
+    frac = inv @ rel
+    idx = np.rint(frac)
+    d = np.stack([x, y]) - (offsets[frame].T + basis @ idx)
+    use = np.ones(x.size, bool)
+    if radius is not None:
+        dist = np.hypot(x - centre[0], y - centre[1])
+        use &= dist <= radius
+    frames = np.unique(frame)
+    n_f = int(frame.max()) + 1
+    wgt = 1.0 / np.maximum(sig, 0.02) ** 2
+    cov = None
+    for _ in range(4):
+        sel = np.flatnonzero(use)
+        if sel.size < 8:
+            raise LatticeNotFound(f"only {sel.size} atoms fit the lattice; too few to measure it")
+        # unknowns: a1x a1y a2x a2y, then (ox, oy) per frame; x and y decouple given the indices
+        n_par = 2 + n_f
+        out = []
+        covs = []
+        for axis in (0, 1):
+            a = np.zeros((sel.size, n_par))
+            a[:, 0] = idx[0, sel]
+            a[:, 1] = idx[1, sel]
+            a[np.arange(sel.size), 2 + frame[sel]] = 1.0
+            present = np.zeros(n_par, bool)
+            present[:2] = True
+            present[2 + frames] = True
+            a = a[:, present]
+            sw = np.sqrt(wgt[sel])
+            coef, *_ = np.linalg.lstsq(a * sw[:, None], (x, y)[axis][sel] * sw, rcond=None)
+            full = np.zeros(n_par)
+            full[present] = coef
+            out.append(full)
+            resid = ((x, y)[axis][sel] - a @ coef) * sw
+            s2 = float(resid @ resid / max(sel.size - present.sum(), 1))
+            covs.append(np.linalg.pinv((a * sw[:, None]).T @ (a * sw[:, None]))[:2, :2] * s2)
+        a1 = np.array([out[0][0], out[1][0]])
+        a2 = np.array([out[0][1], out[1][1]])
+        offsets = np.column_stack([out[0][2:], out[1][2:]])
+        basis = np.column_stack([a1, a2])
+        d = np.stack([x, y]) - (offsets[frame].T + basis @ idx)
+        dn = np.hypot(d[0], d[1]) / np.maximum(sig, 0.02)
+        robust = np.median(dn[use]) / 1.1774  # the median radius of a 2-D normal is 1.1774 sigma
+        keep = dn <= OUTLIER_SIGMA * max(robust, 1e-9)
+        if radius is not None:
+            keep &= np.hypot(x - centre[0], y - centre[1]) <= radius
+        cov = covs
+        if np.array_equal(keep, use):
+            break
+        use = keep
+    return a1, a2, offsets, cov, use
+
+
+def _spacing_sigma(cov, a1, a2) -> float:
+    """Relative 1-sigma error of the longer-uncertain spacing from the (x, y) covariances of the vectors."""
+    cx, cy = cov
+    var1 = (a1[0] ** 2 * cx[0, 0] + a1[1] ** 2 * cy[0, 0]) / (a1 @ a1)
+    var2 = (a2[0] ** 2 * cx[1, 1] + a2[1] ** 2 * cy[1, 1]) / (a2 @ a2)
+    return float(np.sqrt(max(var1 / (a1 @ a1), var2 / (a2 @ a2))))
+
+
+def lattice_from_atoms(image_or_stack, *, fwhm: float, atoms: LocatedAtoms | None = None,
+                       spacing_range=(0.55, 2.0), start: LatticeGeometry | None = None) -> LatticeGeometry:
+    """Lattice vectors and offset from the positions of single atoms (no optical cut-off).
+
+    Parameters
+    ----------
+    image_or_stack : (H, W) or (n_frames, H, W) array_like
+        Frame(s) in photons per pixel. A stack shares the vectors; every frame gets its own
+        offset (the returned offset is frame 0's, as the site nearest the frame centre).
+    fwhm : float
+        PSF FWHM, pixels.
+    atoms : LocatedAtoms, optional
+        Atoms already located by :func:`locate_atoms` on the same frames.
+    spacing_range : (float, float)
+        Smallest and largest nearest-neighbour spacing searched, in units of ``fwhm``.
+    start : LatticeGeometry, optional
+        Approximate vectors (for example the Fourier estimate), used when the spectrum of the
+        points shows no lattice (too few single atoms, at high filling); the atoms' positions
+        then refine them.
+
+    Returns
+    -------
+    LatticeGeometry
+        Canonical basis (:func:`latticeread.core.lattice.canonical_basis`), pixels, with a
+        :class:`LatticeQuality`: ``peak_to_background`` = the strongest peak of the points'
+        spectrum over its median in the searched band; ``residual`` = RMS distance of the
+        used atoms from their sites, pixels; ``n_sites_used`` = atoms in the final fit;
+        ``spacing_sigma`` = 1-sigma relative error of the spacings from the fit's covariance.
+
+    Raises
+    ------
+    LatticeNotFound
+        Fewer than :data:`MIN_LATTICE_ATOMS` single atoms, no periodic arrangement, or only
+        one direction.
+    """
+    from latticeread.core.lattice import canonical_basis
+
+    data = _as_stack(image_or_stack)
+    shape = data.shape[1:]
+    if atoms is None:
+        atoms = locate_atoms(data, fwhm=fwhm)
+    sel = atoms.single
+    n_single = int(sel.sum())
+    if n_single < MIN_LATTICE_ATOMS:
+        raise LatticeNotFound(f"only {n_single} single atoms were found (of {len(atoms)} spots); at least "
+                              f"{MIN_LATTICE_ATOMS} are needed to read the lattice from their positions")
+    x, y, sig, frame = atoms.x[sel], atoms.y[sel], atoms.sigma[sel], atoms.frame[sel]
+    # |b| of a lattice of spacing a is 1/a (square) to 2/(sqrt(3) a) (triangular)
+    kmin = 0.9 / (spacing_range[1] * fwhm)
+    kmax = min(0.5, 1.25 / (spacing_range[0] * fwhm))
+    try:
+        recip, ratio = _reciprocal_from_points(shape, x, y, frame, kmin=kmin, kmax=kmax)
+        basis = np.linalg.inv(recip)
+        a1, a2 = basis[:, 0], basis[:, 1]
+    except LatticeNotFound:
+        if start is None:
+            raise
+        a1, a2, ratio = np.asarray(start.a1, float), np.asarray(start.a2, float), float("nan")
+    a1, a2 = (np.asarray(v) for v in canonical_basis(a1, a2))
+    centre = np.array([(shape[1] - 1) / 2.0, (shape[0] - 1) / 2.0])
+    n_f = data.shape[0]
+    # per-frame starting offset: the single atom nearest the frame centre
+    offsets = np.tile(centre, (n_f, 1))
+    for f in range(n_f):
+        mine = np.flatnonzero(frame == f)
+        if mine.size:
+            k = mine[np.argmin(np.hypot(x[mine] - centre[0], y[mine] - centre[1]))]
+            offsets[f] = (x[k], y[k])
+    spacing = min(np.hypot(*a1), np.hypot(*a2))
+    extent = np.hypot(*shape)
+    # the first disk: eight spacings, or wider until it holds MIN_LATTICE_ATOMS atoms
+    near = np.sort(np.hypot(x - centre[0], y - centre[1]))
+    radius = max(8 * spacing, float(near[min(MIN_LATTICE_ATOMS, near.size) - 1]) + 1.0)
+    while True:
+        a1, a2, offsets, cov, used = _fit_positions(x, y, frame, sig, a1, a2, offsets, centre=centre,
+                                                    radius=None if radius >= extent else radius)
+        if radius >= extent:
+            break
+        radius *= 2
+    # a second pass on every atom with the final vectors (indices re-assigned)
+    a1, a2, offsets, cov, used = _fit_positions(x, y, frame, sig, a1, a2, offsets, centre=centre)
+    a1, a2 = (np.asarray(v) for v in canonical_basis(a1, a2))
+    basis = np.column_stack([a1, a2])
+    d = np.stack([x, y]) - offsets[frame].T
+    d = d - basis @ np.rint(np.linalg.inv(basis) @ d)
+    residual = float(np.sqrt(np.mean(np.sum(d[:, used] ** 2, axis=0))))
+    spacing_sigma = _spacing_sigma(cov, a1, a2)
+    warnings = []
+    if int(used.sum()) < MIN_LATTICE_ATOMS:
+        warnings.append(f"only {int(used.sum())} atoms define the lattice: the geometry rests on few atoms")
+    # offset of frame 0 as the site nearest the frame centre
+    off = offsets[0]
+    frac = np.linalg.inv(basis) @ (centre - off)
+    off = off + basis @ np.rint(frac)
+    quality = LatticeQuality(peak_to_background=ratio, residual=residual, n_sites_used=int(used.sum()),
+                             warnings=tuple(warnings), spacing_sigma=spacing_sigma)
+    log.debug("lattice from %d atoms: a1=%s a2=%s offset=%s residual %.3f px", used.sum(), a1, a2, off, residual)
+    return LatticeGeometry(a1=tuple(a1), a2=tuple(a2), offset=tuple(off), quality=quality)
+
+
+@dataclass(frozen=True)
+class FrameOffset:
+    """A frame's lattice offset from its single atoms (vectors held fixed).
+
+    Attributes
+    ----------
+    offset : (float, float)
+        Pixels; the lattice translate nearest the reference offset.
+    sigma : (float, float)
+        1-sigma error of each component, pixels.
+    n_atoms : int
+        Single atoms in the fit.
+    """
+
+    offset: tuple[float, float]
+    sigma: tuple[float, float]
+    n_atoms: int
+
+
+def offset_from_atoms(image, geometry: LatticeGeometry, *, fwhm: float, reference=None,
+                      min_atoms: int = 5, atoms: LocatedAtoms | None = None) -> FrameOffset:
+    """Offset of one frame from the positions of its single atoms, the vectors held fixed.
+
+    The model ``r_n = offset + i_n a1 + j_n a2`` is linear in the two offset components once
+    every atom has the indices of its nearest site, so the offset is the weighted mean of the
+    atoms' displacements from their sites (weights: inverse position variance), with atoms
+    more than :data:`OUTLIER_SIGMA` robust standard deviations off dropped and the indices
+    re-assigned until they no longer change. Beyond the optical cut-off this uses what a
+    linear fit of the image cannot: that every spot is one atom on one site.
+
+    Parameters
+    ----------
+    image : (H, W) array_like
+        One frame in photons per pixel.
+    geometry : LatticeGeometry
+        Lattice vectors (pixels) and the reference offset.
+    fwhm : float
+        PSF FWHM, pixels.
+    reference : (float, float), optional
+        Offset whose nearest lattice translate is returned (default ``geometry.offset``).
+    min_atoms : int
+        Fewest single atoms accepted.
+    atoms : LocatedAtoms, optional
+        Atoms already located in this frame.
+
+    Raises
+    ------
+    LatticeNotFound
+        Fewer than ``min_atoms`` single atoms.
+    """
+    if atoms is None:
+        atoms = locate_atoms(image, fwhm=fwhm)
+    sel = atoms.single
+    if int(sel.sum()) < min_atoms:
+        raise LatticeNotFound(f"only {int(sel.sum())} single atoms in the frame; at least {min_atoms} are needed "
+                              "to fit its lattice offset from their positions")
+    x, y, sig = atoms.x[sel], atoms.y[sel], np.maximum(atoms.sigma[sel], 0.02)
+    basis = geometry.basis
+    inv = np.linalg.inv(basis)
+    ref = np.asarray(geometry.offset if reference is None else reference, float)
+    # displacement of every atom from its nearest site of the reference lattice, wrapped into
+    # one cell; the circular mean in the cell's fractional coordinates gives a first offset
+    frac = inv @ (np.stack([x, y]) - ref[:, None])
+    phase = np.exp(2j * np.pi * frac)
+    start = np.angle(np.sum(phase / sig**2, axis=1)) / (2 * np.pi)
+    offset = ref + basis @ start
+    use = np.ones(x.size, bool)
+    w = 1.0 / sig**2
+    for _ in range(5):
+        rel = np.stack([x, y]) - offset[:, None]
+        d = rel - basis @ np.rint(inv @ rel)
+        new = offset + (d[:, use] * w[use]).sum(axis=1) / w[use].sum()
+        rel = np.stack([x, y]) - new[:, None]
+        d = rel - basis @ np.rint(inv @ rel)
+        dn = np.hypot(d[0], d[1]) / sig
+        scale = np.median(dn[use]) / 1.1774
+        keep = dn <= OUTLIER_SIGMA * max(scale, 1e-9)
+        done = np.allclose(new, offset, atol=1e-4) and np.array_equal(keep, use)
+        offset, use = new, keep
+        if done or use.sum() < min_atoms:
+            break
+    if use.sum() < min_atoms:
+        raise LatticeNotFound(f"only {int(use.sum())} single atoms sit on the lattice; at least {min_atoms} are "
+                              "needed to fit the frame's offset")
+    rel = np.stack([x, y]) - offset[:, None]
+    d = rel - basis @ np.rint(inv @ rel)
+    # error of the weighted mean, scaled by the scatter actually seen (chi-square per atom)
+    chi2 = float(np.sum((d[:, use] ** 2).sum(axis=0) * w[use]) / max(2 * use.sum() - 2, 1))
+    err = np.sqrt(max(chi2, 1.0) / w[use].sum())
+    frac = inv @ (offset - ref)
+    offset = offset - basis @ np.rint(frac)
+    return FrameOffset(offset=(float(offset[0]), float(offset[1])), sigma=(float(err), float(err)),
+                       n_atoms=int(use.sum()))
+
+
+
+#: A part of the frame whose atoms sit off the lattice by more than this many spacings (and
+#: by more than :data:`CHECK_SIGNIFICANCE` of their own error) fails the geometry check.
+CHECK_TOLERANCE = 0.05
+CHECK_SIGNIFICANCE = 4.0
+
+
+@dataclass(frozen=True)
+class GeometryCheck:
+    """Whether a lattice explains where the atoms are, tile by tile.
+
+    Attributes
+    ----------
+    max_deviation : float
+        Largest mean displacement of a tile's atoms from their nearest sites, in units of the
+        smallest spacing (a tile is one of ``tiles x tiles`` parts of the atoms' bounding box).
+    significance : float
+        That displacement over its own 1-sigma error.
+    n_atoms : int
+        Single atoms used.
+    ok : bool
+        False when some tile is off by more than :data:`CHECK_TOLERANCE` spacings and more than
+        :data:`CHECK_SIGNIFICANCE` sigma.
+    warning : str
+        Why not ok ("" when ok).
+    """
+
+    max_deviation: float
+    significance: float
+    n_atoms: int
+    ok: bool
+    warning: str = ""
+
+
+def check_geometry(atoms: LocatedAtoms, geometry: LatticeGeometry, *, offsets=None, tiles: int = 3) -> GeometryCheck:
+    """Test the lattice against the positions of the single atoms, part of the frame by part.
+
+    A wrong spacing or angle moves the sites away from the atoms in proportion to the distance
+    from where the lattice was pinned; a wrong offset moves them all; a distorted image moves
+    the corners. In every tile of a ``tiles x tiles`` grid over the atoms' bounding box the
+    weighted mean displacement of the atoms from their nearest sites is measured with its
+    error (weights: the atoms' own position errors, the error scaled up by the scatter seen).
+    Unlike the fit's statistical uncertainty, this sees a geometry that is simply wrong.
+
+    Parameters
+    ----------
+    atoms : LocatedAtoms
+        From :func:`locate_atoms` (only ``single`` atoms are used).
+    geometry : LatticeGeometry
+        Vectors and offset, pixels.
+    offsets : (n_frames, 2) array_like, optional
+        Offset of every frame of ``atoms`` (default ``geometry.offset`` for all).
+    tiles : int
+        Tiles per axis.
+    """
+    sel = atoms.single
+    x, y, sig, frame = atoms.x[sel], atoms.y[sel], np.maximum(atoms.sigma[sel], 0.02), atoms.frame[sel]
+    spacing = min(geometry.spacings)
+    if x.size < 2 * tiles * tiles:
+        return GeometryCheck(float("nan"), float("nan"), int(x.size), True, "")
+    offs = (np.tile(np.asarray(geometry.offset, float), (atoms.n_frames, 1)) if offsets is None
+            else np.asarray(offsets, float).reshape(-1, 2))
+    basis = geometry.basis
+    rel = np.stack([x, y]) - offs[frame].T
+    d = rel - basis @ np.rint(np.linalg.inv(basis) @ rel)
+    # atoms much farther off than their error are other things (merged spots): leave them out
+    dn = np.hypot(d[0], d[1]) / sig
+    keep = dn <= OUTLIER_SIGMA * max(np.median(dn) / 1.1774, 1e-9)
+    x, y, sig, d = x[keep], y[keep], sig[keep], d[:, keep]
+    ex = np.linspace(x.min(), x.max() + 1e-9, tiles + 1)
+    ey = np.linspace(y.min(), y.max() + 1e-9, tiles + 1)
+    ix = np.clip(np.searchsorted(ex, x, side="right") - 1, 0, tiles - 1)
+    iy = np.clip(np.searchsorted(ey, y, side="right") - 1, 0, tiles - 1)
+    worst, worst_sig, worst_tile = 0.0, 0.0, None
+    w = 1.0 / sig**2
+    for t in range(tiles * tiles):
+        m = (iy * tiles + ix) == t
+        if m.sum() < 5:
+            continue
+        mean = (d[:, m] * w[m]).sum(axis=1) / w[m].sum()
+        chi2 = float(np.sum(((d[:, m] - mean[:, None]) ** 2).sum(axis=0) * w[m]) / max(2 * m.sum() - 2, 1))
+        err = np.sqrt(max(chi2, 1.0) / w[m].sum())
+        dev = float(np.hypot(*mean))
+        if dev / spacing > worst:
+            worst, worst_sig, worst_tile = dev / spacing, dev / err, t
+    ok = not (worst > CHECK_TOLERANCE and worst_sig > CHECK_SIGNIFICANCE)
+    text = ""
+    if not ok:
+        row, col = divmod(worst_tile, tiles)
+        where = (("top", "middle", "bottom")[row] if tiles == 3 else f"row {row}") + " " + \
+            (("left", "centre", "right")[col] if tiles == 3 else f"column {col}")
+        text = (f"the lattice misses the atoms in the {where} of the frame by {worst:.2f} spacing "
+                f"({worst_sig:.0f} sigma): the geometry does not explain the data there (wrong vectors, a "
+                "distorted image or a drifting lattice); sites there may be misplaced")
+    return GeometryCheck(max_deviation=float(worst), significance=float(worst_sig), n_atoms=int(x.size), ok=ok,
+                         warning=text)
