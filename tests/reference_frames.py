@@ -254,6 +254,9 @@ def main(argv=None) -> int:
         oracle = exp[case]["oracle_fidelity_mean"]
         print(f"{case}: {score.summary()}; oracle {oracle:.4f} (diff {100 * (score.mean_fidelity - oracle):+.2f} pp);"
               f" {time.perf_counter() - t0:.0f} s; {len(run.warnings)} warning(s)")
+        notes = run.calibration.notes
+        print(f"    geometry by {notes.get('geometry_method', '?')}, offsets by "
+              f"{run.calibration.options.phase_method}; check {notes.get('geometry_check')}")
         for w in sorted(set(run.warnings))[:6]:
             print(f"    warning: {w}")
     return 0

@@ -54,7 +54,7 @@ PIXEL_POLICIES = ("flag", "fail")
 #: The threshold policy of a calibration without a fixed threshold, in every front end.
 DEFAULT_THRESHOLD_SCOPE = "pooled"
 _WEIGHTINGS = ("none", "camera")
-_PHASE_METHODS = ("model", "fourier")
+_PHASE_METHODS = ("atoms", "model", "fourier")
 #: Settings that format version 1 kept in ``notes``.
 _V1_NOTE_KEYS = ("weighting", "index_bounds", "photons_per_atom", "reference_photons", "threshold_result")
 
@@ -147,8 +147,9 @@ class ReconstructionOptions:
         Detected photons of one atom (the binary refinement's brightness); None = unknown.
     reference : ReferenceImage or None
         Mean photon image for ``weighting="camera"``.
-    phase_method : {"model", "fourier"}
-        How the lattice offset is re-found in each frame.
+    phase_method : {"atoms", "model", "fourier"}
+        How the lattice offset is re-found in each frame (see
+        :class:`latticeread.core.pipeline.Reconstructor`).
     refit_phase : bool
         Re-find the lattice offset in every frame (True) or use the calibration's offset.
     hot_pixels : tuple of (row, col)
@@ -169,7 +170,7 @@ class ReconstructionOptions:
             raise CalibrationError(f"unknown pixel weighting {self.weighting!r}; use 'none' (every pixel counts the "
                                    "same) or 'camera' (inverse camera-noise variance)")
         if self.phase_method not in _PHASE_METHODS:
-            raise CalibrationError(f"unknown phase method {self.phase_method!r}; use 'model' or 'fourier'")
+            raise CalibrationError(f"unknown phase method {self.phase_method!r}; use 'atoms', 'model' or 'fourier'")
         bounds = self.index_bounds
         if bounds is not None:
             try:

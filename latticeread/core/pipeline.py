@@ -64,6 +64,12 @@ UNCERTAIN_RANGE = (0.1, 0.9)
 REGION_MARGIN = 3
 #: Largest side, in sites, of the central block on which the lattice phase is fitted.
 PHASE_BLOCK = 40
+#: Spacing / PSF FWHM below which each frame's offset comes from its single atoms by default:
+#: an ideal Airy PSF passes no lattice frequency below 0.97 FWHM (the incoherent cut-off
+#: 2 NA / lambda; Born & Wolf, from memory), and near it the image-model fit with free
+#: amplitudes barely feels the offset.
+ATOMS_OFFSET_BELOW = 1.0
+
 
 
 @dataclass(frozen=True)
@@ -96,6 +102,12 @@ class FrameResult:
         Amplitude estimator.
     warnings : tuple of str
         Why this frame's result may mislead.
+    offset_method : str
+        How this frame's lattice offset was found: ``"atoms"`` (positions of its single atoms,
+        :func:`latticeread.core.atoms.offset_from_atoms`), ``"model"`` (image-model fit),
+        ``"fourier"`` (Fourier phase, then the model fit) or ``"calibration"`` (not re-fitted).
+    offset_sigma : (float, float)
+        1-sigma error of the offset's x and y, pixels (NaN where the method gives none).
     """
 
     frame_index: int
@@ -110,6 +122,8 @@ class FrameResult:
     background: float = 0.0
     method: str = "linear"
     warnings: tuple[str, ...] = ()
+    offset_method: str = "calibration"
+    offset_sigma: tuple[float, float] = (float("nan"), float("nan"))
 
     @property
     def n_atoms(self) -> int:
@@ -223,8 +237,16 @@ class Reconstructor:
     refit_phase : bool, optional
         Re-find the lattice offset in every frame (True) or use the calibration's offset
         (default: ``calibration.options.refit_phase``).
-    phase_method : {"model", "fourier"}, optional
-        How the offset is re-found (default: ``calibration.options.phase_method``). ``"model"`` (default): search one unit cell for the best
+    phase_method : {"atoms", "model", "fourier"}, optional
+        How the offset is re-found (default: ``calibration.options.phase_method``, which
+        :func:`calibrate` sets to ``"atoms"`` when the spacing is below
+        :data:`ATOMS_OFFSET_BELOW` PSF FWHM). ``"atoms"``: the weighted mean displacement of the
+        frame's single atoms from their nearest sites
+        (:func:`latticeread.core.atoms.offset_from_atoms`; the vectors fixed, two parameters,
+        with a 1-sigma error); beyond the optical cut-off the lattice leaves no trace in a
+        linear fit of the image, but every lone spot is one atom on one site. Falls back to
+        ``"model"`` (with a warning) in a frame with too few single atoms.
+        ``"model"``: search one unit cell for the best
         matched-filter energy, then Newton steps on the least-squares fit of the whole image
         model (:meth:`SiteBasis.fit_offset`); works at every spacing, also where the lattice's
         Fourier peaks lie beyond the optical cut-off (spacing below ~1 FWHM for an Airy PSF).
@@ -280,8 +302,8 @@ class Reconstructor:
         if hot.any():  # hot pixels are left out once, in the factorisation
             mask = ~hot if mask is None else mask & ~hot
         self.hot_pixels = hot if hot.any() else None
-        if phase_method not in ("model", "fourier"):
-            raise CalibrationError(f"unknown phase method {phase_method!r}; use 'model' or 'fourier'")
+        if phase_method not in ("atoms", "model", "fourier"):
+            raise CalibrationError(f"unknown phase method {phase_method!r}; use 'atoms', 'model' or 'fourier'")
         if weighting is None:
             weighting = options.weighting
         if weighting not in WEIGHTINGS:
@@ -324,6 +346,7 @@ class Reconstructor:
         self.atom_photons = None if atom is None or not np.isfinite(atom) or atom <= 0 else float(atom)
         self._last_offset = calibration.geometry.offset
         self.artefacts = ArtefactFinder(calibration, shape, crop=self.basis.crop)
+        self._offset_info = ("calibration", (float("nan"), float("nan")))
 
     # --- steps ------------------------------------------------------------------------------
     def _check(self, image, where: str) -> np.ndarray:
@@ -400,6 +423,7 @@ class Reconstructor:
         return out
 
     def _frame_geometry(self, photons) -> tuple[LatticeGeometry, list[str], bool]:
+        self._offset_info = ("calibration", (float("nan"), float("nan")))
         geometry = self.calibration.geometry
         if not self.refit_phase:
             return geometry, [], False
@@ -411,6 +435,24 @@ class Reconstructor:
         warnings: list[str] = []
         poor = False
         start, search = None, True
+        if self.phase_method == "atoms":
+            from latticeread.core.atoms import offset_from_atoms
+
+            from latticeread.core.atoms import check_geometry, locate_atoms
+
+            atoms = locate_atoms(clean, fwhm=self.calibration.psf.fwhm)
+            try:
+                found = offset_from_atoms(clean, geometry, fwhm=self.calibration.psf.fwhm, atoms=atoms)
+            except LatticeNotFound as exc:
+                warnings.append(f"the lattice offset could not be fitted from single atoms ({exc}); the image-model "
+                                "fit searched the whole unit cell instead")
+            else:
+                self._offset_info = ("atoms", found.sigma)
+                fitted = geometry.with_offset(found.offset)
+                check = check_geometry(atoms, fitted)
+                if not check.ok:
+                    warnings.append(check.warning)
+                return fitted, warnings, poor
         if self.phase_method == "fourier":
             from latticeread.core.lattice import refine_phase  # Fourier phase refit
 
@@ -423,10 +465,12 @@ class Reconstructor:
                                 "the whole unit cell instead")
         atom = self.atom_photons if self.method == "nonlinear" else None
         offset, _ = self.phase_basis.fit_offset(clean, start=start, search=search, atom_photons=atom)
+        self._offset_info = ("fourier" if self.phase_method == "fourier" else "model", (float("nan"), float("nan")))
         shift = np.hypot(offset[0] - geometry.offset[0], offset[1] - geometry.offset[1])
         if shift > max(geometry.spacings):
             warnings.append(f"the re-fitted lattice moved by {shift:.2f} pixels, more than a lattice spacing; "
                             "the calibration's offset was used")
+            self._offset_info = ("calibration", (float("nan"), float("nan")))
             return geometry, warnings, True
         return geometry.with_offset(offset), warnings, poor
 
@@ -568,7 +612,8 @@ class Reconstructor:
                              amplitudes=amp.amplitudes, occupied=np.zeros(len(sites), np.uint8),
                              p_occupied=np.zeros(len(sites)), flags=amp.flags, threshold=float("nan"),
                              threshold_result=None, background=amp.background, method=amp.method,
-                             warnings=tuple(warnings))
+                             warnings=tuple(warnings), offset_method=self._offset_info[0],
+                             offset_sigma=self._offset_info[1])
         return reclassify(result, threshold)
 
 
@@ -853,17 +898,26 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
                                    warnings=psf_warnings)
     elif "geometry_from_prior" in notes:
         psf_warnings.extend(w for w in geometry.quality.warnings)
+    check = _geometry_check(clean, geometry, psf)
+    if check is not None:
+        notes["geometry_check"] = {"max_deviation_spacings": check.max_deviation, "significance": check.significance,
+                                   "n_atoms": check.n_atoms, "ok": check.ok}
+        if not check.ok:
+            psf_warnings.append(check.warning)
     ratio = min(geometry.spacings) / psf.fwhm
     if method is None:
         method = "nonlinear" if ratio < NONLINEAR_BELOW else "linear"
     if method not in AMPLITUDE_METHODS:
         raise CalibrationError(f"unknown amplitude method {method!r}; use one of {', '.join(AMPLITUDE_METHODS)}")
     notes["spacing_over_fwhm"] = float(ratio)
+    # each frame's offset: from its single atoms where the image's lattice frequency is weak or gone
+    offset_method = "atoms" if ratio < ATOMS_OFFSET_BELOW else "model"
 
     first_bounds = _bright_region(clean, geometry=geometry, psf=psf) if restrict_region else None
     draft = Calibration(geometry=geometry, psf=psf, camera=camera, frame_shape=shape, threshold=None,
                         threshold_method=threshold_method, amplitude_method="linear", pixel_size_nm=pixel_size_nm,
-                        options=ReconstructionOptions(index_bounds=first_bounds, hot_pixels=hot_pixels))
+                        options=ReconstructionOptions(index_bounds=first_bounds, hot_pixels=hot_pixels,
+                                                      phase_method=offset_method))
     rec = Reconstructor(draft, method="linear", mask=mask, refit_phase=True)
     pooled, pooled_flags, warnings = _pooled(rec, chosen)
     tr = select_threshold(pooled, method=threshold_method, camera=camera, flags=pooled_flags)
@@ -1002,19 +1056,50 @@ def estimate_geometry(frames, *, camera: CameraModel | None = None, **constraint
 
 
 def _geometry_from_frames(clean, *, psf, prior, n_fit, notes) -> LatticeGeometry:
-    """The Fourier estimate (with the prior's fixed values), or a model fit from the prior; canonical basis."""
+    """The lattice from the located atoms, the Fourier estimate, or a model fit from the prior.
+
+    Without the lab's spacing and angle and with a known PSF, the positions of the atoms that
+    stand apart decide (:func:`latticeread.core.atoms.lattice_from_atoms`: no optical cut-off,
+    every single atom counts); the Fourier estimate is its start when the atoms alone show no
+    lattice, and the answer when too few atoms stand apart. The route taken is noted in
+    ``geometry_method``.
+    """
     from latticeread.core.lattice import canonical_geometry, estimate_lattice
 
     kwargs = lattice_constraint_kwargs(prior)
+    fourier, failure = None, None
     try:
-        return canonical_geometry(_estimate_geometry(clean, lambda image: estimate_lattice(image, **kwargs)))
+        fourier = canonical_geometry(_estimate_geometry(clean, lambda image: estimate_lattice(image, **kwargs)))
     except LatticeNotFound as exc:
-        if kwargs.get("fixed_spacing") is None or "fixed_angle" not in kwargs:
-            raise LatticeNotFound(f"{exc}. Below about one PSF FWHM the lattice's Fourier peaks vanish: give the "
-                                  "spacing and angle of the lattice and the PSF to fit it from that prior") from exc
-        if psf is None:
-            raise LatticeNotFound(f"{exc}. Fitting the lattice from the spacing and angle needs the PSF: give it "
-                                  "from the optics (e.g. --psf airy --wavelength-nm --na --pixel-size-nm)") from exc
+        failure = exc
+    if psf is not None and not kwargs:
+        from latticeread.core.atoms import lattice_from_atoms
+
+        try:
+            geometry = lattice_from_atoms(clean, fwhm=psf.fwhm, start=fourier)
+        except LatticeNotFound as exc:
+            notes["geometry_atoms_failed"] = str(exc)
+        else:
+            notes["geometry_method"] = "atoms"
+            notes["geometry_from_atoms"] = {"n_atoms": int(geometry.quality.n_sites_used),
+                                            "spacing_sigma": float(geometry.quality.spacing_sigma),
+                                            "residual_px": float(geometry.quality.residual),
+                                            "start": "fourier" if fourier is not None and not np.isfinite(
+                                                geometry.quality.peak_to_background) else "atoms"}
+            return geometry
+    if fourier is not None:
+        notes["geometry_method"] = "fourier"
+        return fourier
+    exc = failure
+    atoms_text = (f"; the positions of single atoms showed none either ({notes['geometry_atoms_failed']})"
+                  if "geometry_atoms_failed" in notes else "")
+    if kwargs.get("fixed_spacing") is None or "fixed_angle" not in kwargs:
+        raise LatticeNotFound(f"{exc}{atoms_text}. Below about one PSF FWHM the lattice's Fourier peaks vanish: "
+                              "give the PSF (from the optics) so that the lattice can be read from the atoms' "
+                              "positions, or the spacing and angle of the lattice to fit it from that prior") from exc
+    if psf is None:
+        raise LatticeNotFound(f"{exc}. Fitting the lattice from the spacing and angle needs the PSF: give it "
+                              "from the optics (e.g. --psf airy --wavelength-nm --na --pixel-size-nm)") from exc
     from latticeread.core.lattice_model import lattice_from_prior
 
     a1_dir, a2_dir = kwargs["fixed_angle"]
@@ -1023,10 +1108,27 @@ def _geometry_from_frames(clean, *, psf, prior, n_fit, notes) -> LatticeGeometry
     # every other route, so the same site gets the same (row, col) however it was calibrated
     geometry = canonical_geometry(lattice_from_prior(clean[:k], psf=psf, spacing=kwargs["fixed_spacing"],
                                                      angle=a2_dir, angle_between=a1_dir - a2_dir))
+    notes["geometry_method"] = "prior"
     notes["geometry_from_prior"] = {"prior": dict(prior), "n_frames": k,
                                     "spacing_sigma": float(geometry.quality.spacing_sigma),
                                     "sigma_px": float(geometry.quality.residual)}
     return geometry
+
+
+def _geometry_check(clean, geometry: LatticeGeometry, psf: PSFModel, *, max_frames: int = 8):
+    """Does the lattice explain where the single atoms of the first frames are? (None: too few atoms)."""
+    from latticeread.core.atoms import check_geometry, locate_atoms, offset_from_atoms
+
+    frames = clean[:max_frames]
+    atoms = locate_atoms(frames, fwhm=psf.fwhm)
+    offsets = []
+    for f in range(len(frames)):
+        try:
+            offsets.append(offset_from_atoms(frames[f], geometry, fwhm=psf.fwhm, atoms=atoms.in_frame(f)).offset)
+        except LatticeNotFound:
+            offsets.append(geometry.offset)
+    check = check_geometry(atoms, geometry, offsets=offsets)
+    return None if not np.isfinite(check.max_deviation) else check
 
 
 def _refine_vectors(clean, geometry, *, psf, n_fit, notes, warnings: list) -> LatticeGeometry:

@@ -20,7 +20,7 @@ Layout (all lengths in pixels, amplitudes and thresholds in photons)::
       "threshold_scope": "pooled" | "per_frame", "threshold_fit": {...} or null,
       "amplitude_method": "...", "pixel_size_nm": nm or null,
       "reconstruction": {"weighting": "none" | "camera", "index_bounds": [r0, r1, c0, c1] or null,
-                         "photons_per_atom": photons or null, "phase_method": "model" | "fourier",
+                         "photons_per_atom": photons or null, "phase_method": "atoms" | "model" | "fourier",
                          "refit_phase": true, "reference": {"block", "shape", "values", "n_frames"} or null},
       "frame_policy": {"nonfinite": "flag" | "fail", "saturated": "flag" | "fail"},
       "notes": {...}   (provenance only)
