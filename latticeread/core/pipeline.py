@@ -1095,8 +1095,9 @@ def _geometry_from_frames(clean, *, psf, prior, n_fit, notes) -> LatticeGeometry
                   if "geometry_atoms_failed" in notes else "")
     if kwargs.get("fixed_spacing") is None or "fixed_angle" not in kwargs:
         raise LatticeNotFound(f"{exc}{atoms_text}. Below about one PSF FWHM the lattice's Fourier peaks vanish: "
-                              "give the PSF (from the optics) so that the lattice can be read from the atoms' "
-                              "positions, or the spacing and angle of the lattice to fit it from that prior") from exc
+                              "give the spacing and angle of the lattice and the PSF to fit it from that prior, or "
+                              "the PSF alone (from the optics) so that the lattice can be read from the positions of "
+                              "single atoms") from exc
     if psf is None:
         raise LatticeNotFound(f"{exc}. Fitting the lattice from the spacing and angle needs the PSF: give it "
                               "from the optics (e.g. --psf airy --wavelength-nm --na --pixel-size-nm)") from exc
