@@ -47,7 +47,6 @@ GEOMETRY_XFAIL = {
 FIDELITY_XFAIL = {
     "r2_mott_disk": "no lattice found",
     "r3_triangular": "fidelity 0.9974 against the oracle's 0.9998 (-0.24 pp)",
-    "r5_field_and_drift": "fidelity 0.9927 against the oracle's 0.9983 (-0.57 pp)",
 }
 
 
