@@ -88,6 +88,8 @@ def test_window_batch_and_command_give_identical_reports(paths, capsys):
     _same(reference, command)
     _same(reference, from_run)
     assert command["loss"]["high"] > command["loss"]["low"]
+    text = summary.format()
+    assert "fidelity how  intervals: bootstrap over blocks of 4x4 sites" in text and "normal peaks" in text
 
 
 def test_the_fidelity_command_reads_a_batch_run_file(paths, capsys):

@@ -333,6 +333,9 @@ class BatchSummary:
             lines.append(f"fidelity      loss {pct(fid.loss)}, hopping {pct(fid.hop)}, read correctly "
                          f"{pct(fid.read_correctly)} per atom and image ({fid.n_shots} shots of {fid.n_images} "
                          "images)")
+            misread = fid.settings.get("misread") or {}
+            lines.append(f"fidelity how  intervals: {fid.settings.get('interval', 'none')}; misread rates: "
+                         f"{misread.get('method', 'not estimated')}")
             lines += [f"fidelity note {text}" for text in fid.warnings]
         lines += [f"failed        {text}" for text in self.failure_examples]
         lines += [f"warning       {text}" for text in self.warnings]
