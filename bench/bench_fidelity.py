@@ -12,6 +12,11 @@ per estimate.
 over one shot would collapse onto the value); it prints the coverage of the 95 % interval
 and its mean width.
 
+Measured (one shot, 3 % loss, 1.5 % hopping, FP 0.2 %, FN 1 %, 100 trials, 100 replicates,
+blocks of 4x4 sites): loss mean error -0.02 pp, spread 0.97 pp, mean width 3.39 pp, coverage
+88 %; hop mean error +0.18 pp, spread 0.68 pp, width 2.29 pp, coverage 89 %. Blocks of 8x8
+sites (60 trials): coverage 88 % and 88 %, widths 3.38 and 2.40 pp.
+
 Usage::
 
     .venv/bin/python bench/bench_fidelity.py [--trials 100] [--bootstrap 200] [--workers 2]

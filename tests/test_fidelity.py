@@ -473,7 +473,7 @@ def test_one_pair_of_images_gets_an_interval_over_blocks_of_sites():
         assert "blocks of 4x4 sites" in est.method
     assert rep.settings["interval_unit"] == "sites"
     assert rep.settings["interval"].startswith("bootstrap over blocks of 4x4 sites")
-    assert any("resample blocks of 4x4 sites" in w for w in rep.warnings)
+    assert any("resample blocks of 4x4 sites" in w and "88-89 %" in w for w in rep.warnings)
     shots = estimate_fidelity(obs, false_positive_rate=0.002, false_negative_rate=0.01, n_bootstrap=20,
                               n_blocks=0, interval="shots", rng=2)
     assert shots.loss.low == shots.loss.high == pytest.approx(shots.loss.value)   # the collapse

@@ -37,7 +37,11 @@ interval collapses onto the value), so square blocks of ``site_block x site_bloc
 every shot are resampled instead (a moving-block idea: Kunsch, Ann. Stat. 17, 1217 (1989));
 a block is several hop ranges wide, so an atom and the site it hopped to mostly stay
 together. The report says which unit was used (``Estimate.method`` and
-``settings["interval"]``). When the uncertainty of the false-negative rate is given, every
+``settings["interval"]``). Measured with one pair of images of 50x50 sites (about 750
+atoms, 3 % loss, 1.5 % hopping; ``bench/bench_fidelity.py --one-shot``, 100 data sets):
+the 95 % site-block interval covered the true loss in 88 % and the true hopping in 89 % of
+the data sets (mean widths 3.4 and 2.3 percentage points); blocks of 8x8 sites gave the same
+(88 %), so the shortfall is the percentile bootstrap's with so few events, not the block size. When the uncertainty of the false-negative rate is given, every
 replicate also draws the rate from a normal distribution with that standard deviation, so
 the interval includes it.
 
@@ -863,7 +867,8 @@ def estimate_fidelity(
     if n_bootstrap and unit == "sites":
         warnings.append(f"only {n_shots} shot(s): the intervals resample blocks of {int(site_block)}x"
                         f"{int(site_block)} sites, which takes the blocks as independent (drifts between "
-                        "shots are not in them)")
+                        "shots are not in them); with one pair of images of about 750 atoms they covered "
+                        "the true rates in 88-89 % of simulated cases, not 95 %")
     if n_bootstrap == 0:
         warnings.append("no bootstrap requested: the model estimates have no interval")
     if fn_in and not sfn:
