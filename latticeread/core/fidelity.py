@@ -41,9 +41,10 @@ together. The report says which unit was used (``Estimate.method`` and
 atoms, 3 % loss, 1.5 % hopping; ``bench/bench_fidelity.py --one-shot``, 100 data sets):
 the 95 % site-block interval covered the true loss in 88 % and the true hopping in 89 % of
 the data sets (mean widths 3.4 and 2.3 percentage points); blocks of 8x8 sites gave the same
-(88 %), so the shortfall is the percentile bootstrap's with so few events, not the block size. When the uncertainty of the false-negative rate is given, every
-replicate also draws the rate from a normal distribution with that standard deviation, so
-the interval includes it.
+(88 %), so the shortfall is the percentile bootstrap's with so few events, not the block
+size. When the uncertainty of the false-negative rate is given, every replicate also draws
+the rate from a normal distribution with that standard deviation, so the interval includes
+it.
 
 Misread rates
 -------------
@@ -916,8 +917,9 @@ def fidelity_from_frames(
 ) -> FidelityReport:
     """Loss, hopping and misreads of reconstructed frames: the entry point of every front end.
 
-    The window, ``batch``, ``watch`` and the ``fidelity`` command all call this function, so
-    the same frames give the same report whichever route produced them.
+    The window, ``batch`` and the ``fidelity`` command (on frames, or on the results files of
+    ``reconstruct``, ``batch`` and ``watch``) all call this function, so the same frames give
+    the same report whichever route produced them.
 
     Parameters
     ----------

@@ -3,7 +3,7 @@
 A loss and hopping estimate must be corrected for sites read wrongly: empty sites read as
 occupied (false positives) and atoms read as empty (false negatives). :func:`misread_rates`
 derives both rates from the site amplitudes of the frames the estimate uses, in one way for
-every front end (the window, ``batch``, ``watch`` and the ``fidelity`` command):
+every front end (the window, ``batch`` and the ``fidelity`` command, also on ``watch`` run files):
 
 1. **One pooled histogram fit.** The finite amplitudes of all frames are pooled and two peaks
    are fitted once (:func:`latticeread.core.classify.select_threshold`). Pooling gives the
