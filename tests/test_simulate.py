@@ -219,3 +219,20 @@ def test_simulate_command_writes_tiff_and_truth_that_tifffile_reads(tmp_path, ca
 def test_simulate_command_rejects_wrong_extension(tmp_path, capsys):
     assert main(["simulate", str(tmp_path / "x.png")]) == 2
     assert "must end in one of: .tif" in capsys.readouterr().err
+
+
+def test_simulate_command_writes_every_imperfection_and_its_truth(tmp_path):
+    """The command line's options reach the forward model and the truth file keeps what was drawn."""
+    from latticeread.cli import main
+    from latticeread.io.truth_file import read_truth
+
+    out = tmp_path / "real.tif"
+    assert main(["simulate", str(out), "--size", "96", "96", "--shots", "2", "--images-per-shot", "1",
+                 "--hot-pixels", "3", "--cosmic-rays", "2", "--illumination-waist", "60", "--stray-light", "2",
+                 "--distortion=-1e-6", "--drift", "0.2", "0.1", "--jitter", "0", "--seed", "3"]) == 0
+    truth = read_truth(out.with_suffix(".truth.h5"))
+    assert truth["artefacts"]["hot_pixel_index"].size == 3
+    assert truth["site_xy_frames"].shape[0] == 2 and truth["background_maps"].shape == (2, 96, 96)
+    assert truth["site_illumination"].min() < 0.9  # atoms away from the beam centre are dimmer
+    shift = truth["site_xy_frames"][1] - truth["site_xy_frames"][0]
+    assert np.allclose(np.median(shift, axis=0), [0.2, 0.1], atol=0.05)

@@ -30,6 +30,21 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--hop", type=number(low=0, high=1), default=None, help="hopping probability per atom and image")
     parser.add_argument("--jitter", type=number(low=0, high=1000, unit="pixels"), default=0.3,
                         help="RMS lattice displacement per frame in pixels (default 0.3)")
+    real = parser.add_argument_group("imperfections of a real microscope (default: none)")
+    real.add_argument("--hot-pixels", type=number(low=0, high=1e6, integer=True), default=0,
+                      help="number of hot pixels (dark charge at the same pixels in every frame)")
+    real.add_argument("--cosmic-rays", type=number(low=0, high=1000), default=0.0,
+                      help="mean cosmic-ray hits (streaks and blobs) per frame")
+    real.add_argument("--illumination-waist", type=number(low=0, low_open=True, high=1e6, unit="pixels"),
+                      default=None, help="1/e^2 radius of a Gaussian imaging beam centred on the frame, pixels")
+    real.add_argument("--stray-light", type=number(low=0, high=1e6, unit="photons"), default=0.0,
+                      help="photons per pixel of a gradient and humps that change from frame to frame")
+    real.add_argument("--distortion", type=float, default=0.0, metavar="K1",
+                      help="radial lens distortion about the frame centre, 1/pixels^2 (negative: barrel; write --distortion=-1e-7)")
+    real.add_argument("--aberrations", type=number(low=0, high=2), default=0.0, metavar="WAVES",
+                      help="aberrations at the frame corner, waves rms (a PSF that worsens toward the edge)")
+    real.add_argument("--drift", type=float, nargs=2, default=(0.0, 0.0), metavar=("DX", "DY"),
+                      help="lattice drift per frame, pixels")
     parser.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
     parser.add_argument("--force", action="store_true",
                         help="replace OUT and its truth file when they exist")
@@ -64,7 +79,11 @@ def run(args: argparse.Namespace) -> int:
     try:
         frames, truth = simulate_frames(**kw, pattern=args.pattern, n_shots=args.shots,
                                         images_per_shot=args.images_per_shot, phase_jitter=args.jitter,
-                                        rng=args.seed)
+                                        phase_drift=tuple(args.drift), hot_pixels=int(args.hot_pixels),
+                                        cosmic_rays=float(args.cosmic_rays),
+                                        illumination_waist=args.illumination_waist,
+                                        background_structure=float(args.stray_light), distortion_k1=args.distortion,
+                                        psf_field=float(args.aberrations), rng=args.seed)
     except ValueError as exc:
         raise UsageError(f"cannot simulate: {exc}") from exc
     truth.settings.update({"scenario": args.scenario, "seed": args.seed, "pixel_size_nm": pixel_nm})

@@ -12,6 +12,11 @@ dataset                           meaning
 ``site_row``, ``site_col``        (N,) int, indices of the region sites
 ``site_x``, ``site_y``            (N,) float, site centres at the reference offset (pixels)
 ``frame_offset``                  (frames, 2) float, lattice offset (x, y) of each frame
+``site_xy_frames``                (frames, N, 2) float, true (x, y) of every site per frame
+``site_illumination``             (N,) float, relative brightness in the imaging beam (optional)
+``background_maps``               (frames, H, W) float32, stray light, photons/pixel (optional)
+``artefacts/...``                 hot pixels and cosmic-ray charge (optional; see
+                                  :class:`SimulationTruth`)
 ================================  ==============================================
 
 The attribute ``truth_json`` holds :meth:`SimulationTruth.to_dict` (geometry, PSF, camera,
@@ -50,6 +55,14 @@ def write_truth(path, truth: SimulationTruth) -> Path:
         h5.create_dataset("site_x", data=truth.sites.x)
         h5.create_dataset("site_y", data=truth.sites.y)
         h5.create_dataset("frame_offset", data=np.array([g.offset for g in truth.geometries]))
+        for name, arr in truth.artefacts.items():  # hot pixels and cosmic-ray charge
+            h5.create_dataset(f"artefacts/{name}", data=np.asarray(arr), compression="gzip")
+        if truth.frame_positions is not None:
+            h5.create_dataset("site_xy_frames", data=truth.frame_positions, compression="gzip")
+        if truth.illumination is not None:
+            h5.create_dataset("site_illumination", data=truth.illumination)
+        if truth.background_maps is not None:
+            h5.create_dataset("background_maps", data=truth.background_maps, compression="gzip")
         h5.attrs["truth_json"] = json.dumps(truth.to_dict())
         h5.attrs["program_version"] = __version__
         h5.attrs["row_min"] = truth.sites.row_min
@@ -62,7 +75,8 @@ def read_truth(path) -> dict:
     path = Path(path)
     try:
         with h5py.File(path, "r") as h5:
-            out = {name: h5[name][()] for name in h5.keys()}
+            out = {name: (h5[name][()] if isinstance(h5[name], h5py.Dataset)
+                          else {k: v[()] for k, v in h5[name].items()}) for name in h5.keys()}
             out["info"] = json.loads(h5.attrs["truth_json"])
             out["row_min"] = int(h5.attrs["row_min"])
             out["col_min"] = int(h5.attrs["col_min"])
