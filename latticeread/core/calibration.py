@@ -35,6 +35,7 @@ from latticeread.core.camera import CameraModel
 from latticeread.core.classify import ThresholdResult
 from latticeread.core.geometry import LatticeGeometry
 from latticeread.core.psf import PSFModel
+from latticeread.core.region import SiteRegion
 from latticeread.errors import CalibrationError, ReconstructionError
 
 __all__ = ["Calibration", "ReconstructionOptions", "ReferenceImage", "ThresholdPolicy", "FramePolicy",
@@ -155,6 +156,10 @@ class ReconstructionOptions:
     hot_pixels : tuple of (row, col)
         Pixels left out of every fit (hot pixels found in the calibration stack,
         :func:`latticeread.core.artefacts.find_hot_pixels`); their sites are flagged ARTEFACT.
+    region : SiteRegion
+        The analysed region (shapes in pixels, masked areas, excluded sites;
+        :mod:`latticeread.core.region`); sites outside it are fitted but left out of the
+        results. The default analyses every site.
     """
 
     weighting: str = "none"
@@ -164,6 +169,7 @@ class ReconstructionOptions:
     phase_method: str = "model"
     refit_phase: bool = True
     hot_pixels: tuple = ()
+    region: SiteRegion = field(default_factory=SiteRegion)
 
     def __post_init__(self):
         if self.weighting not in _WEIGHTINGS:
@@ -190,6 +196,8 @@ class ReconstructionOptions:
         object.__setattr__(self, "hot_pixels", hot)
         if self.reference is not None and not isinstance(self.reference, ReferenceImage):
             object.__setattr__(self, "reference", ReferenceImage.from_dict(self.reference))
+        if not isinstance(self.region, SiteRegion):
+            object.__setattr__(self, "region", SiteRegion.from_dict(self.region))
 
     def replace(self, **changes) -> "ReconstructionOptions":
         return dataclasses.replace(self, **changes)
@@ -200,7 +208,9 @@ class ReconstructionOptions:
                 "photons_per_atom": self.photons_per_atom,
                 "reference": None if self.reference is None else self.reference.to_dict(),
                 "phase_method": self.phase_method, "refit_phase": self.refit_phase,
-                "hot_pixels": [list(p) for p in self.hot_pixels]}
+                "hot_pixels": [list(p) for p in self.hot_pixels],
+                # written only when set, so files without a region stay readable by older versions
+                **({} if self.region.is_everything else {"region": self.region.to_dict()})}
 
     @classmethod
     def from_dict(cls, data: dict) -> "ReconstructionOptions":

@@ -21,7 +21,12 @@ Layout (all lengths in pixels, amplitudes and thresholds in photons)::
       "amplitude_method": "...", "pixel_size_nm": nm or null,
       "reconstruction": {"weighting": "none" | "camera", "index_bounds": [r0, r1, c0, c1] or null,
                          "photons_per_atom": photons or null, "phase_method": "atoms" | "model" | "fourier",
-                         "refit_phase": true, "reference": {"block", "shape", "values", "n_frames"} or null},
+                         "refit_phase": true, "reference": {"block", "shape", "values", "n_frames"} or null,
+                         "region": {"include": [shape, ...], "exclude": [shape, ...],
+                                    "excluded_sites": [[row, col], ...]} (optional: every site)},
+          shape = {"kind": "polygon", "points": [[x, y], ...]} or
+                  {"kind": "rectangle" | "ellipse", "origin": [x, y], "width": px, "height": px,
+                   "angle": degrees}
       "frame_policy": {"nonfinite": "flag" | "fail", "saturated": "flag" | "fail"},
       "notes": {...}   (provenance only)
     }
@@ -29,7 +34,8 @@ Layout (all lengths in pixels, amplitudes and thresholds in photons)::
 Format version 1 had no ``threshold_scope``, ``threshold_fit``, ``reconstruction`` or
 ``frame_policy``; its settings (``weighting``, ``index_bounds``, ``photons_per_atom``,
 ``reference_photons``, ``threshold_result``) travelled in ``notes``. Such files still load:
-the settings are moved into the typed fields.
+the settings are moved into the typed fields. A file without ``reconstruction.region``
+analyses every site (:mod:`latticeread.core.region`).
 """
 
 from __future__ import annotations
@@ -209,6 +215,11 @@ _SCHEMA = {
     "reconstruction.phase_method": (False, _str, False),
     "reconstruction.refit_phase": (False, (lambda v: isinstance(v, bool), "true or false"), False),
     "reconstruction.reference": (False, _obj, True),
+    "reconstruction.region": (False, _obj, True),
+    "reconstruction.region.include": (False, (lambda v: isinstance(v, list), "a list of shapes"), False),
+    "reconstruction.region.exclude": (False, (lambda v: isinstance(v, list), "a list of shapes"), False),
+    "reconstruction.region.excluded_sites": (False, (lambda v: isinstance(v, list) and all(
+        _int_pair(p) for p in v), "a list of [row, col] pairs of whole numbers"), False),
     "frame_policy": (False, _obj, False),
     "frame_policy.nonfinite": (False, _str, False),
     "frame_policy.saturated": (False, _str, False),
@@ -232,7 +243,9 @@ def _check_schema(data, where: str) -> None:
             f"({FORMAT_VERSION}); update latticeread")
     for key, (required, (check, expected), nullable) in _SCHEMA.items():
         parent_key, _, name = key.rpartition(".")
-        parent = data if not parent_key else data.get(parent_key)
+        parent = data
+        for part in (parent_key.split(".") if parent_key else ()):
+            parent = parent.get(part) if isinstance(parent, dict) else None
         if not isinstance(parent, dict):
             continue  # a missing/wrong parent is reported under its own key
         if name not in parent:
