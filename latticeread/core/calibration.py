@@ -13,7 +13,11 @@ that change results:
   the histogram method; the stored histogram fit (:attr:`Calibration.threshold_fit`) gives
   the posteriors;
 * :class:`FramePolicy` -- what NaN and saturated pixels do (flag their sites, or fail the
-  frame) in every front end.
+  frame) in every front end;
+* :class:`~latticeread.core.distortion.DistortionField` (optional) -- lens distortion: where
+  the sites sit off the perfect lattice;
+* :class:`~latticeread.core.brightness.BrightnessMap` (optional) -- the relative brightness
+  of one atom across the field, used when classifying.
 
 All of them take part in equality and are saved, so two calibrations that would give
 different results never compare equal. ``notes`` is provenance only (source files, fit
@@ -31,15 +35,17 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from latticeread import __version__
+from latticeread.core.brightness import BrightnessMap
 from latticeread.core.camera import CameraModel
 from latticeread.core.classify import ThresholdResult
+from latticeread.core.distortion import DistortionField
 from latticeread.core.geometry import LatticeGeometry
 from latticeread.core.psf import PSFModel
 from latticeread.core.region import SiteRegion
 from latticeread.errors import CalibrationError, ReconstructionError
 
 __all__ = ["Calibration", "ReconstructionOptions", "ReferenceImage", "ThresholdPolicy", "FramePolicy",
-           "FORMAT_VERSION", "THRESHOLD_KINDS", "THRESHOLD_METHODS", "PIXEL_POLICIES", "DEFAULT_THRESHOLD_SCOPE"]
+           "DistortionField", "BrightnessMap", "FORMAT_VERSION", "THRESHOLD_KINDS", "THRESHOLD_METHODS", "PIXEL_POLICIES", "DEFAULT_THRESHOLD_SCOPE"]
 
 _REQUIRED = ("geometry", "psf", "camera", "frame_shape")
 
@@ -369,6 +375,11 @@ class Calibration:
         The histogram fit behind the threshold (its components give the posteriors).
     frame_policy : FramePolicy
         What NaN and saturated pixels do.
+    distortion : DistortionField or None
+        Lens distortion of the site positions (None = a perfect lattice; a field that is not
+        ``applied`` leaves the sites on the perfect lattice too).
+    brightness : BrightnessMap or None
+        Relative brightness of an atom across the field (None or not ``applied`` = uniform).
     notes : dict
         Provenance only (source files, fit diagnostics, warnings); not compared. Settings
         given here in the format-1 way (``weighting``, ``index_bounds``,
@@ -388,6 +399,8 @@ class Calibration:
     threshold_scope: str = DEFAULT_THRESHOLD_SCOPE
     threshold_fit: ThresholdResult | None = None
     frame_policy: FramePolicy = field(default_factory=FramePolicy)
+    distortion: DistortionField | None = None
+    brightness: BrightnessMap | None = None
     notes: dict = field(default_factory=dict)
 
     def __post_init__(self):
@@ -407,11 +420,19 @@ class Calibration:
             raise CalibrationError(f"unknown threshold scope {self.threshold_scope!r}; use 'pooled' or 'per_frame'")
         if self.threshold is not None:
             object.__setattr__(self, "threshold", float(self.threshold))
+        if isinstance(self.distortion, dict):
+            object.__setattr__(self, "distortion", DistortionField.from_dict(self.distortion))
+        elif self.distortion is not None and not isinstance(self.distortion, DistortionField):
+            raise CalibrationError(f"distortion must be a DistortionField or None, got {type(self.distortion).__name__}")
+        if isinstance(self.brightness, dict):
+            object.__setattr__(self, "brightness", BrightnessMap.from_dict(self.brightness))
+        elif self.brightness is not None and not isinstance(self.brightness, BrightnessMap):
+            raise CalibrationError(f"brightness must be a BrightnessMap or None, got {type(self.brightness).__name__}")
 
     def _key(self) -> tuple:
         return (self.geometry, self.psf, self.camera, tuple(int(s) for s in self.frame_shape), self.threshold,
                 self.threshold_method, self.amplitude_method, self.pixel_size_nm, self.options, self.threshold_scope,
-                _fit_key(self.threshold_fit), self.frame_policy)
+                _fit_key(self.threshold_fit), self.frame_policy, self.distortion, self.brightness)
 
     def __eq__(self, other) -> bool:
         if not isinstance(other, Calibration):
@@ -467,6 +488,8 @@ class Calibration:
             "pixel_size_nm": self.pixel_size_nm,
             "reconstruction": self.options.to_dict(),
             "frame_policy": self.frame_policy.to_dict(),
+            "distortion": None if self.distortion is None else self.distortion.to_dict(),
+            "brightness": None if self.brightness is None else self.brightness.to_dict(),
             "notes": self.notes,
         }
 
@@ -504,7 +527,7 @@ class Calibration:
                 amplitude_method=str(data.get("amplitude_method", "linear")),
                 pixel_size_nm=None if pixel is None else float(pixel),
                 options=options, threshold_scope=scope, threshold_fit=fit, frame_policy=frame_policy,
-                notes=notes,
+                distortion=data.get("distortion"), brightness=data.get("brightness"), notes=notes,
             )
         except CalibrationError:
             raise

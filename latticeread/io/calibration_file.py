@@ -28,6 +28,10 @@ Layout (all lengths in pixels, amplitudes and thresholds in photons)::
                   {"kind": "rectangle" | "ellipse", "origin": [x, y], "width": px, "height": px,
                    "angle": degrees}
       "frame_policy": {"nonfinite": "flag" | "fail", "saturated": "flag" | "fail"},
+      "distortion": {"centre": [x, y], "scale": px, "order": n, "coef_x": [...], "coef_y": [...],
+                     "applied": bool, ...fit diagnostics} or null   (optional; absent = none),
+      "brightness": {"centre": [x, y], "scale": px, "order": n, "coef": [...], "applied": bool,
+                     ...fit diagnostics} or null   (optional; absent = uniform),
       "notes": {...}   (provenance only)
     }
 
@@ -223,6 +227,20 @@ _SCHEMA = {
     "frame_policy": (False, _obj, False),
     "frame_policy.nonfinite": (False, _str, False),
     "frame_policy.saturated": (False, _str, False),
+    "distortion": (False, _obj, True),
+    "distortion.centre": (True, _xy, False),
+    "distortion.scale": (True, _number, False),
+    "distortion.order": (True, _int, False),
+    "distortion.coef_x": (True, (lambda v: isinstance(v, list) and all(_is_number(x) for x in v),
+                                 "a list of numbers"), False),
+    "distortion.coef_y": (True, (lambda v: isinstance(v, list) and all(_is_number(x) for x in v),
+                                 "a list of numbers"), False),
+    "brightness": (False, _obj, True),
+    "brightness.centre": (True, _xy, False),
+    "brightness.scale": (True, _number, False),
+    "brightness.order": (True, _int, False),
+    "brightness.coef": (True, (lambda v: isinstance(v, list) and all(_is_number(x) for x in v),
+                               "a list of numbers"), False),
     "notes": (False, _obj, False),
 }
 
