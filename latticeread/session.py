@@ -1517,8 +1517,11 @@ class Session:
         return meta
 
     def _protected(self) -> list:
-        """Input files that an output must never overwrite."""
-        return [self._frames_source] if self._frames_source else []
+        """Input files that an output must never overwrite (the frames, a loaded calibration file)."""
+        protect = [self._frames_source] if self._frames_source else []
+        if self._origin.kind == "file" and self._origin.path:
+            protect.append(self._origin.path)
+        return protect
 
 
 

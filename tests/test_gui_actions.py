@@ -96,7 +96,7 @@ def test_file_dialogs_start_in_the_folder_chosen_last(window, tmp_path, monkeypa
     chosen = tmp_path / "results" / "sites.csv"
     chosen.parent.mkdir()
 
-    def fake_save(parent, title, start, filters):
+    def fake_save(parent, title, start, filters, **_options):
         seen.append(("save", title, start))
         return str(chosen), filters
 

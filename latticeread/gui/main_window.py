@@ -1353,13 +1353,49 @@ class MainWindow(QtWidgets.QMainWindow):
         return ok
 
     def _save_session(self, ask: bool = False) -> None:
+        from latticeread.io.outputs import existing_kind
+        from latticeread.io.session_file import session_paths
+
         path = getattr(self, "_session_path", None)
+        agreed = []
         if ask or path is None:
             name = self.ask_save_file("Save session", "session.json", SESSION_FILTER)
             if not name:
                 return
             path = Path(name)
-        self.save_session(path)
+        else:
+            # a plain Save replaces this session's own files; a results file that is no
+            # longer a session's (another program wrote there) is asked about
+            json_path, h5_path = session_paths(path)
+            agreed = [json_path] + ([h5_path] if existing_kind(h5_path) in ("session-results", "missing") else [])
+        self.confirm_write(session_paths(path), agreed=agreed, title="Save session",
+                           then=lambda: self.save_session(path))
+
+    def window_inputs(self) -> dict:
+        """The files this window reads, by description: no save of the window may replace them."""
+        inputs = {}
+        if self.session is not None and self.session.source:
+            inputs["the frame stack open in this session"] = self.session.source
+        origin = getattr(self.session, "calibration_origin", None) if self.session is not None else None
+        if origin is not None and origin.kind == "file" and origin.path:
+            inputs["the calibration file loaded in this session"] = origin.path
+        controller = getattr(self, "watch_controller", None)
+        if controller is not None and controller.is_running:
+            inputs["the run file the live watch is writing"] = controller.out
+        return inputs
+
+    def confirm_write(self, outputs, *, then, agreed=(), title: str = "Save"):
+        """Run ``then`` once ``outputs`` may be written: never over an input of this window,
+        and only after a question when some of them exist (:mod:`latticeread.gui.replace_guard`)."""
+        from latticeread.gui.replace_guard import confirm_write
+
+        def refused(message: str) -> None:
+            from latticeread.errors import OutputExistsError
+
+            self._report(OutputExistsError(message), step=title)
+
+        return confirm_write(self, outputs, inputs=self.window_inputs(), agreed=agreed, then=then, title=title,
+                             on_refused=refused)
 
     def _open_dialog(self) -> None:
         name = self.ask_open_file("Open frames", FRAME_FILTER)
@@ -1379,8 +1415,14 @@ class MainWindow(QtWidgets.QMainWindow):
         return name
 
     def ask_save_file(self, title: str, suggested: str, filters: str) -> str:
-        """Ask for a file to write, suggesting ``suggested`` in the last folder; '' when cancelled."""
-        name, _ = QtWidgets.QFileDialog.getSaveFileName(self, title, str(self._default_dir() / suggested), filters)
+        """Ask for a file to write, suggesting ``suggested`` in the last folder; '' when cancelled.
+
+        The dialog does not ask about replacing an existing file: the save asks, naming every
+        file it writes and what each holds (:meth:`confirm_write`)."""
+        from latticeread.gui.replace_guard import SAVE_DIALOG_OPTIONS
+
+        name, _ = QtWidgets.QFileDialog.getSaveFileName(self, title, str(self._default_dir() / suggested), filters,
+                                                        options=SAVE_DIALOG_OPTIONS)
         self._remember_dir(name)
         return name
 
@@ -1452,7 +1494,10 @@ class MainWindow(QtWidgets.QMainWindow):
         part = {'csv': 'sites', 'h5': 'occupation', 'cal': 'calibration'}[kind]
         name = self.ask_save_file(title, f"{stem}_{part}{suffix}", filt)
         if name:
-            self.export(kind, name)
+            from latticeread.io.export import sidecar_path
+
+            outputs = [name, sidecar_path(name)] if kind == "csv" else [name]
+            self.confirm_write(outputs, title=title, then=lambda: self.export(kind, name))
 
     def _export_plot_dialog(self, key: str) -> None:
         title = self._plot_targets()[key]
@@ -1464,10 +1509,14 @@ class MainWindow(QtWidgets.QMainWindow):
         except LatticeReadError as exc:
             self._report(exc, step=f"Export {title.lower()}")
             return
-        dlg = dialogs.PlotSizeDialog(view.width(), view.height(), title, self)
-        dlg.setAttribute(QtCore.Qt.WA_DeleteOnClose, True)
-        dlg.accepted.connect(lambda: self.export_plot(key, name, size=dlg.size_px()))
-        dlg.open()
+
+        def choose_size():
+            dlg = dialogs.PlotSizeDialog(view.width(), view.height(), title, self)
+            dlg.setAttribute(QtCore.Qt.WA_DeleteOnClose, True)
+            dlg.accepted.connect(lambda: self.export_plot(key, name, size=dlg.size_px()))
+            dlg.open()
+
+        self.confirm_write([name], title=f"Export {title.lower()}", then=choose_size)
 
     # ---------------------------------------------------------------- autosave
     def autosave(self) -> None:

@@ -146,9 +146,16 @@ class ObservablesFeed(QtCore.QObject):
     def _export(self, fmt: str) -> None:
         start = str(Path.home() / f"observables.{fmt}")
         filt = "PNG image (*.png)" if fmt == "png" else "SVG vector (*.svg)"
-        name, _ = QtWidgets.QFileDialog.getSaveFileName(self.window, "Save observables plots", start, filt)
+        from latticeread.gui.replace_guard import SAVE_DIALOG_OPTIONS
+
+        name, _ = QtWidgets.QFileDialog.getSaveFileName(self.window, "Save observables plots", start, filt,
+                                                        options=SAVE_DIALOG_OPTIONS)
         if not name:
             return
+        self.window.confirm_write([name], title="Save observables plots", then=lambda: self.save(name))
+
+    def save(self, name) -> None:
+        """Write the observables plots to ``name`` (PNG or SVG); failures go to the status bar."""
         try:
             path = self.panel.save_figure(name)
         except Exception as exc:  # noqa: BLE001 - report any export failure in the status bar
