@@ -573,11 +573,12 @@ class Session:
 
     def set_threshold(self, threshold: float | None, *, record: bool = True, group: str | None = None) -> None:
         """Fix the occupancy threshold in photons (None = automatic from the histogram)."""
+        from latticeread.core.classify import check_threshold
+        from latticeread.core.frame_check import amplitude_unit
+
         cal = self._require_calibration("set a threshold")
         if threshold is not None:
-            threshold = float(threshold)
-            if not np.isfinite(threshold):
-                raise ValueError(f"the threshold must be a finite number of photons, got {threshold}")
+            threshold = check_threshold(threshold, unit=amplitude_unit(cal.camera))
         self.set_calibration(cal.replace(threshold=threshold), record=record, group=group)
 
     def set_threshold_method(self, method: str, *, record: bool = True) -> None:

@@ -292,9 +292,12 @@ def test_set_threshold_needs_calibration():
         s.set_threshold(10.0)
 
 
-def test_threshold_must_be_finite(session):
-    with pytest.raises(ValueError, match="finite number of photons"):
-        session.set_threshold(float("nan"))
+@pytest.mark.parametrize("value", [float("nan"), float("inf"), -1.0, -1e9, 2e7])
+def test_threshold_must_be_finite_and_in_range(session, value):
+    before = session.calibration
+    with pytest.raises(CalibrationError, match=r"it must be a finite number between 0 and 1e\+07"):
+        session.set_threshold(value)
+    assert session.calibration == before
 
 
 def test_unknown_threshold_method(session):
@@ -527,7 +530,7 @@ def test_drag_after_the_background_fit_uses_the_sorted_copy_and_stays_exact(sess
     session.store_threshold_fit(session.fit_threshold_job()())
     assert session._stats_cache.sorted is not None
     amps = session.all_amplitudes()
-    ties = np.sort(amps[np.isfinite(amps)])[:: max(1, amps.size // 7)]
+    ties = np.sort(amps[np.isfinite(amps) & (amps >= 0)])[:: max(1, amps.size // 7)]  # a threshold is >= 0
     for t in list(ties) + [200.0, 450.0]:  # thresholds equal to stored amplitudes: strictly above only
         session.set_threshold(float(t), group="threshold")
         occupied, empty, mean = _direct_pooled(session)

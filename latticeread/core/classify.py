@@ -65,7 +65,7 @@ from scipy import ndimage, special
 
 from latticeread.core.camera import CameraModel
 from latticeread.core.flags import SATURATED
-from latticeread.errors import LatticeReadWarning, ReconstructionError
+from latticeread.errors import CalibrationError, LatticeReadWarning, ReconstructionError
 
 __all__ = [
     "ThresholdResult",
@@ -75,6 +75,8 @@ __all__ = [
     "otsu_threshold",
     "minimum_threshold",
     "THRESHOLD_METHODS",
+    "check_threshold",
+    "MAX_THRESHOLD_PHOTONS",
 ]
 
 logger = logging.getLogger(__name__)
@@ -467,6 +469,45 @@ def select_threshold(
         occupied_mean=float(m1), occupied_std=float(s1), occupied_fraction=float(w1),
         false_positive_rate=fp, false_negative_rate=fn, n_sites=n_sites, warnings=tuple(warn), model=model,
         skew=skew)
+
+
+#: Largest threshold a user may set, in detected photons per site and exposure (or counts when
+#: the camera is not calibrated); no atom in an imaging pulse scatters anywhere near this many
+#: detected photons (common practice, no source).
+MAX_THRESHOLD_PHOTONS = 1e7
+
+
+def check_threshold(value, *, where: str = "the threshold", unit: str = "photons") -> float:
+    """Return a threshold a user set (typed, dragged, given on the command line or in a file).
+
+    The one range check of every front end: a threshold must be a finite number in
+    ``[0, MAX_THRESHOLD_PHOTONS]``. Below zero nearly every empty site (amplitudes scatter
+    around 0 after background subtraction) would read as an atom; above the range no atom
+    would. Thresholds chosen from the histogram are not checked here.
+
+    Parameters
+    ----------
+    value : float or str
+        The threshold in ``unit``.
+    where : str
+        What the value is, for the message ("the threshold", "cal.json: threshold").
+    unit : str
+        "photons", or "counts" for an uncalibrated camera.
+
+    Raises
+    ------
+    CalibrationError
+        Not a number, NaN or infinite, negative, or above the range.
+    """
+    try:
+        t = float(value)
+    except (TypeError, ValueError):
+        raise CalibrationError(f"{where} must be a number of {unit}, got {value!r}") from None
+    if not math.isfinite(t) or t < 0 or t > MAX_THRESHOLD_PHOTONS:
+        raise CalibrationError(
+            f"{where} is {value!r} {unit}; it must be a finite number between 0 and {MAX_THRESHOLD_PHOTONS:g} "
+            f"{unit} (an empty site gives about 0, an atom its detected {unit} per exposure)")
+    return t
 
 
 def classify(amplitudes, threshold) -> tuple[np.ndarray, np.ndarray]:

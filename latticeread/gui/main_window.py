@@ -617,6 +617,7 @@ class MainWindow(QtWidgets.QMainWindow):
         if hasattr(hp, "thresholdDragged"):
             hp.thresholdDragged.connect(self._threshold_dragged)
             hp.thresholdCommitted.connect(self._threshold_committed)
+            hp.thresholdRefused.connect(self._threshold_refused)
             hp.methodChanged.connect(self._method_changed)
             hp.logScaleToggled.connect(lambda on: self.app_settings.set_value("view/histogram_log", bool(on)))
         if hasattr(gp, "reestimateRequested"):
@@ -948,14 +949,21 @@ class MainWindow(QtWidgets.QMainWindow):
         # one drag = one undo step, however long the mouse is held: the step is closed when the
         # button is released (_threshold_committed), not by a timer
         self._undo_group_timer.stop()
-        self.session.set_threshold(value, group="threshold")
+        self._guard(lambda: self.session.set_threshold(value, group="threshold"), step="Set the threshold")
 
     def _threshold_committed(self, value: float) -> None:
         if self.session.calibration is None:
             return
-        self.session.set_threshold(value, group="threshold")
+        ok = self._guard(lambda: self.session.set_threshold(value, group="threshold"), step="Set the threshold")
         self.session.close_undo_group()
+        if not ok:
+            return
         self.show_status(f"threshold set to {value:.1f} photons")
+
+    def _threshold_refused(self, message: str) -> None:
+        from latticeread.errors import CalibrationError
+
+        self._report(CalibrationError(message), step="Set the threshold")
 
     def _method_changed(self, method: str) -> None:
         if self.session.calibration is None:

@@ -20,6 +20,7 @@ from __future__ import annotations
 import math
 import os
 
+from latticeread.core.classify import MAX_THRESHOLD_PHOTONS, check_threshold  # noqa: F401 - the one threshold check
 from latticeread.errors import CalibrationError, FrameFileError
 
 __all__ = ["available_memory", "check_frame_memory", "memory_shortfall", "describe_bytes", "check_calibration_values", "check_threshold",
@@ -47,9 +48,6 @@ SUPERSAMPLE_RANGE = (1, 32)
 MAX_KERNEL_ELEMENTS = 4096 * 4096
 #: Largest frame side in pixels stored in a calibration (TIFF and camera sensors stay below).
 MAX_FRAME_SIDE = 65535
-#: Largest threshold in detected photons per site and exposure; no atom in an imaging pulse
-#: scatters anywhere near this many detected photons (common practice, no source).
-MAX_THRESHOLD_PHOTONS = 1e7
 #: Pixel size projected into the atom plane, nm: from a few nm to 0.1 mm covers every
 #: microscope objective and magnification (common practice, no source).
 PIXEL_SIZE_NM_RANGE = (1.0, 1e5)
@@ -132,23 +130,6 @@ def describe_bytes(n: float) -> str:
 
 def _spacing(v) -> float:
     return math.hypot(float(v[0]), float(v[1]))
-
-
-def check_threshold(value, *, where: str = "the threshold") -> float:
-    """Return a usable threshold in photons or raise CalibrationError.
-
-    A threshold must be a finite number in ``[0, MAX_THRESHOLD_PHOTONS]`` photons: below zero
-    every empty site whose noise is above it would read as an atom.
-    """
-    try:
-        t = float(value)
-    except (TypeError, ValueError):
-        raise CalibrationError(f"{where} must be a number of photons, got {value!r}") from None
-    if not math.isfinite(t) or t < 0 or t > MAX_THRESHOLD_PHOTONS:
-        raise CalibrationError(
-            f"{where} is {value!r} photons; it must be a finite number between 0 and {MAX_THRESHOLD_PHOTONS:g} "
-            "photons (an empty site gives about 0, an atom its detected photons per exposure)")
-    return t
 
 
 def check_calibration_values(data: dict, *, where: str = "calibration") -> None:

@@ -35,6 +35,10 @@ Signals (user actions out)
     Emitted continuously while the user drags the threshold line (photons).
 ``thresholdCommitted(float)``
     Emitted once when the drag ends, or when a value is typed into the threshold box.
+``thresholdRefused(str)``
+    A typed or dragged threshold outside the allowed range (negative, above
+    :data:`~latticeread.core.classify.MAX_THRESHOLD_PHOTONS`): the message says why; the box
+    and the line are back at the last accepted value and nothing else was emitted.
 ``methodChanged(str)``
     The user picked another threshold method: ``"mixture"``, ``"otsu"`` or ``"minimum"``.
 ``logScaleToggled(bool)``
@@ -168,6 +172,7 @@ class HistogramPanel(QtWidgets.QWidget):
 
     thresholdDragged = QtCore.Signal(float)
     thresholdCommitted = QtCore.Signal(float)
+    thresholdRefused = QtCore.Signal(str)
     methodChanged = QtCore.Signal(str)
     logScaleToggled = QtCore.Signal(bool)
 
@@ -181,6 +186,7 @@ class HistogramPanel(QtWidgets.QWidget):
         self._programmatic = False  # True while the owner moves the line
         self._n_outside = 0
         self._last_dragged = None
+        self._accepted = None  # last threshold shown or emitted (the value a refusal goes back to)
 
         # --- plot -------------------------------------------------------------
         self.plot_widget = pg.PlotWidget(background="w")
@@ -309,6 +315,7 @@ class HistogramPanel(QtWidgets.QWidget):
             return
         value = float(value)
         self._last_dragged = None
+        self._accepted = value
         self.threshold_line.setVisible(True)
         if not self.threshold_line.moving and abs(self.threshold_line.value() - value) > 1e-12:
             self._programmatic = True
@@ -452,16 +459,25 @@ class HistogramPanel(QtWidgets.QWidget):
         last = self._last_dragged
         if last is not None and abs(value - last) <= 1e-9 * max(1.0, abs(last)):
             return  # pyqtgraph repeats the final position (up to rounding) on release
-        self._last_dragged = value
+        if self._refusal(value):
+            return  # outside the range: nothing is applied; the release says why
+        self._last_dragged = self._accepted = value
         self._set_box(value)
         self.thresholdDragged.emit(value)
 
     def _on_line_released(self, line) -> None:
         if self._programmatic:
             return
-        self.thresholdCommitted.emit(float(line.value()))
+        value = float(line.value())
+        if self._refuse(value):
+            return
+        self._accepted = value
+        self.thresholdCommitted.emit(value)
 
     def _on_box_changed(self, value: float) -> None:
+        if self._refuse(float(value)):
+            return
+        self._accepted = float(value)
         self.threshold_line.setVisible(True)
         self._programmatic = True
         try:
@@ -469,6 +485,32 @@ class HistogramPanel(QtWidgets.QWidget):
         finally:
             self._programmatic = False
         self.thresholdCommitted.emit(float(value))
+
+    def _refusal(self, value: float) -> str | None:
+        """Why ``value`` cannot be a threshold (the one range check of every front end), or None."""
+        from latticeread.core.classify import check_threshold
+        from latticeread.errors import CalibrationError
+
+        try:
+            check_threshold(value, unit=self._unit)
+        except CalibrationError as exc:
+            return str(exc)
+        return None
+
+    def _refuse(self, value: float) -> bool:
+        """Put the line and box back at the last accepted threshold and say why ``value`` is refused."""
+        message = self._refusal(value)
+        if message is None:
+            return False
+        self._programmatic = True
+        try:
+            if self._accepted is not None:
+                self.threshold_line.setValue(self._accepted)
+                self._set_box(self._accepted)
+        finally:
+            self._programmatic = False
+        self.thresholdRefused.emit(message)
+        return True
 
     def _on_method_activated(self, index: int) -> None:
         self.methodChanged.emit(str(self.method_combo.itemData(index)))
