@@ -173,3 +173,78 @@ def test_the_command_line_and_the_window_share_one_settle_default():
     assert command.DEFAULT_SETTLE_SECONDS == watch.DEFAULT_SETTLE_SECONDS
     args = build_parser().parse_args(["watch", "folder", "-c", "c.json", "-o", "l.h5"])
     assert args.settle == watch.DEFAULT_SETTLE_SECONDS
+
+
+# --- a file replaced or truncated under the same name: once per distinct content -------------
+
+def _tiff(frames) -> bytes:
+    import io
+
+    buf = io.BytesIO()
+    tifffile.imwrite(buf, np.asarray(frames), photometric="minisblack", metadata=None)
+    return buf.getvalue()
+
+
+def _poll(watcher, clock, n):
+    events = []
+    for _ in range(n):
+        events += watcher.poll()
+        clock.now += 0.2
+    return [(e.path.name, e.status) for e in events]
+
+
+def test_a_replacement_with_the_same_size_and_time_is_still_a_new_input(tmp_path):
+    # the camera computer copies the finished file over the old one keeping its time
+    # (cp -p, rsync -t): size and modification time are those of the version already taken
+    rng = np.random.default_rng(8)
+    first, second = (_tiff(rng.integers(100, 1000, size=(2, 16, 16), dtype=np.uint16)) for _ in range(2))
+    assert len(first) == len(second) and first != second
+    clock = _Clock()
+    shot = tmp_path / "shot.tif"
+    shot.write_bytes(first)
+    stamp = int((clock.now - 10) * 1e9)
+    os.utime(shot, ns=(stamp, stamp))
+    watcher = FolderWatcher(tmp_path, settle=1.0, clock=clock)
+    assert _poll(watcher, clock, 3) == [("shot.tif", "ready")]
+    incoming = tmp_path / ".shot.tif.part"
+    incoming.write_bytes(second)
+    os.utime(incoming, ns=(stamp, stamp))
+    os.replace(incoming, shot)
+    assert (shot.stat().st_size, shot.stat().st_mtime_ns) == (len(first), stamp)
+    assert _poll(watcher, clock, 3) == [("shot.tif", "ready")]
+
+
+def test_a_camera_that_restarts_and_writes_the_same_frames_again_is_not_taken_twice(tmp_path):
+    frames = np.random.default_rng(9).integers(100, 1000, size=(3, 16, 16), dtype=np.uint16)
+    clock = _Clock()
+    shot = tmp_path / "shot.tif"
+    watcher = FolderWatcher(tmp_path, settle=1.0, clock=clock)
+    for k in range(3):
+        _append_frame(shot, frames[k], clock)
+        _poll(watcher, clock, 1)
+    assert _poll(watcher, clock, 8) == [("shot.tif", "ready")]
+    shot.write_bytes(b"")  # the acquisition restarts: the file is truncated ...
+    os.utime(shot, ns=(int(clock.now * 1e9),) * 2)
+    assert _poll(watcher, clock, 2) == []
+    for k in range(3):  # ... and the same frames are written again (the first into the empty file)
+        tifffile.imwrite(shot, frames[k], append=k > 0, photometric="minisblack", metadata=None)
+        os.utime(shot, ns=(int(clock.now * 1e9),) * 2)
+        _poll(watcher, clock, 1)
+    assert _poll(watcher, clock, 8) == []  # the same content: nothing new to take
+    for k in range(2):  # the next acquisition: new frames in the same file
+        _append_frame(shot, frames[k] + 1, clock)
+    assert _poll(watcher, clock, 8) == [("shot.tif", "ready")]
+
+
+def test_content_seen_before_under_the_name_is_not_taken_again(tmp_path):
+    rng = np.random.default_rng(10)
+    a, b = (_tiff(rng.integers(100, 1000, size=(1, 16, 16), dtype=np.uint16)) for _ in range(2))
+    clock = _Clock()
+    shot = tmp_path / "shot.tif"
+    watcher = FolderWatcher(tmp_path, settle=0.5, clock=clock)
+    taken = []
+    for content in (a, b, a, b, b):
+        shot.write_bytes(content)
+        os.utime(shot, ns=(int(clock.now * 1e9),) * 2)
+        taken += _poll(watcher, clock, 5)
+    assert taken == [("shot.tif", "ready")] * 2

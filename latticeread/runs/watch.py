@@ -11,8 +11,14 @@ same size and time after reading as before (a TIFF still being written fails tha
 The settle time covers a
 camera that appends frames to one file: between two frames the file is unchanged and
 readable, but it is not complete. A file that stays unchanged but unreadable for
-``give_up_polls`` polls is reported as broken, once. A file that changes after it was
-reported (rewritten, replaced, or grown) is reported again: it is a new input.
+``give_up_polls`` polls is reported as broken, once.
+
+A file is reported once per distinct content. Changes are noticed by size, modification
+time, inode and status-change time together (a file copied over the old one keeping its
+size and time still gets a new inode or status-change time); a complete file is then
+identified by a hash of its content, and a content already reported under that name
+(a camera that restarts and writes the same frames again, a file touched or copied back)
+is not reported again, while every new content is.
 
 :class:`LiveRun` ties the watcher to a reconstructor (built once) and a run file, one poll
 per :meth:`LiveRun.step` (the GUI's timer or worker calls it); every new frame is
@@ -70,11 +76,15 @@ class WatchEvent:
         "ready": complete and readable; "broken": unchanged for a while but unreadable.
     reason : str
         Why a broken file cannot be read (empty for ready files).
+    file_hash : str
+        Hash of the content reported (:func:`latticeread.runs.batch.hash_file`; empty for
+        broken files).
     """
 
     path: Path
     status: str
     reason: str = ""
+    file_hash: str = ""
 
 
 def validate_frame_file(path) -> int:
@@ -97,6 +107,12 @@ def validate_frame_file(path) -> int:
         return n
     finally:
         _close_stack(stack)
+
+
+def _identity(st: os.stat_result) -> tuple:
+    """What tells one version of a file from the next: size, modification time (ns), inode and
+    status-change time (ns). The first two come first (the watcher reads them by position)."""
+    return (st.st_size, st.st_mtime_ns, st.st_ino, st.st_ctime_ns)
 
 
 @dataclass
@@ -152,7 +168,7 @@ class FolderWatcher:
 
     def __init__(self, folder, *, suffixes=FRAME_SUFFIXES, exclude=(), include_existing: bool = True,
                  give_up_polls: int = 10, validate=None, settle: float = DEFAULT_SETTLE_SECONDS,
-                 clock=time.time):
+                 clock=time.time, content_hash=None):
         from latticeread.errors import FrameFileError
 
         self.folder = Path(os.fspath(folder)).resolve()
@@ -169,6 +185,9 @@ class FolderWatcher:
             raise ValueError(f"settle time must be 0 or more seconds, got {settle!r}")
         self.settle = float(settle)
         self._clock = clock
+        self._hash = content_hash or hash_file
+        # content hashes reported per file name; kept when the file disappears for a while
+        self._taken: dict[Path, set[str]] = {}
 
     def _scan(self) -> dict[Path, tuple]:
         found = {}
@@ -190,7 +209,7 @@ class FolderWatcher:
             path = Path(entry.path)
             if path in self._exclude:
                 continue
-            found[path] = (st.st_size, st.st_mtime_ns)
+            found[path] = _identity(st)
         return found
 
     def poll(self) -> list[WatchEvent]:
@@ -226,6 +245,7 @@ class FolderWatcher:
                 continue
             try:
                 n_frames = self._validate(path)
+                digest = self._hash(path)
                 if self._stat(path) != stat:
                     continue  # written to while it was read: look again at the next poll
             except Exception as exc:  # noqa: BLE001 - any failure means "not (yet) a frame file"
@@ -241,8 +261,13 @@ class FolderWatcher:
                             "(raise the settle time if the camera appends frames slowly)", path.name,
                             state.n_frames, n_frames)
             state.reported = stat
+            taken = self._taken.setdefault(path, set())
+            if digest in taken:
+                log.info("%s was rewritten with content already taken; not taken again", path.name)
+                continue
+            taken.add(digest)
             state.n_frames = n_frames if isinstance(n_frames, int) else None
-            events.append(WatchEvent(path, "ready"))
+            events.append(WatchEvent(path, "ready", file_hash=digest))
         self._first = False
         from latticeread.runs.batch import _natural_key
 
@@ -254,7 +279,7 @@ class FolderWatcher:
             st = os.stat(path)
         except OSError:
             return None
-        return (st.st_size, st.st_mtime_ns)
+        return _identity(st)
 
     @property
     def pending(self) -> list[Path]:
