@@ -588,6 +588,37 @@ class Session:
         cal = self._require_calibration("choose a threshold method")
         self.set_calibration(cal.replace(threshold_method=method, threshold=None), record=record)
 
+    def set_region(self, region, *, record: bool = True) -> None:
+        """Use another analysed region (:class:`~latticeread.core.region.SiteRegion`; drops amplitudes)."""
+        cal = self._require_calibration("change the analysed region")
+        new = cal.with_options(region=region)
+        if tuple(cal.frame_shape) != (0, 0) and not region.is_everything:
+            from latticeread.core.geometry import lattice_sites
+            from latticeread.core.region import sites_in_region
+
+            s = lattice_sites(cal.geometry, tuple(cal.frame_shape), index_bounds=cal.options.index_bounds)
+            if not sites_in_region(region, x=s.x, y=s.y, rows=s.rows, cols=s.cols).any():
+                raise CalibrationError(f"the analysed region ({region.describe()}) holds no lattice site of the "
+                                       "frame; draw it over the atoms or remove a shape (right-click it)")
+        self.set_calibration(new, record=record)
+
+    def exclude_sites(self, sites, *, excluded: bool = True) -> None:
+        """Leave the sites ((row, col) pairs) out of the analysed region, or let them back in."""
+        cal = self._require_calibration("exclude sites")
+        self.set_region(cal.options.region.with_sites_excluded(sites, excluded=excluded))
+
+    def excluded_sites(self):
+        """SiteGrid of the sites the calibration's region leaves out (calibration lattice), or None."""
+        cal = self._calibration
+        if cal is None or cal.options.region.is_everything or tuple(cal.frame_shape) == (0, 0):
+            return None
+        from latticeread.core.geometry import SiteGrid, lattice_sites
+        from latticeread.core.region import sites_in_region
+
+        s = lattice_sites(cal.geometry, tuple(cal.frame_shape), index_bounds=cal.options.index_bounds)
+        out = ~sites_in_region(cal.options.region, x=s.x, y=s.y, rows=s.rows, cols=s.cols)
+        return SiteGrid(s.rows[out], s.cols[out], s.x[out], s.y[out], s.row_min, s.col_min, s.n_rows, s.n_cols)
+
     def _require_calibration(self, what: str):
         if self._calibration is None:
             raise CalibrationError(f"cannot {what}: there is no calibration yet; estimate the geometry first")
@@ -897,7 +928,7 @@ class Session:
             frame_index=i, geometry=self._geometries[i], sites=self._frame_sites(i), amplitudes=amps,
             occupied=np.zeros(n, np.uint8), p_occupied=np.zeros(n), flags=self._flags[i],
             background=float(self._backgrounds[i]), method=self.reconstructor().method,
-            warnings=tuple(self._warnings[i]))
+            warnings=tuple(self._warnings[i]), excluded=self.reconstructor().excluded_at(self._geometries[i].offset))
         res = pipeline.reclassify(bare, thr)
         self._results[i] = res
         return res
@@ -907,7 +938,7 @@ class Session:
         from latticeread.core.geometry import SiteGrid
 
         base = self._sites
-        x, y = self.reconstructor().basis.positions(self._geometries[i].offset)
+        x, y = self.reconstructor().positions(self._geometries[i].offset)
         return SiteGrid(base.rows, base.cols, x, y, base.row_min, base.col_min, base.n_rows, base.n_cols)
 
     def results(self) -> list:

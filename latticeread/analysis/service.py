@@ -115,7 +115,9 @@ def shot_record(key: ShotKey, result) -> ShotRecord:
     -------
     ShotRecord
         Per-site values placed in (rows, cols) matrices: occupation (fill 255), amplitude
-        in photons, posterior, site centres in pixels (fill NaN), flags (fill 0).
+        in photons, posterior, site centres in pixels (fill NaN), flags (fill 0). Sites left
+        out of the analysed region (``result.excluded``) keep occupation 255 and NaN
+        amplitude and posterior, with their centres and the EXCLUDED flag.
     """
     sites = result.sites
     occupation = sites.to_matrix(np.asarray(result.occupied, dtype=np.uint8), fill=255, dtype=np.uint8)
@@ -126,6 +128,14 @@ def shot_record(key: ShotKey, result) -> ShotRecord:
     flags = getattr(result, "flags", None)
     flags = np.zeros(len(sites), np.uint8) if flags is None else np.asarray(flags, dtype=np.uint8)
     flags = sites.to_matrix(flags, fill=0, dtype=np.uint8)
+    excluded = getattr(result, "excluded", None)
+    if excluded is not None and len(excluded):
+        from latticeread.core.flags import EXCLUDED
+
+        ii, jj = excluded.rows - sites.row_min, excluded.cols - sites.col_min
+        flags[ii, jj] = EXCLUDED
+        x[ii, jj] = excluded.x
+        y[ii, jj] = excluded.y
     geometry = result.geometry
     threshold = result.threshold
     if threshold is not None and hasattr(threshold, "threshold"):

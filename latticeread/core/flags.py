@@ -7,7 +7,8 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["SITE_FLAGS", "EDGE", "MASKED", "SATURATED", "NONFINITE", "UNCERTAIN", "POOR_FIT", "ARTEFACT", "decode_flags"]
+__all__ = ["SITE_FLAGS", "EDGE", "MASKED", "SATURATED", "NONFINITE", "UNCERTAIN", "POOR_FIT", "ARTEFACT", "EXCLUDED",
+           "decode_flags"]
 
 EDGE = 1        #: the PSF window of the site is cut by the frame border
 MASKED = 2      #: the site touches bad pixels or lies outside the region of interest
@@ -16,6 +17,7 @@ NONFINITE = 8   #: NaN or inf pixels under the site (they were ignored)
 UNCERTAIN = 16  #: posterior probability between 0.1 and 0.9: the classification may be wrong
 POOR_FIT = 32   #: the lattice fit of this frame was of poor quality
 ARTEFACT = 64   #: a cosmic-ray hit or hot pixel under the site was left out of the fit
+EXCLUDED = 128  #: outside the analysed region or excluded by the user: fitted, not analysed (no result)
 
 SITE_FLAGS = {
     EDGE: "edge: PSF window cut by the frame border",
@@ -25,6 +27,7 @@ SITE_FLAGS = {
     UNCERTAIN: "uncertain: posterior between 0.1 and 0.9",
     POOR_FIT: "poor lattice fit in this frame",
     ARTEFACT: "artefact: a cosmic-ray hit or hot pixel under the site was left out of the fit",
+    EXCLUDED: "excluded: outside the analysed region or excluded by the user (no result)",
 }
 
 

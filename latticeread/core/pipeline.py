@@ -48,6 +48,7 @@ from latticeread.core.frame_check import WARNING_PREFIX as MODEL_WARNING
 from latticeread.core.classify import ThresholdResult, classify, select_threshold
 from latticeread.core.geometry import LatticeGeometry, SiteGrid, lattice_sites
 from latticeread.core.psf import PSFModel
+from latticeread.core.region import sites_in_region
 from latticeread.errors import CalibrationError, FrameError, LatticeNotFound, ReconstructionError
 
 __all__ = ["FrameResult", "Reconstructor", "calibrate", "reconstruct_stack", "reclassify", "pooled_threshold",
@@ -108,6 +109,9 @@ class FrameResult:
         ``"fourier"`` (Fourier phase, then the model fit) or ``"calibration"`` (not re-fitted).
     offset_sigma : (float, float)
         1-sigma error of the offset's x and y, pixels (NaN where the method gives none).
+    excluded : SiteGrid or None
+        Sites fitted but left out of the analysed region (:mod:`latticeread.core.region`),
+        with this frame's centres; they have no result (exports mark them EXCLUDED).
     """
 
     frame_index: int
@@ -124,6 +128,7 @@ class FrameResult:
     warnings: tuple[str, ...] = ()
     offset_method: str = "calibration"
     offset_sigma: tuple[float, float] = (float("nan"), float("nan"))
+    excluded: SiteGrid | None = field(default=None, repr=False)
 
     @property
     def n_atoms(self) -> int:
@@ -319,23 +324,35 @@ class Reconstructor:
         if index_bounds is None:
             index_bounds = options.index_bounds
         self.index_bounds = None if index_bounds is None else tuple(int(v) for v in index_bounds)
-        self.sites = lattice_sites(calibration.geometry, shape, index_bounds=self.index_bounds)
-        if len(self.sites) == 0:
+        # every site is fitted (the light of an excluded site must not leak into its neighbours);
+        # only the sites of the analysed region are reported (``sites``)
+        self.fit_sites = lattice_sites(calibration.geometry, shape, index_bounds=self.index_bounds)
+        if len(self.fit_sites) == 0:
             raise CalibrationError("no lattice site of the calibration lies inside the frame")
+        self.sites, self.excluded, self._keep = self.fit_sites, None, None
+        fs = self.fit_sites
+        keep = sites_in_region(options.region, x=fs.x, y=fs.y, rows=fs.rows, cols=fs.cols)
+        if not keep.all():
+            if not keep.any():
+                raise CalibrationError(f"the analysed region ({options.region.describe()}) holds no lattice site "
+                                       "of the frame; draw it over the atoms or clear it")
+            self._keep = keep
+            self.sites = _site_subset(fs, keep)
+            self.excluded = _site_subset(fs, ~keep)
         self.pixel_weights = None
         if weighting == "camera":
             self.pixel_weights = _camera_pixel_weights(calibration, shape, reference)
-        self.basis = SiteBasis(calibration.geometry, frame_shape=shape, psf=calibration.psf, sites=self.sites,
+        self.basis = SiteBasis(calibration.geometry, frame_shape=shape, psf=calibration.psf, sites=self.fit_sites,
                                mask=mask, pixel_weights=self.pixel_weights)
         # the phase is one global number: fit it on a central block of at most PHASE_BLOCK^2 sites
         # (its own, much narrower factorisation) instead of on every site
         self.phase_basis = self.basis
-        if self.sites.n_rows > PHASE_BLOCK or self.sites.n_cols > PHASE_BLOCK:
-            rc, cc = int(np.median(self.sites.rows)), int(np.median(self.sites.cols))
+        if fs.n_rows > PHASE_BLOCK or fs.n_cols > PHASE_BLOCK:
+            rc, cc = int(np.median(fs.rows)), int(np.median(fs.cols))
             h = PHASE_BLOCK // 2
             block = lattice_sites(calibration.geometry, shape, index_bounds=(
-                max(rc - h, self.sites.row_min), min(rc + h - 1, self.sites.row_min + self.sites.n_rows - 1),
-                max(cc - h, self.sites.col_min), min(cc + h - 1, self.sites.col_min + self.sites.n_cols - 1)))
+                max(rc - h, fs.row_min), min(rc + h - 1, fs.row_min + fs.n_rows - 1),
+                max(cc - h, fs.col_min), min(cc + h - 1, fs.col_min + fs.n_cols - 1)))
             if len(block) >= 100:
                 self.phase_basis = SiteBasis(calibration.geometry, frame_shape=shape, psf=calibration.psf,
                                              sites=block, mask=mask, pixel_weights=self.pixel_weights)
@@ -513,7 +530,7 @@ class Reconstructor:
             bad = art if self.hot_pixels is None else (self.hot_pixels if art is None else art | self.hot_pixels)
             if bad is not None:
                 photons = fill_pixels(photons, bad)
-            labels = cell_labels(geometry, _with_positions(self.sites, *self.basis.positions(offset)),
+            labels = cell_labels(geometry, _with_positions(self.fit_sites, *self.basis.positions(offset)),
                                  self.frame_shape)
             amp = deconvolution_amplitudes(photons, basis=self.basis, method=self.method, offset=offset,
                                            saturated=saturated, labels=labels)
@@ -525,7 +542,24 @@ class Reconstructor:
         if amp.method in ("linear", "nonlinear"):
             self.last_check = self._check_model(image, photons, amp, art, saturated)
             warnings = list(warnings) + list(self.last_check.warnings)
+        if self._keep is not None:  # the model check above saw every fitted site; report the region's
+            k = self._keep
+            amp = dataclasses.replace(amp, amplitudes=amp.amplitudes[k], flags=amp.flags[k], x=amp.x[k], y=amp.y[k])
         return geometry, amp, tuple(warnings) + amp.warnings
+
+    def excluded_at(self, offset) -> SiteGrid | None:
+        """The sites left out of the analysed region, centred for a lattice offset (None: no such site)."""
+        if self._keep is None:
+            return None
+        x, y = self.basis.positions(offset)
+        return _with_positions(self.excluded, x[~self._keep], y[~self._keep])
+
+    def positions(self, offset) -> tuple[np.ndarray, np.ndarray]:
+        """Centres (x, y), pixels, of the reported sites (:attr:`sites`) for a lattice offset."""
+        x, y = self.basis.positions(offset)
+        if self._keep is not None:
+            return x[self._keep], y[self._keep]
+        return x, y
 
     def _check_model(self, image, photons, amp, art, saturated):
         """Does the fitted site model explain this frame? (:func:`latticeread.core.frame_check.check_frame`)."""
@@ -613,7 +647,7 @@ class Reconstructor:
                              p_occupied=np.zeros(len(sites)), flags=amp.flags, threshold=float("nan"),
                              threshold_result=None, background=amp.background, method=amp.method,
                              warnings=tuple(warnings), offset_method=self._offset_info[0],
-                             offset_sigma=self._offset_info[1])
+                             offset_sigma=self._offset_info[1], excluded=self.excluded_at(geometry.offset))
         return reclassify(result, threshold)
 
 
@@ -698,6 +732,12 @@ def with_camera_weighting(calibration: Calibration, frames, *, max_frames: int =
     values = padded.reshape(hb, block, wb, block).mean(axis=(1, 3))
     reference = ReferenceImage(block=block, shape=(h, w), values=np.round(values, 4), n_frames=int(len(pick)))
     return calibration.with_options(weighting="camera", reference=reference)
+
+
+def _site_subset(sites: SiteGrid, keep) -> SiteGrid:
+    """The sites where ``keep`` is True, in the same matrix frame (row_min, n_rows... unchanged)."""
+    return SiteGrid(rows=sites.rows[keep], cols=sites.cols[keep], x=sites.x[keep], y=sites.y[keep],
+                    row_min=sites.row_min, col_min=sites.col_min, n_rows=sites.n_rows, n_cols=sites.n_cols)
 
 
 def _with_positions(sites: SiteGrid, x, y) -> SiteGrid:

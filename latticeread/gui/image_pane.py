@@ -155,6 +155,7 @@ class ImagePane(QtWidgets.QWidget):
     siteClicked = QtCore.Signal(object)
     modelWanted = QtCore.Signal()
     overlaysChanged = QtCore.Signal(dict)
+    regionEdited = QtCore.Signal(object)
 
     def __init__(self, parent=None):
         super().__init__(parent)
@@ -233,6 +234,31 @@ class ImagePane(QtWidgets.QWidget):
         self.view.addItem(self.hover_item)
         self.graphics.scene().sigMouseMoved.connect(self._mouse_moved)
         self.graphics.scene().sigMouseClicked.connect(self._mouse_clicked)
+        from latticeread.gui.region_editor import ADD_KINDS, RegionEditor
+
+        self.region_editor = RegionEditor(self.view, self)
+        self.region_editor.regionEdited.connect(self.regionEdited)
+        self._excluded_lookup: set = set()
+        self.region_button = QtWidgets.QToolButton()
+        self.region_button.setText("Region")
+        self.region_button.setPopupMode(QtWidgets.QToolButton.InstantPopup)
+        self.region_button.setToolTip("Draw the analysed region (cyan) or masked areas (red, dashed) on the image: "
+                                      "drag a shape to move it, its handles to resize or turn it, click a polygon "
+                                      "edge to add a corner, right-click a shape to remove it. Sites outside the "
+                                      "region are fitted but get no result (crosses); each edit is one undo step")
+        region_menu = QtWidgets.QMenu(self.region_button)
+        region_menu.setToolTipsVisible(True)
+        self.region_actions = {}
+        for excluded, label in ((False, "Analyse only inside a"), (True, "Mask a")):
+            for kind, text in ADD_KINDS.items():
+                act = region_menu.addAction(f"{label} {text}")
+                act.triggered.connect(lambda _c=False, k=kind, e=excluded: self.region_editor.add_shape(k, excluded=e))
+                self.region_actions[(kind, excluded)] = act
+            region_menu.addSeparator()
+        self.region_actions["clear"] = region_menu.addAction("Analyse every site (remove all shapes and exclusions)")
+        self.region_actions["clear"].triggered.connect(self.region_editor.clear)
+        self.region_button.setMenu(region_menu)
+        self.region_button.setEnabled(False)
 
         # --- controls -------------------------------------------------------------------
         self.prev_button = QtWidgets.QToolButton()
@@ -279,7 +305,7 @@ class ImagePane(QtWidgets.QWidget):
         for w in (self.next_button, self.spin, self.count_label):
             controls.addWidget(w)
         controls.addSpacing(12)
-        for w in (self.grid_check, self.sites_check, self.mode_combo, self.blend_slider):
+        for w in (self.grid_check, self.sites_check, self.region_button, self.mode_combo, self.blend_slider):
             controls.addWidget(w)
         layout = QtWidgets.QVBoxLayout(self)
         layout.setContentsMargins(0, 0, 0, 0)
@@ -323,6 +349,10 @@ class ImagePane(QtWidgets.QWidget):
             w.blockSignals(False)
         self._update_display(auto_levels=first)
         if first:
+            # pixel (r, c) is drawn centred on (x, y) = (c, r), the coordinates of the sites and shapes
+            h, w = self._image.shape[:2]
+            for item in (self.image_item, self.model_item):
+                item.setRect(QtCore.QRectF(-0.5, -0.5, w, h))
             self.view.autoRange(padding=0.02)
             self._update_scale_bar()
         if self._mode != "raw":
@@ -349,6 +379,7 @@ class ImagePane(QtWidgets.QWidget):
         self._geometry = geometry
         self._sites = sites
         self._site_lookup = None
+        self.region_button.setEnabled(geometry is not None)
         if sites is not None and len(sites):
             lut = np.full((sites.n_rows, sites.n_cols), -1, dtype=np.int64)
             lut[sites.rows - sites.row_min, sites.cols - sites.col_min] = np.arange(len(sites))
@@ -557,6 +588,13 @@ class ImagePane(QtWidgets.QWidget):
                 lo, hi = np.percentile(finite, [0.5, 99.9])
                 self.lut.setLevels(float(lo), float(hi) if hi > lo else float(lo) + 1.0)
 
+    def set_region(self, region, excluded=None) -> None:
+        """Show the calibration's analysed region and the sites it leaves out (SiteGrid or None)."""
+        xy = None if excluded is None else (excluded.x, excluded.y)
+        self.region_editor.set_region(region, excluded_xy=xy)
+        self._excluded_lookup = set() if excluded is None else set(zip(excluded.rows.tolist(),
+                                                                       excluded.cols.tolist()))
+
     # ------------------------------------------------------------------ hover
     def site_at(self, x: float, y: float) -> dict:
         """What lies under pixel position ``(x, y)``: pixel value and, over a site, its data."""
@@ -566,10 +604,15 @@ class ImagePane(QtWidgets.QWidget):
             ix, iy = int(round(x)), int(round(y))
             if 0 <= ix < w and 0 <= iy < h:
                 info["value"] = float(self._image[iy, ix])
-        if self._geometry is None or self._site_lookup is None:
+        if self._geometry is None:
             return info
         fr, fc = self._geometry.fractional_indices(x, y)
         row, col = int(np.rint(fr)), int(np.rint(fc))
+        if (row, col) in self._excluded_lookup:
+            info.update(row=row, col=col, excluded=True)
+            return info
+        if self._site_lookup is None:
+            return info
         s = self._sites
         r, c = row - s.row_min, col - s.col_min
         if 0 <= r < s.n_rows and 0 <= c < s.n_cols and self._site_lookup[r, c] >= 0:
@@ -592,7 +635,7 @@ class ImagePane(QtWidgets.QWidget):
             return
         p = self.view.mapSceneToView(pos)
         info = self.site_at(p.x(), p.y())
-        if "row" in info:
+        if "site_x" in info:
             self.hover_item.setData([info["site_x"]], [info["site_y"]])
         else:
             self.hover_item.setData([], [])

@@ -601,6 +601,10 @@ class MainWindow(QtWidgets.QMainWindow):
         self.image_pane.siteHovered.connect(self._show_hover)
         self.image_pane.siteClicked.connect(lambda info: self.inspect_site(info["row"], info["col"]))
         self.site_inspector.frameRequested.connect(self.set_frame_index)
+        self.image_pane.regionEdited.connect(self.set_region)
+        self.site_inspector.excludeRequested.connect(self.exclude_site)
+        self.site_inspector.maskRequested.connect(
+            lambda x, y, r: self.image_pane.region_editor.add_shape("disk", excluded=True, center=(x, y), size=2 * r))
         self.image_pane.modelWanted.connect(self._compute_model)
         self.image_pane.overlaysChanged.connect(self._overlays_changed)
         self.occupation_view.siteHovered.connect(self._show_matrix_hover)
@@ -722,7 +726,8 @@ class MainWindow(QtWidgets.QMainWindow):
     def _on_calibration(self, cal) -> None:
         self._update_calibration_label()
         old, self._shown_calibration = getattr(self, "_shown_calibration", None), cal
-        fields = ("geometry", "psf", "camera", "frame_shape", "amplitude_method", "pixel_size_nm")
+        fields = ("geometry", "psf", "camera", "frame_shape", "amplitude_method", "pixel_size_nm", "options")
+        self._show_region(cal)
         if old is not None and cal is not None and all(getattr(old, f) is getattr(cal, f) for f in fields):
             # only the threshold or its method changed: re-classification, nothing else to redraw
             self._mark("threshold", "classification", "method")
@@ -924,6 +929,14 @@ class MainWindow(QtWidgets.QMainWindow):
             self.show_status("the site inspector works on the frames of the session, not on live shots")
             return False
         evidence = self.session.site_evidence(row, col)
+        ex = self.session.excluded_sites()
+        k = np.flatnonzero((ex.rows == row) & (ex.cols == col)) if ex is not None else np.zeros(0)
+        if evidence is None and k.size:
+            self._inspected = None
+            self.site_inspector.show_excluded(row, col, float(ex.x[k[0]]), float(ex.y[k[0]]))
+            self.docks["inspector"].show()
+            self.docks["inspector"].raise_()
+            return True
         if evidence is None:
             self.show_status(f"site ({row}, {col}): nothing to inspect yet (reconstruct this frame first)")
             return False
@@ -932,6 +945,41 @@ class MainWindow(QtWidgets.QMainWindow):
         self.docks["inspector"].show()
         self.docks["inspector"].raise_()
         return True
+
+    def _show_region(self, cal) -> None:
+        """Draw the calibration's analysed region and the sites it leaves out on the image."""
+        if cal is None:
+            self.image_pane.set_region(None, None)
+            return
+        self.image_pane.set_region(cal.options.region, self.session.excluded_sites())
+        self.site_inspector.spacing = float(min(cal.geometry.spacings))
+
+    def set_region(self, region) -> bool:
+        """Use an edited analysed region (one undo step); the shown frame is reconstructed again."""
+        ok = self._guard(lambda: self.session.set_region(region), step="Change the analysed region")
+        if ok:
+            self.show_status(f"analysed region: {region.describe()}; reconstruct all frames (Ctrl+R) to apply it "
+                             "to the whole stack")
+        else:  # show the region in force again
+            self._show_region(self.session.calibration)
+        return ok
+
+    def exclude_site(self, row: int, col: int, exclude: bool = True) -> bool:
+        """Leave site (row, col) out of the analysed region, or let it back in (one undo step)."""
+        ok = self._guard(lambda: self.session.exclude_sites([(row, col)], excluded=exclude),
+                         step="Exclude a site" if exclude else "Include a site again")
+        if ok:
+            self.show_status(f"site ({row}, {col}) {'excluded from' if exclude else 'back in'} the analysed region")
+            if exclude:
+                self._inspected = None  # no evidence any more: the inspector keeps showing the excluded site
+                ex = self.session.excluded_sites()
+                k = np.flatnonzero((ex.rows == row) & (ex.cols == col)) if ex is not None else np.zeros(0)
+                if k.size:
+                    self.site_inspector.show_excluded(row, col, float(ex.x[k[0]]), float(ex.y[k[0]]))
+            else:
+                self.site_inspector.clear()
+                self._inspected = (int(row), int(col))
+        return ok
 
     def _refresh_inspector(self) -> None:
         inspected = getattr(self, "_inspected", None)
@@ -1229,6 +1277,8 @@ class MainWindow(QtWidgets.QMainWindow):
             parts.append(f"{info['value']:.0f} counts")
         if "row" in info:
             parts.append(f"site ({info['row']}, {info['col']})")
+            if info.get("excluded"):
+                parts.append("excluded from the analysed region")
             if "amplitude" in info:
                 parts.append(f"{info['amplitude']:.0f} photons")
             if "p_occupied" in info:

@@ -13,6 +13,9 @@ clear()
 Signals
 -------
 frameRequested(int)   the user clicked a frame in the amplitude plot
+excludeRequested(int, int, bool)   (row, col, exclude): leave the site out of the analysed
+                      region (True) or let it back in (False)
+maskRequested(float, float, float)   (x, y, radius in pixels): mask a disk around the site
 """
 
 from __future__ import annotations
@@ -32,10 +35,23 @@ class SiteInspector(QtWidgets.QWidget):
     """Patches around one site and its amplitude / posterior over the stack."""
 
     frameRequested = QtCore.Signal(int)
+    excludeRequested = QtCore.Signal(int, int, bool)
+    maskRequested = QtCore.Signal(float, float, float)
 
     def __init__(self, parent=None):
         super().__init__(parent)
         self._evidence = None
+        self._site = None  # (row, col, x, y, excluded) of the site shown
+        self.exclude_button = QtWidgets.QPushButton("Exclude this site")
+        self.exclude_button.setToolTip("Leave this site out of the analysed region in every frame: it is still "
+                                       "fitted but gets no result (occupation 255 and flag 128 'excluded' in "
+                                       "exports). Stored in the calibration; one undo step")
+        self.exclude_button.clicked.connect(self._exclude_clicked)
+        self.mask_button = QtWidgets.QPushButton("Mask the area around it")
+        self.mask_button.setToolTip("Add a masked disk of one and a half lattice spacings around this site "
+                                    "(red, dashed, in the image; drag or resize it there)")
+        self.mask_button.clicked.connect(self._mask_clicked)
+        self.spacing = 4.0  # pixels, for the masked disk; the main window sets the lattice's
         self.title = QtWidgets.QLabel("click a site in the image to inspect it")
         self.title.setWordWrap(True)
         self.title.setToolTip("The site shown: indices (row along a1, col along a2) and position in pixels")
@@ -86,16 +102,50 @@ class SiteInspector(QtWidgets.QWidget):
         layout = QtWidgets.QVBoxLayout(self)
         layout.setContentsMargins(4, 4, 4, 4)
         layout.addWidget(self.title)
+        buttons = QtWidgets.QHBoxLayout()  # at the top: visible however short the dock is
+        buttons.addWidget(self.exclude_button)
+        buttons.addWidget(self.mask_button)
+        buttons.addStretch(1)
+        layout.addLayout(buttons)
         layout.addWidget(self.patches, 2)
         layout.addWidget(self.series, 2)
         layout.addWidget(self.details)
+        self._set_buttons()
 
     @property
     def evidence(self):
         return self._evidence
 
+    def _set_buttons(self) -> None:
+        site = self._site
+        self.exclude_button.setEnabled(site is not None)
+        self.mask_button.setEnabled(site is not None)
+        self.exclude_button.setText("Include this site again" if site is not None and site[4]
+                                    else "Exclude this site")
+
+    def _exclude_clicked(self) -> None:
+        if self._site is not None:
+            row, col, _x, _y, excluded = self._site
+            self.excludeRequested.emit(row, col, not excluded)
+
+    def _mask_clicked(self) -> None:
+        if self._site is not None:
+            _row, _col, x, y, _excluded = self._site
+            self.maskRequested.emit(float(x), float(y), 1.5 * float(self.spacing))
+
+    def show_excluded(self, row: int, col: int, x: float, y: float) -> None:
+        """Show a site left out of the analysed region (it has no result to inspect)."""
+        self.clear()
+        self._site = (int(row), int(col), float(x), float(y), True)
+        self.title.setText(f"site ({row}, {col}) at x {x:.1f}, y {y:.1f} px is excluded from the analysed region")
+        self.details.setText("fitted with its neighbours but given no result; 'Include this site again' "
+                             "brings it back")
+        self._set_buttons()
+
     def clear(self) -> None:
         self._evidence = None
+        self._site = None
+        self._set_buttons()
         self.title.setText("click a site in the image to inspect it")
         for _plot, item, marker in self._items.values():
             item.clear()
@@ -112,6 +162,8 @@ class SiteInspector(QtWidgets.QWidget):
 
         self._evidence = evidence
         e = evidence
+        self._site = (int(e["row"]), int(e["col"]), float(e["x"]), float(e["y"]), False)
+        self._set_buttons()
         x0, y0 = e["origin"]
         self.title.setText(f"site ({e['row']}, {e['col']}) at x {e['x']:.1f}, y {e['y']:.1f} px in frame {e['index']}")
         finite = np.concatenate([np.ravel(e["image"]), np.ravel(e["model"])])

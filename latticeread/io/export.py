@@ -105,7 +105,8 @@ UNITS = {
     "x": "pixels (column; centre of pixel (0,0) at 0)",
     "y": "pixels (row, downwards; centre of pixel (0,0) at 0)",
     "amplitude": "photons",
-    "occupied": "1 occupied, 0 empty (255 outside the region in HDF5)",
+    "occupied": "1 occupied, 0 empty, 255 outside the region (in the CSV: sites excluded from the analysed "
+                "region, flag 128)",
     "p_occupied": "probability",
     "flags": "bit field, see latticeread.core.flags",
     "offset": "pixels (x, y) of lattice site (0, 0) in each frame",
@@ -199,9 +200,27 @@ def _read_result(result, position: int) -> _Frame:
         raise ReconstructionError(f"frame {index}: 'occupied' must hold only 0 and 1")
     if flags.size and (flags.min() < 0 or flags.max() > 255):
         raise ReconstructionError(f"frame {index}: site flags must fit in 8 bits")
+    occupied, flags = occupied.astype(np.uint8), flags.astype(np.uint8)
+    excluded = getattr(result, "excluded", None)
+    if excluded is not None and len(excluded):
+        # sites left out of the analysed region: marked, not dropped (occupied 255, no amplitude)
+        from latticeread.core.flags import EXCLUDED
+
+        m = len(excluded)
+        nan = np.full(m, np.nan)
+        rows = np.concatenate([rows, np.asarray(excluded.rows, dtype=np.int64)])
+        cols = np.concatenate([cols, np.asarray(excluded.cols, dtype=np.int64)])
+        x = np.concatenate([x, np.asarray(excluded.x, dtype=np.float64)])
+        y = np.concatenate([y, np.asarray(excluded.y, dtype=np.float64)])
+        amplitude, p_occ = np.concatenate([amplitude, nan]), np.concatenate([p_occ, nan])
+        occupied = np.concatenate([occupied, np.full(m, OUTSIDE, np.uint8)])
+        flags = np.concatenate([flags, np.full(m, EXCLUDED, np.uint8)])
+        order = np.lexsort((cols, rows))  # one table in lattice order, excluded rows among the others
+        rows, cols, x, y, amplitude, occupied, p_occ, flags = (a[order] for a in (
+            rows, cols, x, y, amplitude, occupied, p_occ, flags))
     geometry = getattr(result, "geometry", None)
     offset = tuple(float(v) for v in geometry.offset) if geometry is not None else (float("nan"),) * 2
-    return _Frame(index, rows, cols, x, y, amplitude, occupied.astype(np.uint8), p_occ, flags.astype(np.uint8),
+    return _Frame(index, rows, cols, x, y, amplitude, occupied, p_occ, flags,
                   _threshold_value(result), offset, _frame_warnings(result))
 
 
