@@ -297,7 +297,7 @@ class ImagePane(QtWidgets.QWidget):
         self.blend_slider.setEnabled(False)
         self.blend_slider.setToolTip("Blend weight: left = raw frame (photons), right = model")
 
-        self.slider.setMinimumWidth(120)
+        self.slider.setMinimumWidth(56)
         controls = QtWidgets.QHBoxLayout()
         controls.setContentsMargins(4, 0, 4, 2)
         controls.addWidget(self.prev_button)
@@ -349,10 +349,6 @@ class ImagePane(QtWidgets.QWidget):
             w.blockSignals(False)
         self._update_display(auto_levels=first)
         if first:
-            # pixel (r, c) is drawn centred on (x, y) = (c, r), the coordinates of the sites and shapes
-            h, w = self._image.shape[:2]
-            for item in (self.image_item, self.model_item):
-                item.setRect(QtCore.QRectF(-0.5, -0.5, w, h))
             self.view.autoRange(padding=0.02)
             self._update_scale_bar()
         if self._mode != "raw":
@@ -574,6 +570,7 @@ class ImagePane(QtWidgets.QWidget):
         elif mode == "side":
             shown = self._image
             self.model_item.setImage(self._model, autoLevels=True)
+            self._centre_pixels(self.model_item)
             self._sync_views(self.view, self.model_view)
         else:  # blend in photons
             w = self.blend_slider.value() / 100.0
@@ -581,6 +578,7 @@ class ImagePane(QtWidgets.QWidget):
             shown = (1 - w) * raw + w * self._model
         self.lut.axis.setLabel("counts" if shown is self._image else "photons")
         self.image_item.setImage(shown, autoLevels=auto_levels)
+        self._centre_pixels(self.image_item)
         if auto_levels:
             finite = np.asarray(shown, dtype=float)
             finite = finite[np.isfinite(finite)]
@@ -594,6 +592,14 @@ class ImagePane(QtWidgets.QWidget):
         self.region_editor.set_region(region, excluded_xy=xy)
         self._excluded_lookup = set() if excluded is None else set(zip(excluded.rows.tolist(),
                                                                        excluded.cols.tolist()))
+
+    @staticmethod
+    def _centre_pixels(item) -> None:
+        """Draw pixel (r, c) centred on (x, y) = (c, r): the coordinates of the sites and region shapes."""
+        image = item.image
+        if image is not None:
+            h, w = image.shape[:2]
+            item.setRect(QtCore.QRectF(-0.5, -0.5, w, h))
 
     # ------------------------------------------------------------------ hover
     def site_at(self, x: float, y: float) -> dict:
