@@ -82,3 +82,27 @@ def test_layout_is_remembered_per_screen_size(qtbot, tmp_path, monkeypatch):
     qtbot.addWidget(other)
     assert not other._layout_restored
     assert other.docks["histogram_panel"].isVisibleTo(other)
+
+
+def test_at_1366x768_the_fidelity_table_shows_every_column_whole(qtbot, tmp_path):
+    w = _window(qtbot, tmp_path, size=(1366, 768))
+    panel = w.fidelity_panel
+    # the widest values the table shows: seven rows of estimates with intervals
+    report = {name: 0.98765 for name in ("loss", "hop", "read_correctly", "loss_counted", "hop_counted")}
+    report.update({f"{name}_ci": (0.91234, 0.99876) for name in report})
+    report.update(false_positive_rate=1.2345e-3, false_positive_rate_ci=(1.1e-3, 1.4e-3), false_negative_rate=2e-9,
+                  false_negative_rate_ci=(0.0, 3e-9), n_atoms=8922, n_shots=6, n_images=2)
+    panel.set_report(report)
+    w.docks["fidelity_panel"].show()
+    w.docks["fidelity_panel"].raise_()
+    qtbot.wait(50)
+    table = panel.table
+    assert table.isVisible() and table.columnCount() == 2
+    for col in range(table.columnCount()):
+        assert table.columnWidth(col) >= table.sizeHintForColumn(col), f"column {col} is cut"
+    assert table.verticalHeader().width() >= table.verticalHeader().sizeHint().width()
+    need = table.verticalHeader().width() + table.horizontalHeader().length() + 2 * table.frameWidth()
+    assert need <= table.width(), f"the table needs {need} px, has {table.width()}"
+    area = w.docks["fidelity_panel"].widget()
+    assert area.widget().width() <= area.viewport().width(), "the fidelity panel scrolls sideways"
+    assert panel.loss_note_label.isVisible()

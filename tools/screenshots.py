@@ -13,6 +13,8 @@ Airy PSF for those optics, reconstructs every frame, estimates the fidelity, and
     image_pane_zoom.png        image pane zoomed in: grid, site rings, site under the cursor
     image_pane_side_by_side.png  raw frame next to the model image
     occupation_view.png        occupation matrix of one frame and the mean over the stack
+    main_window_region.png     whole window (1366x768) with an analysed disk, a masked rectangle
+                               and one excluded site shown in the site inspector
 """
 
 from __future__ import annotations
@@ -145,6 +147,25 @@ def main() -> int:
     settle(app)
     w.occupation_view.grab().save(str(out / "occupation_view.png"))
     shots.append("occupation_view.png")
+    # region editing: an analysed disk, a masked area and one site excluded from the inspector
+    from latticeread.core.region import RegionShape, SiteRegion
+
+    geometry = w.session.calibration.geometry
+    cx, cy = geometry.offset
+    w.set_region(SiteRegion(include=(RegionShape.disk((cx, cy), 70.0),),
+                            exclude=(RegionShape.rectangle((cx + 12, cy - 30), 26, 16, angle=15.0),)))
+    wait_idle(app, w)
+    w.inspect_site(0, 0)
+    w.exclude_site(0, 0)
+    w.reconstruct_all()
+    wait_idle(app, w)
+    w.inspect_site(0, 0)
+    w.docks["inspector"].raise_()
+    w.docks["geometry_panel"].raise_()
+    pane.view.autoRange(padding=0.02)
+    settle(app, 0.5)
+    w.grab().save(str(out / "main_window_region.png"))
+    shots.append("main_window_region.png")
     for name in shots:
         img = QtGui.QImage(str(out / name))
         print(f"{out / name}: {img.width()}x{img.height()}")
