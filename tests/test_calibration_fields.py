@@ -23,7 +23,7 @@ def _field(applied=True, k=0.5):
     return DistortionField(centre=(47.5, 47.5), scale=67.0, order=3, coef_x=[0, 0, 0, k, 0, k, 0],
                            coef_y=[0, 0, 0, 0, k, 0, k][:n], applied=applied, n_atoms=120, rms_lattice=0.2,
                            rms_residual=0.05, p_value=1e-12, max_shift=0.7, spacing=4.0,
-                           binned=np.array([[10.0, 10.0, -0.3, -0.3], [80.0, 80.0, 0.3, 0.3]]))
+                           binned=np.array([[10.0, 10.0, -0.3, -0.3, 0.01, 0.0], [80.0, 80.0, 0.3, 0.3, 0.0, -0.02]]))
 
 
 def _map(applied=True):
@@ -39,7 +39,7 @@ def test_fields_round_trip_through_the_file_and_take_part_in_equality():
     cal = _cal(distortion=_field(), brightness=_map())
     back = calibration_from_json(calibration_to_json(cal))
     assert back == cal
-    assert back.distortion.binned.shape == (2, 4)
+    assert back.distortion.binned.shape == (2, 6)
     assert back != _cal(distortion=_field(k=0.4), brightness=_map())
     assert back != _cal(distortion=_field(applied=False), brightness=_map())
     assert back != _cal(distortion=_field(), brightness=_map(applied=False))

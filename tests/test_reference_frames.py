@@ -42,7 +42,6 @@ GEOMETRY_XFAIL = {
                     "only 34 atoms of the edge stand apart",
     "r3_triangular": "max site error 0.038 spacing: the vectors rest on the 55 atoms that stand apart",
     "r5_field_and_drift": "max site error 0.159 spacing (drift between frames, aberrations)",
-    "r6_distorted": "max site error 0.093 spacing (barrel distortion: one perfect lattice misplaces the corners)",
 }
 FIDELITY_XFAIL = {
     "r2_mott_disk": "no lattice found",

@@ -325,8 +325,10 @@ class Reconstructor:
             index_bounds = options.index_bounds
         self.index_bounds = None if index_bounds is None else tuple(int(v) for v in index_bounds)
         # every site is fitted (the light of an excluded site must not leak into its neighbours);
-        # only the sites of the analysed region are reported (``sites``)
-        self.fit_sites = lattice_sites(calibration.geometry, shape, index_bounds=self.index_bounds)
+        # only the sites of the analysed region are reported (``sites``); an applied lens
+        # distortion places them
+        self.fit_sites = _placed(calibration, lattice_sites(calibration.geometry, shape,
+                                                            index_bounds=self.index_bounds))
         if len(self.fit_sites) == 0:
             raise CalibrationError("no lattice site of the calibration lies inside the frame")
         self.sites, self.excluded, self._keep = self.fit_sites, None, None
@@ -350,9 +352,9 @@ class Reconstructor:
         if fs.n_rows > PHASE_BLOCK or fs.n_cols > PHASE_BLOCK:
             rc, cc = int(np.median(fs.rows)), int(np.median(fs.cols))
             h = PHASE_BLOCK // 2
-            block = lattice_sites(calibration.geometry, shape, index_bounds=(
+            block = _placed(calibration, lattice_sites(calibration.geometry, shape, index_bounds=(
                 max(rc - h, fs.row_min), min(rc + h - 1, fs.row_min + fs.n_rows - 1),
-                max(cc - h, fs.col_min), min(cc + h - 1, fs.col_min + fs.n_cols - 1)))
+                max(cc - h, fs.col_min), min(cc + h - 1, fs.col_min + fs.n_cols - 1))))
             if len(block) >= 100:
                 self.phase_basis = SiteBasis(calibration.geometry, frame_shape=shape, psf=calibration.psf,
                                              sites=block, mask=mask, pixel_weights=self.pixel_weights)
@@ -457,7 +459,7 @@ class Reconstructor:
 
             from latticeread.core.atoms import check_geometry, locate_atoms
 
-            atoms = locate_atoms(clean, fwhm=self.calibration.psf.fwhm)
+            atoms = _on_perfect_lattice(locate_atoms(clean, fwhm=self.calibration.psf.fwhm), self.calibration)
             try:
                 found = offset_from_atoms(clean, geometry, fwhm=self.calibration.psf.fwhm, atoms=atoms)
             except LatticeNotFound as exc:
@@ -740,6 +742,23 @@ def _site_subset(sites: SiteGrid, keep) -> SiteGrid:
                     row_min=sites.row_min, col_min=sites.col_min, n_rows=sites.n_rows, n_cols=sites.n_cols)
 
 
+def _placed(calibration: Calibration, sites: SiteGrid) -> SiteGrid:
+    """The sites where the calibration's lens distortion puts them (unchanged without an applied field)."""
+    field_ = calibration.distortion
+    if field_ is None or not field_.applied or len(sites) == 0:
+        return sites
+    return _with_positions(sites, *field_.place(sites.x, sites.y))
+
+
+def _on_perfect_lattice(atoms, calibration: Calibration):
+    """Located atoms moved back onto the perfect lattice (undoing an applied lens distortion)."""
+    field_ = calibration.distortion
+    if field_ is None or not field_.applied or len(atoms) == 0:
+        return atoms
+    x, y = field_.unplace(atoms.x, atoms.y)
+    return dataclasses.replace(atoms, x=x, y=y)
+
+
 def _with_positions(sites: SiteGrid, x, y) -> SiteGrid:
     return SiteGrid(rows=sites.rows, cols=sites.cols, x=np.asarray(x, float), y=np.asarray(y, float),
                     row_min=sites.row_min, col_min=sites.col_min, n_rows=sites.n_rows, n_cols=sites.n_cols)
@@ -816,7 +835,8 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
               pixel_size_nm: float | None = None, geometry: LatticeGeometry | None = None,
               threshold_method: str = "mixture", method: str | None = None, mask=None,
               restrict_region: bool = True, max_frames: int = 50, refine_vectors: bool = False,
-              refine_frames: int = 4, lattice_prior: dict | None = None) -> Calibration:
+              refine_frames: int = 4, lattice_prior: dict | None = None,
+              correct_distortion: bool = True) -> Calibration:
     """Make a calibration from a stack of frames.
 
     Parameters
@@ -865,6 +885,11 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
         peaks vanish) and ``psf`` is given, the geometry is fitted from this prior by
         :func:`latticeread.core.lattice_model.lattice_from_prior` instead (noted in
         ``geometry_from_prior``).
+    correct_distortion : bool
+        Fit a lens-distortion field to the single atoms of the frames
+        (:func:`latticeread.core.distortion.fit_distortion`; stored in ``distortion``) and place
+        the sites with it when it passes the significance test given there (the lattice
+        vectors are refitted together with it); noted in ``distortion``.
 
     Returns
     -------
@@ -938,7 +963,10 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
                                    warnings=psf_warnings)
     elif "geometry_from_prior" in notes:
         psf_warnings.extend(w for w in geometry.quality.warnings)
-    check = _geometry_check(clean, geometry, psf)
+    distortion = None
+    if correct_distortion:
+        distortion, geometry = _distortion_from_frames(clean, geometry, psf, notes)
+    check = _geometry_check(clean, geometry, psf, distortion=distortion)
     if check is not None:
         notes["geometry_check"] = {"max_deviation_spacings": check.max_deviation, "significance": check.significance,
                                    "n_atoms": check.n_atoms, "ok": check.ok}
@@ -957,7 +985,7 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
     draft = Calibration(geometry=geometry, psf=psf, camera=camera, frame_shape=shape, threshold=None,
                         threshold_method=threshold_method, amplitude_method="linear", pixel_size_nm=pixel_size_nm,
                         options=ReconstructionOptions(index_bounds=first_bounds, hot_pixels=hot_pixels,
-                                                      phase_method=offset_method))
+                                                      phase_method=offset_method), distortion=distortion)
     rec = Reconstructor(draft, method="linear", mask=mask, refit_phase=True)
     pooled, pooled_flags, warnings = _pooled(rec, chosen)
     tr = select_threshold(pooled, method=threshold_method, camera=camera, flags=pooled_flags)
@@ -1017,7 +1045,7 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
     options = draft.options.replace(photons_per_atom=float(atom) if np.isfinite(atom) and atom > 0 else None)
     return Calibration(geometry=geometry, psf=psf, camera=camera, frame_shape=shape, threshold=float(tr.threshold),
                        threshold_method=threshold_method, amplitude_method=method, pixel_size_nm=pixel_size_nm,
-                       options=options, threshold_fit=tr, notes=notes)
+                       options=options, threshold_fit=tr, distortion=distortion, notes=notes)
 
 
 def lattice_constraint_kwargs(prior: dict | None, *, angle_between: float = np.pi / 2) -> dict:
@@ -1156,12 +1184,37 @@ def _geometry_from_frames(clean, *, psf, prior, n_fit, notes) -> LatticeGeometry
     return geometry
 
 
-def _geometry_check(clean, geometry: LatticeGeometry, psf: PSFModel, *, max_frames: int = 8):
+def _distortion_from_frames(clean, geometry: LatticeGeometry, psf: PSFModel, notes: dict, *, max_frames: int = 2):
+    """Lens distortion from the single atoms of the first frames: (field or None, geometry to use)."""
+    from latticeread.core.atoms import locate_atoms, offset_from_atoms
+    from latticeread.core.distortion import fit_distortion
+
+    frames = clean[:max_frames]
+    atoms = locate_atoms(frames, fwhm=psf.fwhm)
+    offsets = []
+    for f in range(len(frames)):
+        try:
+            offsets.append(offset_from_atoms(frames[f], geometry, fwhm=psf.fwhm, atoms=atoms.in_frame(f)).offset)
+        except LatticeNotFound:
+            offsets.append(geometry.offset)
+    try:
+        fit = fit_distortion(frames, geometry, psf=psf, offsets=offsets, atoms=atoms)
+    except (LatticeNotFound, np.linalg.LinAlgError) as exc:
+        notes["distortion"] = f"no lens-distortion fit: {exc}"
+        return None, geometry
+    notes["distortion"] = fit.field.describe()
+    return fit.field, (fit.geometry if fit.field.applied else geometry)
+
+
+def _geometry_check(clean, geometry: LatticeGeometry, psf: PSFModel, *, max_frames: int = 8, distortion=None):
     """Does the lattice explain where the single atoms of the first frames are? (None: too few atoms)."""
     from latticeread.core.atoms import check_geometry, locate_atoms, offset_from_atoms
 
     frames = clean[:max_frames]
     atoms = locate_atoms(frames, fwhm=psf.fwhm)
+    if distortion is not None and distortion.applied and len(atoms):
+        atoms = dataclasses.replace(atoms, x=distortion.unplace(atoms.x, atoms.y)[0],
+                                    y=distortion.unplace(atoms.x, atoms.y)[1])
     offsets = []
     for f in range(len(frames)):
         try:

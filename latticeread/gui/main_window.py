@@ -790,6 +790,8 @@ class MainWindow(QtWidgets.QMainWindow):
         self.image_pane.set_pixel_size(pixel_size_nm)
         if hasattr(gp, "set_geometry"):
             gp.set_geometry(None if cal is None else cal.geometry, pixel_size_nm=pixel_size_nm)
+        if hasattr(gp, "set_distortion"):
+            gp.set_distortion(None if cal is None else cal.distortion)
         if hasattr(pp, "set_psf"):
             pp.set_psf(None if cal is None else cal.psf)
             pp.set_optics(numerical_aperture=st["numerical_aperture"], wavelength_nm=st["wavelength_nm"],

@@ -25,6 +25,11 @@ Methods (data in)
     pixels (``units="px"``) or phases along ``(a1, a2)`` in lattice sites
     (``units="sites"``). ``trend``: (N, 2) fitted linear trend at the same frame indices
     (drawn dashed; its slope is printed), or None.
+``set_distortion(field)``
+    A :class:`latticeread.core.distortion.DistortionField` (or None to hide the view): the
+    measured shift of each block of the frame off the best perfect lattice (blue arrows) and
+    what the fitted field leaves of it (red arrows), both magnified by the factor printed,
+    with the field's one-line summary (applied or not, largest shift, scatter).
 ``clear()``
     Remove everything.
 
@@ -302,11 +307,47 @@ class GeometryPanel(QtWidgets.QWidget):
         self.drift_label.setToolTip("Spread of the phase over the stack and the slope of the "
                                     "linear trend per frame")
 
+        # --- lens distortion: block shifts off the perfect lattice and the fit's residual -----
+        self.distortion_plot = pg.PlotWidget(background="w")
+        self.distortion_plot.setToolTip(
+            "Lens distortion. Each arrow starts at the centroid of the atoms of one block of the frame. "
+            "Blue: how far that block's lattice sits off the best perfect lattice; red: what is left "
+            "after the fitted distortion field. Arrows are magnified by the factor in the text below.")
+        self.distortion_plot.setMinimumHeight(150)
+        dsp = self.distortion_plot.getPlotItem()
+        dsp.setAspectLocked(True)
+        dsp.invertY(True)
+        dsp.hideButtons()
+        dsp.setMenuEnabled(False)
+        dsp.setLabel("bottom", "x (px)")
+        dsp.setLabel("left", "y (px)")
+        for axis in ("left", "bottom"):
+            dsp.getAxis(axis).enableAutoSIPrefix(False)
+        self._distortion_legend = dsp.addLegend(offset=(-10, 10), labelTextColor=(40, 40, 40))
+        self._shift_arrows = pg.PlotDataItem(pen=pg.mkPen((30, 100, 200), width=2), connect="pairs")
+        self._residual_arrows = pg.PlotDataItem(pen=pg.mkPen((210, 40, 40), width=2), connect="pairs")
+        self._block_points = pg.ScatterPlotItem(size=4, brush=pg.mkBrush(60, 60, 60), pen=None)
+        for item in (self._shift_arrows, self._residual_arrows, self._block_points):
+            dsp.addItem(item)
+        self._distortion_legend.addItem(self._shift_arrows, "off the perfect lattice")
+        self._distortion_legend.addItem(self._residual_arrows, "left by the field")
+        self.distortion_label = QtWidgets.QLabel("no distortion field")
+        self.distortion_label.setWordWrap(True)
+        self.distortion_label.setToolTip("The fitted lens-distortion field: whether the sites are placed "
+                                         "with it, its largest shift, and the scatter of the blocks")
+        self.distortion_box = QtWidgets.QGroupBox("Lens distortion")
+        dl = QtWidgets.QVBoxLayout(self.distortion_box)
+        dl.setContentsMargins(4, 4, 4, 4)
+        dl.addWidget(self.distortion_plot)
+        dl.addWidget(self.distortion_label)
+        self.distortion_box.setVisible(False)
+
         layout = QtWidgets.QVBoxLayout(self)
         layout.setContentsMargins(4, 4, 4, 4)
         layout.addLayout(top, 3)
         layout.addWidget(cons)
         layout.addWidget(nudge)
+        layout.addWidget(self.distortion_box, 2)
         layout.addWidget(self.drift_plot, 2)
         layout.addWidget(self.drift_label)
         self._set_nudges_enabled(False)
@@ -406,10 +447,42 @@ class GeometryPanel(QtWidgets.QWidget):
         self.drift_label.setText(" · ".join(text))
         dp.autoRange()
 
+    def set_distortion(self, field) -> None:
+        """Show a DistortionField's measured block shifts and residuals (pixels); None hides the view."""
+        if field is None:
+            self.distortion_box.setVisible(False)
+            for item in (self._shift_arrows, self._residual_arrows):
+                item.setData([], [])
+            self._block_points.setData([], [])
+            self.distortion_label.setText("no distortion field")
+            return
+        b = np.asarray(field.binned, float).reshape(-1, 6)
+        self.distortion_box.setVisible(True)
+        if not len(b):
+            for item in (self._shift_arrows, self._residual_arrows):
+                item.setData([], [])
+            self._block_points.setData([], [])
+            self.distortion_label.setText(field.describe())
+            return
+        x, y = b[:, 0], b[:, 1]
+        # magnify the longest arrow to about half the typical distance between blocks
+        spread = max(float(np.ptp(x)), float(np.ptp(y)), 1.0)
+        step = spread / max(np.sqrt(len(b)) - 1, 1)
+        longest = float(np.max(np.hypot(b[:, 2], b[:, 3]))) or 1.0
+        gain = max(1.0, 0.6 * step / longest)
+        for item, (dx, dy) in ((self._shift_arrows, (b[:, 2], b[:, 3])), (self._residual_arrows, (b[:, 4], b[:, 5]))):
+            xs = np.column_stack([x, x + gain * dx]).ravel()
+            ys = np.column_stack([y, y + gain * dy]).ravel()
+            item.setData(xs, ys)
+        self._block_points.setData(x, y)
+        self.distortion_label.setText(f"{field.describe()} · arrows magnified {gain:.0f}x")
+        self.distortion_plot.getPlotItem().autoRange()
+
     def clear(self) -> None:
-        """Remove geometry, spectrum and drift."""
+        """Remove geometry, spectrum, distortion and drift."""
         self.set_geometry(None)
         self.set_spectrum(None)
+        self.set_distortion(None)
         self.set_drift([], [])
         self.drift_label.setText("no drift data")
 
