@@ -8,10 +8,16 @@ the end of the process (for Ctrl-C the aim is under one second; on a busy machin
 Scenario (invented): the "square" demo setting, one TIFF of 60 frames (4 simulated frames
 repeated), a fixed calibration; the signal comes 0-2 s after the run file appears.
 
+``--fsync`` instead measures what the power-loss safety of the run file costs (two fsync
+calls per committed block, :data:`latticeread.io.run_file.SYNC_TO_DISK`): a batch of 100
+frames in this process, and the run-file writer alone with one shot per block (as ``watch``
+writes) and 32 shots per block (as ``batch`` writes), each with and without fsync.
+
 Usage::
 
     .venv/bin/python bench/bench_faults.py --command batch --signal SIGKILL --trials 10
     .venv/bin/python bench/bench_faults.py --command watch --signal SIGINT --trials 6
+    .venv/bin/python bench/bench_faults.py --fsync --trials 3
 """
 
 from __future__ import annotations
@@ -31,7 +37,7 @@ import tifffile
 N_FRAMES = 60
 
 
-def make_data(folder: Path) -> None:
+def make_data(folder: Path, n_frames: int = N_FRAMES) -> None:
     from latticeread.core.calibration import Calibration
     from latticeread.core.simulate import demo_scenario, simulate_frames
     from latticeread.io.calibration_file import save_calibration
@@ -41,7 +47,7 @@ def make_data(folder: Path) -> None:
     kw["region"] = ("rectangle", 16, 16)
     frames, truth = simulate_frames(**kw, n_shots=4, images_per_shot=1, rng=11)
     (folder / "data").mkdir(parents=True)
-    tifffile.imwrite(folder / "data" / "shot_0.tif", np.tile(frames, (N_FRAMES // 4, 1, 1)),
+    tifffile.imwrite(folder / "data" / "shot_0.tif", np.tile(frames, (n_frames // 4, 1, 1)),
                      photometric="minisblack")
     rows, cols = truth.sites.rows, truth.sites.cols
     bounds = [int(rows.min()), int(rows.max()), int(cols.min()), int(cols.max())]
@@ -79,12 +85,68 @@ def trial(folder: Path, command: str, sig: int, rng, out: Path) -> dict:
     return result
 
 
+def _writer_rate(folder: Path, block: int, n: int = 100) -> float:
+    """Shots per second of RunWriter.append_many alone, ``block`` shots per call."""
+    import json as _json
+
+    from latticeread.io.run_file import RunWriter, ShotKey, ShotRecord
+
+    rng = np.random.default_rng(0)
+    shape = (16, 16)
+    records = [ShotRecord(key=ShotKey("/data/shot.tif", "ab" * 16, i), occupation=rng.integers(0, 2, shape).astype(
+        np.uint8), amplitude=rng.normal(500, 300, shape), p_occupied=rng.random(shape), x=rng.random(shape),
+        y=rng.random(shape), flags=np.zeros(shape, np.uint8), offset=(0.0, 0.0), a1=(4.0, 0.0), a2=(0.0, 4.0),
+        threshold=450.0) for i in range(n)]
+    path = folder / f"writer_{block}_{time.monotonic_ns()}.h5"
+    with RunWriter(path, calibration_json=_json.dumps({"format": "latticeread-calibration"})) as w:
+        t0 = time.perf_counter()
+        for start in range(0, n, block):
+            w.append_many(records[start:start + block])
+        seconds = time.perf_counter() - t0
+    return n / seconds
+
+
+def fsync_cost(trials: int) -> dict:
+    """Frames (shots) per second with and without fsync; best of ``trials`` each, alternating."""
+    import os
+
+    import latticeread.io.run_file as run_file
+    from latticeread.runs.batch import run_batch
+
+    n_frames = 100
+    out: dict = {"load_before": os.getloadavg()}
+    with tempfile.TemporaryDirectory() as tmp:  # /tmp: check it is a disk, not a RAM tmpfs (df)
+        folder = Path(tmp)
+        make_data(folder, n_frames)
+        rates: dict = {}
+        for k in range(trials):
+            for sync in (True, False):
+                run_file.SYNC_TO_DISK = sync
+                tag = "fsync" if sync else "no_fsync"
+                t0 = time.perf_counter()
+                run_batch([folder / "data"], calibration=folder / "cal.json", out=folder / f"run_{tag}_{k}.h5",
+                          workers=0, progress=False, fidelity_bootstrap=0)
+                rates.setdefault(f"batch_100_frames_per_s_{tag}", []).append(n_frames / (time.perf_counter() - t0))
+                for block in (1, 32):
+                    rates.setdefault(f"writer_block_{block}_shots_per_s_{tag}", []).append(
+                        _writer_rate(folder, block, n_frames))
+        run_file.SYNC_TO_DISK = True
+    out.update({key: {"best": round(max(v), 1), "median": round(float(np.median(v)), 1)}
+                for key, v in sorted(rates.items())})
+    out["load_after"] = os.getloadavg()
+    return out
+
+
 def main() -> None:
     ap = argparse.ArgumentParser()
+    ap.add_argument("--fsync", action="store_true", help="measure the cost of fsync per committed block")
     ap.add_argument("--command", choices=["batch", "watch"], default="batch")
     ap.add_argument("--signal", choices=["SIGKILL", "SIGINT", "SIGTERM"], default="SIGKILL")
     ap.add_argument("--trials", type=int, default=10)
     args = ap.parse_args()
+    if args.fsync:
+        print(json.dumps(fsync_cost(args.trials), indent=2))
+        return
     rng = np.random.default_rng()
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)

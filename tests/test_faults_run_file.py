@@ -255,3 +255,34 @@ def test_temp_files_of_killed_runs_are_removed_by_the_next_run(tmp_path):
     left.write_bytes(b"half")
     RunWriter(tmp_path / "run.h5", calibration_json=CAL).close()  # a run cleans its folder at start-up
     assert not left.exists()
+
+
+def test_every_commit_reaches_the_disk_rows_first_then_the_counter(tmp_path, monkeypatch):
+    # A power cut is not simulated; what is checked is the order that makes one harmless:
+    # fsync of the rows while the counter still excludes them, then fsync of the counter.
+    # (POSIX fsync: data reach the storage device before it returns; common practice, no source.)
+    import h5py
+
+    import latticeread.io.run_file as run_file
+
+    path = tmp_path / "run.h5"
+    seen = []
+    real_fsync = os.fsync
+
+    def fsync(fd):
+        with h5py.File(path, "r", swmr=True, locking=False) as f:
+            seen.append((int(f["committed"][0]), int(f["shots/frame_index"].shape[0])))
+        real_fsync(fd)
+
+    with RunWriter(path, calibration_json=CAL) as w:
+        monkeypatch.setattr(os, "fsync", fsync)
+        w.append_many([record(i) for i in range(3)])
+        assert seen == [(0, 3), (3, 3)]
+        w.append_many([record(i) for i in range(3, 5)])
+        w.record_failure(ShotKey("/data/bad.tif", "cd" * 16, 0), error="FrameFileError", reason="truncated")
+        assert seen[2:] == [(3, 5), (5, 5), (5, 5), (5, 5)]
+    monkeypatch.setattr(run_file, "SYNC_TO_DISK", False)
+    seen.clear()
+    with RunWriter(path, calibration_json=CAL) as w:
+        w.append_many([record(5)])
+    assert seen == [] and len(read_run(path, matrices=False).keys) == 6
