@@ -251,7 +251,26 @@ class PoolExecutor:
                 "is kept: run the same command again to continue") from exc
 
     def close(self, *, cancel: bool = False) -> None:
-        self._pool.shutdown(wait=True, cancel_futures=cancel)
+        """Shut the pool down; with ``cancel``, abandon the tasks not handed back yet.
+
+        Abandoned tasks that are running are not waited for: their results would be thrown
+        away, and a worker may be seconds into its first shot (building its analyser) when
+        Ctrl-C comes. The workers are terminated instead (they only read input files), so an
+        interrupted run ends at once. Without pending tasks the pool ends normally.
+        """
+        if not (cancel and self._futures):
+            self._pool.shutdown(wait=True, cancel_futures=cancel)
+            return
+        processes = list((getattr(self._pool, "_processes", None) or {}).values())
+        self._pool.shutdown(wait=False, cancel_futures=True)
+        for process in processes:
+            with contextlib.suppress(OSError, ValueError, AttributeError):
+                process.terminate()
+        for process in processes:
+            with contextlib.suppress(OSError, ValueError, AttributeError, AssertionError):
+                process.join(timeout=2.0)
+        self._futures.clear()
+        self._ready.clear()
 
 
 def import_distributed():

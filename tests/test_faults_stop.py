@@ -1,0 +1,46 @@
+"""Stopping a run at once: Ctrl-C abandons the shots in flight instead of waiting for them.
+
+A worker can be seconds into its first shot (building its analyser on a busy machine) when
+Ctrl-C comes; waiting for it made an interrupted batch end up to 4 s after the signal. The
+shots in flight are thrown away anyway (never written), so the workers are terminated.
+Reference for the pool's behaviour: the Python documentation of
+concurrent.futures.ProcessPoolExecutor (shutdown waits for running calls).
+"""
+
+from __future__ import annotations
+
+import multiprocessing
+import time
+from collections import deque
+from concurrent.futures import ProcessPoolExecutor
+
+from latticeread.analysis.executor import PoolExecutor
+
+
+def _pool_with(task_seconds: float):
+    ex = PoolExecutor.__new__(PoolExecutor)  # the real close(), around a pool running a long call
+    ex._pool = ProcessPoolExecutor(max_workers=1, mp_context=multiprocessing.get_context("spawn"))
+    future = ex._pool.submit(time.sleep, task_seconds)
+    ex._futures, ex._ready = {future: (0, None)}, deque()
+    while not ex._pool._processes:
+        time.sleep(0.01)
+    return ex, future, list(ex._pool._processes.values())
+
+
+def test_cancel_ends_the_workers_without_waiting_for_the_running_call():
+    ex, future, processes = _pool_with(20.0)
+    while future.running() is False:  # the call has started in the worker
+        time.sleep(0.01)
+    ex.close(cancel=True)
+    assert not any(p.is_alive() for p in processes)
+    # a close that waited would have let the 20 s call finish normally
+    assert not future.done() or future.exception(timeout=5) is not None
+    assert ex.pending == 0
+
+
+def test_without_pending_calls_the_pool_ends_normally():
+    ex, future, processes = _pool_with(0.0)
+    future.result(timeout=30)
+    ex._futures.clear()  # handed back
+    ex.close(cancel=True)
+    assert future.exception() is None and not any(p.is_alive() for p in processes)
