@@ -120,7 +120,7 @@ def fsync_cost(trials: int) -> dict:
         make_data(folder, n_frames)
         rates: dict = {}
         for k in range(trials):
-            for sync in (True, False):
+            for sync in ((True, False) if k % 2 == 0 else (False, True)):  # alternate: no order effect
                 run_file.SYNC_TO_DISK = sync
                 tag = "fsync" if sync else "no_fsync"
                 t0 = time.perf_counter()

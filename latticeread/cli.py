@@ -13,6 +13,7 @@ import argparse
 import difflib
 import importlib
 import logging
+import re
 import sys
 from pathlib import Path
 
@@ -30,6 +31,18 @@ COMMANDS = [
     ("camera", "camera", "estimate bias, read noise and gain from dark and flat frames"),
     ("observables", "observables", "density, profiles, atom numbers, correlations and order from occupation matrices"),
 ]
+
+
+#: Values argparse must read as numbers, not as options: besides -5 and -0.5 (which argparse
+#: knows) also -1e9, -inf and -nan, so that ``--threshold -1e9`` reaches the option's range
+#: check and its message instead of "expected one argument".
+_NEGATIVE_NUMBER = re.compile(r"^-(\d+\.?\d*|\.\d+)([eE][-+]?\d+)?$|^-(inf|infinity|nan)$", re.IGNORECASE)
+
+
+def _read_negative_numbers(parser: argparse.ArgumentParser) -> argparse.ArgumentParser:
+    if hasattr(parser, "_negative_number_matcher"):  # argparse's own pattern (CPython 3.9-3.13)
+        parser._negative_number_matcher = _NEGATIVE_NUMBER
+    return parser
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -50,7 +63,7 @@ def build_parser() -> argparse.ArgumentParser:
             if exc.name != f"latticeread.commands.{module}":
                 raise
             continue
-        p = sub.add_parser(name, help=help_text, description=help_text)
+        p = _read_negative_numbers(sub.add_parser(name, help=help_text, description=help_text))
         p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
                        help="show full tracebacks and debug logging")
         mod.add_parser(p)

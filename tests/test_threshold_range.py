@@ -108,3 +108,15 @@ def test_the_window_says_why_and_keeps_the_calibration(qtbot, tmp_path):
     w.histogram_panel.threshold_box.setValue(-1e9)
     assert w.session.calibration == before
     assert "threshold" in w.last_error and "between 0 and 1e+07" in w.last_error
+
+
+@pytest.mark.parametrize("value", ["-1e9", "-inf", "-nan", "nan", "-3", "2e7"])
+def test_reconstruct_refuses_the_value_given_as_a_separate_word(tmp_path, capsys, value):
+    # "--threshold -1e9": argparse alone took -1e9 for an option ("expected one argument")
+    from latticeread.cli import main
+
+    with pytest.raises(SystemExit) as exc:
+        main(["reconstruct", str(tmp_path / "f.tif"), "-o", str(tmp_path / "s.csv"), "--threshold", value])
+    assert exc.value.code == 2
+    err = capsys.readouterr().err
+    assert "argument --threshold: the threshold is" in err and "between 0 and 1e+07" in err

@@ -208,11 +208,14 @@ def read_session(path) -> SessionRecord:
         raise FrameFileError(f"session file {path} does not exist") from exc
     except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
         raise FrameFileError(f"{path.name} is not a readable session file: {exc}") from exc
+    except RecursionError as exc:
+        raise FrameFileError(f"{path.name} is not a readable session file: it is nested too deeply") from exc
     if not isinstance(doc, dict) or doc.get("format") != SESSION_FORMAT:
         raise FrameFileError(f"{path.name} is not a latticeread session file")
     version = check_format_version(doc.get("format"), doc.get("format_version"), expected_format=SESSION_FORMAT,
                                    versions=range(1, SESSION_FORMAT_VERSION + 1),
                                    where=f"session file {path.name}", error=FrameFileError, default_version=1)
+    _check_structure(doc, f"session file {path.name}")
     frames_info = doc.get("frames") or {}
     h5_path = path.parent / doc.get("results_file", path.with_suffix(".h5").name)
     frames, results = _read_results(h5_path) if h5_path.exists() else (None, None)
@@ -224,6 +227,48 @@ def read_session(path) -> SessionRecord:
         calibration_origin=doc.get("calibration_origin"), undo=tuple(doc.get("undo", [])),
         settings=dict(doc.get("settings", {})), fidelity=doc.get("fidelity"), frames=frames, results=results,
         format_version=version)
+
+
+#: Expected JSON types of the session file's entries (None allowed everywhere: older files).
+_ENTRY_TYPES = {"frames": (dict, "an object"), "calibration": (dict, "an object"),
+                "calibration_origin": (dict, "an object"), "undo": (list, "a list"), "settings": (dict, "an object"),
+                "fidelity": (dict, "an object"), "results_file": (str, "a file name")}
+
+
+def _check_structure(doc: dict, where: str) -> None:
+    """Refuse entries of the wrong JSON type with a message, before anything uses them.
+
+    Raises
+    ------
+    FrameFileError
+        An entry has the wrong type (the file is damaged or not written by latticeread).
+    CalibrationError
+        The stored calibration has values outside the physical ranges
+        (:func:`latticeread.io.limits.check_calibration_values`).
+    """
+    def bad(what: str):
+        raise FrameFileError(f"{where}: {what}; the file is damaged or was not written by latticeread")
+
+    for key, (kind, name) in _ENTRY_TYPES.items():
+        if doc.get(key) is not None and not isinstance(doc[key], kind):
+            bad(f"'{key}' must be {name}, not {type(doc[key]).__name__}")
+    frames = doc.get("frames") or {}
+    for key in ("source", "dataset"):
+        if frames.get(key) is not None and not isinstance(frames[key], str):
+            bad(f"'frames.{key}' must be text, not {type(frames[key]).__name__}")
+    index = doc.get("current_index", 0)
+    if isinstance(index, bool) or not isinstance(index, int) or index < 0:
+        bad(f"'current_index' must be a frame number (0 or more), not {index!r}")
+    if isinstance(doc.get("calibration"), dict):
+        from latticeread.errors import CalibrationError
+        from latticeread.io.limits import check_calibration_values
+
+        try:
+            check_calibration_values(doc["calibration"], where=f"{where}: calibration")
+        except CalibrationError:
+            raise
+        except (TypeError, ValueError, AttributeError, IndexError) as exc:
+            raise CalibrationError(f"{where}: the stored calibration is malformed ({exc})") from exc
 
 
 def _read_results(h5_path: Path):
