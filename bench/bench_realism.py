@@ -3,8 +3,9 @@
 For each feature of the forward model on its own (and all together) the bench prints the
 fidelity (share of sites classified right, scored against the simulation's truth) of
 
-* ``ignored``: the program with its handling of that feature switched off (for features the
-  program does not handle, the same as ``handled``),
+* ``ignored``: the program with its handling of that feature switched off (artefact search,
+  lens-distortion field, brightness map; for features the program does not handle, the same
+  as ``handled``),
 * ``handled``: the program as a user runs it (``calibrate`` then ``reconstruct_stack``,
   geometry and PSF estimated from the frames),
 * ``true model``: an oracle given the true site positions of every frame, the true PSF of
@@ -128,7 +129,7 @@ def oracle(frames, truth) -> float:
 
 def run_program(frames, *, handled: bool):
     t0 = time.perf_counter()
-    cal = calibrate(frames, camera=CAMERA)
+    cal = calibrate(frames, camera=CAMERA, correct_distortion=handled, correct_brightness=handled)
     if not handled:
         cal = cal.with_options(hot_pixels=())
     rec = Reconstructor(cal)
@@ -155,7 +156,7 @@ def bench_features(names, *, size: int, n_frames: int, seed: int):
         except Exception as exc:  # a failure is a result of the bench, not a reason to stop it
             print(f"{name:<13} program failed: {type(exc).__name__}: {exc}")
             continue
-        if name in ("artefacts", "all"):
+        if name in ("artefacts", "distortion", "illumination", "all"):
             ignored, _, _ = run_program(frames, handled=False)
             fid_i = score(ignored, truth)
         else:

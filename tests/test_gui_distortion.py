@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+import pytest
 
 from latticeread.core.distortion import DistortionField
 from latticeread.gui.panels import GeometryPanel
@@ -46,3 +47,26 @@ def test_distortion_view_draws_one_arrow_per_block_and_hides_without_a_field(qtb
     assert panel._shift_arrows.getData()[0] is None or len(panel._shift_arrows.getData()[0]) == 0
 
 
+
+
+def test_brightness_map_is_drawn_behind_the_arrows(qtbot, tmp_path):
+    from latticeread.core.brightness import BrightnessMap
+
+    panel = GeometryPanel()
+    qtbot.addWidget(panel)
+    panel.resize(640, 1000)
+    panel.show()
+    qtbot.waitExposed(panel)
+    beam = BrightnessMap(centre=(255.5, 255.5), scale=362.0, order=2, coef=[0.0, 0.0, -1.0, 0.0, -1.0],
+                         applied=True, n_sites=2000, low=0.55, high=1.0, scatter=0.1, p_value=1e-40)
+    panel.set_brightness(beam, (512, 512))
+    assert panel.distortion_box.isVisibleTo(panel)
+    image = panel._brightness_image.image
+    assert image.max() == pytest.approx(1.0, abs=0.01)  # 1 at the centre
+    assert image[0, 0] == pytest.approx(float(beam.relative(0.0, 0.0)), rel=1e-6)  # a corner
+    assert "0.55-1.00" in panel.brightness_label.text() and "applied" in panel.brightness_label.text()
+    panel.set_distortion(_field())
+    assert panel.grab().save(str(tmp_path / "field.png"))
+    panel.set_brightness(None)
+    panel.set_distortion(None)
+    assert not panel.distortion_box.isVisibleTo(panel)

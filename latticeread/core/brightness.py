@@ -11,10 +11,20 @@ The relative brightness ``b(x, y)`` is ``exp(P(u, v))`` with ``P`` a polynomial 
 ``b = 1`` at the centre ``(cx, cy)`` (the middle of the occupied sites). Degree 2 holds a
 Gaussian beam profile (any waist, ellipticity, tilt, offset) exactly.
 
-The map is used to classify: each site's amplitude is divided by ``b`` at the site before it is
-compared with the threshold (the empty sites' amplitudes sit near zero photons once the
-background is fitted, so this is the threshold scaled by the map); the histogram, the
-threshold and the posteriors are computed on these normalised amplitudes.
+Fit (:func:`fit_brightness`): the amplitudes of the occupied sites of the calibration stack
+(photons), in logarithm, are fitted by linear least squares
+(:func:`numpy.linalg.lstsq`) with a free constant (the centre's photons); amplitudes more than
+3.5 robust standard deviations off the map are left out and the fit repeated.
+
+When is the map used?  It is **applied** when an F-test of the map against uniform brightness
+(nested linear models, :func:`scipy.stats.f`) gives p < 1e-6 and the map departs from 1 by at
+least :data:`MIN_CHANGE` somewhere over the sites; otherwise the brightness counts as uniform.
+
+Use: each site's amplitude is divided by ``b`` at the site (the photons the atom would give at
+the centre) before it is compared with the threshold. Empty sites' amplitudes sit near zero
+photons once the background is fitted, so this is the threshold scaled by the map; the
+histogram, the threshold, the posteriors and the error rates are computed on these
+normalised amplitudes, and every output says so.
 """
 
 from __future__ import annotations
@@ -23,10 +33,19 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from latticeread.core._poly2d import poly_design, poly_terms
-from latticeread.errors import CalibrationError
+from scipy import stats
 
-__all__ = ["BrightnessMap"]
+from latticeread.core._poly2d import poly_design, poly_terms
+from latticeread.errors import CalibrationError, ReconstructionError
+
+__all__ = ["BrightnessMap", "fit_brightness", "MIN_CHANGE", "MIN_BRIGHTNESS_SITES"]
+
+#: The map is applied only where it departs from 1 by at least this much somewhere.
+MIN_CHANGE = 0.05
+#: Fewest occupied sites (over the stack) for a fit.
+MIN_BRIGHTNESS_SITES = 50
+#: F-test p-value below which the map counts as real.
+P_VALUE_LIMIT = 1e-6
 
 
 @dataclass(frozen=True, eq=False)
@@ -121,7 +140,7 @@ class BrightnessMap:
 
     def describe(self) -> str:
         """One line for the terminal, the window and exports."""
-        state = "applied" if self.applied else "not applied (not significant or under 5 %)"
+        state = "applied" if self.applied else f"not applied (not significant or under {MIN_CHANGE:.0%})"
         return (f"atom brightness {self.low:.2f}-{self.high:.2f} of the centre's over the sites, {state}; "
                 f"{self.n_sites} occupied sites, scatter {self.scatter:.1%}")
 
@@ -142,3 +161,69 @@ class BrightnessMap:
         if missing:
             raise CalibrationError(f"the brightness map is missing {', '.join(missing)}")
         return cls(**data)
+
+
+def fit_brightness(x, y, amplitudes, *, frame_shape, sites_x=None, sites_y=None, order: int = 2) -> BrightnessMap:
+    """Fit a smooth relative-brightness map to the amplitudes of occupied sites.
+
+    Parameters
+    ----------
+    x, y : (M,) array_like
+        Positions of the occupied sites (pooled over frames), pixels.
+    amplitudes : (M,) array_like
+        Their amplitudes, photons (or counts: only ratios matter).
+    frame_shape : (int, int)
+        ``(height, width)``, pixels (sets the normalisation length).
+    sites_x, sites_y : array_like, optional
+        All sites the map will be used on (for :attr:`BrightnessMap.low`/``high``; default
+        the occupied sites).
+    order : int
+        Highest degree of the log-brightness polynomial (2 holds a Gaussian beam).
+
+    Returns
+    -------
+    BrightnessMap
+
+    Raises
+    ------
+    ReconstructionError
+        Fewer than :data:`MIN_BRIGHTNESS_SITES` occupied sites with a positive amplitude.
+    """
+    x, y, a = (np.asarray(v, float).ravel() for v in (x, y, amplitudes))
+    ok = np.isfinite(x) & np.isfinite(y) & np.isfinite(a) & (a > 0)
+    if ok.sum() < MIN_BRIGHTNESS_SITES:
+        raise ReconstructionError(f"only {int(ok.sum())} occupied sites to measure the brightness across the field; "
+                                  f"at least {MIN_BRIGHTNESS_SITES} are needed")
+    x, y, log_a = x[ok], y[ok], np.log(a[ok])
+    centre = (float(np.mean(x)), float(np.mean(y)))
+    scale = 0.5 * float(np.hypot(*frame_shape))
+    terms = poly_terms(order, min_degree=1)
+    design = np.column_stack([np.ones_like(x), poly_design(x, y, centre=centre, scale=scale, terms=terms)])
+    use = np.ones(x.size, bool)
+    coef = np.zeros(design.shape[1])
+    for _ in range(5):
+        coef, *_ = np.linalg.lstsq(design[use], log_a[use], rcond=None)
+        resid = log_a - design @ coef
+        robust = 1.4826 * float(np.median(np.abs(resid[use] - np.median(resid[use]))))
+        keep = np.abs(resid) <= 3.5 * max(robust, 1e-9)
+        if np.array_equal(keep, use) or keep.sum() < MIN_BRIGHTNESS_SITES:
+            break
+        use = keep
+    resid = log_a[use] - design[use] @ coef
+    rss1 = float(resid @ resid)
+    flat = log_a[use] - np.mean(log_a[use])
+    rss0 = float(flat @ flat)
+    n, extra = int(use.sum()), len(terms)
+    dof = n - 1 - extra
+    p_value = 1.0
+    if dof > 0 and rss1 > 0:
+        p_value = float(stats.f.sf(((rss0 - rss1) / extra) / (rss1 / dof), extra, dof))
+    field = BrightnessMap(centre=centre, scale=scale, order=order, coef=coef[1:], n_sites=n,
+                          scatter=float(np.sqrt(rss1 / max(n, 1))), p_value=p_value)
+    sx = x if sites_x is None else np.asarray(sites_x, float).ravel()
+    sy = y if sites_y is None else np.asarray(sites_y, float).ravel()
+    rel = field.relative(sx, sy)
+    low, high = float(rel.min()), float(rel.max())
+    applied = p_value < P_VALUE_LIMIT and max(1.0 - low, high - 1.0) >= MIN_CHANGE
+    return BrightnessMap(centre=centre, scale=scale, order=order, coef=coef[1:], applied=applied, n_sites=n,
+                         low=low, high=high, scatter=field.scatter, p_value=p_value)

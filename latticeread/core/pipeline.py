@@ -547,6 +547,10 @@ class Reconstructor:
         if self._keep is not None:  # the model check above saw every fitted site; report the region's
             k = self._keep
             amp = dataclasses.replace(amp, amplitudes=amp.amplitudes[k], flags=amp.flags[k], x=amp.x[k], y=amp.y[k])
+        bright = self.calibration.brightness
+        if bright is not None and bright.applied and amp.method != "nonlinear":
+            # the photons each atom would give at the centre of the brightness map: one threshold fits all
+            amp = dataclasses.replace(amp, amplitudes=amp.amplitudes / bright.factor(amp.x, amp.y))
         return geometry, amp, tuple(warnings) + amp.warnings
 
     def excluded_at(self, offset) -> SiteGrid | None:
@@ -836,7 +840,7 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
               threshold_method: str = "mixture", method: str | None = None, mask=None,
               restrict_region: bool = True, max_frames: int = 50, refine_vectors: bool = False,
               refine_frames: int = 4, lattice_prior: dict | None = None,
-              correct_distortion: bool = True) -> Calibration:
+              correct_distortion: bool = True, correct_brightness: bool = True) -> Calibration:
     """Make a calibration from a stack of frames.
 
     Parameters
@@ -890,6 +894,12 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
         (:func:`latticeread.core.distortion.fit_distortion`; stored in ``distortion``) and place
         the sites with it when it passes the significance test given there (the lattice
         vectors are refitted together with it); noted in ``distortion``.
+    correct_brightness : bool
+        With linear (or deconvolution) amplitudes, fit a smooth relative-brightness map to the
+        amplitudes of the occupied sites (:func:`latticeread.core.brightness.fit_brightness`;
+        stored in ``brightness``); when it passes its significance test every amplitude is
+        divided by the map at its site before the threshold is chosen and applied (noted in
+        ``brightness``).
 
     Returns
     -------
@@ -1006,6 +1016,28 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
             keep = np.tile(active, len(chosen))
             tr = select_threshold(pooled[keep], method=threshold_method, camera=camera, flags=pooled_flags[keep])
             notes["threshold_sites"] = int(active.sum())
+    brightness = None
+    # two passes: the second picks the occupied sites against the map, so dim atoms near the
+    # threshold are not left out (which would make the dim parts of the map too bright)
+    for _ in range(2 if correct_brightness and method != "nonlinear" else 0):
+        if not np.isfinite(tr.threshold):
+            break
+        found = _brightness_from(rec, pooled, pooled_flags, tr, n_frames=len(chosen), notes=notes)
+        if found is None or not found.applied:
+            brightness = brightness if brightness is not None else found
+            break
+        brightness = found
+        draft = draft.replace(brightness=brightness)
+        rec = Reconstructor(draft, method="linear", mask=mask, refit_phase=rec.refit_phase)
+        pooled, pooled_flags, warnings = _pooled(rec, chosen)
+        tr = select_threshold(pooled, method=threshold_method, camera=camera, flags=pooled_flags)
+        active = _active_sites(rec.sites, pooled.reshape(len(chosen), -1), tr.threshold) \
+            if np.isfinite(tr.threshold) else None
+        if active is not None:
+            keep = np.tile(active, len(chosen))
+            tr = select_threshold(pooled[keep], method=threshold_method, camera=camera, flags=pooled_flags[keep])
+    if brightness is not None:
+        notes["brightness"] = brightness.describe()
     atom = tr.occupied_mean
     if method == "nonlinear":
         if not np.isfinite(atom) or atom <= 0:
@@ -1045,7 +1077,7 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
     options = draft.options.replace(photons_per_atom=float(atom) if np.isfinite(atom) and atom > 0 else None)
     return Calibration(geometry=geometry, psf=psf, camera=camera, frame_shape=shape, threshold=float(tr.threshold),
                        threshold_method=threshold_method, amplitude_method=method, pixel_size_nm=pixel_size_nm,
-                       options=options, threshold_fit=tr, distortion=distortion, notes=notes)
+                       options=options, threshold_fit=tr, distortion=distortion, brightness=brightness, notes=notes)
 
 
 def lattice_constraint_kwargs(prior: dict | None, *, angle_between: float = np.pi / 2) -> dict:
@@ -1182,6 +1214,29 @@ def _geometry_from_frames(clean, *, psf, prior, n_fit, notes) -> LatticeGeometry
                                     "spacing_sigma": float(geometry.quality.spacing_sigma),
                                     "sigma_px": float(geometry.quality.residual)}
     return geometry
+
+
+def _brightness_from(rec: Reconstructor, pooled, flags, tr, *, n_frames: int, notes: dict):
+    """Brightness map from the occupied, unflagged sites of the calibration frames (None: too few).
+
+    ``pooled`` are the reconstructor's amplitudes: divided by its calibration's map, if any, so
+    the sites are picked against the map and the map's own factor is put back before the fit.
+    """
+    from latticeread.core.brightness import fit_brightness
+
+    x = np.tile(rec.sites.x, n_frames)
+    y = np.tile(rec.sites.y, n_frames)
+    occupied = (pooled > tr.threshold) & (np.asarray(flags) == 0)
+    current = rec.calibration.brightness
+    raw = pooled if current is None else pooled * current.factor(x, y)
+    try:
+        field_ = fit_brightness(x[occupied], y[occupied], raw[occupied], frame_shape=rec.frame_shape,
+                                sites_x=rec.sites.x, sites_y=rec.sites.y)
+    except ReconstructionError as exc:
+        notes["brightness"] = f"no brightness map: {exc}"
+        return None
+    notes["brightness"] = field_.describe()
+    return field_
 
 
 def _distortion_from_frames(clean, geometry: LatticeGeometry, psf: PSFModel, notes: dict, *, max_frames: int = 2):

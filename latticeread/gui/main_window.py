@@ -792,6 +792,7 @@ class MainWindow(QtWidgets.QMainWindow):
             gp.set_geometry(None if cal is None else cal.geometry, pixel_size_nm=pixel_size_nm)
         if hasattr(gp, "set_distortion"):
             gp.set_distortion(None if cal is None else cal.distortion)
+            gp.set_brightness(None if cal is None else cal.brightness, None if cal is None else cal.frame_shape)
         if hasattr(pp, "set_psf"):
             pp.set_psf(None if cal is None else cal.psf)
             pp.set_optics(numerical_aperture=st["numerical_aperture"], wavelength_nm=st["wavelength_nm"],
@@ -1746,6 +1747,9 @@ class MainWindow(QtWidgets.QMainWindow):
                      (base.n_rows, base.n_cols))
             return None, None
         x, y = geometry.site_positions(base.rows, base.cols)
+        field = s.calibration.distortion if s.calibration is not None else None
+        if field is not None:  # lens distortion: where the sites really are (unchanged when not applied)
+            x, y = field.place(x, y)
         sites = SiteGrid(base.rows, base.cols, x, y, base.row_min, base.col_min, base.n_rows, base.n_cols)
         occupied = (occupation[base.rows - base.row_min, base.cols - base.col_min] == 1).astype(np.uint8)
         return sites, occupied

@@ -30,6 +30,10 @@ Methods (data in)
     measured shift of each block of the frame off the best perfect lattice (blue arrows) and
     what the fitted field leaves of it (red arrows), both magnified by the factor printed,
     with the field's one-line summary (applied or not, largest shift, scatter).
+``set_brightness(brightness_map, frame_shape)``
+    A :class:`latticeread.core.brightness.BrightnessMap` (or None): the relative brightness of
+    one atom across the frame (1 at the map's centre), drawn in grey behind the distortion
+    arrows (colour bar), with its one-line summary.
 ``clear()``
     Remove everything.
 
@@ -312,7 +316,9 @@ class GeometryPanel(QtWidgets.QWidget):
         self.distortion_plot.setToolTip(
             "Lens distortion. Each arrow starts at the centroid of the atoms of one block of the frame. "
             "Blue: how far that block's lattice sits off the best perfect lattice; red: what is left "
-            "after the fitted distortion field. Arrows are magnified by the factor in the text below.")
+            "after the fitted distortion field. Arrows are magnified by the factor in the text below. "
+            "Grey background (bar on the right): relative brightness of one atom across the frame, "
+            "1 at the centre of the brightness map.")
         self.distortion_plot.setMinimumHeight(150)
         dsp = self.distortion_plot.getPlotItem()
         dsp.setAspectLocked(True)
@@ -323,6 +329,14 @@ class GeometryPanel(QtWidgets.QWidget):
         dsp.setLabel("left", "y (px)")
         for axis in ("left", "bottom"):
             dsp.getAxis(axis).enableAutoSIPrefix(False)
+        self._brightness_image = pg.ImageItem(axisOrder="row-major")
+        self._brightness_image.setColorMap(pg.colormap.get("CET-L1"))
+        self._brightness_image.setZValue(-10)
+        dsp.addItem(self._brightness_image)
+        self._brightness_bar = pg.ColorBarItem(values=(0.0, 1.0), colorMap=pg.colormap.get("CET-L1"),
+                                               interactive=False, width=12)
+        self._brightness_bar.setImageItem(self._brightness_image, insert_in=dsp)
+        self._brightness_bar.setVisible(False)
         self._distortion_legend = dsp.addLegend(offset=(-10, 10), labelTextColor=(40, 40, 40))
         self._shift_arrows = pg.PlotDataItem(pen=pg.mkPen((30, 100, 200), width=2), connect="pairs")
         self._residual_arrows = pg.PlotDataItem(pen=pg.mkPen((210, 40, 40), width=2), connect="pairs")
@@ -335,12 +349,18 @@ class GeometryPanel(QtWidgets.QWidget):
         self.distortion_label.setWordWrap(True)
         self.distortion_label.setToolTip("The fitted lens-distortion field: whether the sites are placed "
                                          "with it, its largest shift, and the scatter of the blocks")
-        self.distortion_box = QtWidgets.QGroupBox("Lens distortion")
+        self.brightness_label = QtWidgets.QLabel("")
+        self.brightness_label.setWordWrap(True)
+        self.brightness_label.setToolTip("The fitted brightness map: how many photons an atom gives across the "
+                                         "field relative to the centre, and whether classification uses it")
+        self.distortion_box = QtWidgets.QGroupBox("Across the field: lens distortion and atom brightness")
         dl = QtWidgets.QVBoxLayout(self.distortion_box)
         dl.setContentsMargins(4, 4, 4, 4)
         dl.addWidget(self.distortion_plot)
         dl.addWidget(self.distortion_label)
+        dl.addWidget(self.brightness_label)
         self.distortion_box.setVisible(False)
+        self._has_distortion = self._has_brightness = False
 
         layout = QtWidgets.QVBoxLayout(self)
         layout.setContentsMargins(4, 4, 4, 4)
@@ -449,15 +469,15 @@ class GeometryPanel(QtWidgets.QWidget):
 
     def set_distortion(self, field) -> None:
         """Show a DistortionField's measured block shifts and residuals (pixels); None hides the view."""
+        self._has_distortion = field is not None
+        self.distortion_box.setVisible(self._has_distortion or self._has_brightness)
         if field is None:
-            self.distortion_box.setVisible(False)
             for item in (self._shift_arrows, self._residual_arrows):
                 item.setData([], [])
             self._block_points.setData([], [])
-            self.distortion_label.setText("no distortion field")
+            self.distortion_label.setText("no lens-distortion field")
             return
         b = np.asarray(field.binned, float).reshape(-1, 6)
-        self.distortion_box.setVisible(True)
         if not len(b):
             for item in (self._shift_arrows, self._residual_arrows):
                 item.setData([], [])
@@ -478,11 +498,31 @@ class GeometryPanel(QtWidgets.QWidget):
         self.distortion_label.setText(f"{field.describe()} · arrows magnified {gain:.0f}x")
         self.distortion_plot.getPlotItem().autoRange()
 
+    def set_brightness(self, brightness, frame_shape=None) -> None:
+        """Show a BrightnessMap over a frame of ``frame_shape`` (height, width) pixels; None hides it."""
+        self._has_brightness = brightness is not None and frame_shape is not None and min(frame_shape) > 0
+        self.distortion_box.setVisible(self._has_distortion or self._has_brightness)
+        self._brightness_bar.setVisible(self._has_brightness)
+        if not self._has_brightness:
+            self._brightness_image.clear()
+            self.brightness_label.setText("" if brightness is None else brightness.describe())
+            return
+        h, w = (int(v) for v in frame_shape)
+        step = max(1, max(h, w) // 128)  # a coarse image is enough for a smooth map
+        yy, xx = np.mgrid[0:h:step, 0:w:step]
+        image = brightness.relative(xx, yy)
+        self._brightness_image.setImage(image, levels=(0.0, max(1.0, float(image.max()))))
+        self._brightness_image.setRect(QtCore.QRectF(-0.5, -0.5, xx.shape[1] * step, yy.shape[0] * step))
+        self._brightness_bar.setLevels((0.0, max(1.0, float(image.max()))))
+        self.brightness_label.setText(brightness.describe())
+        self.distortion_plot.getPlotItem().autoRange()
+
     def clear(self) -> None:
-        """Remove geometry, spectrum, distortion and drift."""
+        """Remove geometry, spectrum, distortion, brightness and drift."""
         self.set_geometry(None)
         self.set_spectrum(None)
         self.set_distortion(None)
+        self.set_brightness(None)
         self.set_drift([], [])
         self.drift_label.setText("no drift data")
 
