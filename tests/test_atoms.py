@@ -158,3 +158,95 @@ def test_calibrate_unaided_beyond_the_cut_off_reads_the_lattice_from_the_atoms()
         assert res.offset_method == "atoms"
         assert 0 < res.offset_sigma[0] < 0.1
         assert _max_site_error(res.geometry, truth.geometries[f], frames.shape[1:]) < 0.02
+    # asked for the Fourier phase at 0.8 FWHM: the atoms decide, and the frame says why
+    from latticeread.core.pipeline import Reconstructor
+
+    res = Reconstructor(cal, phase_method="fourier")(frames[1], frame_index=1)
+    assert res.offset_method == "atoms"
+    assert any("the Fourier phase was not used" in w for w in res.warnings)
+    assert _max_site_error(res.geometry, truth.geometries[1], frames.shape[1:]) < 0.02
+
+
+@pytest.fixture(scope="module")
+def filled_core():
+    """A densely filled frame (filling 0.93) at 0.95 FWHM: beyond the cut-off, few atoms stand apart."""
+    fwhm = 5.0
+    geometry = LatticeGeometry(a1=_rot(4.75, 0.55 + np.pi / 2), a2=_rot(4.75, 0.55), offset=(85.3, 84.6))
+    frames, truth = _frames(geometry, _airy(fwhm), shape=(170, 170), filling=0.93, photons=700.0, seed=5)
+    return fwhm, geometry, frames, truth
+
+
+def test_holes_of_a_filled_core_sit_on_empty_sites_and_give_the_lattice(filled_core):
+    from latticeread.core.atoms import locate_holes, merge_located
+
+    fwhm, geometry, frames, truth = filled_core
+    holes = locate_holes(frames, fwhm=fwhm)
+    single = holes.single
+    assert single.sum() >= 40
+    # each isolated hole lies on an empty site (nearest true site within a quarter spacing)
+    sx, sy = truth.sites.x, truth.sites.y
+    d2 = (holes.x[single, None] - sx[None]) ** 2 + (holes.y[single, None] - sy[None]) ** 2
+    nearest = d2.argmin(axis=1)
+    assert np.mean(np.sqrt(d2.min(axis=1)) < 0.25 * 4.75) > 0.9
+    assert np.mean(truth.initial_occupation[0][nearest] == 0) > 0.9
+    # the atoms alone do not give the lattice; with the holes it is found
+    atoms = locate_atoms(frames, fwhm=fwhm)
+    found = lattice_from_atoms(frames, fwhm=fwhm, atoms=merge_located(atoms, holes))
+    assert _max_site_error(found, geometry, frames.shape[1:]) < 0.05
+
+
+def test_a_sparse_frame_has_no_holes():
+    from latticeread.core.atoms import locate_holes
+
+    fwhm = 4.0
+    geometry = LatticeGeometry(a1=_rot(4.0, 1.2), a2=_rot(4.0, 1.2 - np.pi / 2), offset=(64.2, 63.6))
+    frames, _ = _frames(geometry, _airy(fwhm), shape=(128, 128), filling=0.1, seed=1)
+    assert not locate_holes(frames, fwhm=fwhm).single.any()
+
+
+def test_error_locate_holes_needs_a_positive_fwhm():
+    from latticeread.core.atoms import locate_holes
+
+    with pytest.raises(ValueError, match="fwhm must be a positive number of pixels"):
+        locate_holes(np.zeros((32, 32)), fwhm=-1.0)
+
+
+def test_error_merge_located_refuses_different_stacks():
+    from latticeread.core.atoms import merge_located
+
+    one = locate_atoms(np.zeros((32, 32)), fwhm=3.0)
+    two = locate_atoms(np.zeros((2, 32, 32)), fwhm=3.0)
+    with pytest.raises(ValueError, match="different numbers of frames"):
+        merge_located(one, two)
+    with pytest.raises(ValueError, match="nothing to merge"):
+        merge_located()
+
+
+def test_offset_warning_names_few_atoms_and_a_large_error():
+    from latticeread.core.pipeline import offset_warning
+
+    assert offset_warning((0.02, 0.02), 200, 5.0) == ""
+    few = offset_warning((0.02, 0.02), 4, 5.0)
+    assert "poorly determined" in few and "4 atom(s)" in few
+    assert "poorly determined" in offset_warning((0.2, 0.2), 200, 5.0)
+
+
+def test_an_uncertain_lattice_from_few_atoms_is_refined_by_the_image_model():
+    """Vectors 0.4 % off with a 1-sigma far-site error above the limit: the image-model fit fixes them."""
+    from latticeread.core.geometry import LatticeQuality
+    from latticeread.core.pipeline import _refine_atom_geometry
+
+    fwhm = 5.0
+    truth = LatticeGeometry(a1=_rot(4.5, 0.4 + np.pi / 3), a2=_rot(4.5, 0.4), offset=(100.2, 99.6))
+    frames, _ = _frames(truth, _airy(fwhm), shape=(200, 200), filling=0.15, seed=2, photons=900.0)
+    atoms = locate_atoms(frames, fwhm=fwhm)
+    off = LatticeGeometry(a1=tuple(1.004 * np.asarray(truth.a1)), a2=tuple(1.004 * np.asarray(truth.a2)),
+                          offset=truth.offset, quality=LatticeQuality(spacing_sigma=2e-3))
+    assert _max_site_error(off, truth, frames.shape[1:]) > 0.1
+    notes: dict = {}
+    fixed = _refine_atom_geometry(frames, off, psf=_airy(fwhm), atoms=atoms, notes=notes)
+    assert notes["vectors_model_fit"]["kept"]
+    assert _max_site_error(fixed, truth, frames.shape[1:]) < 0.025
+    # a precise start is left alone
+    precise = off.with_offset(off.offset, quality=LatticeQuality(spacing_sigma=1e-5))
+    assert _refine_atom_geometry(frames, precise, psf=_airy(fwhm), atoms=atoms, notes={}) is precise

@@ -54,7 +54,7 @@ from scipy import ndimage
 from latticeread.core.geometry import LatticeGeometry, LatticeQuality
 from latticeread.errors import FrameError, LatticeNotFound
 
-__all__ = ["LocatedAtoms", "locate_atoms", "lattice_from_atoms", "offset_from_atoms", "FrameOffset", "check_geometry",
+__all__ = ["LocatedAtoms", "locate_atoms", "locate_holes", "merge_located", "lattice_from_atoms", "offset_from_atoms", "FrameOffset", "check_geometry",
            "GeometryCheck", "MIN_LATTICE_ATOMS"]
 
 log = logging.getLogger(__name__)
@@ -268,24 +268,132 @@ def locate_atoms(image_or_stack, *, fwhm: float, detection_sigma: float = DETECT
         empty = np.zeros(0)
         return LocatedAtoms(empty, empty, empty, empty, empty, np.zeros(0, int), np.zeros(0, bool), len(data))
     x, y, photons, width, sigma, frame = (np.concatenate(v) for v in zip(*parts))
-    single = np.zeros(x.size, bool)
-    if x.size:
-        # the width a single atom's spot should have: the PSF's Gaussian width widened by the
-        # pixel (a uniform pixel adds 1/12 pixel^2 of variance); merged groups are wider
-        expect = np.sqrt(s0**2 + 1.0 / 12.0)
-        narrow = (width > WIDTH_RANGE[0] * expect) & (width < WIDTH_RANGE[1] * expect)
-        med_p = np.median(photons[narrow]) if narrow.sum() >= 5 else np.median(photons)
-        single = narrow & (photons > PHOTON_RANGE[0] * med_p) & (photons < PHOTON_RANGE[1] * med_p)
-        # no other candidate (single or not) within one FWHM in the same frame
-        from scipy.spatial import cKDTree
-
-        for f in np.unique(frame):
-            sel = np.flatnonzero(frame == f)
-            tree = cKDTree(np.column_stack([x[sel], y[sel]]))
-            counts = np.array([len(v) for v in tree.query_ball_point(np.column_stack([x[sel], y[sel]]), r=fwhm)])
-            single[sel[counts > 1]] = False
+    single = _single_spots(x, y, photons, width, frame, s0=s0, fwhm=fwhm)
     return LocatedAtoms(x=x, y=y, photons=photons, width=width, sigma=sigma, frame=frame.astype(int), single=single,
                         n_frames=len(data))
+
+
+def _single_spots(x, y, photons, width, frame, *, s0: float, fwhm: float) -> np.ndarray:
+    """Spots that pass the single-atom tests: width and photons of one PSF, no neighbour within one FWHM."""
+    from scipy.spatial import cKDTree
+
+    single = np.zeros(x.size, bool)
+    if not x.size:
+        return single
+    # the width a single atom's spot should have: the PSF's Gaussian width widened by the
+    # pixel (a uniform pixel adds 1/12 pixel^2 of variance); merged groups are wider
+    expect = np.sqrt(s0**2 + 1.0 / 12.0)
+    narrow = (width > WIDTH_RANGE[0] * expect) & (width < WIDTH_RANGE[1] * expect)
+    med_p = np.median(photons[narrow]) if narrow.sum() >= 5 else np.median(photons)
+    single = narrow & (photons > PHOTON_RANGE[0] * med_p) & (photons < PHOTON_RANGE[1] * med_p)
+    # no other candidate (single or not) within one FWHM in the same frame
+    for f in np.unique(frame):
+        sel = np.flatnonzero(frame == f)
+        tree = cKDTree(np.column_stack([x[sel], y[sel]]))
+        counts = np.array([len(v) for v in tree.query_ball_point(np.column_stack([x[sel], y[sel]]), r=fwhm)])
+        single[sel[counts > 1]] = False
+    return single
+
+
+#: A filled region's smoothed level must be at least this fraction of the frame's high level
+#: (99th percentile of the smoothed frame) for holes to be searched there.
+FILLED_LEVEL = 0.8
+#: Smallest filled region searched for holes, in units of FWHM^2.
+MIN_FILLED_AREA = 50.0
+
+
+def locate_holes(image_or_stack, *, fwhm: float, detection_sigma: float = 4.0) -> LocatedAtoms:
+    """Find empty sites inside densely filled regions and fit their centres to a fraction of a pixel.
+
+    In a filled region (a Mott-insulator core) whose lattice lies beyond the optical cut-off
+    the atoms blur into a nearly uniform plateau, but a missing atom leaves a dip shaped like
+    the PSF: the inverted image (the local plateau level minus the frame) shows every isolated
+    hole as a point-like spot on the lattice, which :func:`lattice_from_atoms` can use exactly
+    like a single atom.
+
+    Method: the plateau level is the frame smoothed by a Gaussian of 1.5 FWHM; the filled
+    region is where that level is at least :data:`FILLED_LEVEL` of its 99th percentile
+    (photons above a background that is small beside the plateau), shrunk by one FWHM, in connected parts of at least
+    :data:`MIN_FILLED_AREA` FWHM^2; candidates are the local maxima of the lightly smoothed
+    inverted image there above ``detection_sigma`` robust standard deviations; each is fitted
+    as in :func:`locate_atoms` and kept as ``single`` by the same width, photon and
+    neighbour tests.
+
+    Parameters
+    ----------
+    image_or_stack : (H, W) or (n_frames, H, W) array_like
+        Frame(s) in photons per pixel, finite.
+    fwhm : float
+        Full width at half maximum of the PSF, pixels.
+    detection_sigma : float
+        Candidates need a filtered dip this many robust standard deviations deep.
+
+    Returns
+    -------
+    LocatedAtoms
+        The holes (``photons`` = the missing light of the dip); empty when no frame has a
+        filled region.
+
+    Raises
+    ------
+    FrameError
+        Not a frame or stack, smaller than 16x16 pixels, or non-finite pixels.
+    ValueError
+        Non-positive ``fwhm``.
+    """
+    if not (np.isfinite(fwhm) and fwhm > 0):
+        raise ValueError(f"fwhm must be a positive number of pixels, got {fwhm!r}")
+    data = _as_stack(image_or_stack)
+    s0 = float(fwhm) * _FWHM_TO_SIGMA
+    radius = max(2, int(np.ceil(0.8 * fwhm)))
+    parts = []
+    for f, frame in enumerate(data):
+        level = ndimage.gaussian_filter(frame, 1.5 * fwhm)
+        filled = level > FILLED_LEVEL * np.percentile(level, 99)
+        filled = ndimage.binary_erosion(filled, iterations=max(1, int(round(fwhm))))
+        labels, n = ndimage.label(filled)
+        if n == 0:
+            continue
+        area = ndimage.sum(filled, labels, index=np.arange(1, n + 1))
+        filled &= np.isin(labels, 1 + np.flatnonzero(area >= MIN_FILLED_AREA * fwhm * fwhm))
+        if filled.sum() < MIN_FILLED_AREA * fwhm * fwhm:
+            continue
+        inverted = level - frame
+        smooth = ndimage.gaussian_filter(inverted, max(0.6, 0.4 * s0))
+        med = np.median(smooth[filled])
+        mad = 1.4826 * np.median(np.abs(smooth[filled] - med))
+        if not np.isfinite(mad) or mad <= 0:
+            continue
+        peak = (smooth == ndimage.maximum_filter(smooth, size=3)) & (smooth > med + detection_sigma * mad) & filled
+        py, px = np.nonzero(peak)
+        if py.size == 0:
+            continue
+        x, y, photons, width, sigma, ok = _fit_spots(inverted, py, px, width0=s0, radius=radius)
+        parts.append((x[ok], y[ok], photons[ok], width[ok], sigma[ok], np.full(int(ok.sum()), f)))
+    if not parts:
+        empty = np.zeros(0)
+        return LocatedAtoms(empty, empty, empty, empty, empty, np.zeros(0, int), np.zeros(0, bool), len(data))
+    x, y, photons, width, sigma, frame = (np.concatenate(v) for v in zip(*parts))
+    single = _single_spots(x, y, photons, width, frame, s0=s0, fwhm=fwhm)
+    return LocatedAtoms(x=x, y=y, photons=photons, width=width, sigma=sigma, frame=frame.astype(int), single=single,
+                        n_frames=len(data))
+
+
+def merge_located(*parts: LocatedAtoms) -> LocatedAtoms:
+    """Atoms (and holes) located on the same frames, as one list (for :func:`lattice_from_atoms`).
+
+    Raises
+    ------
+    ValueError
+        No parts, or parts located on different numbers of frames.
+    """
+    if not parts:
+        raise ValueError("nothing to merge")
+    n = {p.n_frames for p in parts}
+    if len(n) != 1:
+        raise ValueError(f"the located spots come from different numbers of frames ({sorted(n)})")
+    fields = ("x", "y", "photons", "width", "sigma", "frame", "single")
+    return LocatedAtoms(*(np.concatenate([getattr(p, k) for p in parts]) for k in fields), n_frames=n.pop())
 
 
 def _splat(shape, x, y) -> np.ndarray:

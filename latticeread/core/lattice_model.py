@@ -94,17 +94,20 @@ CHI2_GAIN = 1.0
 
 
 class _PSFTable:
-    """Pixel-integrated PSF and its x/y derivatives on a fine grid, read by cubic splines.
+    """Pixel-integrated PSF and its x/y derivatives on a fine grid, read by linear interpolation.
 
     The pixel integral is the same ``s x s`` sub-sample average as :meth:`PSFModel.stamps`;
     it is tabulated every ``1 / (4 s)`` pixel (sub-sample offsets fall on the grid) and
-    differentiated on the table by central differences before spline filtering.
+    differentiated on the table by central differences. On a grid that fine, linear
+    interpolation errs by (grid step)^2 / 8 times the curvature: below 1e-3 of the peak for
+    a PSF of 2 pixels FWHM or more (the error bound of linear interpolation, common
+    practice), and it reads the table several times faster than cubic splines.
     """
 
     def __init__(self, psf: PSFModel, oversample: int = 4):
         acc, k, half = pixel_integrated_table(psf, oversample=oversample)
         gy, gx = np.gradient(acc, 1.0 / k)
-        self.coef = [ndimage.spline_filter(t, order=3, mode="mirror") for t in (acc, gx, gy)]
+        self.tables = [np.ascontiguousarray(t) for t in (acc, gx, gy)]
         self.k, self.origin, self.radius = k, half, int(psf.radius)
 
     def __call__(self, dx, dy, derivatives: bool = True):
@@ -114,16 +117,24 @@ class _PSFTable:
         derivatives are None when not asked for (a third of the work).
         """
         p = np.arange(-self.radius, self.radius + 1, dtype=float)
-        cy = (p[None, :, None] - dy[:, None, None]) * self.k + self.origin
-        cx = (p[None, None, :] - dx[:, None, None]) * self.k + self.origin
-        cy, cx = np.broadcast_arrays(cy, cx)
-        coords = [cy.ravel(), cx.ravel()]
-        shape = cy.shape
+        # separable bilinear weights: rows depend on (site, stamp row), columns on (site, stamp column)
+        cy = (p[None, :] - np.asarray(dy, float)[:, None]) * self.k + self.origin
+        cx = (p[None, :] - np.asarray(dx, float)[:, None]) * self.k + self.origin
+        h, w = self.tables[0].shape
+        iy = np.clip(np.floor(cy).astype(int), 0, h - 2)
+        ix = np.clip(np.floor(cx).astype(int), 0, w - 2)
+        fy = np.clip(cy - iy, 0.0, 1.0)[:, :, None]
+        fx = np.clip(cx - ix, 0.0, 1.0)[:, None, :]
+        r0, c0 = iy[:, :, None], ix[:, None, :]
+
+        def read(t):
+            return ((1 - fy) * ((1 - fx) * t[r0, c0] + fx * t[r0, c0 + 1])
+                    + fy * ((1 - fx) * t[r0 + 1, c0] + fx * t[r0 + 1, c0 + 1]))
+
+        u = read(self.tables[0])
         if not derivatives:
-            u = ndimage.map_coordinates(self.coef[0], coords, order=3, prefilter=False, mode="mirror").reshape(shape)
             return u / u.sum(axis=(1, 2), keepdims=True), None, None
-        u, ux, uy = (ndimage.map_coordinates(c, coords, order=3, prefilter=False, mode="mirror").reshape(shape)
-                     for c in self.coef)
+        ux, uy = read(self.tables[1]), read(self.tables[2])
         # the emitter moving by +dx samples the table at p - dx: derivative flips sign
         ux, uy = -ux, -uy
         norm = u.sum(axis=(1, 2), keepdims=True)

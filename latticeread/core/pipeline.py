@@ -53,7 +53,7 @@ from latticeread.errors import CalibrationError, FrameError, LatticeNotFound, Re
 
 __all__ = ["FrameResult", "Reconstructor", "calibrate", "reconstruct_stack", "reclassify", "pooled_threshold",
            "estimate_geometry",
-           "with_camera_weighting", "uncertain", "frame_iter", "NONLINEAR_BELOW", "UNCERTAIN_RANGE"]
+           "with_camera_weighting", "uncertain", "frame_iter", "offset_warning", "NONLINEAR_BELOW", "UNCERTAIN_RANGE"]
 
 log = logging.getLogger(__name__)
 
@@ -62,7 +62,7 @@ NONLINEAR_BELOW = 0.7
 #: Posterior range flagged UNCERTAIN.
 UNCERTAIN_RANGE = (0.1, 0.9)
 #: Sites of margin kept around the region where atoms were seen (see :func:`calibrate`).
-REGION_MARGIN = 3
+REGION_MARGIN = 4
 #: Largest side, in sites, of the central block on which the lattice phase is fitted.
 PHASE_BLOCK = 40
 #: Spacing / PSF FWHM below which each frame's offset comes from its single atoms by default:
@@ -70,6 +70,18 @@ PHASE_BLOCK = 40
 #: 2 NA / lambda; Born & Wolf, from memory), and near it the image-model fit with free
 #: amplitudes barely feels the offset.
 ATOMS_OFFSET_BELOW = 1.0
+#: The lattice read from the atoms is refined by the image-model fit when it leaves the
+#: farthest atom's site uncertain by more than this many spacings (1 sigma: twice this is
+#: the 0.02-spacing placement the project aims at).
+ATOM_SITE_SIGMA = 0.01
+#: PSF stamp half-width, in FWHM, of that image-model fit.
+REFINE_WINDOW_FWHM = 1.6
+#: It stops when no site moves by more than this many spacings in a step.
+REFINE_TOL = 0.002
+#: A frame's offset from its atoms is reported as poorly determined with fewer atoms than
+#: this, or a 1-sigma error above :data:`OFFSET_SIGMA_WARN` spacings.
+OFFSET_MIN_ATOMS = 10
+OFFSET_SIGMA_WARN = 0.02
 
 
 
@@ -246,17 +258,21 @@ class Reconstructor:
         How the offset is re-found (default: ``calibration.options.phase_method``, which
         :func:`calibrate` sets to ``"atoms"`` when the spacing is below
         :data:`ATOMS_OFFSET_BELOW` PSF FWHM). ``"atoms"``: the weighted mean displacement of the
-        frame's single atoms from their nearest sites
+        frame's single atoms (and, in a filled core, its isolated holes:
+        :func:`latticeread.core.atoms.locate_holes`) from their nearest sites
         (:func:`latticeread.core.atoms.offset_from_atoms`; the vectors fixed, two parameters,
         with a 1-sigma error); beyond the optical cut-off the lattice leaves no trace in a
-        linear fit of the image, but every lone spot is one atom on one site. Falls back to
-        ``"model"`` (with a warning) in a frame with too few single atoms.
+        linear fit of the image, but every lone spot is one atom on one site. A frame whose
+        offset rests on fewer than :data:`OFFSET_MIN_ATOMS` atoms or is uncertain by more than
+        :data:`OFFSET_SIGMA_WARN` spacing (1 sigma) gets a warning (:func:`offset_warning`).
+        Falls back to ``"model"`` (with a warning) in a frame with too few single atoms.
         ``"model"``: search one unit cell for the best
         matched-filter energy, then Newton steps on the least-squares fit of the whole image
         model (:meth:`SiteBasis.fit_offset`); works at every spacing, also where the lattice's
         Fourier peaks lie beyond the optical cut-off (spacing below ~1 FWHM for an Airy PSF).
         ``"fourier"``: start from :func:`latticeread.core.lattice.refine_phase`, then the
-        same model polish.
+        same model polish; below :data:`ATOMS_OFFSET_BELOW` FWHM, where that phase means
+        nothing, ``"atoms"`` is used instead and every frame says so.
     index_bounds : (row_min, row_max, col_min, col_max), optional
         Restrict the sites to these indices (default: ``calibration.options.index_bounds``;
         None there = every site whose centre lies in the frame).
@@ -317,6 +333,14 @@ class Reconstructor:
         self.weighting = weighting
         self.calibration = calibration
         self.method = method
+        # below the optical cut-off the lattice's Fourier phase is noise: never move sites by it
+        self._phase_note = ""
+        ratio = min(calibration.geometry.spacings) / calibration.psf.fwhm
+        if phase_method == "fourier" and ratio < ATOMS_OFFSET_BELOW:
+            self._phase_note = (f"the Fourier phase was not used: at a spacing of {ratio:.2f} PSF FWHM the lattice's "
+                                "Fourier peaks are at or beyond the optical cut-off and their phase means nothing; the "
+                                "offset came from the frame's atoms instead")
+            phase_method = "atoms"
         self.phase_method = phase_method
         self.refit_phase = bool(refit_phase)
         self.frame_shape = shape
@@ -451,23 +475,29 @@ class Reconstructor:
         if not np.isfinite(photons[crop]).all():
             clean = photons.copy()
             clean[crop] = np.where(np.isfinite(photons[crop]), photons[crop], np.nanmedian(photons[crop]))
-        warnings: list[str] = []
+        warnings: list[str] = [self._phase_note] if self._phase_note else []
         poor = False
         start, search = None, True
         if self.phase_method == "atoms":
-            from latticeread.core.atoms import offset_from_atoms
+            from latticeread.core.atoms import check_geometry, locate_atoms, locate_holes, merge_located, \
+                offset_from_atoms
 
-            from latticeread.core.atoms import check_geometry, locate_atoms
-
-            atoms = _on_perfect_lattice(locate_atoms(clean, fwhm=self.calibration.psf.fwhm), self.calibration)
+            fwhm = self.calibration.psf.fwhm
+            atoms = _on_perfect_lattice(locate_atoms(clean, fwhm=fwhm), self.calibration)
+            holes = locate_holes(clean, fwhm=fwhm)  # empty sites in a filled core sit on the lattice too
+            points = merge_located(atoms, _on_perfect_lattice(holes, self.calibration)) if holes.single.any() else atoms
             try:
-                found = offset_from_atoms(clean, geometry, fwhm=self.calibration.psf.fwhm, atoms=atoms)
+                found = offset_from_atoms(clean, geometry, fwhm=fwhm, atoms=points)
             except LatticeNotFound as exc:
                 warnings.append(f"the lattice offset could not be fitted from single atoms ({exc}); the image-model "
                                 "fit searched the whole unit cell instead")
             else:
                 self._offset_info = ("atoms", found.sigma)
                 fitted = geometry.with_offset(found.offset)
+                text = offset_warning(found.sigma, found.n_atoms, min(geometry.spacings))
+                if text:
+                    warnings.append(text)
+                    poor = True
                 check = check_geometry(atoms, fitted)
                 if not check.ok:
                     warnings.append(check.warning)
@@ -1173,20 +1203,32 @@ def _geometry_from_frames(clean, *, psf, prior, n_fit, notes) -> LatticeGeometry
     except LatticeNotFound as exc:
         failure = exc
     if psf is not None and not kwargs:
-        from latticeread.core.atoms import lattice_from_atoms
+        from latticeread.core.atoms import lattice_from_atoms, locate_atoms, locate_holes, merge_located
 
+        atoms = locate_atoms(clean, fwhm=psf.fwhm)
+        method = "atoms"
         try:
-            geometry = lattice_from_atoms(clean, fwhm=psf.fwhm, start=fourier)
+            try:
+                geometry = lattice_from_atoms(clean, fwhm=psf.fwhm, start=fourier, atoms=atoms)
+            except LatticeNotFound as exc:
+                # a filled core (Mott insulator) has few atoms that stand apart but isolated holes
+                # that do: they sit on the lattice too
+                holes = locate_holes(clean, fwhm=psf.fwhm)
+                if not holes.single.any():
+                    raise
+                notes["geometry_atoms_only_failed"] = str(exc)
+                atoms, method = merge_located(atoms, holes), "atoms and holes"
+                geometry = lattice_from_atoms(clean, fwhm=psf.fwhm, start=fourier, atoms=atoms)
         except LatticeNotFound as exc:
             notes["geometry_atoms_failed"] = str(exc)
         else:
-            notes["geometry_method"] = "atoms"
+            notes["geometry_method"] = method
             notes["geometry_from_atoms"] = {"n_atoms": int(geometry.quality.n_sites_used),
                                             "spacing_sigma": float(geometry.quality.spacing_sigma),
                                             "residual_px": float(geometry.quality.residual),
                                             "start": "fourier" if fourier is not None and not np.isfinite(
                                                 geometry.quality.peak_to_background) else "atoms"}
-            return geometry
+            return _refine_atom_geometry(clean, geometry, psf=psf, atoms=atoms, notes=notes)
     if fourier is not None:
         notes["geometry_method"] = "fourier"
         return fourier
@@ -1259,6 +1301,89 @@ def _distortion_from_frames(clean, geometry: LatticeGeometry, psf: PSFModel, not
         return None, geometry
     notes["distortion"] = fit.field.describe()
     return fit.field, (fit.geometry if fit.field.applied else geometry)
+
+
+def offset_warning(sigma, n_atoms: int, spacing: float) -> str:
+    """Why a frame's offset from its atoms may misplace every site ("" when it holds).
+
+    Parameters
+    ----------
+    sigma : (float, float)
+        1-sigma error of the offset's x and y, pixels.
+    n_atoms : int
+        Atoms (and holes) that fixed it.
+    spacing : float
+        Smallest lattice spacing, pixels.
+    """
+    err = float(np.hypot(*sigma))
+    if n_atoms >= OFFSET_MIN_ATOMS and err <= OFFSET_SIGMA_WARN * spacing:
+        return ""
+    return (f"this frame's lattice offset is poorly determined: it rests on {n_atoms} atom(s) that stand apart and is "
+            f"uncertain to {err:.2f} px ({err / spacing:.3f} spacing, 1 sigma); every site of the frame may sit that far "
+            "from its atom")
+
+
+def _far_site_sigma(geometry: LatticeGeometry, atoms, shape) -> float:
+    """1-sigma error, in spacings, of the farthest single atom's site from the vectors' relative error."""
+    sel = atoms.single
+    if not sel.any() or not np.isfinite(geometry.quality.spacing_sigma):
+        return float("inf")
+    centre = np.array([(shape[1] - 1) / 2.0, (shape[0] - 1) / 2.0])
+    far = float(np.max(np.hypot(atoms.x[sel] - centre[0], atoms.y[sel] - centre[1]))) / min(geometry.spacings)
+    return float(geometry.quality.spacing_sigma) * far
+
+
+def _refine_atom_geometry(clean, geometry: LatticeGeometry, *, psf: PSFModel, atoms, notes: dict) -> LatticeGeometry:
+    """Refine the atoms' lattice by the image-model fit where the atoms alone leave the far sites uncertain.
+
+    Crowded frames (spacing near or below the FWHM) leave few atoms that stand apart, so the
+    vectors from their positions can misplace the far sites by a few hundredths of a spacing.
+    When the atoms' fit puts the farthest atom's site more than :data:`ATOM_SITE_SIGMA`
+    spacings off (1 sigma), the vectors are refitted to the full image model of the first
+    frame (:func:`latticeread.core.lattice_model.refine_lattice_model`, every pixel, every
+    site), on the part of the frame that holds atoms and with the PSF's stamp cut to
+    :data:`REFINE_WINDOW_FWHM` FWHM (the light beyond it is nearly uniform over a filled
+    region and is taken up by the fitted background): a few seconds for a 512x512 frame.
+    The result is kept when the fit ran cleanly; ``vectors_model_fit`` in ``notes`` says
+    what happened.
+    """
+    from latticeread.core.lattice import canonical_geometry
+    from latticeread.core.lattice_model import PRECISION_WARNING, refine_lattice_model
+
+    far = _far_site_sigma(geometry, atoms, clean.shape[1:])
+    if far <= ATOM_SITE_SIGMA:
+        return geometry
+    spacing = min(geometry.spacings)
+    window = max(2, min(int(psf.radius), int(np.ceil(REFINE_WINDOW_FWHM * psf.fwhm))))
+    small = dataclasses.replace(psf, radius=window)
+    first = atoms.frame == 0
+    h, w = clean.shape[1:]
+    pad = int(np.ceil(2 * max(geometry.spacings))) + window
+    x0, x1 = max(int(atoms.x[first].min()) - pad, 0), min(int(np.ceil(atoms.x[first].max())) + pad + 1, w)
+    y0, y1 = max(int(atoms.y[first].min()) - pad, 0), min(int(np.ceil(atoms.y[first].max())) + pad + 1, h)
+    shift = np.array([x0, y0], float)
+    start = geometry.with_offset(tuple(np.asarray(geometry.offset) - shift))
+    record = {"why": f"the atoms left the farthest site uncertain to {far:.3f} spacing (1 sigma)",
+              "region_px": [x0, x1, y0, y1], "window_px": window}
+    try:
+        fitted = refine_lattice_model(np.ascontiguousarray(clean[0, y0:y1, x0:x1]), start, psf=small,
+                                      tol=REFINE_TOL * spacing, max_iter=6)
+    except (LatticeNotFound, ReconstructionError, FrameError) as exc:
+        notes["vectors_model_fit"] = {**record, "kept": False, "failed": str(exc)}
+        return geometry
+    problems = [w for w in fitted.quality.warnings if not w.startswith(PRECISION_WARNING)]
+    # how far the fit moved the farthest atom's site (the two fits agree within a few sigma)
+    far_sites = far / max(float(geometry.quality.spacing_sigma), 1e-12)
+    moved = float(np.max(np.abs(fitted.basis - geometry.basis))) * far_sites * np.sqrt(2) / spacing
+    if problems or moved > 0.25:
+        notes["vectors_model_fit"] = {**record, "kept": False,
+                                      "failed": "; ".join(problems) or f"it moved far sites by {moved:.2f} spacing"}
+        return geometry
+    result = canonical_geometry(fitted.with_offset(tuple(np.asarray(fitted.offset) + shift)))
+    notes["vectors_model_fit"] = {**record, "kept": True, "before": [list(geometry.a1), list(geometry.a2)],
+                                  "n_frames": 1, "sigma_px": float(fitted.quality.residual),
+                                  "spacing_sigma": float(fitted.quality.spacing_sigma)}
+    return result
 
 
 def _geometry_check(clean, geometry: LatticeGeometry, psf: PSFModel, *, max_frames: int = 8, distortion=None):
