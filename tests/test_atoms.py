@@ -250,3 +250,28 @@ def test_an_uncertain_lattice_from_few_atoms_is_refined_by_the_image_model():
     # a precise start is left alone
     precise = off.with_offset(off.offset, quality=LatticeQuality(spacing_sigma=1e-5))
     assert _refine_atom_geometry(frames, precise, psf=_airy(fwhm), atoms=atoms, notes={}) is precise
+
+
+def test_lattice_from_atoms_at_three_pixels_is_not_fooled_by_folded_harmonics():
+    """Spacing 3.2 px: harmonics beyond half a cycle per pixel fold into the band of the points' spectrum."""
+    fwhm = 4.0
+    # this frame gave a cell of 8.45 px (a folded harmonic) before the points were spread on a finer grid
+    geometry = LatticeGeometry(a1=(-2.69364, 1.72752), a2=(1.72752, 2.69364), offset=(255.5396, 255.0819))
+    frames, _ = _frames(geometry, _airy(fwhm), shape=(512, 512), filling=0.05, photons=600.0, seed=0)
+    found = lattice_from_atoms(frames, fwhm=fwhm)
+    assert _max_site_error(found, geometry, frames.shape[1:]) < 0.03
+
+
+def test_error_atoms_off_the_lattice_found_are_refused():
+    """Points at random: any 'lattice' their spectrum shows by chance leaves them far from its sites."""
+    from latticeread.core.atoms import LocatedAtoms
+
+    rng = np.random.default_rng(4)
+    n = 400
+    # a weak square pattern (every third point on a lattice) among random points
+    x = np.where(np.arange(n) % 3 == 0, 20 + 8.0 * rng.integers(0, 20, n), rng.uniform(10, 180, n))
+    y = np.where(np.arange(n) % 3 == 0, 20 + 8.0 * rng.integers(0, 20, n), rng.uniform(10, 180, n))
+    atoms = LocatedAtoms(x=x, y=y, photons=np.ones(n), width=np.ones(n), sigma=np.full(n, 0.05),
+                         frame=np.zeros(n, int), single=np.ones(n, bool))
+    with pytest.raises(LatticeNotFound, match="do not sit on the lattice"):
+        lattice_from_atoms(np.zeros((192, 192)), fwhm=4.0, atoms=atoms)
