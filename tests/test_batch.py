@@ -305,7 +305,7 @@ def test_batch_command_line(tmp_path, capsys):
     args = ["batch", str(tmp_path / "data"), "-c", str(tmp_path / "cal.json"), "-o", str(tmp_path / "r.h5"),
             "--workers", "0", "--no-progress"]
     assert main(args) == 0
-    assert "2 shots written, 0 failed" in capsys.readouterr().out
+    assert "2 frames written, 0 failed" in capsys.readouterr().out
     assert main([*args, "--json"]) == 0
     summary = json.loads(capsys.readouterr().out)
     assert summary["n_new"] == 0 and summary["n_skipped_done"] == 2 and summary["n_shots_total"] == 2

@@ -213,7 +213,8 @@ def test_watch_killed_or_interrupted_keeps_every_shot_once(data, tmp_path):
     proc = subprocess.Popen(_cli(*_watch_args(data, out)), stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
     try:
         _wait_for_shots(proc, out, 1)
-        time.sleep(np.random.default_rng(5).uniform(0.0, 0.5))
+        # watch stores a 40-frame file in about a second: kill within its first tenth
+        time.sleep(np.random.default_rng(5).uniform(0.0, 0.05))
     finally:
         proc.kill()
         _, err = proc.communicate()
@@ -221,7 +222,9 @@ def test_watch_killed_or_interrupted_keeps_every_shot_once(data, tmp_path):
     assert len(set(killed.keys)) == len(killed), err
     proc = subprocess.Popen(_cli(*_watch_args(data, out)), stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
                             text=True)
-    _wait_for_shots(proc, out, len(killed) + 1)
+    # one shot more than the killed run held (waiting for more than the file holds would idle
+    # until the wait's own time-out)
+    _wait_for_shots(proc, out, min(len(killed) + 1, N_FRAMES))
     proc.send_signal(signal.SIGINT)
     _, err = proc.communicate(timeout=60)
     assert proc.returncode == 130, err

@@ -381,7 +381,7 @@ def test_autosave_and_restore_offer(qtbot, tmp_path, sim_tif):
     assert auto.exists() and auto.with_suffix(".h5").exists()
     # a crash: the window is never closed; the next start offers the autosaved session
     second = _make_window(qtbot, tmp_path, offer_restore=True)
-    qtbot.waitUntil(lambda: bool(second.findChildren(QtWidgets.QMessageBox, "latticeread_question")), timeout=3000)
+    qtbot.waitUntil(lambda: bool(second.findChildren(QtWidgets.QMessageBox, "latticeread_question")), timeout=10000)
     box = second.findChildren(QtWidgets.QMessageBox, "latticeread_question")[-1]
     box.button(QtWidgets.QMessageBox.Yes).click()
     qtbot.waitUntil(lambda: second.session.calibration is not None, timeout=5000)

@@ -157,7 +157,7 @@ def test_watch_reconstructs_new_files_as_they_arrive(tmp_path):
     assert [Path(s).name for s in run.source] == ["shot_0.tif", "shot_1.tif", "shot_2.tif"]
     assert len(run.failures) == 0  # the half-written file was waited for, not failed
     assert summary.n_new == 3 and len(lines) == 3
-    assert "mean" in lines[-1] and "over 3 shots" in lines[-1]
+    assert "mean" in lines[-1] and "over 3 frames" in lines[-1]
     # the watch gives the same bits as a batch run of the same files
     from latticeread.runs.batch import run_batch
 
@@ -205,11 +205,11 @@ def test_watch_command_line(tmp_path, capsys):
                  "--max-files", "2", "--interval", "0.01"])
     out = capsys.readouterr().out
     assert code == 0
-    assert "shot_0.tif[0]" in out and "shot_1.tif[0]" in out and "2 shots" in out
+    assert "shot_0.tif[0]" in out and "shot_1.tif[0]" in out and "2 frames" in out
     code = main(["watch", str(tmp_path), "-c", str(tmp_path / "cal.json"), "-o", str(tmp_path / "live.h5"),
                  "--max-files", "2", "--interval", "0.01", "--quiet"])
     out = capsys.readouterr().out
-    assert code == 0 and "0 shots written" in out and "2 already done" in out  # resumed, nothing twice
+    assert code == 0 and "0 frames written" in out and "2 already done" in out  # resumed, nothing twice
 
 
 def test_watch_rejects_a_non_positive_interval(tmp_path, capsys):

@@ -929,7 +929,7 @@ class MainWindow(QtWidgets.QMainWindow):
         """Show site (row, col) of the shown frame in the site inspector; False when it has no
         evidence yet (frame not reconstructed, site outside the region, live view)."""
         if self._live_shots:
-            self.show_status("the site inspector works on the frames of the session, not on live shots")
+            self.show_status("the site inspector works on the frames of the session, not on live frames")
             return False
         evidence = self.session.site_evidence(row, col)
         ex = self.session.excluded_sites()
@@ -1658,7 +1658,7 @@ class MainWindow(QtWidgets.QMainWindow):
         folder = self.ask_folder("Watch a folder: folder the camera writes into")
         if not folder:
             return
-        out = self.ask_save_file("Watch a folder: run file for the shots", "run.h5", "HDF5 run file (*.h5)")
+        out = self.ask_save_file("Watch a folder: run file for the frames", "run.h5", "HDF5 run file (*.h5)")
         if out:
             self.start_watch(folder, out)
 
@@ -1727,7 +1727,7 @@ class MainWindow(QtWidgets.QMainWindow):
             self.image_pane.set_lattice(geometry, sites)
             if sites is not None:
                 self.image_pane.set_site_states(occupied, None, None)
-        self.show_status(f"live shot {shot.shot_number} ({position} of the {len(shots)} kept): "
+        self.show_status(f"live frame {shot.shot_number} ({position} of the {len(shots)} kept): "
                          f"{Path(shot.source).name}[{shot.frame_index}], filling {shot.filling:.3f}")
 
     def _live_sites(self, geometry, occupation):

@@ -397,7 +397,7 @@ class LiveWatchPanel(QtWidgets.QWidget):
         self.folder_label.setTextInteractionFlags(QtCore.Qt.TextSelectableByMouse)
         self.out_label = QtWidgets.QLabel("-")
         self.out_label.setToolTip("HDF5 run file every reconstructed shot is appended to "
-                                  "(resumed if it exists: shots already in it are skipped)")
+                                  "(resumed if it exists: frames already in it are skipped)")
         self.out_label.setTextInteractionFlags(QtCore.Qt.TextSelectableByMouse)
         for label in (self.folder_label, self.out_label):
             label.setWordWrap(True)
@@ -424,16 +424,16 @@ class LiveWatchPanel(QtWidgets.QWidget):
         self.state_label = QtWidgets.QLabel("idle")
         self.state_label.setToolTip("Whether the folder is being watched")
         self.shots_label = QtWidgets.QLabel("0")
-        self.shots_label.setToolTip("Shots (frames) reconstructed and written in this watch")
+        self.shots_label.setToolTip("Frames reconstructed and written in this watch")
         self.failed_label = QtWidgets.QLabel("0")
-        self.failed_label.setToolTip("Files or shots that could not be reconstructed (recorded in the run file "
+        self.failed_label.setToolTip("Files or frames that could not be reconstructed (recorded in the run file "
                                      "with the reason)")
         self.filling_label = QtWidgets.QLabel("-")
-        self.filling_label.setToolTip("Filling of the newest shot and the mean over this watch "
+        self.filling_label.setToolTip("Filling of the newest frame and the mean over this watch "
                                       "(occupied sites / sites in the region)")
         self.offset_label = QtWidgets.QLabel("-")
-        self.offset_label.setToolTip("Lattice offset (x, y) of the newest shot in pixels")
-        for row, (name, widget) in enumerate((("State", self.state_label), ("Shots done", self.shots_label),
+        self.offset_label.setToolTip("Lattice offset (x, y) of the newest frame in pixels")
+        for row, (name, widget) in enumerate((("State", self.state_label), ("Frames done", self.shots_label),
                                               ("Failed", self.failed_label), ("Filling", self.filling_label),
                                               ("Offset", self.offset_label))):
             title = QtWidgets.QLabel(name)

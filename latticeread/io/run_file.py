@@ -759,8 +759,8 @@ class RunWriter:
         except OSError as exc:
             self._n = n
             first = block[0].key
-            raise ExportError(f"writing shot {first.frame_index} of {first.source} to {self.path} failed: "
-                              f"{describe_os_error(exc, self.path)} (the file keeps the {n} shots written "
+            raise ExportError(f"writing frame {first.frame_index} of {first.source} to {self.path} failed: "
+                              f"{describe_os_error(exc, self.path)} (the file keeps the {n} frames written "
                               "before)") from exc
         self._done.update(keys)
         return m

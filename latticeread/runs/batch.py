@@ -309,17 +309,17 @@ class BatchSummary:
         lines = [
             f"run file      {self.run_file}",
             f"input files   {self.n_files}",
-            f"this run      {self.n_new} shots written, {self.n_failed} failed, "
+            f"this run      {self.n_new} frames written, {self.n_failed} failed, "
             f"{self.n_skipped_done} already done, {self.n_skipped_failed} skipped (failed before)",
             f"time          {self.seconds:.1f} s" + (f", {self.frames_per_second:.1f} frames/s on {self.workers}"
                                                      if np.isfinite(self.frames_per_second) else ""),
-            f"run file now  {self.n_shots_total} shots, {self.n_failures_total} unresolved failures",
+            f"run file now  {self.n_shots_total} frames, {self.n_failures_total} unresolved failures",
         ]
         if self.n_shots_total:
             lines += [
-                f"filling       {self.mean_filling:.4f} +- {self.filling_std:.4f} (mean +- std over shots)",
+                f"filling       {self.mean_filling:.4f} +- {self.filling_std:.4f} (mean +- std over frames)",
                 f"lattice phase mean shift ({self.offset_shift_px[0]:+.3f}, {self.offset_shift_px[1]:+.3f}) px "
-                f"from the calibration, shot-to-shot scatter {self.phase_scatter_px:.3f} px rms, "
+                f"from the calibration, frame-to-frame scatter {self.phase_scatter_px:.3f} px rms, "
                 f"largest shift {self.phase_drift_max_sites:.3f} sites",
             ]
         if self.fidelity is not None:
@@ -422,7 +422,7 @@ def summarize_run(path, calibration: Calibration, *, counts: dict, seconds: floa
     new = counts.get("new", 0)
     warnings = []
     if counts.get("failed", 0):
-        warnings.append(f"{counts['failed']} shot(s) or file(s) failed in this run; their reasons are in the "
+        warnings.append(f"{counts['failed']} frame(s) or file(s) failed in this run; their reasons are in the "
                         "run file's failures table (latticeread.io.read_run(path).failures)")
     if n and np.isfinite(drift_max) and drift_max > 0.5:
         warnings.append(f"the lattice offset moved by up to {drift_max:.2f} sites from the calibration: "
@@ -660,8 +660,8 @@ def _not_written_error(exc: ExportError, tasks: list, writer: RunWriter) -> Expo
     """The write error, plus which shots of this run are not in the run file."""
     missing = [k for k in tasks if k not in writer.done and k not in writer.failed]
     cls = type(exc) if isinstance(exc, ExportError) else ExportError
-    return cls(f"{exc}; {len(missing)} shot(s) of this run not written: {describe_keys(missing)}. The run file keeps "
-               f"its {writer.n_shots} shots: free space (or fix the cause) and run the same command again to "
+    return cls(f"{exc}; {len(missing)} frame(s) of this run not written: {describe_keys(missing)}. The run file keeps "
+               f"its {writer.n_shots} frames: free space (or fix the cause) and run the same command again to "
                "continue")
 
 

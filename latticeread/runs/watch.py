@@ -61,7 +61,7 @@ __all__ = ["WatchEvent", "FolderWatcher", "RunningStats", "LiveRun", "watch_fold
 log = logging.getLogger(__name__)
 
 #: Warning of the summary of a watch stopped with Ctrl-C (the command then exits with 130).
-INTERRUPTED_NOTE = "interrupted (Ctrl-C); every shot shown above is in the run file"
+INTERRUPTED_NOTE = "interrupted (Ctrl-C); every frame shown above is in the run file"
 
 
 @dataclass(frozen=True)
@@ -326,7 +326,7 @@ class RunningStats:
             return f"failed  {_describe_failure(outcome)}"
         key: ShotKey = outcome.key
         return (f"{Path(key.source).name}[{key.frame_index}]  filling {outcome.filling:.3f}  "
-                f"(mean {self.mean_filling:.3f} over {self.n_shots} shots, {self.n_failed} failed)  "
+                f"(mean {self.mean_filling:.3f} over {self.n_shots} frames, {self.n_failed} failed)  "
                 f"offset ({outcome.offset[0]:.2f}, {outcome.offset[1]:.2f}) px  "
                 f"threshold {outcome.threshold:.0f} photons")
 
@@ -433,7 +433,7 @@ class LiveRun:
                 except ExportError as exc:
                     missing = [o.key for o in outcomes[position:]]
                     raise type(exc)(f"{exc}; not written: {describe_keys(missing)}. The run file keeps its "
-                                    f"{self._writer.n_shots} shots: free space (or fix the cause) and run the "
+                                    f"{self._writer.n_shots} frames: free space (or fix the cause) and run the "
                                     "same command again to continue") from exc
                 if isinstance(outcome, ShotFailure):
                     self.counts["failed"] += 1
