@@ -91,7 +91,9 @@ def test_at_1366x768_the_fidelity_table_shows_every_column_whole(qtbot, tmp_path
     report = {name: 0.98765 for name in ("loss", "hop", "read_correctly", "loss_counted", "hop_counted")}
     report.update({f"{name}_ci": (0.91234, 0.99876) for name in report})
     report.update(false_positive_rate=1.2345e-3, false_positive_rate_ci=(1.1e-3, 1.4e-3), false_negative_rate=2e-9,
-                  false_negative_rate_ci=(0.0, 3e-9), n_atoms=8922, n_shots=6, n_images=2)
+                  false_negative_rate_ci=(0.0, 3e-9), n_atoms=8922, n_shots=6, n_images=2,
+                  warnings=("only 6 shots: the intervals resample blocks of sites, which takes the blocks as "
+                            "independent; read them as rough",) * 3)
     panel.set_report(report)
     w.docks["fidelity_panel"].show()
     w.docks["fidelity_panel"].raise_()
@@ -106,3 +108,7 @@ def test_at_1366x768_the_fidelity_table_shows_every_column_whole(qtbot, tmp_path
     area = w.docks["fidelity_panel"].widget()
     assert area.widget().width() <= area.viewport().width(), "the fidelity panel scrolls sideways"
     assert panel.loss_note_label.isVisible()
+    # nothing drawn over anything: the panel has the height its wrapped labels need at its width
+    assert panel.height() >= panel.layout().totalMinimumHeightForWidth(panel.width())
+    assert panel.loss_note_label.geometry().top() > table.geometry().bottom()
+    assert panel.summary_label.geometry().top() > panel.meaning_label.geometry().bottom()

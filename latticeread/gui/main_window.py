@@ -117,8 +117,13 @@ class FitScrollArea(QtWidgets.QScrollArea):
         for _ in range(2):  # a scroll bar that appears takes room from the other direction
             room = self.viewport().size()
             width = max(room.width(), least.width())
-            height = max(room.height(), least.height())
-            if least.height() > room.height():
+            lowest = least.height()
+            layout = widget.layout()
+            if layout is not None and layout.hasHeightForWidth():
+                # word-wrapped labels need more lines at this width than the minimum size hint assumes
+                lowest = max(lowest, layout.totalMinimumHeightForWidth(width))
+            height = max(room.height(), lowest)
+            if lowest > room.height():
                 # it scrolls anyway: give it its comfortable height, not its most squeezed one
                 hint = widget.heightForWidth(width) if widget.hasHeightForWidth() else widget.sizeHint().height()
                 height = max(height, min(hint, int(1.4 * room.height())))

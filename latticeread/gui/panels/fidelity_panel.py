@@ -193,7 +193,9 @@ class FidelityPanel(QtWidgets.QWidget):
         self.table.setSelectionMode(QtWidgets.QAbstractItemView.SelectionMode.NoSelection)
         self.table.setFocusPolicy(QtCore.Qt.FocusPolicy.NoFocus)
         self.table.horizontalHeader().setStretchLastSection(True)
-        self.table.verticalHeader().setSectionResizeMode(QtWidgets.QHeaderView.ResizeMode.ResizeToContents)
+        # rows of one line each: the table's fixed height stays right whatever the column widths
+        self.table.verticalHeader().setSectionResizeMode(QtWidgets.QHeaderView.ResizeMode.Fixed)
+        self.table.verticalHeader().setDefaultSectionSize(self.table.fontMetrics().height() + 6)
         self.table.setToolTip(
             "Loss: an atom seen in one image is missing in the next. Hopping: it reappears on "
             "another site. Both per image, corrected for misclassified sites; the interval is the "
