@@ -38,7 +38,8 @@ Datasets (``n`` frames, matrices of ``R x C`` sites; element ``[i, j]`` is site
   (the dataset's fill value);
 * ``amplitude`` (n, R, C) float64, photons; ``p_occupied`` (n, R, C) float64;
   ``x``, ``y`` (n, R, C) float64, pixels; all NaN outside the region;
-* ``flags`` (n, R, C) uint8 quality bits (0 outside the region);
+* ``flags`` (n, R, C) uint8 quality bits (0 outside the region; 128 on sites excluded from
+  the analysed region, which keep occupation 255, NaN amplitude and their ``x``, ``y``);
 * ``frame_index`` (n,) int64; ``offset`` (n, 2) float64 per-frame lattice offset (x, y) in
   pixels; ``threshold`` (n,) float64 photons; ``warnings`` (n,) text (``""`` when none).
 

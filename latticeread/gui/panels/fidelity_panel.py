@@ -196,6 +196,10 @@ class FidelityPanel(QtWidgets.QWidget):
         # rows of one line each: the table's fixed height stays right whatever the column widths
         self.table.verticalHeader().setSectionResizeMode(QtWidgets.QHeaderView.ResizeMode.Fixed)
         self.table.verticalHeader().setDefaultSectionSize(self.table.fontMetrics().height() + 6)
+        # row titles with a narrow margin: title, estimate and interval fit the side dock of a
+        # 1366-px window (the header's own size hint leaves room for a sort mark never shown)
+        fm = self.table.verticalHeader().fontMetrics()
+        self.table.verticalHeader().setFixedWidth(max(fm.horizontalAdvance(t) for t, _ in _ROWS) + 12)
         self.table.setToolTip(
             "Loss: an atom seen in one image is missing in the next. Hopping: it reappears on "
             "another site. Both per image, corrected for misclassified sites; the interval is the "
