@@ -593,11 +593,7 @@ class Session:
         cal = self._require_calibration("change the analysed region")
         new = cal.with_options(region=region)
         if tuple(cal.frame_shape) != (0, 0) and not region.is_everything:
-            from latticeread.core.geometry import lattice_sites
-            from latticeread.core.region import sites_in_region
-
-            s = lattice_sites(cal.geometry, tuple(cal.frame_shape), index_bounds=cal.options.index_bounds)
-            if not sites_in_region(region, x=s.x, y=s.y, rows=s.rows, cols=s.cols).any():
+            if not _pipeline().region_sites(new)[1].any():
                 raise CalibrationError(f"the analysed region ({region.describe()}) holds no lattice site of the "
                                        "frame; draw it over the atoms or remove a shape (right-click it)")
         self.set_calibration(new, record=record)
@@ -612,11 +608,10 @@ class Session:
         cal = self._calibration
         if cal is None or cal.options.region.is_everything or tuple(cal.frame_shape) == (0, 0):
             return None
-        from latticeread.core.geometry import SiteGrid, lattice_sites
-        from latticeread.core.region import sites_in_region
+        from latticeread.core.geometry import SiteGrid
 
-        s = lattice_sites(cal.geometry, tuple(cal.frame_shape), index_bounds=cal.options.index_bounds)
-        out = ~sites_in_region(cal.options.region, x=s.x, y=s.y, rows=s.rows, cols=s.cols)
+        s, keep = _pipeline().region_sites(cal)
+        out = ~keep
         return SiteGrid(s.rows[out], s.cols[out], s.x[out], s.y[out], s.row_min, s.col_min, s.n_rows, s.n_cols)
 
     def _require_calibration(self, what: str):

@@ -351,13 +351,11 @@ class Reconstructor:
         # every site is fitted (the light of an excluded site must not leak into its neighbours);
         # only the sites of the analysed region are reported (``sites``); an applied lens
         # distortion places them
-        self.fit_sites = _placed(calibration, lattice_sites(calibration.geometry, shape,
-                                                            index_bounds=self.index_bounds))
+        self.fit_sites, keep = region_sites(calibration, index_bounds=self.index_bounds)
         if len(self.fit_sites) == 0:
             raise CalibrationError("no lattice site of the calibration lies inside the frame")
         self.sites, self.excluded, self._keep = self.fit_sites, None, None
         fs = self.fit_sites
-        keep = sites_in_region(options.region, x=fs.x, y=fs.y, rows=fs.rows, cols=fs.cols)
         if not keep.all():
             if not keep.any():
                 raise CalibrationError(f"the analysed region ({options.region.describe()}) holds no lattice site "
@@ -774,6 +772,29 @@ def _site_subset(sites: SiteGrid, keep) -> SiteGrid:
     """The sites where ``keep`` is True, in the same matrix frame (row_min, n_rows... unchanged)."""
     return SiteGrid(rows=sites.rows[keep], cols=sites.cols[keep], x=sites.x[keep], y=sites.y[keep],
                     row_min=sites.row_min, col_min=sites.col_min, n_rows=sites.n_rows, n_cols=sites.n_cols)
+
+
+def region_sites(calibration: Calibration, *, index_bounds=None) -> tuple[SiteGrid, np.ndarray]:
+    """The sites a calibration fits and which of them its analysed region keeps.
+
+    Parameters
+    ----------
+    calibration : Calibration
+    index_bounds : (row_min, row_max, col_min, col_max), optional
+        Default: ``calibration.options.index_bounds``.
+
+    Returns
+    -------
+    sites : SiteGrid
+        Every fitted site, centres in pixels (calibration lattice, lens distortion applied).
+    keep : (N,) ndarray of bool
+        True for a site of the analysed region (:func:`latticeread.core.region.sites_in_region`).
+    """
+    bounds = calibration.options.index_bounds if index_bounds is None else index_bounds
+    sites = _placed(calibration, lattice_sites(calibration.geometry, tuple(int(s) for s in calibration.frame_shape),
+                                               index_bounds=bounds))
+    keep = sites_in_region(calibration.options.region, x=sites.x, y=sites.y, rows=sites.rows, cols=sites.cols)
+    return sites, keep
 
 
 def _placed(calibration: Calibration, sites: SiteGrid) -> SiteGrid:
