@@ -34,7 +34,8 @@ def _record(i: int, *, shape=(3, 4), source="/data/shot.tif", file_hash="ab" * 1
         flags=rng.integers(0, 64, size=shape).astype(np.uint8),
         offset=(1.25 + i, 2.5), a1=(4.0, 0.0), a2=(0.0, 4.0), threshold=250.0 + i,
         peak_to_background=12.0, lattice_residual=0.01, warnings=("few atoms", "poor fit") if i == 1 else (),
-        false_positive_rate=1e-3 * i, false_negative_rate=2e-3)
+        false_positive_rate=1e-3 * i, false_negative_rate=2e-3, light_outside=0.01 * i, model_residual=1.1,
+        light_explained=0.97)
 
 
 def test_round_trip_is_exact(tmp_path):
@@ -264,7 +265,7 @@ def test_read_results_gives_plain_arrays_and_a_settings_dict(tmp_path):
     assert arrays["warnings"].tolist() == ["", "few atoms\npoor fit", ""]
     assert arrays["failure_reason"].tolist() == ["truncated"] and arrays["failure_frame_index"].tolist() == [-1]
     assert settings["calibration"] == json.loads(CAL) and settings["metadata"] == {"command": "batch"}
-    assert (settings["n_shots"], settings["n_failures"], settings["format_version"]) == (3, 1, 2)
+    assert (settings["n_shots"], settings["n_failures"], settings["format_version"]) == (3, 1, 3)
     table, _ = read_results(path, matrices=False)
     assert "occupation" not in table and table["threshold"].tolist() == [250.0, 251.0, 252.0]
 
@@ -325,5 +326,7 @@ def test_version_1_file_is_read_and_converted_on_resume(tmp_path):
     run = read_run(path)
     assert run.frame_index.tolist() == [0, 1]
     np.testing.assert_array_equal(run.amplitude[0], rec.amplitude)
+    # the rebuilt old row has no image-model checks (NaN), the new one its own numbers
+    assert np.isnan(run.light_outside[0]) and run.light_outside[1] == _record(1).light_outside
     with h5py.File(path, "r") as f:
-        assert f.attrs["format_version"] == 2
+        assert f.attrs["format_version"] == 3

@@ -154,7 +154,16 @@ def shot_record(key: ShotKey, result) -> ShotRecord:
         threshold=float("nan") if threshold is None else float(threshold),
         peak_to_background=float(geometry.quality.peak_to_background),
         lattice_residual=float(geometry.quality.residual), warnings=tuple(warnings),
-        false_positive_rate=fp, false_negative_rate=fn, origin=(int(sites.row_min), int(sites.col_min)))
+        false_positive_rate=fp, false_negative_rate=fn, origin=(int(sites.row_min), int(sites.col_min)),
+        **_check_numbers(getattr(result, "check", None)))
+
+
+def _check_numbers(check) -> dict:
+    """The image-model check of a frame as run-file columns (NaN when it was not measured)."""
+    if check is None:
+        return {}
+    return {"light_outside": float(check.outside_fraction), "model_residual": float(check.residual_ratio),
+            "light_explained": float(check.explained_fraction)}
 
 
 def classify_records(records: list, calibration: Calibration) -> list:

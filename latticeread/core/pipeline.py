@@ -42,6 +42,7 @@ from latticeread.core.artefacts import (
 )
 from latticeread.core.calibration import Calibration, ReconstructionOptions, ReferenceImage
 from latticeread.core.camera import CameraModel
+from latticeread.core.frame_check import FrameCheck
 from latticeread.core.frame_check import (EXPLAINED_WARN, OUTSIDE_REFUSE, OUTSIDE_WARN, RESIDUAL_WARN,
                                            amplitude_unit, check_frame)
 from latticeread.core.frame_check import WARNING_PREFIX as MODEL_WARNING
@@ -124,6 +125,10 @@ class FrameResult:
     excluded : SiteGrid or None
         Sites fitted but left out of the analysed region (:mod:`latticeread.core.region`),
         with this frame's centres; they have no result (exports mark them EXCLUDED).
+    check : FrameCheck or None
+        Does the site model explain the frame (:func:`latticeread.core.frame_check.check_frame`:
+        light outside the region, residual against the camera noise, bright light explained);
+        None for the deconvolution methods.
     """
 
     frame_index: int
@@ -141,6 +146,7 @@ class FrameResult:
     offset_method: str = "calibration"
     offset_sigma: tuple[float, float] = (float("nan"), float("nan"))
     excluded: SiteGrid | None = field(default=None, repr=False)
+    check: FrameCheck | None = field(default=None, repr=False)
 
     @property
     def n_atoms(self) -> int:
@@ -657,7 +663,8 @@ class Reconstructor:
             How error messages name the frame (default ``"frame <frame_index>"``).
         """
         geometry, amp, warnings = self.extract_full(image, where=where or f"frame {frame_index}")
-        return self.classify(geometry, amp, warnings, frame_index=frame_index, threshold=threshold)
+        result = self.classify(geometry, amp, warnings, frame_index=frame_index, threshold=threshold)
+        return dataclasses.replace(result, check=self.last_check)
 
     def classify(self, geometry, amp, warnings=(), *, frame_index: int = 0, threshold=None) -> FrameResult:
         """The :class:`FrameResult` of an extraction (:meth:`extract_full`) against a threshold.
@@ -873,17 +880,17 @@ def reconstruct_stack(frames: Iterable, calibration: Calibration, *, method: str
     kept = []
     for i, frame in enumerate(frame_iter(frames)):
         if pooled:
-            kept.append((i, *rec.extract_full(frame, where=f"frame {i}")))
+            kept.append((i, *rec.extract_full(frame, where=f"frame {i}"), rec.last_check))
         else:
             yield rec(frame, frame_index=i, threshold=threshold)
         if progress is not None:
             progress(i + 1, total)
     if not kept:
         return
-    fit = pooled_threshold(np.concatenate([amp.amplitudes for _, _, amp, _ in kept]), calibration=calibration,
-                           flags=np.concatenate([amp.flags for _, _, amp, _ in kept]))
-    for i, geometry, amp, warnings in kept:
-        yield rec.classify(geometry, amp, warnings, frame_index=i, threshold=fit)
+    fit = pooled_threshold(np.concatenate([amp.amplitudes for _, _, amp, _, _ in kept]), calibration=calibration,
+                           flags=np.concatenate([amp.flags for _, _, amp, _, _ in kept]))
+    for i, geometry, amp, warnings, check in kept:
+        yield dataclasses.replace(rec.classify(geometry, amp, warnings, frame_index=i, threshold=fit), check=check)
 
 
 def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None = None,

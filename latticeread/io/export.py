@@ -152,6 +152,16 @@ class _Frame:
     threshold: float
     offset: tuple[float, float]
     warnings: tuple[str, ...]
+    check: dict
+
+
+def _check_numbers(result) -> dict:
+    """The frame's image-model check (:mod:`latticeread.core.frame_check`) as run-file columns; {} if none."""
+    check = getattr(result, "check", None)
+    if check is None:
+        return {}
+    return {"light_outside": float(check.outside_fraction), "model_residual": float(check.residual_ratio),
+            "light_explained": float(check.explained_fraction)}
 
 
 def _threshold_value(result) -> float:
@@ -222,7 +232,7 @@ def _read_result(result, position: int) -> _Frame:
     geometry = getattr(result, "geometry", None)
     offset = tuple(float(v) for v in geometry.offset) if geometry is not None else (float("nan"),) * 2
     return _Frame(index, rows, cols, x, y, amplitude, occupied, p_occ, flags,
-                  _threshold_value(result), offset, _frame_warnings(result))
+                  _threshold_value(result), offset, _frame_warnings(result), _check_numbers(result))
 
 
 def _settings(calibration, metadata: Mapping | None, *, fmt: str) -> dict:
@@ -325,6 +335,7 @@ def write_sites_csv(path, results: Iterable, *, calibration=None, metadata: Mapp
     n_rows = 0
     n_frames = 0
     warnings_by_frame: dict[str, list[str]] = {}
+    checks_by_frame: dict[str, dict] = {}
     with atomic_write(sidecar_path(path), "w", protect=protect) as side, \
             atomic_write(path, "w", protect=protect, newline="") as fh:
         fh.write(",".join(CSV_COLUMNS) + "\n")
@@ -332,6 +343,8 @@ def write_sites_csv(path, results: Iterable, *, calibration=None, metadata: Mapp
             f = _read_result(result, position)
             if f.warnings:
                 warnings_by_frame[str(f.index)] = list(f.warnings)
+            if f.check:
+                checks_by_frame[str(f.index)] = f.check
             fh.write(_csv_block(f))
             n_rows += f.rows.size
             n_frames += 1
@@ -339,6 +352,9 @@ def write_sites_csv(path, results: Iterable, *, calibration=None, metadata: Mapp
         settings["n_rows"] = n_rows
         settings["columns"] = {name: settings["units"][name] for name in CSV_COLUMNS}
         settings["frame_warnings"] = warnings_by_frame
+        # does the site model explain each frame: light outside the region and bright light
+        # explained (fractions), residual over the camera's expected noise (1 = as expected)
+        settings["frame_checks"] = to_jsonable(checks_by_frame)
         side.write(json.dumps(settings, indent=2, allow_nan=False) + "\n")
     log.info("wrote %d site rows of %d frames to %s", n_rows, n_frames, path)
     return n_rows
@@ -494,7 +510,7 @@ def write_occupation_hdf5(path, results: Iterable, *, calibration=None, metadata
                     key=ShotKey(source, "", f.index), **matrices, offset=f.offset,
                     a1=tuple(float(v) for v in geometry.a1) if geometry is not None else nan2,
                     a2=tuple(float(v) for v in geometry.a2) if geometry is not None else nan2,
-                    threshold=f.threshold, warnings=f.warnings, origin=(row_min, col_min)))
+                    threshold=f.threshold, warnings=f.warnings, origin=(row_min, col_min), **f.check))
                 if len(pending) >= block:
                     n += writer.append_many(pending)
                     pending = []

@@ -48,7 +48,9 @@ Root attributes (written when the file is created, never changed)
     threshold without a fit), ``n_sites``, ``n_occupied`` (int64), ``filling``
     (float64, occupied / valid sites), ``peak_to_background``, ``lattice_residual``
     (float64, lattice fit diagnostics), ``warnings`` (UTF-8 bytes, one warning per line),
-    ``written_at`` (float64, Unix time of writing).
+    ``written_at`` (float64, Unix time of writing), ``light_outside``, ``model_residual``,
+    ``light_explained`` (float64, does the site model explain the shot; format version 3,
+    :mod:`latticeread.core.frame_check`).
 ``occupation`` (n, rows, cols) uint8
     1 occupied, 0 empty, 255 outside the reconstructed region.
 ``amplitude``, ``p_occupied``, ``x``, ``y`` (n, rows, cols) float64
@@ -106,7 +108,7 @@ __all__ = [
 log = logging.getLogger(__name__)
 
 RUN_FORMAT = "latticeread-run"
-RUN_FORMAT_VERSION = 2
+RUN_FORMAT_VERSION = 3
 
 #: Call fsync after the rows and after the committed counter of every block (see Safety).
 #: Only the benchmark turns this off, to measure what it costs.
@@ -134,7 +136,12 @@ _SHOT_COLUMNS = {
     "warnings": (f"S{_TEXT['warnings']}", ()),
     "written_at": (np.float64, ()),
     "origin": (np.int64, (2,)),
+    "light_outside": (np.float64, ()),
+    "model_residual": (np.float64, ()),
+    "light_explained": (np.float64, ()),
 }
+#: Columns added in format version 3 (NaN in the rows of older files).
+_CHECK_COLUMNS = ("light_outside", "model_residual", "light_explained")
 #: Units and meaning written as dataset attributes (``units``, ``description``).
 _DESCRIPTIONS = {
     "occupation": ("1 occupied, 0 empty, 255 outside the region", "site occupation"),
@@ -150,6 +157,9 @@ _DESCRIPTIONS = {
     "shots/origin": ("lattice sites (row, col)", "site of matrix element [0, 0]"),
     "shots/frame_index": ("index (0-based)", "frame inside the input file"),
     "shots/written_at": ("seconds since 1970 (Unix time)", "when the shot was committed"),
+    "shots/light_outside": ("fraction", "light above background outside the analysed region"),
+    "shots/model_residual": ("ratio (1 = camera noise)", "image-model residual over the expected noise"),
+    "shots/light_explained": ("fraction", "bright light the site model accounts for"),
 }
 #: per-site matrices: name -> (dtype, fill value outside the region)
 _MATRICES = {
@@ -223,6 +233,11 @@ class ShotRecord:
     origin : (2,) tuple of int
         Lattice indices ``(row, col)`` of matrix element ``[0, 0]``: element ``[i, j]`` is
         site ``(origin[0] + i, origin[1] + j)``.
+    light_outside, model_residual, light_explained : float
+        Does the site model explain the shot (:mod:`latticeread.core.frame_check`): share of
+        the light above background outside the analysed region, residual over the camera's
+        expected noise (1 = as expected), share of the bright light the model accounts for;
+        NaN when not measured.
     """
 
     key: ShotKey
@@ -242,6 +257,9 @@ class ShotRecord:
     false_positive_rate: float = float("nan")
     false_negative_rate: float = float("nan")
     origin: tuple[int, int] = (0, 0)
+    light_outside: float = float("nan")
+    model_residual: float = float("nan")
+    light_explained: float = float("nan")
 
     @property
     def matrix_shape(self) -> tuple[int, int]:
@@ -583,7 +601,7 @@ class RunWriter:
         log.info("resuming %s: %d shots and %d failures already in it", self.path, n, len(self._failed))
 
     def _rebuild(self, *, reason: str) -> None:
-        """Copy the committed rows into a fresh version 2 file and put it in place (atomic)."""
+        """Copy the committed rows into a fresh file of the current version and put it in place (atomic)."""
         log.warning("rebuilding the run file %s from its committed rows (%s)", self.path, reason)
         src = open_run_for_reading(self.path)
         with src, atomic_path(self.path) as tmp:
@@ -605,7 +623,8 @@ class RunWriter:
                         if name in _TEXT:
                             d[start:stop] = _encode_text(_decode_text(src["shots"][name], stop)[start:], _TEXT[name])
                         elif name not in src["shots"]:
-                            d[start:stop] = 0  # version 1 files stored no origin
+                            # version 1 files stored no origin, versions 1-2 no frame checks
+                            d[start:stop] = np.nan if name in _CHECK_COLUMNS else 0
                         else:
                             d[start:stop] = src["shots"][name][start:stop]
                 g = f["failures"]
@@ -733,6 +752,7 @@ class RunWriter:
             "warnings": _encode_text(["\n".join(r.warnings) for r in block], _TEXT["warnings"]),
             "written_at": [now] * m,
             "origin": [r.origin for r in block],
+            **{name: [getattr(r, name) for r in block] for name in _CHECK_COLUMNS},
         }
         matrices = {name: np.stack([np.asarray(getattr(r, name), dtype=dtype) for r in block])
                     for name, (dtype, _fill) in _MATRICES.items()}
@@ -869,6 +889,9 @@ class RunData:
         Misread probabilities per site from each shot's threshold fit (NaN if none).
     origin : (n, 2) ndarray of int64
         Lattice site ``(row, col)`` of matrix element ``[0, 0]`` per shot.
+    light_outside, model_residual, light_explained : (n,) ndarray of float64
+        The image-model checks of each shot (:class:`ShotRecord`); NaN in files before
+        format version 3.
     n_sites, n_occupied : (n,) ndarray of int64
     warnings : tuple of tuple of str
         Warnings per shot.
@@ -906,6 +929,9 @@ class RunData:
     program_version: str = ""
     metadata: dict = field(default_factory=dict, repr=False)
     origin: np.ndarray = field(default_factory=lambda: np.zeros((0, 2), np.int64))
+    light_outside: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    model_residual: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    light_explained: np.ndarray = field(default_factory=lambda: np.zeros(0))
 
     def __len__(self) -> int:
         return int(self.frame_index.size)
@@ -923,7 +949,8 @@ class RunData:
             "threshold": self.threshold, "false_positive_rate": self.false_positive_rate,
             "false_negative_rate": self.false_negative_rate, "n_sites": self.n_sites, "n_occupied": self.n_occupied,
             "filling": self.filling, "peak_to_background": self.peak_to_background,
-            "lattice_residual": self.lattice_residual,
+            "lattice_residual": self.lattice_residual, "light_outside": self.light_outside,
+            "model_residual": self.model_residual, "light_explained": self.light_explained,
         }
 
 
@@ -994,6 +1021,7 @@ def read_run(path, *, matrices: bool = True) -> RunData:
             false_positive_rate=s["false_positive_rate"][:n], false_negative_rate=s["false_negative_rate"][:n],
             warnings=warnings, failures=failures,
             origin=s["origin"][:n] if "origin" in s else np.zeros((n, 2), np.int64),
+            **{name: s[name][:n] if name in s else np.full(n, np.nan) for name in _CHECK_COLUMNS},
             calibration=json.loads(str(f.attrs.get("calibration", "{}"))),
             program_version=str(f.attrs.get("program_version", "")),
             metadata=json.loads(str(f.attrs.get("metadata", "{}"))),
