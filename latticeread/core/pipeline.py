@@ -948,7 +948,7 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
         :func:`latticeread.core.lattice_model.lattice_from_prior` instead (noted in
         ``geometry_from_prior``).
     correct_distortion : bool
-        Fit a lens-distortion field to the lattice's shifts in blocks of the first two frames
+        Fit a lens-distortion field to the lattice's shifts in blocks of the first frame
         (:func:`latticeread.core.distortion.fit_distortion`; stored in ``distortion``) and place
         the sites with it when it passes the significance test given there (the lattice
         vectors are refitted together with it); noted in ``distortion``.
@@ -1309,7 +1309,7 @@ def _brightness_from(rec: Reconstructor, pooled, flags, tr, *, n_frames: int, no
     return field_
 
 
-def _distortion_from_frames(clean, geometry: LatticeGeometry, psf: PSFModel, notes: dict, *, max_frames: int = 2):
+def _distortion_from_frames(clean, geometry: LatticeGeometry, psf: PSFModel, notes: dict, *, max_frames: int = 1):
     """Lens distortion from the first frames: (field or None, the geometry to use with it)."""
     from latticeread.core.atoms import locate_atoms, offset_from_atoms
     from latticeread.core.distortion import fit_distortion
