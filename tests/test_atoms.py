@@ -165,6 +165,15 @@ def test_calibrate_unaided_beyond_the_cut_off_reads_the_lattice_from_the_atoms()
     assert res.offset_method == "atoms"
     assert any("the Fourier phase was not used" in w for w in res.warnings)
     assert _max_site_error(res.geometry, truth.geometries[1], frames.shape[1:]) < 0.02
+    # a frame with a handful of atoms: its offset is said to be poorly determined, through the
+    # analysis service into the record every output is written from
+    from latticeread.analysis.service import analyse_stack, shot_record
+    from latticeread.io.run_file import ShotKey
+
+    few, _ = _frames(geometry, psf, shape=(200, 200), filling=0.006, seed=9)  # 9 atoms
+    (result,) = analyse_stack(few, cal)
+    record = shot_record(ShotKey("/tmp/few.tif", "0" * 32, 0), result)
+    assert any("lattice offset is poorly determined" in w for w in record.warnings), record.warnings
 
 
 @pytest.fixture(scope="module")
