@@ -80,6 +80,22 @@ def test_calibrating_from_frames_keeps_the_pixel_size_and_optics():
     assert merge_calibration(given, base=base).pixel_size_nm == 150.0  # a value the user gave now wins
 
 
+def test_calibrating_again_keeps_the_drawn_region_and_moves_excluded_sites_with_the_lattice():
+    from latticeread.core.geometry import LatticeGeometry
+    from latticeread.core.region import RegionShape, SiteRegion
+
+    region = SiteRegion(include=(RegionShape.disk((40, 40), 20),), excluded_sites=((1, 2), (-3, 0)))
+    base = _cal().with_options(region=region)
+    g = base.geometry
+    # the new calibration numbers the sites from another origin: old site (r, c) is new (r - 2, c + 1)
+    shifted = LatticeGeometry(a1=g.a1, a2=g.a2, offset=tuple(np.add(g.offset, 2 * np.asarray(g.a1) - np.asarray(g.a2))))
+    merged = merge_calibration(_cal().replace(geometry=shifted), base=base)
+    assert merged.options.region.include == region.include
+    assert merged.options.region.excluded_sites == ((-5, 1), (-1, 3))
+    assert "reconstruction.region" in merged.notes["kept_from_previous"]
+    assert merge_calibration(_cal(), base=_cal()).options.region.is_everything
+
+
 def test_window_calibration_keeps_the_pixel_size_of_the_loaded_calibration(frames, tmp_path):
     from latticeread.session import Session
 

@@ -412,7 +412,9 @@ def merge_calibration(new: Calibration, *, base: Calibration | None) -> Calibrat
     Calibrating from frames estimates the lattice, the PSF and the threshold; what it cannot
     measure must not be lost: ``pixel_size_nm`` is taken from ``base`` when the new one has
     none, and so are the optics of the PSF (:data:`OPTICS_KEYS`: wavelength, NA, pixel size)
-    that the new PSF lacks. What was kept is listed in ``notes["kept_from_previous"]``.
+    that the new PSF lacks, and so is the analysed region the user drew (shapes in pixels;
+    single excluded sites are carried over by position, to the site of the new lattice
+    nearest to where they were). What was kept is listed in ``notes["kept_from_previous"]``.
 
     Parameters
     ----------
@@ -439,6 +441,18 @@ def merge_calibration(new: Calibration, *, base: Calibration | None) -> Calibrat
     if optics:
         merged = merged.replace(psf=dataclasses.replace(new.psf, params={**params, **optics}))
         kept.extend(f"psf.{k}" for k in optics)
+    region = base.options.region
+    if new.options.region.is_everything and not region.is_everything:
+        from latticeread.core.region import SiteRegion
+
+        sites = ()
+        if region.excluded_sites:
+            rc = np.asarray(region.excluded_sites, dtype=float)
+            x, y = base.geometry.site_positions(rc[:, 0], rc[:, 1])
+            fr, fc = new.geometry.fractional_indices(x, y)
+            sites = tuple(zip(np.rint(fr).astype(int).tolist(), np.rint(fc).astype(int).tolist()))
+        merged = merged.with_options(region=SiteRegion(region.include, region.exclude, sites))
+        kept.append("reconstruction.region")
     if kept:
         merged = merged.replace(notes={**merged.notes, "kept_from_previous": kept})
     return merged
