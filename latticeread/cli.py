@@ -10,11 +10,13 @@ codes (see :mod:`latticeread.errors`).
 from __future__ import annotations
 
 import argparse
+import contextlib
 import difflib
 import importlib
 import logging
 import re
 import sys
+import warnings
 from pathlib import Path
 
 from latticeread import __version__
@@ -108,6 +110,25 @@ def _setup_logging(debug: bool) -> None:
     root.setLevel(logging.DEBUG if debug else logging.WARNING)
 
 
+@contextlib.contextmanager
+def _plain_warnings(command: str, debug: bool):
+    """The program's warnings as one line each ("latticeread CMD: warning: ..."), without the
+    source line Python prints; numerical library warnings (numpy's "All-NaN slice" and the
+    like, which the program's own checks already turn into messages) only with --debug.
+    The warning filters in force stay as they are (tests turn the program's warnings into errors)."""
+    if debug:
+        yield
+        return
+
+    def show(message, category, filename, lineno, file=None, line=None):
+        print(f"latticeread {command}: warning: {message}", file=sys.stderr)
+
+    with warnings.catch_warnings():
+        warnings.showwarning = show
+        warnings.filterwarnings("ignore", category=RuntimeWarning)
+        yield
+
+
 def main(argv: list[str] | None = None) -> int:
     argv = list(sys.argv[1:] if argv is None else argv)
     names = {name for name, _, _ in COMMANDS}
@@ -131,7 +152,8 @@ def main(argv: list[str] | None = None) -> int:
     from latticeread.errors import LatticeReadError
 
     try:
-        return int(args._run(args) or 0)
+        with _plain_warnings(args.command, debug):
+            return int(args._run(args) or 0)
     except KeyboardInterrupt:
         print("latticeread: interrupted", file=sys.stderr)
         return 130

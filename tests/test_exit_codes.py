@@ -8,6 +8,7 @@ import re
 import shutil
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 from latticeread.cli import main
@@ -137,3 +138,20 @@ def test_no_deliberate_error_class_exits_with_the_bug_code():
     classes = [c for c in vars(errors).values() if isinstance(c, type) and issubclass(c, errors.LatticeReadError)]
     assert errors.LatticeReadError in classes and len(classes) > 5
     assert all(c.exit_code != 1 for c in classes)
+
+
+def test_warnings_are_one_line_each_and_numerical_noise_is_hidden(tmp_path):
+    """A frame of NaN only: the program's warning as one "latticeread CMD: warning:" line, no
+    Python source line, no numpy "All-NaN slice" RuntimeWarning; --debug shows the raw warnings."""
+    import subprocess
+    import sys
+
+    np.save(tmp_path / "nan.npy", np.full((64, 64), np.nan))
+    code = "import sys; from latticeread.cli import main; sys.exit(main(sys.argv[1:]))"
+    args = [sys.executable, "-c", code, "calibrate", str(tmp_path / "nan.npy"), "-o", str(tmp_path / "cal.json")]
+    plain = subprocess.run(args, capture_output=True, text=True, timeout=120)
+    assert plain.returncode == 3
+    assert "latticeread calibrate: warning: frame 0 of nan.npy has no finite pixel" in plain.stderr
+    assert "RuntimeWarning" not in plain.stderr and "LatticeReadWarning" not in plain.stderr
+    debug = subprocess.run(args + ["--debug"], capture_output=True, text=True, timeout=120)
+    assert "LatticeReadWarning" in debug.stderr
