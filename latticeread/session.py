@@ -59,6 +59,9 @@ __all__ = ["Session", "DEFAULT_SETTINGS", "ReconstructBatch", "CalibrationOrigin
 
 log = logging.getLogger(__name__)
 
+#: ``PooledStats.components`` of counts made with each frame's own threshold fit
+PER_FRAME_KEY = ("per_frame",)
+
 #: Largest number of pooled amplitudes for which the background threshold fit also keeps a
 #: per-site sorted copy (float64, 8 bytes each) so a threshold drag re-counts by binary search.
 SORTED_INDEX_MAX_AMPLITUDES = 50_000_000
@@ -196,6 +199,9 @@ class Session:
         self._done: np.ndarray = np.zeros(0, dtype=bool)
         self._results: dict[int, Any] = {}           # classified FrameResult cache
         self._threshold_result = None
+        #: per-frame policy: each frame's own threshold fit (None when its histogram has too
+        #: few finite amplitudes), cached until its amplitudes or the threshold method change
+        self._frame_fits: dict[int, Any] = {}
         self._stats_cache: PooledStats | None = None
         self._fidelity = None
         self._settings = {**DEFAULT_SETTINGS, **(settings or {})}
@@ -416,6 +422,8 @@ class Session:
         if index != self._index:
             self._index = index
             self.index_changed.emit(index)
+            if self.per_frame:  # the threshold shown is the new current frame's own fit
+                self.threshold_result_changed.emit(self.threshold_result)
             note = self._nonfinite_note(index)
             if note:
                 self.message.emit(note)
@@ -543,7 +551,14 @@ class Session:
         if old is None or new is None or any(_differs(getattr(old, f), getattr(new, f)) for f in amplitude_fields):
             self._invalidate_amplitudes(emit=True)
         else:
-            if (new.threshold_method != old.threshold_method or new.threshold_scope != old.threshold_scope) \
+            if _per_frame(new) != _per_frame(old):
+                # into or out of the per-frame policy (e.g. a dragged line fixes one threshold
+                # for every frame; undo goes back to each frame's own fit)
+                self._threshold_result = None
+                self._results.clear()
+                self._frame_fits.clear()
+                self._refresh_threshold_result()
+            elif (new.threshold_method != old.threshold_method or new.threshold_scope != old.threshold_scope) \
                     and self._threshold_result is not None:
                 self._threshold_result = None
                 self._refresh_threshold_result()
@@ -553,10 +568,10 @@ class Session:
                 self._threshold_result = None
                 self._refresh_threshold_result()
             self._reclassify()
-        if new is not None and new.threshold is None and new.threshold_scope == "per_frame":
-            self.message.emit("this calibration asks for a threshold per frame; the window pools all frames of the "
-                              "stack (fix a threshold on the histogram to get the same result everywhere)")
         self.calibration_changed.emit(new)
+        if _per_frame(new) and not _per_frame(old):
+            self.message.emit("thresholds are fitted per frame: each frame is classified against the fit of its "
+                              "own amplitude histogram (drag the line to fix one threshold for every frame)")
         self._set_modified(True)
 
     def _source_name(self) -> str:
@@ -667,6 +682,7 @@ class Session:
         self._geometries = [None] * n
         self._done = np.zeros(n, dtype=bool)
         self._results.clear()
+        self._frame_fits.clear()
         self._threshold_result = None
         self._fidelity = None
         if emit:
@@ -832,6 +848,7 @@ class Session:
             self._geometries[i] = g
             self._warnings[i] = tuple(w)
             self._results.pop(i, None)
+            self._frame_fits.pop(i, None)
         self._done[idx] = True
         if self._fidelity is not None:
             self._set_fidelity(None)
@@ -856,19 +873,68 @@ class Session:
     # ------------------------------------------------------------------ classification
     @property
     def threshold_result(self):
-        """ThresholdResult of the pooled amplitude histogram (with the user's threshold), or None."""
+        """ThresholdResult of the pooled amplitude histogram (with the user's threshold), or None.
+
+        Under the per-frame policy: the current frame's own fit (None when that frame is not
+        reconstructed or its histogram cannot be fitted).
+        """
+        if self.per_frame:
+            return self._frame_fit(self._index)
         return self._threshold_result
 
     @property
     def threshold(self) -> float | None:
-        """Threshold in photons in force: the fixed one, else the automatic one, else None."""
+        """Threshold in photons in force: the fixed one, else the automatic one, else None.
+
+        Under the per-frame policy: the current frame's own threshold.
+        """
         if self._calibration is not None and self._calibration.threshold is not None:
             return float(self._calibration.threshold)
-        if self._threshold_result is not None:
-            return float(self._threshold_result.threshold)
+        tr = self.threshold_result
+        if tr is not None:
+            return float(tr.threshold)
         return None
 
+    @property
+    def per_frame(self) -> bool:
+        """True when each frame is classified against the fit of its own histogram
+        (the calibration's threshold policy is ``per_frame`` and no threshold is fixed)."""
+        return _per_frame(self._calibration)
+
+    def frame_thresholds(self) -> np.ndarray:
+        """(n_frames,) threshold in photons each frame is classified with (NaN: not reconstructed
+        or no fit)."""
+        out = np.full(self.n_frames, np.nan)
+        for i in np.flatnonzero(self._done):
+            c = self._classifier(int(i))
+            if c is not None:
+                out[i] = threshold_value(c)
+        return out
+
+    def _frame_fit(self, index: int):
+        """The threshold fitted on frame ``index``'s own histogram, as ``reconstruct`` fits it
+        under the per-frame policy; None when the frame is not reconstructed or holds fewer
+        than 3 finite amplitudes."""
+        i = int(index)
+        if i in self._frame_fits:
+            return self._frame_fits[i]
+        amps = self.amplitudes(i)
+        if amps is None or self._calibration is None:
+            return None
+        try:
+            fit = _pipeline().pooled_threshold(amps, calibration=self._calibration, flags=self._flags[i])
+        except ReconstructionError as exc:
+            log.info("frame %d has no threshold of its own: %s", i, exc)
+            fit = None
+        self._frame_fits[i] = fit
+        return fit
+
     def _refresh_threshold_result(self) -> None:
+        if self.per_frame:
+            # no pooled fit: every frame has its own (shown for the current frame)
+            self._threshold_result = None
+            self.threshold_result_changed.emit(self.threshold_result)
+            return
         amps = self.all_amplitudes()
         if not np.isfinite(amps).any() or self._calibration is None:
             self._set_threshold_result(None)
@@ -887,11 +953,16 @@ class Session:
 
     def _reclassify(self) -> None:
         self._results.clear()
+        self._frame_fits.clear()
         self._set_fidelity(None)
         self.classification_changed.emit()
 
-    def _classifier(self):
-        """What to pass to classify(): the ThresholdResult (posteriors) or the bare threshold."""
+    def _classifier(self, index: int | None = None):
+        """What to pass to classify() for frame ``index`` (default: the current one): the
+        ThresholdResult (posteriors) or the bare threshold; under the per-frame policy that
+        frame's own fit."""
+        if self.per_frame:
+            return self._frame_fit(self._index if index is None else int(index))
         if self._threshold_result is not None:
             return self._threshold_result
         return self.threshold
@@ -899,7 +970,7 @@ class Session:
     def classify_frame(self, index: int | None = None):
         """(occupied uint8, p_occupied float) of a reconstructed frame, or None."""
         amps = self.amplitudes(index)
-        thr = self._classifier()
+        thr = self._classifier(index)
         if amps is None or thr is None:
             return None
         return _classify_module().classify(amps, thr)
@@ -914,7 +985,7 @@ class Session:
         if i in self._results:
             return self._results[i]
         amps = self.amplitudes(i)
-        thr = self._classifier()
+        thr = self._classifier(i)
         if amps is None or thr is None:
             return None
         pipeline = _pipeline()
@@ -942,11 +1013,21 @@ class Session:
 
     def occupation_stack(self) -> np.ndarray | None:
         """(n_done, n_rows, n_cols) uint8 occupation matrices of the reconstructed frames (255 outside)."""
-        if self._amplitudes is None or not self._done.any() or self._classifier() is None:
+        if self._amplitudes is None or not self._done.any():
             return None
-        amps = self._amplitudes[self._done]
-        occ, _ = _classify_module().classify(amps.ravel(), self._classifier())
-        occ = np.asarray(occ, dtype=np.uint8).reshape(amps.shape)
+        done = np.flatnonzero(self._done)
+        amps = self._amplitudes[done]
+        if self.per_frame:
+            fits = [self._classifier(int(i)) for i in done]
+            if any(f is None for f in fits):
+                return None
+            occ = np.stack([np.asarray(_classify_module().classify(a, f)[0], dtype=np.uint8)
+                            for a, f in zip(amps, fits)])
+        else:
+            if self._classifier() is None:
+                return None
+            occ, _ = _classify_module().classify(amps.ravel(), self._classifier())
+            occ = np.asarray(occ, dtype=np.uint8).reshape(amps.shape)
         s = self._sites
         out = np.full((amps.shape[0], s.n_rows, s.n_cols), 255, dtype=np.uint8)
         out[:, s.rows - s.row_min, s.cols - s.col_min] = occ
@@ -967,6 +1048,8 @@ class Session:
           posterior, which does not depend on the threshold, so it is kept;
         * new components (a new fit, another method, new amplitudes) start over.
         """
+        if self.per_frame:
+            return self._per_frame_stats()
         thr = self._classifier()
         if self._amplitudes is None or thr is None:
             return None
@@ -980,6 +1063,26 @@ class Session:
         if new.size:
             st.add(self._amplitudes[new], thr)
             st.included[new] = True
+        return st
+
+    def _per_frame_stats(self) -> PooledStats | None:
+        """Counts under the per-frame policy: each frame classified with its own fit (no single
+        threshold: ``classifier`` is None and ``threshold`` NaN). Frames without a fit are not
+        counted."""
+        if self._amplitudes is None:
+            return None
+        st = self._stats_cache
+        if st is None or st.generation != self._generation or st.components != PER_FRAME_KEY:
+            st = PooledStats(generation=self._generation, classifier=None, threshold=float("nan"),
+                             components=PER_FRAME_KEY, included=np.zeros(self.n_frames, bool),
+                             occ_sum=np.zeros(self._amplitudes.shape[1], np.int64),
+                             n_frames_site=np.zeros(self._amplitudes.shape[1], np.int64))
+            self._stats_cache = st
+        for i in np.flatnonzero(self._done & ~st.included):
+            fit = self._classifier(int(i))
+            if fit is not None:
+                st.add(self._amplitudes[i:i + 1], fit)
+                st.included[i] = True
         return st
 
     def store_stats(self, stats: PooledStats) -> None:
@@ -1027,8 +1130,8 @@ class Session:
         generation = self._generation
 
         def job(should_stop: Callable[[], bool] = lambda: False):
-            if amplitudes is None or cal is None:
-                return generation, None, None
+            if amplitudes is None or cal is None or _per_frame(cal):
+                return generation, None, None  # per frame: each frame's fit is made when it is shown
             block = amplitudes if done.all() else amplitudes[done]
             amps = block.ravel()
             if not np.isfinite(amps).any():
@@ -1049,6 +1152,10 @@ class Session:
         generation, tr, stats = fit
         if generation != self._generation or self._calibration is None:
             return False
+        if self.per_frame:
+            self._reclassify()
+            self.threshold_result_changed.emit(self.threshold_result)
+            return True
         if tr is not None and self._calibration.threshold is not None and tr.threshold != self._calibration.threshold:
             tr = tr.with_threshold(float(self._calibration.threshold))  # same components: _stats re-counts
         self._set_threshold_result(tr)
@@ -1123,8 +1230,14 @@ class Session:
         cal = self._calibration
         frames = np.flatnonzero(self._done)
         amps = self._amplitudes[frames, k]
-        classifier = self._classifier()
-        _occ, p = _classify_module().classify(amps, classifier)
+        if self.per_frame:
+            p = np.full(amps.shape, np.nan)
+            for j, f in enumerate(frames):
+                fit = self._classifier(int(f))
+                if fit is not None:
+                    p[j] = _classify_module().classify(amps[j:j + 1], fit)[1][0]
+        else:
+            _occ, p = _classify_module().classify(amps, self._classifier())
         x, y = float(res.sites.x[k]), float(res.sites.y[k])
         h = int(half_width) if half_width is not None else int(np.ceil(1.5 * max(cal.geometry.spacings)))
         x0, y0 = int(round(x)) - h, int(round(y)) - h
@@ -1329,7 +1442,8 @@ class Session:
         occ = stack.reshape(self.n_frames // ips, ips, *stack.shape[1:])
         # misread rates: the one computation every front end uses (pooled fit at the threshold in force)
         amplitudes = self._amplitudes.copy()
-        threshold = self.threshold
+        # the threshold each frame was classified with (one per frame under the per-frame policy)
+        threshold = self.frame_thresholds() if self.per_frame else self.threshold
         camera = self._calibration.camera
         geometry = self._calibration.geometry
         n_boot = int(self._settings["bootstrap_resamples"])
@@ -1358,6 +1472,8 @@ class Session:
 
     def _classification_key(self):
         tr = self._threshold_result
+        if self.per_frame:
+            return ("per_frame", self.frame_thresholds().tobytes(), int(self._done.sum()))
         return (self.threshold, id(tr), int(self._done.sum()))
 
     # ------------------------------------------------------------------ modified flag
@@ -1573,6 +1689,12 @@ def _frames_for_calibration(frame, n: int, name: str) -> np.ndarray:
             log.warning("%s", w.message)
         images.append(image)
     return np.stack(images)
+
+
+def _per_frame(calibration) -> bool:
+    """True when ``calibration`` has each frame classified against its own histogram's fit."""
+    return calibration is not None and calibration.threshold is None \
+        and calibration.threshold_policy.kind == "per_frame"
 
 
 def _differs(a, b) -> bool:

@@ -191,3 +191,81 @@ def test_every_route_gives_the_same_fidelity_report(data):
                                                                          "run")
     for name, report in routes.items():
         assert _report_text(report) == _report_text(session), f"{name} differs from the window"
+
+
+# --- the per-frame threshold policy: the window follows it as reconstruct does -------------
+
+PF_GEOMETRY = LatticeGeometry(a1=(0.3, 4.0), a2=(4.0, -0.3), offset=(32.2, 31.7))
+PF_SHAPE = (64, 64)
+
+
+@pytest.fixture(scope="module")
+def per_frame_data(tmp_path_factory):
+    """Four 64x64 frames, two dim (60 photons per atom) and two bright (200): a pooled
+    threshold falls between the bright frames' peaks and misses the dim frames' atoms,
+    so pooling and fitting each frame give different matrices."""
+    from latticeread.core.simulate import simulate_frames
+
+    root = tmp_path_factory.mktemp("per_frame")
+    parts = [simulate_frames(geometry=PF_GEOMETRY, frame_shape=PF_SHAPE, psf=PSF, camera=CAMERA, region=("disk", 6),
+                             filling=0.4, photons_per_atom=photons, n_shots=1, images_per_shot=2, rng=seed)[0]
+             for photons, seed in ((60.0, 1), (200.0, 2))]
+    stack = root / "stack.tif"
+    tifffile.imwrite(stack, np.concatenate(parts).astype(np.float32), photometric="minisblack")
+    cal = Calibration(geometry=PF_GEOMETRY, psf=PSF, camera=CAMERA, frame_shape=PF_SHAPE, threshold_scope="per_frame")
+    cal_path = root / "cal.json"
+    save_calibration(cal_path, cal)
+    assert load_calibration(cal_path).threshold_policy.kind == "per_frame"
+    return root, stack, cal_path
+
+
+def _reconstructed_session(stack, calibration):
+    from latticeread.session import Session
+
+    s = Session()
+    s.open_frames(stack)
+    s.set_calibration(calibration, record=False)
+    s.reconstruct()
+    s.finish_reconstruction()
+    return s
+
+
+def test_the_window_fits_each_frame_as_reconstruct_does(per_frame_data):
+    from latticeread.cli import main
+
+    root, stack, cal_path = per_frame_data
+    cal = load_calibration(cal_path)
+    s = _reconstructed_session(stack, cal)
+    out = root / "sites.h5"
+    assert main(["reconstruct", str(stack), "-c", str(cal_path), "-o", str(out), "--quiet", "--force"]) == 0
+    with h5py.File(out, "r") as h5:
+        ref = h5["occupation"][()]
+    occ = s.occupation_stack()
+    np.testing.assert_array_equal(occ, ref)
+    for i in range(4):  # result() and classify_frame() use the same per-frame fit
+        np.testing.assert_array_equal(s.result(i).occupation_matrix(fill=255), ref[i])
+        np.testing.assert_array_equal(s.classify_frame(i)[0], s.result(i).occupied)
+    thresholds = s.frame_thresholds()
+    assert thresholds[2] > 1.5 * thresholds[0]  # the bright frames got their own, higher threshold
+    inside = ref != 255
+    assert s.pooled_counts()["occupied"] == int((ref[inside] == 1).sum())  # counts of the per-frame matrices
+    pooled = _reconstructed_session(stack, cal.replace(threshold_scope="pooled")).occupation_stack()
+    assert np.count_nonzero(pooled != ref) > 10  # pooling gives other matrices: the comparison can fail
+
+
+def test_a_dragged_threshold_fixes_one_for_all_frames_and_undo_fits_each_again(per_frame_data):
+    root, stack, cal_path = per_frame_data
+    s = _reconstructed_session(stack, load_calibration(cal_path))
+    per_frame = s.occupation_stack()
+    s.set_index(2)
+    assert s.per_frame and s.threshold == s.frame_thresholds()[2] == s.threshold_result.threshold
+    s.set_threshold(50.0)
+    assert not s.per_frame and s.calibration.threshold_policy.kind == "fixed"
+    np.testing.assert_array_equal(s.frame_thresholds(), np.full(4, 50.0))
+    fixed = s.occupation_stack()
+    assert np.count_nonzero(fixed != per_frame) > 0
+    assert s.undo() and s.per_frame
+    np.testing.assert_array_equal(s.occupation_stack(), per_frame)
+    s.update_settings(images_per_shot=2, bootstrap_resamples=N_BOOT)
+    s.compute_fidelity()
+    assert s.fidelity.settings["misread"]["n_thresholds"] == 4  # one threshold per frame

@@ -478,3 +478,37 @@ def test_calibrate_from_frames_in_the_window(window, sim_tif):
     window.reconstruct_all()
     window.flush()
     assert s.done.all() and window.occupation_view.summary.text().startswith("frame 0:")
+
+
+def test_per_frame_thresholds_show_the_current_frames_own_fit(window, tmp_path):
+    """A calibration asking for a threshold per frame: the status says so, the histogram's line
+    sits at the current frame's own fit and says whose fit it is, and follows the frame."""
+    import tifffile
+
+    from latticeread.core.simulate import simulate_frames
+
+    parts = [simulate_frames(geometry=GEOMETRY, frame_shape=SHAPE, psf=PSF, camera=CAMERA, region=("disk", 8),
+                             filling=0.4, photons_per_atom=photons, n_shots=1, images_per_shot=2, rng=seed)[0]
+             for photons, seed in ((60.0, 1), (200.0, 2))]
+    path = tmp_path / "two_brightnesses.tif"
+    tifffile.imwrite(path, np.concatenate(parts).astype(np.float32), photometric="minisblack")
+    assert window.open_path(path), window.last_error
+    s = window.session
+    s.set_calibration(Calibration(geometry=GEOMETRY, psf=PSF, camera=CAMERA, frame_shape=SHAPE,
+                                  threshold_scope="per_frame"))
+    assert "thresholds are fitted per frame" in window.status_label.text()
+    window.reconstruct_all()
+    window.flush()
+    line = window.histogram_panel.threshold_line
+    assert line.label.toPlainText().endswith("frame 0's own fit")
+    assert line.value() == pytest.approx(s.frame_thresholds()[0], abs=1e-9)
+    s.set_index(2)
+    window.flush()
+    assert line.label.toPlainText().endswith("frame 2's own fit")
+    assert line.value() == pytest.approx(s.frame_thresholds()[2], abs=1e-9)
+    assert s.frame_thresholds()[2] > 1.5 * s.frame_thresholds()[0]
+    window.grab().save(str(tmp_path / "per_frame.png"))
+    window.histogram_panel.grab().save(str(tmp_path / "per_frame_histogram.png"))
+    s.set_threshold(70.0)
+    window.flush()
+    assert line.label.toPlainText() == "threshold 70.0"  # one fixed threshold for every frame

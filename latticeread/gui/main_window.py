@@ -766,10 +766,14 @@ class MainWindow(QtWidgets.QMainWindow):
                 self._refresh_amplitudes()
             if "threshold" in dirty and hasattr(self.histogram_panel, "set_threshold_result"):
                 tr = s.threshold_result
+                hp = self.histogram_panel
+                if hasattr(hp, "set_threshold_label"):
+                    hp.set_threshold_label(f"threshold {{value:.1f}}\nframe {s.index}'s own fit" if s.per_frame
+                                          else None)
                 if tr is not None:
-                    self.histogram_panel.set_threshold_result(tr)
-                elif s.threshold is not None:
-                    self.histogram_panel.set_threshold(s.threshold)
+                    hp.set_threshold_result(tr)
+                elif s.threshold is not None or s.per_frame:
+                    hp.set_threshold(s.threshold)
             if "classification" in dirty:
                 self._refresh_classification()
                 if getattr(self, "observables_feed", None) is not None:

@@ -20,6 +20,9 @@ Methods (data in)
     call on every ``thresholdDragged``.
 ``set_threshold(value)``
     Move the line without a result (e.g. a fixed threshold from a calibration).
+``set_threshold_label(text)``
+    Label format of the line (with ``{value}``), e.g. naming the frame whose own fit it
+    shows; None restores the plain threshold label.
 ``set_counts(n_occupied, n_empty, n_uncertain)``
     Site counts after classification with the current threshold.
 ``set_method(name)``
@@ -76,6 +79,9 @@ _EMPTY_PEN = pg.mkPen((40, 110, 200), width=2)
 _OCC_PEN = pg.mkPen((220, 120, 20), width=2)
 _SUM_PEN = pg.mkPen((60, 60, 60), width=1.5, style=QtCore.Qt.PenStyle.DashLine)
 _LINE_PEN = pg.mkPen((200, 0, 0), width=2)
+#: the threshold line's label (one decimal: the precision of the threshold box)
+THRESHOLD_LABEL = "threshold {value:.1f}"
+
 _LINE_HOVER_PEN = pg.mkPen((255, 60, 60), width=4)
 
 
@@ -212,7 +218,7 @@ class HistogramPanel(QtWidgets.QWidget):
             item.addItem(c)
         self.threshold_line = pg.InfiniteLine(
             pos=0.0, angle=90, movable=True, pen=_LINE_PEN, hoverPen=_LINE_HOVER_PEN,
-            label="threshold {value:.1f}",  # the precision of the threshold box
+            label=THRESHOLD_LABEL,
             labelOpts={"position": 0.92, "color": (170, 0, 0), "fill": (255, 255, 255, 200),
                        "movable": True})
         self.threshold_line.setZValue(10)
@@ -324,6 +330,11 @@ class HistogramPanel(QtWidgets.QWidget):
             finally:
                 self._programmatic = False
         self._set_box(value)
+
+    def set_threshold_label(self, text: str | None) -> None:
+        """Label of the threshold line: a format with ``{value}`` (e.g. naming the frame whose
+        own fit it is), or None for the plain "threshold <value>"."""
+        self.threshold_line.label.setFormat(text or THRESHOLD_LABEL)
 
     def set_threshold_result(self, result) -> None:
         """Show a threshold result (see the module docstring for the fields read)."""
