@@ -568,6 +568,8 @@ class Session:
                 self._threshold_result = None
                 self._refresh_threshold_result()
             self._reclassify()
+            if _per_frame(new):  # the current frame's fit may have changed (e.g. another method)
+                self.threshold_result_changed.emit(self.threshold_result)
         self.calibration_changed.emit(new)
         if _per_frame(new) and not _per_frame(old):
             self.message.emit("thresholds are fitted per frame: each frame is classified against the fit of its "
@@ -954,6 +956,8 @@ class Session:
     def _reclassify(self) -> None:
         self._results.clear()
         self._frame_fits.clear()
+        if self._stats_cache is not None and self._stats_cache.components == PER_FRAME_KEY:
+            self._stats_cache = None  # counted with fits that may change (e.g. another method)
         self._set_fidelity(None)
         self.classification_changed.emit()
 

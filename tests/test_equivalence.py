@@ -266,6 +266,12 @@ def test_a_dragged_threshold_fixes_one_for_all_frames_and_undo_fits_each_again(p
     assert np.count_nonzero(fixed != per_frame) > 0
     assert s.undo() and s.per_frame
     np.testing.assert_array_equal(s.occupation_stack(), per_frame)
+    assert s.pooled_counts()["occupied"] == int((per_frame == 1).sum())
+    s.set_threshold_method("otsu")  # still each frame's own fit, with the other method
+    otsu = s.occupation_stack()
+    assert s.per_frame and s.threshold_result.method == "otsu"
+    assert s.pooled_counts()["occupied"] == int((otsu == 1).sum())
+    s.undo()
     s.update_settings(images_per_shot=2, bootstrap_resamples=N_BOOT)
     s.compute_fidelity()
     assert s.fidelity.settings["misread"]["n_thresholds"] == 4  # one threshold per frame
