@@ -271,7 +271,7 @@ def test_every_commit_reaches_the_disk_rows_first_then_the_counter(tmp_path, mon
 
     def fsync(fd):
         with h5py.File(path, "r", swmr=True, locking=False) as f:
-            seen.append((int(f["committed"][0]), int(f["shots/frame_index"].shape[0])))
+            seen.append((int(f["committed"][0]), int(f["frames/frame_index"].shape[0])))
         real_fsync(fd)
 
     with RunWriter(path, calibration_json=CAL) as w:

@@ -92,7 +92,7 @@ def test_save_session_as_asks_before_replacing_a_run_file_beside_it(window, tmp_
     assert len(answers.asked) == 1
     title, text = answers.asked[0]
     assert "replace" in title.lower()
-    assert "run.h5: a run file with 176 shots" in text
+    assert "run.h5: a run file with 176 frames" in text
     assert (tmp_path / "run.h5").read_bytes() == old and not (tmp_path / "run.json").exists()
     answers.answer = True
     window.actions_by_name["save_session_as"].trigger()
@@ -146,7 +146,7 @@ def test_plain_save_replaces_its_own_session_files_but_asks_about_a_foreign_one(
     _fake_run_file(tmp_path / "s.h5", 3)  # another program put a run file there meanwhile
     answers.answer = False
     window.actions_by_name["save_session"].trigger()
-    assert len(answers.asked) == 1 and "s.h5: a run file with 3 shots" in answers.asked[0][1]
+    assert len(answers.asked) == 1 and "s.h5: a run file with 3 frames" in answers.asked[0][1]
 
 
 def test_the_question_box_defaults_to_cancel(qtbot):

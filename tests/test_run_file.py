@@ -104,7 +104,7 @@ def test_half_written_rows_are_ignored_and_overwritten(tmp_path):
     with h5py.File(path, "r+") as f:  # imitate a kill in the middle of append()
         f["occupation"].resize(2, axis=0)
         f["occupation"][1] = 7
-        f["shots/source"].resize(2, axis=0)
+        f["frames/source"].resize(2, axis=0)
     assert len(read_run(path)) == 1
     with RunWriter(path, calibration_json=CAL) as w:
         w.append(_record(5))
@@ -265,7 +265,7 @@ def test_read_results_gives_plain_arrays_and_a_settings_dict(tmp_path):
     assert arrays["warnings"].tolist() == ["", "few atoms\npoor fit", ""]
     assert arrays["failure_reason"].tolist() == ["truncated"] and arrays["failure_frame_index"].tolist() == [-1]
     assert settings["calibration"] == json.loads(CAL) and settings["metadata"] == {"command": "batch"}
-    assert (settings["n_shots"], settings["n_failures"], settings["format_version"]) == (3, 1, 3)
+    assert (settings["n_frames"], settings["n_failures"], settings["format_version"]) == (3, 1, 4)
     table, _ = read_results(path, matrices=False)
     assert "occupation" not in table and table["threshold"].tolist() == [250.0, 251.0, 252.0]
 
@@ -329,4 +329,5 @@ def test_version_1_file_is_read_and_converted_on_resume(tmp_path):
     # the rebuilt old row has no image-model checks (NaN), the new one its own numbers
     assert np.isnan(run.light_outside[0]) and run.light_outside[1] == _record(1).light_outside
     with h5py.File(path, "r") as f:
-        assert f.attrs["format_version"] == 3
+        assert f.attrs["format_version"] == 4
+        assert "frames" in f and "shots" not in f  # one row per frame, named so since format 4

@@ -213,7 +213,7 @@ def _inspect_hdf5(path: Path) -> tuple[str, str]:
             fmt = str(f.attrs.get("format", ""))
             if fmt == "latticeread-run":
                 n = int(f["committed"][0]) if "committed" in f else int(f.attrs.get("n_shots", 0))
-                return "run", f"a run file with {n} shot{'s' if n != 1 else ''}"
+                return "run", f"a run file with {n} frame{'s' if n != 1 else ''}"
             if fmt == "latticeread-session":
                 return "session-results", "the results of a saved session"
             if fmt.startswith("latticeread-observables"):

@@ -7,11 +7,11 @@ objects, with no latticeread classes in them::
 
     from latticeread.io import read_results
     arrays, settings = read_results("run.h5")
-    arrays["occupation"].shape        # (shots, rows, cols), uint8, 255 outside the region
+    arrays["occupation"].shape        # (frames, rows, cols), uint8, 255 outside the region
     settings["calibration"]["geometry"]["a1"]
 
 It never blocks the program writing the file and is never blocked by it: call it again
-while a ``watch`` runs to see the shots committed since (a shot being written is not
+while a ``watch`` runs to see the frames committed since (a frame being written is not
 included until it is complete).
 """
 
@@ -41,12 +41,13 @@ def read_results(path, *, matrices: bool = True) -> tuple[dict, dict]:
     path : str or PathLike
         The ``.h5`` file.
     matrices : bool
-        Read the per-site matrices (False: only the per-shot columns, fast for long runs).
+        Read the per-site matrices (False: only the per-frame columns, fast for long runs).
 
     Returns
     -------
     arrays : dict of str -> ndarray
-        One entry per shot (first axis) unless noted:
+        One entry per frame (first axis; a shot of several images has one entry per image)
+        unless noted:
 
         * ``occupation`` (n, rows, cols) uint8: 1 occupied, 0 empty, 255 outside the region;
         * ``amplitude`` (photons), ``p_occupied``, ``x``, ``y`` (pixels): (n, rows, cols)
@@ -60,12 +61,12 @@ def read_results(path, *, matrices: bool = True) -> tuple[dict, dict]:
         * ``warnings``: str, one warning per line ("" when none);
         * ``failure_source``, ``failure_file_hash``, ``failure_error``,
           ``failure_reason``: str, ``failure_frame_index`` int64 (-1: whole file),
-          ``failure_resolved`` bool: one entry per failed shot, not per shot.
+          ``failure_resolved`` bool: one entry per failed frame or file, not per frame.
 
         Without ``matrices`` the six matrices are absent.
     settings : dict
         ``calibration`` (dict), ``metadata`` (dict: command, inputs...),
-        ``program_version``, ``format_version``, ``created`` (UTC), ``n_shots``,
+        ``program_version``, ``format_version``, ``created`` (UTC), ``n_frames``,
         ``n_failures`` and any further root attributes (``fidelity``, ``units``...).
 
     Raises
@@ -105,5 +106,5 @@ def read_results(path, *, matrices: bool = True) -> tuple[dict, dict]:
     for name in ("source", "file_hash", "frame_index", "error", "reason", "resolved"):
         arrays[f"failure_{name}"] = getattr(run.failures, name)
     settings.update(calibration=run.calibration, metadata=run.metadata, program_version=run.program_version,
-                    n_shots=len(run), n_failures=len(run.failures))
+                    n_frames=len(run), n_failures=len(run.failures))
     return arrays, settings

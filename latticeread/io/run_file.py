@@ -30,26 +30,28 @@ Safety
   with a message naming the first. Readers take no lock and are never blocked: open the
   file with ``h5py.File(path, "r", swmr=True)`` or :func:`read_run`.
 
-Layout (format version 2; all per-shot datasets share the first axis)
---------------------------------------------------------------------
+Layout (format version 4; all per-frame datasets share the first axis)
+---------------------------------------------------------------------
 Root attributes (written when the file is created, never changed)
     ``format`` = ``"latticeread-run"``, ``format_version``, ``program_version``,
     ``calibration`` (the calibration as JSON text), ``created`` (UTC ISO time),
     ``metadata`` (JSON text: command, inputs...).
 ``committed`` (2,) int64
-    Number of complete shot rows and failure rows. Rows beyond these are not part of the
+    Number of complete frame rows and failure rows. Rows beyond these are not part of the
     file (an interruption cut them short).
-``shots/`` (one row per committed shot)
+``frames/`` (one row per committed frame; a shot of several images has one row per image.
+    Called ``shots/`` up to format version 3: same columns, read as they are, renamed when a
+    writer resumes such a file)
     ``source`` (UTF-8 bytes, absolute input path), ``file_hash`` (bytes, hex BLAKE2b-128 of
     the file), ``frame_index`` (int64, frame inside that file), ``offset``, ``a1``, ``a2``
-    ((n, 2) float64, lattice offset and vectors ``(x, y)`` in pixels used for that shot),
+    ((n, 2) float64, lattice offset and vectors ``(x, y)`` in pixels used for that frame),
     ``threshold`` (float64, photons), ``false_positive_rate``, ``false_negative_rate``
     (float64, misread probabilities per site from the threshold fit; NaN for a fixed
     threshold without a fit), ``n_sites``, ``n_occupied`` (int64), ``filling``
     (float64, occupied / valid sites), ``peak_to_background``, ``lattice_residual``
     (float64, lattice fit diagnostics), ``warnings`` (UTF-8 bytes, one warning per line),
     ``written_at`` (float64, Unix time of writing), ``light_outside``, ``model_residual``,
-    ``light_explained`` (float64, does the site model explain the shot; format version 3,
+    ``light_explained`` (float64, does the site model explain the frame; format version 3,
     :mod:`latticeread.core.frame_check`).
 ``occupation`` (n, rows, cols) uint8
     1 occupied, 0 empty, 255 outside the reconstructed region.
@@ -108,7 +110,7 @@ __all__ = [
 log = logging.getLogger(__name__)
 
 RUN_FORMAT = "latticeread-run"
-RUN_FORMAT_VERSION = 3
+RUN_FORMAT_VERSION = 4
 
 #: Call fsync after the rows and after the committed counter of every block (see Safety).
 #: Only the benchmark turns this off, to measure what it costs.
@@ -150,16 +152,16 @@ _DESCRIPTIONS = {
     "x": ("pixels (column; centre of pixel (0,0) at 0)", "site centre x"),
     "y": ("pixels (row, downwards; centre of pixel (0,0) at 0)", "site centre y"),
     "flags": ("bit field, see latticeread.core.flags", "site quality bits (0 = reliable)"),
-    "shots/offset": ("pixels (x, y)", "position of lattice site (0, 0) in the frame"),
-    "shots/a1": ("pixels (x, y)", "first lattice vector"),
-    "shots/a2": ("pixels (x, y)", "second lattice vector"),
-    "shots/threshold": ("photons", "occupancy threshold"),
-    "shots/origin": ("lattice sites (row, col)", "site of matrix element [0, 0]"),
-    "shots/frame_index": ("index (0-based)", "frame inside the input file"),
-    "shots/written_at": ("seconds since 1970 (Unix time)", "when the shot was committed"),
-    "shots/light_outside": ("fraction", "light above background outside the analysed region"),
-    "shots/model_residual": ("ratio (1 = camera noise)", "image-model residual over the expected noise"),
-    "shots/light_explained": ("fraction", "bright light the site model accounts for"),
+    "frames/offset": ("pixels (x, y)", "position of lattice site (0, 0) in the frame"),
+    "frames/a1": ("pixels (x, y)", "first lattice vector"),
+    "frames/a2": ("pixels (x, y)", "second lattice vector"),
+    "frames/threshold": ("photons", "occupancy threshold"),
+    "frames/origin": ("lattice sites (row, col)", "site of matrix element [0, 0]"),
+    "frames/frame_index": ("index (0-based)", "frame inside the input file"),
+    "frames/written_at": ("seconds since 1970 (Unix time)", "when the frame's row was committed"),
+    "frames/light_outside": ("fraction", "light above background outside the analysed region"),
+    "frames/model_residual": ("ratio (1 = camera noise)", "image-model residual over the expected noise"),
+    "frames/light_explained": ("fraction", "bright light the site model accounts for"),
 }
 #: per-site matrices: name -> (dtype, fill value outside the region)
 _MATRICES = {
@@ -349,6 +351,15 @@ def _decode_text(ds, stop: int) -> np.ndarray:
     return np.asarray(ds.asstr()[:stop], dtype=object).astype(str)
 
 
+#: Group of the per-frame rows (one row per frame; a shot of several images has several rows).
+ROWS_GROUP = "frames"
+
+
+def _rows(f: h5py.File):
+    """The per-frame rows of a run file: ``frames/`` (format 4), ``shots/`` in older files."""
+    return f[ROWS_GROUP] if ROWS_GROUP in f else f["shots"]
+
+
 def _counts(f: h5py.File) -> tuple[int, int]:
     """Committed (shots, failures) of a version 2 or version 1 file."""
     if "committed" in f:
@@ -356,7 +367,7 @@ def _counts(f: h5py.File) -> tuple[int, int]:
     else:
         n, nf = int(f.attrs["n_shots"]), int(f.attrs["n_failures"])
     # Defensive: never claim rows a dataset does not have.
-    n = min([n] + [f["shots"][c].shape[0] for c in ("source", "frame_index")])
+    n = min([n] + [_rows(f)[c].shape[0] for c in ("source", "frame_index")])
     nf = min([nf] + [f["failures"][c].shape[0] for c in ("source", "frame_index")])
     return n, nf
 
@@ -421,7 +432,7 @@ def _create_layout(f: h5py.File, attrs: dict) -> None:
     f.attrs["format"] = RUN_FORMAT
     f.attrs["format_version"] = RUN_FORMAT_VERSION
     f.create_dataset("committed", data=np.zeros(2, np.int64))
-    shots = f.create_group("shots")
+    shots = f.create_group(ROWS_GROUP)
     for name, (dtype, tail) in _SHOT_COLUMNS.items():
         text = np.dtype(dtype).kind == "S"
         shots.create_dataset(name, shape=(0, *tail), maxshape=(None, *tail), dtype=dtype,
@@ -588,7 +599,7 @@ class RunWriter:
         self._file = f = self._open_h5()
         n, nf = _counts(f)
         self._n, self._nf = n, nf
-        s = f["shots"]
+        s = _rows(f)
         for src, digest, idx in zip(_decode_text(s["source"], n), _decode_text(s["file_hash"], n),
                                     s["frame_index"][:n]):
             self._done.add(ShotKey(str(src), str(digest), int(idx)))
@@ -618,15 +629,15 @@ class RunWriter:
                         d.resize((stop, *shape))
                         d[start:stop] = src[name][start:stop]
                     for name, (dtype, _tail) in _SHOT_COLUMNS.items():
-                        d = f["shots"][name]
+                        d = f[ROWS_GROUP][name]
                         d.resize(stop, axis=0)
                         if name in _TEXT:
-                            d[start:stop] = _encode_text(_decode_text(src["shots"][name], stop)[start:], _TEXT[name])
-                        elif name not in src["shots"]:
+                            d[start:stop] = _encode_text(_decode_text(_rows(src)[name], stop)[start:], _TEXT[name])
+                        elif name not in _rows(src):
                             # version 1 files stored no origin, versions 1-2 no frame checks
                             d[start:stop] = np.nan if name in _CHECK_COLUMNS else 0
                         else:
-                            d[start:stop] = src["shots"][name][start:stop]
+                            d[start:stop] = _rows(src)[name][start:stop]
                 g = f["failures"]
                 for name in _FAILURE_COLUMNS:
                     g[name].resize(nf, axis=0)
@@ -762,7 +773,7 @@ class RunWriter:
                     d = f[name]
                     d.resize((n + m, *held))
                     d[n:n + m] = values
-                shots = f["shots"]
+                shots = f[ROWS_GROUP]
                 for name, values in columns.items():
                     d = shots[name]
                     d.resize(n + m, axis=0)
@@ -986,7 +997,7 @@ def read_run(path, *, matrices: bool = True) -> RunData:
                              versions=range(1, RUN_FORMAT_VERSION + 1), where=f"the run file {path}",
                              error=FrameFileError, default_version=1)
         n, nf = _counts(f)
-        s = f["shots"]
+        s = _rows(f)
         wanted = set(_MATRICES) if matrices is True else set(matrices or ())
         unknown = wanted - set(_MATRICES)
         if unknown:
