@@ -16,7 +16,7 @@ problem"). :func:`check_suffix` refuses an output name the command cannot write
 The window follows the same policy with a question instead of ``--force``:
 :func:`outputs_to_replace` refuses outputs that are inputs (or folders) and returns the
 existing outputs the user must agree to replace, and :func:`describe_existing` says in a few
-words what such a file holds ("a run file with 176 shots"), for the question.
+words what such a file holds ("a run file with 176 frames"), for the question.
 """
 
 from __future__ import annotations
@@ -139,7 +139,7 @@ def existing_kind(path) -> str:
 def describe_existing(path) -> str:
     """A few words on what the existing file ``path`` holds, its size and modification time.
 
-    For example ``"run.h5: a run file with 176 shots (1.2 MB, modified 2026-12-03 13:45)"``.
+    For example ``"run.h5: a run file with 176 frames (1.2 MB, modified 2026-12-03 13:45)"``.
     Reads only the header of the file; never raises for an unreadable file.
     """
     path = Path(os.fspath(path))
