@@ -9,7 +9,7 @@ with *all* the files it is about to write:
   nothing is written;
 - an output that is an existing folder is refused the same way;
 - when some outputs exist, one question lists each of them with what it holds ("run.h5: a
-  run file with 176 shots (1.2 MB, modified ...)"); the save runs only after "Replace",
+  run file with 176 frames (1.2 MB, modified ...)"); the save runs only after "Replace",
   and "Cancel" (the default button) writes nothing;
 - otherwise the save runs at once.
 
