@@ -1309,19 +1309,28 @@ def _brightness_from(rec: Reconstructor, pooled, flags, tr, *, n_frames: int, no
     return field_
 
 
-def _distortion_from_frames(clean, geometry: LatticeGeometry, psf: PSFModel, notes: dict, *, max_frames: int = 1):
-    """Lens distortion from the first frames: (field or None, the geometry to use with it)."""
-    from latticeread.core.atoms import locate_atoms, offset_from_atoms
-    from latticeread.core.distortion import fit_distortion
+def _offsets_from_atoms(frames, geometry: LatticeGeometry, *, psf: PSFModel, atoms) -> list:
+    """Each frame's lattice offset (pixels) from its located atoms; the geometry's own offset
+    for a frame whose atoms do not give one."""
+    from latticeread.core.atoms import offset_from_atoms
 
-    frames = clean[:max_frames]
-    atoms = locate_atoms(frames, fwhm=psf.fwhm)
     offsets = []
     for f in range(len(frames)):
         try:
             offsets.append(offset_from_atoms(frames[f], geometry, fwhm=psf.fwhm, atoms=atoms.in_frame(f)).offset)
         except LatticeNotFound:
             offsets.append(geometry.offset)
+    return offsets
+
+
+def _distortion_from_frames(clean, geometry: LatticeGeometry, psf: PSFModel, notes: dict, *, max_frames: int = 1):
+    """Lens distortion from the first frames: (field or None, the geometry to use with it)."""
+    from latticeread.core.atoms import locate_atoms
+    from latticeread.core.distortion import fit_distortion
+
+    frames = clean[:max_frames]
+    atoms = locate_atoms(frames, fwhm=psf.fwhm)
+    offsets = _offsets_from_atoms(frames, geometry, psf=psf, atoms=atoms)
     try:
         fit = fit_distortion(frames, geometry, psf=psf, offsets=offsets, atoms=atoms)
     except (LatticeNotFound, np.linalg.LinAlgError) as exc:
@@ -1416,19 +1425,14 @@ def _refine_atom_geometry(clean, geometry: LatticeGeometry, *, psf: PSFModel, at
 
 def _geometry_check(clean, geometry: LatticeGeometry, psf: PSFModel, *, max_frames: int = 8, distortion=None):
     """Does the lattice explain where the single atoms of the first frames are? (None: too few atoms)."""
-    from latticeread.core.atoms import check_geometry, locate_atoms, offset_from_atoms
+    from latticeread.core.atoms import check_geometry, locate_atoms
 
     frames = clean[:max_frames]
     atoms = locate_atoms(frames, fwhm=psf.fwhm)
     if distortion is not None and distortion.applied and len(atoms):
-        atoms = dataclasses.replace(atoms, x=distortion.unplace(atoms.x, atoms.y)[0],
-                                    y=distortion.unplace(atoms.x, atoms.y)[1])
-    offsets = []
-    for f in range(len(frames)):
-        try:
-            offsets.append(offset_from_atoms(frames[f], geometry, fwhm=psf.fwhm, atoms=atoms.in_frame(f)).offset)
-        except LatticeNotFound:
-            offsets.append(geometry.offset)
+        x, y = distortion.unplace(atoms.x, atoms.y)
+        atoms = dataclasses.replace(atoms, x=x, y=y)
+    offsets = _offsets_from_atoms(frames, geometry, psf=psf, atoms=atoms)
     check = check_geometry(atoms, geometry, offsets=offsets)
     return None if not np.isfinite(check.max_deviation) else check
 
