@@ -171,39 +171,57 @@ def _background(image, block: int) -> np.ndarray:
 
 
 def _smooth(image, scale: str) -> np.ndarray:
-    """``image`` correlated with the smoothing ``G`` of :func:`_filters` (separable or by slices, fast)."""
+    """``image`` correlated with the smoothing ``G`` of :func:`_filters` over its last two axes
+    (rows, columns; a stack of windows is smoothed window by window)."""
+    lead = (0,) * (image.ndim - 2)
     if scale == "blob":
-        return ndimage.gaussian_filter(image, 1.0, mode="nearest", truncate=4.0)
+        return ndimage.gaussian_filter(image, lead + (1.0, 1.0), mode="nearest", truncate=4.0)
     if scale == "row":
-        return ndimage.uniform_filter1d(image, 3, axis=1, mode="nearest")
+        return ndimage.uniform_filter1d(image, 3, axis=-1, mode="nearest")
     if scale == "column":
-        return ndimage.uniform_filter1d(image, 3, axis=0, mode="nearest")
-    p = np.pad(image, 1, mode="edge")
+        return ndimage.uniform_filter1d(image, 3, axis=-2, mode="nearest")
+    p = np.pad(image, [(0, 0)] * len(lead) + [(1, 1), (1, 1)], mode="edge")
     if scale == "diagonal":
-        return (p[:-2, :-2] + p[1:-1, 1:-1] + p[2:, 2:]) / 3.0
+        return (p[..., :-2, :-2] + p[..., 1:-1, 1:-1] + p[..., 2:, 2:]) / 3.0
     if scale == "antidiagonal":
-        return (p[:-2, 2:] + p[1:-1, 1:-1] + p[2:, :-2]) / 3.0
+        return (p[..., :-2, 2:] + p[..., 1:-1, 1:-1] + p[..., 2:, :-2]) / 3.0
     raise ValueError(f"unknown filter {scale!r}; use one of {', '.join(SCALES)}")
+
+
+def _plane(kernel, ndim: int) -> np.ndarray:
+    """A 2-D kernel acting on the last two axes of an ``ndim``-dimensional array."""
+    return kernel.reshape((1,) * (ndim - 2) + kernel.shape)
 
 
 def _excess(image, *, ks, camera: CameraModel, block: int, scales=SCALES):
     """Largest ``(F v - k (G v - b)) / sigma`` over the filters, per pixel; and the background ``b``.
 
+    The whole-frame computation; :func:`find_artefacts` evaluates the same scores only near
+    pixels that a cheap bound (:func:`_screen`) cannot clear, and the tests compare both.
+    """
+    bg = _background(image, block)
+    return _scores(image, bg, ks=ks, camera=camera, scales=scales), bg
+
+
+def _scores(image, bg, *, ks, camera: CameraModel, scales=SCALES):
+    """The shape-test score of :func:`_excess` for a given background ``bg`` (same shape).
+
     For ``"pixel"`` the noise is exact for independent pixels; for the smoothing filters the
     variance is taken as the smoothed variance times the filter's squared norm (it varies
     slowly over the filter's few pixels). For ``"blob"`` only local maxima of the smoothed
     image count (the centres of blobs; their edges are grown afterwards), so that the
-    smoothing does not spread a detection over its neighbours.
+    smoothing does not spread a detection over its neighbours. Every output pixel depends on
+    the input within :data:`_REACH` pixels only, so a window with that margin gives the same
+    values inside as the whole frame.
     """
-    bg = _background(image, block)
-    lap = ndimage.convolve(image, _FIVE_POINT, mode="nearest")
+    lap = ndimage.convolve(image, _plane(_FIVE_POINT, image.ndim), mode="nearest")
     var = camera.photon_variance(image)
     best = None
     for scale, k in zip(scales, ks):
         g, f = _filters(scale)
         if scale == "pixel":
             score = (lap - k * (image - bg)) / np.sqrt(np.maximum(
-                (4.0 - k) ** 2 * var + ndimage.convolve(var, _NEIGHBOURS, mode="nearest"), 1e-12))
+                (4.0 - k) ** 2 * var + ndimage.convolve(var, _plane(_NEIGHBOURS, var.ndim), mode="nearest"), 1e-12))
         else:
             smooth = _smooth(image, scale)
             lap_s = _smooth(lap, scale)
@@ -211,9 +229,238 @@ def _excess(image, *, ks, camera: CameraModel, block: int, scales=SCALES):
             norm = float(np.sum((f - k * g) ** 2))
             score = (lap_s - k * (smooth - bg)) / np.sqrt(np.maximum(var_s * norm, 1e-12))
             if scale == "blob":
-                score = np.where(smooth >= ndimage.maximum_filter(smooth, size=3, mode="nearest"), score, -np.inf)
+                score = np.where(smooth >= ndimage.maximum_filter(smooth, size=(1,) * (smooth.ndim - 2) + (3, 3),
+                                                                   mode="nearest"), score, -np.inf)
         best = score if best is None else np.maximum(best, score)
-    return best, bg
+    return best
+
+
+#: Farthest input pixel (rows or columns) that one score of :func:`_scores` reads: the
+#: Laplacian (1) under the Gaussian of the blob filter (4, its ``truncate``) and the 3 x 3
+#: local-maximum test (1).
+_REACH = 6
+#: Side of the tiles (pixels) on which :func:`find_artefacts` evaluates the exact scores.
+_TILE = 16
+#: Pixels each smoothing filter reads around its centre (the footprint of ``G``).
+_FOOTPRINTS = {"blob": np.ones((9, 9), bool), "row": np.ones((1, 3), bool), "column": np.ones((3, 1), bool),
+               "diagonal": np.eye(3, dtype=bool), "antidiagonal": np.eye(3, dtype=bool)[::-1]}
+
+
+def _block_levels(image, block: int) -> np.ndarray:
+    """20th percentile of each block of ``block`` x ``block`` pixels (photons): the coarse background."""
+    h, w = image.shape
+    block = max(1, min(int(block), h, w))
+    hb, wb = h // block, w // block
+    crop = image[:hb * block, :wb * block].reshape(hb, block, wb, block).transpose(0, 2, 1, 3)
+    return np.percentile(crop.reshape(hb, wb, -1), 20, axis=2)
+
+
+def _interpolation_axis(n_out: int, n_in: int, index):
+    """Lower and upper block and weight of the upper one, for pixel ``index`` along one axis."""
+    x = np.clip((np.asarray(index) + 0.5) * (n_in / n_out) - 0.5, 0.0, n_in - 1)
+    i0 = np.floor(x).astype(np.int64)
+    return i0, np.minimum(i0 + 1, n_in - 1), x - i0
+
+
+def _interpolated(levels, shape, rows, cols) -> np.ndarray:
+    """Block levels interpolated linearly to pixels (``rows``, ``cols``: broadcastable integer
+    arrays) of a frame of ``shape``.
+
+    The same interpolation as :func:`scipy.ndimage.zoom` with ``order=1, grid_mode=True,
+    mode="nearest"`` (block centres at ``(i + 0.5) * block - 0.5``, constant beyond the outer
+    centres), written per pixel so that any window of the frame gets the same values.
+    """
+    r0, r1, fr = _interpolation_axis(shape[0], levels.shape[0], rows)
+    c0, c1, fc = _interpolation_axis(shape[1], levels.shape[1], cols)
+    top = levels[r0, c0] * (1.0 - fc) + levels[r0, c1] * fc
+    bottom = levels[r1, c0] * (1.0 - fc) + levels[r1, c1] * fc
+    return top * (1.0 - fr) + bottom * fr
+
+
+def _norm(scale: str, k: float) -> float:
+    """``sum((F - k G)^2)`` of the filter ``scale`` (the noise factor of its score)."""
+    key = (scale, float(k))
+    if key not in _NORMS:
+        g, f = _filters(scale)
+        _NORMS[key] = float(np.sum((f - k * g) ** 2))
+    return _NORMS[key]
+
+
+_NORMS: dict = {}
+
+
+def _screen(image, levels, *, ks, camera: CameraModel, n_sigma: float, scales=SCALES, strip: int = 48) -> np.ndarray:
+    """:func:`_screen_rows` over strips of ``strip`` rows (with :data:`_REACH` rows either side,
+    so that each strip's rows get the whole frame's values; small arrays stay in the cache)."""
+    h, w = image.shape
+    # the background interpolated along rows once; per strip along columns (as :func:`_interpolated`)
+    c0, c1, fc = _interpolation_axis(w, levels.shape[1], np.arange(w))
+    along = levels[:, c0] * (1.0 - fc) + levels[:, c1] * fc
+    flag = np.empty(image.shape, bool)
+    for r0 in range(0, h, strip):
+        r1 = min(h, r0 + strip)
+        w0, w1 = max(0, r0 - _REACH), min(h, r1 + _REACH)
+        i0, i1, fr = _interpolation_axis(h, levels.shape[0], np.arange(w0, w1))
+        bg = along[i0] * (1.0 - fr)[:, None] + along[i1] * fr[:, None]
+        part = _screen_rows(image[w0:w1], bg, ks=ks, camera=camera, n_sigma=n_sigma, scales=scales,
+                            first=w0 == 0, last=w1 == h)
+        flag[r0:r1] = part[r0 - w0:r1 - w0]
+    return flag
+
+
+def _edges_smoothed(out, lap, edge_rows) -> None:
+    """Put the blob smoothing of ``lap`` into ``out`` within :data:`_REACH` pixels of the frame's
+    edges (left and right always; top and bottom where ``edge_rows`` says the strip holds them)."""
+    h, w = lap.shape
+    d = 2 * _REACH
+    blur = lambda a: ndimage.gaussian_filter(a, 1.0, mode="nearest", truncate=4.0)  # noqa: E731
+    out[:, :_REACH] = blur(lap[:, :d])[:, :_REACH]
+    out[:, w - _REACH:] = blur(lap[:, w - d:])[:, d - _REACH:]
+    if edge_rows[0]:
+        out[:_REACH] = blur(lap[:d])[:_REACH]
+    if edge_rows[1]:
+        out[h - _REACH:] = blur(lap[h - d:])[d - _REACH:]
+
+
+def _screen_rows(image, top, *, ks, camera: CameraModel, n_sigma: float, scales=SCALES, first: bool = True,
+                 last: bool = True) -> np.ndarray:
+    """Pixels whose score in :func:`_scores` may exceed ``n_sigma``: a bound that misses none.
+
+    Each score is ``(G L - k G v + k b) / sqrt(norm G var)`` (``G`` the smoothing, a weighted
+    mean; ``L`` the Laplacian; ``top`` the background ``b`` of these rows, up to rounding), and
+    the camera's variance is ``a max(v, 0) + c``, so
+    ``G var >= a max(G v, 0) + c`` (Jensen: ``max(v, 0)`` is convex). The bound replaces
+    ``G var`` by this; it needs ``k >= 0``. For the single-pixel score the four
+    neighbours' variances are bounded the same way by their sum ``4 v - L`` (and the pixel's
+    own variance is written as ``a max(v, 0) + c``). The blob score's local-maximum condition
+    is the same test on the same smoothed values. The level is lowered by a
+    millionth against rounding.
+    """
+    c = float(camera.photon_variance(np.zeros(1))[0])
+    a = float(camera.photon_variance(np.ones(1))[0]) - c
+    t2 = (n_sigma * (1.0 - 1e-6)) ** 2
+    h, w = image.shape
+    vp = np.pad(image, 1, mode="edge")
+    inner = (slice(1, h + 1), slice(1, w + 1))
+    lap = 4.0 * image - vp[:-2, 1:-1] - vp[2:, 1:-1] - vp[1:-1, :-2] - vp[1:-1, 2:]
+    lp = np.pad(lap, 1, mode="edge")
+    flag = np.zeros(image.shape, bool)
+    edge_rows = (first, last)
+    steps = {"row": (0, 1), "column": (1, 0), "diagonal": (1, 1), "antidiagonal": (1, -1)}
+    for scale, k in zip(scales, ks):
+        q = t2 * _norm(scale, k)
+        if scale == "pixel":
+            num = lap - k * image
+            num += k * top
+            var = np.maximum(image, 0.0) * (a * (4.0 - k) ** 2)
+            var += np.maximum(4.0 * image - lap, 0.0) * a
+            var += ((4.0 - k) ** 2 + 4.0) * c
+            np.maximum(num, 0.0, out=num)
+            num *= num
+            flag |= num > t2 * var
+            continue
+        if scale == "blob":
+            u = ndimage.gaussian_filter(image, 1.0, mode="nearest", truncate=4.0)  # as in _smooth: the same values
+            peak = u >= ndimage.maximum_filter(u, size=3, mode="nearest")
+            # G L = L G v away from the edges (convolutions commute); within _REACH pixels of
+            # the frame's edges the extended frames differ and G L is smoothed directly
+            up = np.pad(u, 1, mode="edge")
+            num = 4.0 * u - up[:-2, 1:-1] - up[2:, 1:-1] - up[1:-1, :-2] - up[1:-1, 2:]
+            _edges_smoothed(num, lap, edge_rows)
+            num -= k * u
+            num += k * top
+            np.maximum(u, 0.0, out=u)
+            u *= a * q
+            u += c * q
+            np.maximum(num, 0.0, out=num)
+            num *= num
+            flag |= (num > u) & peak
+            continue
+        # three pixels along a line: sums (three times the means) of lap - k v and of v
+        dr, dc = steps[scale]
+        ends = [(slice(1 + sr, h + 1 + sr), slice(1 + sc, w + 1 + sc)) for sr, sc in ((-dr, -dc), (dr, dc))]
+        e = lp - k * vp
+        num = e[inner] + e[ends[0]] + e[ends[1]]
+        u = vp[inner] + vp[ends[0]] + vp[ends[1]]
+        num += (3.0 * k) * top
+        np.maximum(u, 0.0, out=u)
+        u *= 3.0 * a * q
+        u += 9.0 * c * q
+        np.maximum(num, 0.0, out=num)
+        num *= num
+        flag |= num > u
+    return flag
+
+
+def _hysteresis(score, low: float, high: float) -> np.ndarray:
+    """Pixels of 4-connected groups above ``low`` holding a pixel above ``high`` (as
+    :func:`skimage.filters.apply_hysteresis_threshold`, which the whole-frame form uses)."""
+    labels, n = ndimage.label(score > min(low, high))
+    keep = np.zeros(n + 1, bool)
+    keep[labels[score > high]] = True
+    keep[0] = False
+    return keep[labels]
+
+
+def _excess_reference(image, *, ks, camera: CameraModel, block: int, n_sigma: float, grow_sigma: float,
+                      finite) -> tuple[np.ndarray, np.ndarray]:
+    """The whole-frame form of :func:`_excess_windows` (every score on every pixel; slow, for tests)."""
+    score, _ = _excess(image, ks=ks, camera=camera, block=block)
+    return apply_hysteresis_threshold(np.where(finite, score, -np.inf), grow_sigma, n_sigma), _block_levels(image, block)
+
+
+def _excess_windows(image, *, ks, camera: CameraModel, block: int, n_sigma: float, grow_sigma: float,
+                    finite) -> tuple[np.ndarray, np.ndarray]:
+    """Hysteresis mask of :func:`_excess` (``grow_sigma``, ``n_sigma``), the exact scores
+    computed only on tiles near screened pixels; and the block levels of the background.
+
+    Tiles are added where a hit's connected pixels reach unevaluated tiles, until every hit
+    is closed, so the mask equals the whole-frame one.
+    """
+    h, w = image.shape
+    levels = _block_levels(image, block)
+    if min(ks) < 0:  # the screen's bound needs k >= 0 (a PSF sharper than a pixel): whole frame
+        bg = _interpolated(levels, image.shape, np.arange(h)[:, None], np.arange(w)[None, :])
+        score = _scores(image, bg, ks=ks, camera=camera)
+        return apply_hysteresis_threshold(np.where(finite, score, -np.inf), grow_sigma, n_sigma), levels
+    side = _TILE + 2 * _REACH
+    if h < side or w < side:  # too small for windows: whole frame
+        bg = _interpolated(levels, image.shape, np.arange(h)[:, None], np.arange(w)[None, :])
+        score = _scores(image, bg, ks=ks, camera=camera)
+        return apply_hysteresis_threshold(np.where(finite, score, -np.inf), grow_sigma, n_sigma), levels
+    flag = _screen(image, levels, ks=ks, camera=camera, n_sigma=n_sigma) & finite
+    th, tw = -(-h // _TILE), -(-w // _TILE)
+    todo = np.zeros((th, tw), bool)
+    r, c = np.nonzero(flag)
+    todo[r // _TILE, c // _TILE] = True
+    done = np.zeros_like(todo)
+    score = np.full(image.shape, -np.inf)
+    core = np.zeros(image.shape, bool)
+    span = np.arange(side)
+    while todo.any():
+        ti, tj = np.nonzero(todo)
+        # one window of side x side pixels per tile, inside the frame, reaching _REACH beyond the tile
+        wr = np.clip(ti * _TILE - _REACH, 0, h - side)
+        wc = np.clip(tj * _TILE - _REACH, 0, w - side)
+        rows = (wr[:, None] + span)[:, :, None]
+        cols = (wc[:, None] + span)[:, None, :]
+        s = _scores(image[rows, cols], _interpolated(levels, image.shape, rows, cols), ks=ks, camera=camera)
+        for n in range(len(ti)):
+            r0, c0 = ti[n] * _TILE, tj[n] * _TILE
+            r1, c1 = min(h, r0 + _TILE), min(w, c0 + _TILE)
+            score[r0:r1, c0:c1] = s[n, r0 - wr[n]:r1 - wr[n], c0 - wc[n]:c1 - wc[n]]
+        score[~finite] = -np.inf
+        done |= todo
+        core = _hysteresis(score, grow_sigma, n_sigma)
+        # hits whose pixels touch tiles not evaluated yet (4-neighbours): evaluate those too
+        r, c = np.nonzero(core)
+        todo = np.zeros_like(done)
+        for dr, dc in ((-1, 0), (1, 0), (0, -1), (0, 1)):
+            rr, cc = r + dr, c + dc
+            inside = (rr >= 0) & (rr < h) & (cc >= 0) & (cc < w)
+            todo[rr[inside] // _TILE, cc[inside] // _TILE] = True
+        todo &= ~done
+    return core, levels
 
 
 def _default_psf() -> PSFModel:
@@ -281,10 +528,10 @@ def find_artefacts(image, *, psf: PSFModel | None = None, camera: CameraModel | 
     work = image if finite.all() else np.where(finite, image, np.nanmedian(image) if finite.any() else 0.0)
     if known is not None and known.any() and not known.all():
         work = fill_pixels(work, known)  # known bad pixels must not make their neighbours fail
-    score, bg = _excess(work, ks=ks, camera=camera, block=block)
     # hysteresis: a hit is a group of pixels failing the test at ``grow_sigma`` with at least
     # one failing it at ``n_sigma`` (faint streaks: every pixel a little too sharp)
-    core = apply_hysteresis_threshold(np.where(finite, score, -np.inf), grow_sigma, n_sigma)
+    core, levels = _excess_windows(work, ks=ks, camera=camera, block=block, n_sigma=n_sigma,
+                                   grow_sigma=grow_sigma, finite=finite)
     if known is not None:  # known bad pixels are single pixels: not grown
         core &= ~known
         if not core.any():
@@ -299,7 +546,8 @@ def find_artefacts(image, *, psf: PSFModel | None = None, camera: CameraModel | 
     n_hits = n_all
     if known is not None and known.any():  # hits that are not (only) known bad pixels
         n_hits = int(np.count_nonzero(ndimage.maximum(core & ~known, labels, np.arange(1, n_all + 1))))
-    charge = float(np.sum((work - bg)[mask]))
+    rows, cols = np.nonzero(mask)
+    charge = float(np.sum(work[rows, cols] - _interpolated(levels, work.shape, rows, cols)))
     return ArtefactResult(mask=mask, n_hits=int(n_hits), n_pixels=int(mask.sum()), charge=charge)
 
 
