@@ -4,7 +4,8 @@
 clear; ``_excess_reference`` is the whole-frame computation it replaced (kept for the tests).
 For simulated frames (atoms in a disk, cosmic-ray hits, hot pixels, sCMOS noise) the bench
 prints the CPU milliseconds per frame of both, whether their masks agree, how many pixels
-the screen passed on, and the machine's load beside every number.
+the screen passed on, and the machine's load beside every number; and the cost of the frame
+check's whole-frame part (:func:`latticeread.core.frame_check.outside_light`).
 
 Run by hand, one benchmark at a time (numbers vary with the load)::
 
@@ -22,6 +23,7 @@ import numpy as np
 
 from latticeread.core import artefacts
 from latticeread.core.camera import CameraModel
+from latticeread.core.frame_check import outside_light
 from latticeread.core.geometry import LatticeGeometry
 from latticeread.core.psf import airy_psf
 from latticeread.core.simulate import simulate_frames
@@ -76,6 +78,10 @@ def main() -> None:
                                               n_sigma=5.5).sum())
             hits += artefacts.find_artefacts(frame, camera=CAMERA, ks=ks).n_hits
         total = cpu_ms(lambda: [artefacts.find_artefacts(f, camera=CAMERA, ks=ks) for f in stack], 1) / len(stack)
+        crop = (slice(size // 4, 3 * size // 4), slice(size // 4, 3 * size // 4))
+        outside = cpu_ms(lambda: [outside_light(f, crop=crop, background=1.5, camera=CAMERA) for f in stack],
+                         1) / len(stack)
+        print(f"{size}x{size}: frame check's light outside the region {outside:.1f} ms/frame; {load()}")
         print(f"{size}x{size}: shape test whole frame {np.median(whole):7.1f} ms/frame, screened "
               f"{np.median(fast):7.1f} ms/frame (x{np.median(whole) / np.median(fast):.1f}); find_artefacts "
               f"{total:.1f} ms/frame; masks identical: {same}; {screened / len(stack):.0f} pixels screened "

@@ -24,6 +24,12 @@ pixels FWHM a small blob cannot be told from an atom by shape alone.
 This is the idea of the Laplacian cosmic-ray detector of van Dokkum (PASP 113, 1420 (2001);
 from memory), with the fine-structure image replaced by the PSF's own bound ``k``.
 
+Only a few pixels of a frame can fail the test, so the scores are not computed everywhere: a
+bound on every filter's score, a few full-frame passes (``_screen``), clears almost every
+pixel, and the exact scores and the hysteresis are evaluated on tiles of 16 x 16 pixels near
+the rest, with more tiles added while a hit reaches unevaluated ones. The masks are the same
+as from the whole-frame computation (``_excess_reference``, compared in the tests).
+
 Detected pixels are grown into their surroundings (the faint edge of a blob or streak:
 connected pixels more than ``grow_sigma`` standard deviations above the local median) and
 then left out of the site fit; the sites they touch are flagged ARTEFACT

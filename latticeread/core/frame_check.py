@@ -112,14 +112,17 @@ def outside_light(photons, *, crop, background: float, camera: CameraModel | Non
     clean = np.where(bad, ref, photons)[:h, :w]
     binned = clean.reshape(h // 2, 2, w // 2, 2).mean(axis=(1, 3))
     smooth = ndimage.uniform_filter(binned, 3, mode="nearest")
+    # 2 x 2 bins holding a pixel of the region: those of its rows times those of its columns
+    # (the region is a rectangle)
+    in_bins = np.outer(inside[:h, :w].any(axis=1).reshape(h // 2, 2).any(axis=1),
+                       inside[:h, :w].any(axis=0).reshape(w // 2, 2).any(axis=1))
     if outside_pixels.size:  # the smoothed median is nearly unbiased
-        out_bins = ~inside[:h, :w].reshape(h // 2, 2, w // 2, 2).any(axis=(1, 3))
+        out_bins = ~in_bins
         if out_bins.any():
             ref = min(float(background), float(np.median(smooth[out_bins])))
     sigma = np.sqrt(camera.photon_variance(np.array([max(ref, 0.0)]))[0] / 36.0)
     excess = smooth - ref
     significant = excess > 3 * max(sigma, 1e-9)
-    in_bins = inside[:h, :w].reshape(h // 2, 2, w // 2, 2).any(axis=(1, 3))
     out = float(np.sum(excess[significant & ~in_bins]))
     total_in = float(np.sum(excess[significant & in_bins]))
     return out / (out + total_in) if out + total_in > 0 else 0.0
