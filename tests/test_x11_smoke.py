@@ -97,8 +97,9 @@ def test_real_window_fits_the_screen_and_takes_real_input(xserver, tmp_path):
         _xdotool(xserver, "windowfocus", "--sync", window_id)
         _xdotool(xserver, "key", "ctrl+r")
         s = _wait(state, "all frames reconstructed", lambda s: s["done"] == 12 and not s["busy"], timeout=300)
-        # a user looks at the result before dragging: let the views that follow a reconstruction
-        # (histogram range, pooled counts) settle, then read where the line is
+        # a user looks at the result before dragging: the histogram's range follows the pooled
+        # amplitudes of all frames a moment after the last frame is done, which moves the line on
+        # the screen (the same threshold drew at x 1080, then 1144); read where it is once settled
         time.sleep(2.0)
         s = _wait(state, "the window idle", lambda s: not s["busy"] and s["line"])
         before = s["threshold"]  # the threshold fixed in the demo's calibration file
