@@ -355,19 +355,20 @@ def _screen_rows(image, top, *, ks, camera: CameraModel, n_sigma: float, scales=
     steps = {"row": (0, 1), "column": (1, 0), "diagonal": (1, 1), "antidiagonal": (1, -1)}
     for scale, k in zip(scales, ks):
         q = t2 * _norm(scale, k)
+        # each score needs a numerator above the level times the noise at zero photons (the
+        # variance is at least c); the pixels that pass get the full bound
         if scale == "pixel":
             num = lap - k * image
             num += k * top
-            var = np.maximum(image, 0.0) * (a * (4.0 - k) ** 2)
-            var += np.maximum(4.0 * image - lap, 0.0) * a
+            r, col = np.nonzero(num > np.sqrt(t2 * ((4.0 - k) ** 2 + 4.0) * c) * (1.0 - 1e-9))
+            v, n = image[r, col], num[r, col]
+            var = a * (4.0 - k) ** 2 * np.maximum(v, 0.0) + a * np.maximum(4.0 * v - lap[r, col], 0.0)
             var += ((4.0 - k) ** 2 + 4.0) * c
-            np.maximum(num, 0.0, out=num)
-            num *= num
-            flag |= num > t2 * var
+            keep = n * n > t2 * var
+            flag[r[keep], col[keep]] = True
             continue
         if scale == "blob":
             u = ndimage.gaussian_filter(image, 1.0, mode="nearest", truncate=4.0)  # as in _smooth: the same values
-            peak = u >= ndimage.maximum_filter(u, size=3, mode="nearest")
             # G L = L G v away from the edges (convolutions commute); within _REACH pixels of
             # the frame's edges the extended frames differ and G L is smoothed directly
             up = np.pad(u, 1, mode="edge")
@@ -375,26 +376,26 @@ def _screen_rows(image, top, *, ks, camera: CameraModel, n_sigma: float, scales=
             _edges_smoothed(num, lap, edge_rows)
             num -= k * u
             num += k * top
-            np.maximum(u, 0.0, out=u)
-            u *= a * q
-            u += c * q
-            np.maximum(num, 0.0, out=num)
-            num *= num
-            flag |= (num > u) & peak
+            r, col = np.nonzero(num > np.sqrt(c * q) * (1.0 - 1e-9))
+            if r.size:
+                near = np.pad(u, 1, mode="edge")
+                local = np.max([near[r + 1 + dr, col + 1 + dc] for dr in (-1, 0, 1) for dc in (-1, 0, 1)], axis=0)
+                s_u, n = u[r, col], num[r, col]
+                keep = (s_u >= local) & (n * n > (a * q) * np.maximum(s_u, 0.0) + c * q)
+                flag[r[keep], col[keep]] = True
             continue
         # three pixels along a line: sums (three times the means) of lap - k v and of v
         dr, dc = steps[scale]
         ends = [(slice(1 + sr, h + 1 + sr), slice(1 + sc, w + 1 + sc)) for sr, sc in ((-dr, -dc), (dr, dc))]
         e = lp - k * vp
         num = e[inner] + e[ends[0]] + e[ends[1]]
-        u = vp[inner] + vp[ends[0]] + vp[ends[1]]
         num += (3.0 * k) * top
-        np.maximum(u, 0.0, out=u)
-        u *= 3.0 * a * q
-        u += 9.0 * c * q
-        np.maximum(num, 0.0, out=num)
-        num *= num
-        flag |= num > u
+        r, col = np.nonzero(num > np.sqrt(9.0 * c * q) * (1.0 - 1e-9))
+        if r.size:
+            sv = vp[r + 1, col + 1] + vp[r + 1 - dr, col + 1 - dc] + vp[r + 1 + dr, col + 1 + dc]
+            n = num[r, col]
+            keep = n * n > (3.0 * a * q) * np.maximum(sv, 0.0) + 9.0 * c * q
+            flag[r[keep], col[keep]] = True
     return flag
 
 
