@@ -65,6 +65,7 @@ def cases():
     edge = _edge_hits()
     out.append((edge, SCMOS, bounds(PSF)))
     out.append((edge, SCMOS, bounds(gaussian_psf(fwhm=artefacts.SHARPEST_FWHM))))  # the first-pass default
+    out.append((edge, CameraModel(), bounds(PSF)))  # photon noise only: no variance at zero photons
     return out
 
 
