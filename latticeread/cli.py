@@ -120,13 +120,18 @@ def _plain_warnings(command: str, debug: bool):
         yield
         return
 
-    def show(message, category, filename, lineno, file=None, line=None):
-        print(f"latticeread {command}: warning: {message}", file=sys.stderr)
+    def one_line(message, category, filename, lineno, line=None):
+        return f"latticeread {command}: warning: {message}\n"
 
-    with warnings.catch_warnings():
-        warnings.showwarning = show
-        warnings.filterwarnings("ignore", category=RuntimeWarning)
-        yield
+    # the format, not the display: a caller that records warnings (pytest.warns) still gets them
+    previous = warnings.formatwarning
+    warnings.formatwarning = one_line
+    try:
+        with warnings.catch_warnings():
+            warnings.filterwarnings("ignore", category=RuntimeWarning)
+            yield
+    finally:
+        warnings.formatwarning = previous
 
 
 def _end_interrupted_program(code: int) -> None:
