@@ -99,6 +99,9 @@ class ReconstructBatch:
         Fitted background per frame, photons per pixel.
     warnings : tuple of tuple of str
         Per-frame warnings of the extraction (poor phase fit, saturated pixels...).
+    checks : tuple of FrameCheck or None
+        Per-frame check of how well the site model explains the frame
+        (:mod:`latticeread.core.frame_check`); empty when not computed.
     """
 
     generation: int
@@ -108,6 +111,7 @@ class ReconstructBatch:
     flags: np.ndarray
     backgrounds: np.ndarray
     warnings: tuple
+    checks: tuple = ()
 
 
 @dataclasses.dataclass(frozen=True)
@@ -195,6 +199,7 @@ class Session:
         self._flags: np.ndarray | None = None        # (n_frames, N) uint8
         self._backgrounds: np.ndarray | None = None  # (n_frames,) photons per pixel
         self._warnings: list = []                    # per-frame extraction warnings
+        self._checks: list = []                      # per-frame model checks (FrameCheck or None)
         self._geometries: list = []
         self._done: np.ndarray = np.zeros(0, dtype=bool)
         self._results: dict[int, Any] = {}           # classified FrameResult cache
@@ -681,6 +686,7 @@ class Session:
         self._flags = None
         self._backgrounds = None
         self._warnings = [()] * n
+        self._checks = [None] * n
         self._geometries = [None] * n
         self._done = np.zeros(n, dtype=bool)
         self._results.clear()
@@ -777,9 +783,10 @@ class Session:
                 if should_stop():
                     return
                 chunk = indices[start:start + batch_size]
-                geoms, amps, flags, backs, warns = [], [], [], [], []
+                geoms, amps, flags, backs, warns, checks = [], [], [], [], [], []
                 for i in chunk:
                     g, amp, w = rec.extract_full(frame(i), where=f"frame {i} of {name}")
+                    checks.append(rec.last_check)
                     geoms.append(g)
                     amps.append(np.asarray(amp.amplitudes, dtype=float))
                     flags.append(np.asarray(amp.flags, dtype=np.uint8))
@@ -789,7 +796,8 @@ class Session:
                         break
                 done = len(amps)
                 yield ReconstructBatch(generation, tuple(chunk[:done]), tuple(geoms), np.stack(amps),
-                                       np.stack(flags), np.asarray(backs, dtype=float), tuple(warns))
+                                       np.stack(flags), np.asarray(backs, dtype=float), tuple(warns),
+                                       tuple(checks[:done]))
 
         job.n_frames = len(indices)  # type: ignore[attr-defined]
         return job
@@ -820,7 +828,8 @@ class Session:
                     yield ReconstructBatch(
                         generation, tuple(r[0] for r in rows), tuple(r[1] for r in rows),
                         np.stack([r[2] for r in rows]), np.stack([r[3] for r in rows]),
-                        np.asarray([r[4] for r in rows], dtype=float), tuple(r[5] for r in rows))
+                        np.asarray([r[4] for r in rows], dtype=float), tuple(r[5] for r in rows),
+                        tuple(r[6] for r in rows))
         finally:
             pool.close(cancel=True)
 
@@ -835,6 +844,7 @@ class Session:
             self._flags = np.zeros((self.n_frames, n_sites), dtype=np.uint8)
             self._backgrounds = np.full(self.n_frames, np.nan)
             self._warnings = [()] * self.n_frames
+            self._checks = [None] * self.n_frames
         if batch.amplitudes.shape[1] != self._amplitudes.shape[1]:
             raise LatticeReadError(
                 f"frame {batch.indices[0]} gave {batch.amplitudes.shape[1]} sites but earlier frames gave "
@@ -846,9 +856,11 @@ class Session:
         self._amplitudes[idx] = batch.amplitudes
         self._flags[idx] = batch.flags
         self._backgrounds[idx] = batch.backgrounds
-        for i, g, w in zip(idx, batch.geometries, batch.warnings):
+        checks = batch.checks or (None,) * len(idx)
+        for i, g, w, c in zip(idx, batch.geometries, batch.warnings, checks):
             self._geometries[i] = g
             self._warnings[i] = tuple(w)
+            self._checks[i] = c
             self._results.pop(i, None)
             self._frame_fits.pop(i, None)
         self._done[idx] = True
@@ -998,10 +1010,20 @@ class Session:
             frame_index=i, geometry=self._geometries[i], sites=self._frame_sites(i), amplitudes=amps,
             occupied=np.zeros(n, np.uint8), p_occupied=np.zeros(n), flags=self._flags[i],
             background=float(self._backgrounds[i]), method=self.reconstructor().method,
-            warnings=tuple(self._warnings[i]), excluded=self.reconstructor().excluded_at(self._geometries[i].offset))
+            warnings=tuple(self._warnings[i]), excluded=self.reconstructor().excluded_at(self._geometries[i].offset),
+            check=self.frame_check(i))
         res = pipeline.reclassify(bare, thr)
         self._results[i] = res
         return res
+
+    def frame_check(self, index: int | None = None):
+        """How well the site model explains a reconstructed frame
+        (:class:`~latticeread.core.frame_check.FrameCheck`), or None (not reconstructed, or a
+        frame restored from a saved session, which keeps the check's warnings only)."""
+        i = self._index if index is None else int(index)
+        if not 0 <= i < len(self._checks):
+            return None
+        return self._checks[i]
 
     def _frame_sites(self, i: int):
         """Site grid of frame ``i`` with positions at that frame's geometry."""
@@ -1620,6 +1642,7 @@ class Session:
         self._done = done
         self._backgrounds = res.background
         self._warnings = [tuple(w) for w in res.frame_warnings] or [()] * self.n_frames
+        self._checks = [None] * self.n_frames  # a saved session keeps the warnings, not the numbers
         self._geometries = [geom.with_offset(res.offset[i]) if done[i] else None for i in range(self.n_frames)]
         self.amplitudes_changed.emit(tuple(int(i) for i in np.flatnonzero(done)))
         self._refresh_threshold_result()

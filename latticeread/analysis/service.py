@@ -367,12 +367,13 @@ class FrameAnalyser:
         -------
         tuple
             ``(index, geometry, amplitudes (photons), flags, background (photons/pixel),
-            warnings)``.
+            warnings, frame check)``; the check is a
+            :class:`~latticeread.core.frame_check.FrameCheck` or None.
         """
         with self._blas.limit(limits=1, user_api="blas"):
             g, amp, w = self.reconstructor.extract_full(image, where=where)
         return (int(index), g, np.asarray(amp.amplitudes, dtype=float), np.asarray(amp.flags, dtype=np.uint8),
-                float(np.mean(amp.background)), tuple(str(x) for x in w))
+                float(np.mean(amp.background)), tuple(str(x) for x in w), self.reconstructor.last_check)
 
     def close(self) -> None:
         while self._stacks:

@@ -27,7 +27,7 @@ from scipy import ndimage
 
 from latticeread.core.camera import CameraModel
 
-__all__ = ["FrameCheck", "check_frame", "OUTSIDE_WARN", "OUTSIDE_REFUSE", "RESIDUAL_WARN", "EXPLAINED_WARN",
+__all__ = ["FrameCheck", "check_frame", "limits_text", "OUTSIDE_WARN", "OUTSIDE_REFUSE", "RESIDUAL_WARN", "EXPLAINED_WARN",
            "camera_is_described", "amplitude_unit"]
 
 #: Share of the light outside the analysed region above which a frame is flagged.
@@ -47,6 +47,14 @@ _BOX = 8  # half-size of the sampled boxes, pixels
 def camera_is_described(camera: CameraModel) -> bool:
     """True when counts are converted to photons by a camera description (not 1 count = 1 photon)."""
     return camera != CameraModel()
+
+
+def limits_text() -> str:
+    """What the numbers of :meth:`FrameCheck.describe` mean and when a frame is warned about."""
+    return (f"outside: share of the light above background outside the analysed region (warning above "
+            f"{100 * OUTSIDE_WARN:.0f} %); residual: the image model's residual over the camera's expected noise "
+            f"(1 = as expected; warning above {RESIDUAL_WARN:g}); explains: share of the bright light the site "
+            f"model accounts for (warning below {100 * EXPLAINED_WARN:.0f} %)")
 
 
 def amplitude_unit(camera: CameraModel) -> str:
@@ -77,6 +85,16 @@ class FrameCheck:
     zone_ratios: np.ndarray
     explained_fraction: float
     warnings: tuple[str, ...] = ()
+
+    def describe(self) -> str:
+        """One short line for the window: the three numbers (their warning levels are in
+        :func:`limits_text`)."""
+        parts = [f"outside {100 * self.outside_fraction:.0f} %"]
+        parts.append(f"residual {self.residual_ratio:.2f}× noise" if np.isfinite(self.residual_ratio)
+                     else "residual not compared (no camera description)")
+        if np.isfinite(self.explained_fraction):
+            parts.append(f"explains {100 * self.explained_fraction:.0f} %")
+        return f"{WARNING_PREFIX}: " + " · ".join(parts)
 
     def to_dict(self) -> dict:
         return {"outside_fraction": self.outside_fraction, "residual_ratio": self.residual_ratio,

@@ -876,7 +876,7 @@ class MainWindow(QtWidgets.QMainWindow):
             self.image_pane.set_site_states(res.occupied, res.p_occupied, res.amplitudes)
             sites = res.sites
             self.occupation_view.set_current(res.occupation_matrix(fill=255), frame_index=s.index,
-                                             row_min=sites.row_min, col_min=sites.col_min)
+                                             row_min=sites.row_min, col_min=sites.col_min, check=res.check)
         mean = s.mean_occupation()
         if mean is None:
             self.occupation_view.set_mean(None)

@@ -78,8 +78,10 @@ class OccupationView(QtWidgets.QWidget):
         layout.addWidget(self.summary)
         self.graphics.scene().sigMouseMoved.connect(self._mouse_moved)
 
-    def set_current(self, matrix, *, frame_index: int = 0, row_min: int = 0, col_min: int = 0) -> None:
-        """Show the binary occupation matrix of one frame (255 = outside the region)."""
+    def set_current(self, matrix, *, frame_index: int = 0, row_min: int = 0, col_min: int = 0,
+                    check=None) -> None:
+        """Show the binary occupation matrix of one frame (255 = outside the region), and below
+        it the frame's model check (:class:`~latticeread.core.frame_check.FrameCheck`) if given."""
         self._row_min, self._col_min = int(row_min), int(col_min)
         if matrix is None:
             self._current = None
@@ -104,8 +106,13 @@ class OccupationView(QtWidgets.QWidget):
         if title != self._current_title:
             self._current_title = title
             self.current_plot.setTitle(title)
-        self.summary.setText(f"frame {frame_index}: {atoms} atoms on {inside} sites "
-                             f"(filling {filling:.3f})")
+        text = f"frame {frame_index}: {atoms} atoms on {inside} sites (filling {filling:.3f})"
+        if check is not None:
+            from latticeread.core.frame_check import limits_text
+
+            text += "\n" + check.describe()
+            self.summary.setToolTip(limits_text())
+        self.summary.setText(text)
 
     @property
     def has_current(self) -> bool:
