@@ -23,7 +23,7 @@ from latticeread.core.lattice import estimate_lattice, offset_error
 from latticeread.core.lattice_model import lattice_from_prior, refine_lattice_model
 from latticeread.core.psf import airy_psf, gaussian_psf
 from latticeread.core.simulate import simulate_frames
-from latticeread.errors import FrameError, LatticeNotFound, LatticeReadWarning
+from latticeread.errors import FrameError, LatticeReadWarning
 
 SPACING = 9.8
 
@@ -71,32 +71,6 @@ def test_model_fit_from_fourier_start_meets_issue_targets(kind, ratio, seed):
     assert phase < 0.01
     assert fitted.quality.n_sites_used > 300  # ~0.3 x 2700 sites hold an atom
     assert 0 < fitted.quality.residual < 0.2  # 1-sigma position of the outermost site, pixels
-
-
-def test_prior_path_below_the_optical_cut_off():
-    """Spacing 0.8 FWHM (Airy): no Fourier peak, so start from a prior 1 % / 10 mrad off.
-
-    The slowest test here (about a minute of CPU): bench/bench_lattice_model.py has the numbers
-    over 4 seeds (largest spacing error 3.6e-4, angle 0.48 mrad; 1.1e-4 with 4 frames together).
-    """
-    image, truth, psf = _frame("airy", 0.8, 3)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", LatticeReadWarning)
-        with pytest.raises(LatticeNotFound):
-            estimate_lattice(image)
-    angle_a2 = truth.angles[1]
-    fitted = lattice_from_prior(image, psf=psf, spacing=1.01 * np.array(truth.spacings), angle=angle_a2 + 0.01,
-                                angle_between=truth.angles[0] - angle_a2)
-    spacing, angle, phase = _errors(fitted, truth)
-    # At 0.8 FWHM one 600-photon frame does not hold enough information for 2e-4 (not even at
-    # 512x512): the fit's own 1-sigma position error of the outermost site (quality.residual)
-    # over its distance from the centre (~36 sites of 9.8 px, about 2.5e-4) is the relative
-    # spacing error it can reach. Check against that, and the angle and phase targets.
-    extent = 36 * SPACING
-    assert spacing < max(2e-4, 2.5 * fitted.quality.residual / extent)
-    assert spacing < 5e-4
-    assert angle < 0.5e-3
-    assert phase < 0.01
 
 
 def test_refuses_a_four_dimensional_array():
