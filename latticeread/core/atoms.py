@@ -243,11 +243,7 @@ def locate_atoms(image_or_stack, *, fwhm: float, detection_sigma: float = DETECT
     ValueError
         Non-positive ``fwhm``.
     """
-    if not (np.isfinite(fwhm) and fwhm > 0):
-        raise ValueError(f"fwhm must be a positive number of pixels, got {fwhm!r}")
-    data = _as_stack(image_or_stack)
-    s0 = float(fwhm) * _FWHM_TO_SIGMA
-    radius = max(2, int(np.ceil(0.8 * fwhm)))
+    data, s0, radius = _spot_scales(image_or_stack, fwhm)
     block = max(16, int(8 * fwhm))
     parts = []
     for f, frame in enumerate(data):
@@ -266,13 +262,27 @@ def locate_atoms(image_or_stack, *, fwhm: float, detection_sigma: float = DETECT
             continue
         x, y, photons, width, sigma, ok = _fit_spots(clean, py, px, width0=s0, radius=radius)
         parts.append((x[ok], y[ok], photons[ok], width[ok], sigma[ok], np.full(int(ok.sum()), f)))
+    return _located(parts, n_frames=len(data), s0=s0, fwhm=fwhm)
+
+
+def _spot_scales(image_or_stack, fwhm: float):
+    """The frames as a stack, the PSF's Gaussian width (pixels) and the spot-fit radius (pixels)."""
+    if not (np.isfinite(fwhm) and fwhm > 0):
+        raise ValueError(f"fwhm must be a positive number of pixels, got {fwhm!r}")
+    data = _as_stack(image_or_stack)
+    return data, float(fwhm) * _FWHM_TO_SIGMA, max(2, int(np.ceil(0.8 * fwhm)))
+
+
+def _located(parts: list, *, n_frames: int, s0: float, fwhm: float) -> LocatedAtoms:
+    """Spots fitted frame by frame (``(x, y, photons, width, sigma, frame)`` per frame) as one
+    :class:`LocatedAtoms`, with the single-atom tests applied."""
     if not parts:
         empty = np.zeros(0)
-        return LocatedAtoms(empty, empty, empty, empty, empty, np.zeros(0, int), np.zeros(0, bool), len(data))
+        return LocatedAtoms(empty, empty, empty, empty, empty, np.zeros(0, int), np.zeros(0, bool), n_frames)
     x, y, photons, width, sigma, frame = (np.concatenate(v) for v in zip(*parts))
     single = _single_spots(x, y, photons, width, frame, s0=s0, fwhm=fwhm)
     return LocatedAtoms(x=x, y=y, photons=photons, width=width, sigma=sigma, frame=frame.astype(int), single=single,
-                        n_frames=len(data))
+                        n_frames=n_frames)
 
 
 def _single_spots(x, y, photons, width, frame, *, s0: float, fwhm: float) -> np.ndarray:
@@ -343,11 +353,7 @@ def locate_holes(image_or_stack, *, fwhm: float, detection_sigma: float = 4.0) -
     ValueError
         Non-positive ``fwhm``.
     """
-    if not (np.isfinite(fwhm) and fwhm > 0):
-        raise ValueError(f"fwhm must be a positive number of pixels, got {fwhm!r}")
-    data = _as_stack(image_or_stack)
-    s0 = float(fwhm) * _FWHM_TO_SIGMA
-    radius = max(2, int(np.ceil(0.8 * fwhm)))
+    data, s0, radius = _spot_scales(image_or_stack, fwhm)
     parts = []
     for f, frame in enumerate(data):
         level = ndimage.gaussian_filter(frame, 1.5 * fwhm)
@@ -372,13 +378,7 @@ def locate_holes(image_or_stack, *, fwhm: float, detection_sigma: float = 4.0) -
             continue
         x, y, photons, width, sigma, ok = _fit_spots(inverted, py, px, width0=s0, radius=radius)
         parts.append((x[ok], y[ok], photons[ok], width[ok], sigma[ok], np.full(int(ok.sum()), f)))
-    if not parts:
-        empty = np.zeros(0)
-        return LocatedAtoms(empty, empty, empty, empty, empty, np.zeros(0, int), np.zeros(0, bool), len(data))
-    x, y, photons, width, sigma, frame = (np.concatenate(v) for v in zip(*parts))
-    single = _single_spots(x, y, photons, width, frame, s0=s0, fwhm=fwhm)
-    return LocatedAtoms(x=x, y=y, photons=photons, width=width, sigma=sigma, frame=frame.astype(int), single=single,
-                        n_frames=len(data))
+    return _located(parts, n_frames=len(data), s0=s0, fwhm=fwhm)
 
 
 def merge_located(*parts: LocatedAtoms) -> LocatedAtoms:
