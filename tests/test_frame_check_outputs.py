@@ -13,20 +13,14 @@ import pytest
 import tifffile
 
 from latticeread.cli import main
-from latticeread.core.camera import CameraModel
 from latticeread.core.geometry import LatticeGeometry
 from latticeread.core.pipeline import Reconstructor
-from latticeread.core.psf import airy_psf
 from latticeread.core.simulate import simulate_frames
 from latticeread.io.calibration_file import load_calibration
 from latticeread.io.run_file import read_run
 
-PSF = airy_psf(wavelength_nm=767.0, numerical_aperture=0.75, pixel_size_nm=180.0)
-CAMERA = CameraModel(kind="emccd", em_gain=100.0, counts_per_electron=0.1, bias=100.0, read_noise=5.0,
-                     quantum_efficiency=0.9)
-CAMERA_ARGS = ["--em-gain", "100", "--counts-per-electron", "0.1", "--bias", "100", "--read-noise", "5",
-               "--qe", "0.9"]
-AIRY_ARGS = ["--psf", "airy", "--wavelength-nm", "767", "--na", "0.75", "--pixel-size-nm", "180"]
+# the scenario of the command-line reconstruct tests (Airy PSF, EMCCD), with its option spellings
+from test_cli_reconstruct import AIRY_ARGS, CAMERA, CAMERA_ARGS, PSF
 
 
 @pytest.fixture(scope="module")

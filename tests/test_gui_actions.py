@@ -18,7 +18,7 @@ from PySide6 import QtGui, QtWidgets  # noqa: E402
 
 from latticeread.gui.app import make_app  # noqa: E402
 from latticeread.gui.main_window import MainWindow  # noqa: E402
-from latticeread.gui.settings import AppSettings  # noqa: E402
+from gui_windows import shown_window  # noqa: E402
 
 ROOT = Path(__file__).resolve().parents[1]
 SAMPLE = ROOT / "sample_data" / "demo_square.tif"
@@ -26,13 +26,7 @@ SAMPLE = ROOT / "sample_data" / "demo_square.tif"
 
 @pytest.fixture()
 def window(qtbot, tmp_path):
-    make_app()
-    w = MainWindow(settings=AppSettings(tmp_path / "settings.ini"), synchronous=True, offer_restore=False,
-                   autosave_interval_s=0)
-    qtbot.addWidget(w)
-    w.resize(1366, 768)
-    w.show()
-    qtbot.waitExposed(w)
+    w = shown_window(qtbot, tmp_path)
     return w
 
 

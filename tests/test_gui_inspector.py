@@ -8,7 +8,6 @@ calibration; the patches must agree with the session's full model image
 
 from __future__ import annotations
 
-from pathlib import Path
 
 import numpy as np
 import pytest
@@ -18,23 +17,11 @@ pytest.importorskip("pytestqt")
 from PySide6 import QtCore  # noqa: E402
 from PySide6.QtTest import QTest  # noqa: E402
 
-from latticeread.gui.app import make_app  # noqa: E402
-from latticeread.gui.main_window import MainWindow  # noqa: E402
-from latticeread.gui.settings import AppSettings  # noqa: E402
-
-ROOT = Path(__file__).resolve().parents[1]
-SAMPLE = ROOT / "sample_data" / "demo_square.tif"
+from gui_windows import demo_window  # noqa: E402
 
 
 def test_click_on_a_site_shows_its_evidence(qtbot, tmp_path):
-    make_app()
-    w = MainWindow(settings=AppSettings(tmp_path / "settings.ini"), synchronous=True, offer_restore=False,
-                   autosave_interval_s=0)
-    qtbot.addWidget(w)
-    w.resize(1366, 768)
-    w.show()
-    qtbot.waitExposed(w)
-    assert w.open_path(SAMPLE), w.last_error
+    w = demo_window(qtbot, tmp_path)
     s = w.session
     s.reconstruct([0, 1, 2, 3])  # a few frames keep the test short; the rest stay not done
     s.finish_reconstruction()

@@ -10,7 +10,6 @@ the square demo's calibration and a disk whose sites are counted by hand from th
 
 from __future__ import annotations
 
-from pathlib import Path
 
 import numpy as np
 import pytest
@@ -21,24 +20,13 @@ from PySide6 import QtCore  # noqa: E402
 
 from latticeread.core.region import RegionShape, SiteRegion  # noqa: E402
 from latticeread.gui.app import make_app  # noqa: E402
-from latticeread.gui.main_window import MainWindow  # noqa: E402
 from latticeread.gui.region_editor import roi_shape  # noqa: E402
-from latticeread.gui.settings import AppSettings  # noqa: E402
-
-ROOT = Path(__file__).resolve().parents[1]
-SAMPLE = ROOT / "sample_data" / "demo_square.tif"
+from gui_windows import demo_window  # noqa: E402
 
 
 @pytest.fixture
 def window(qtbot, tmp_path):
-    make_app()
-    w = MainWindow(settings=AppSettings(tmp_path / "settings.ini"), synchronous=True, offer_restore=False,
-                   autosave_interval_s=0)
-    qtbot.addWidget(w)
-    w.resize(1366, 768)
-    w.show()
-    qtbot.waitExposed(w)
-    assert w.open_path(SAMPLE), w.last_error
+    w = demo_window(qtbot, tmp_path)
     w.flush()
     return w
 

@@ -9,7 +9,6 @@ here for a thin marker line on any colour of the map (common practice, no source
 
 from __future__ import annotations
 
-from pathlib import Path
 
 import numpy as np
 import pytest
@@ -19,24 +18,13 @@ pytest.importorskip("pytestqt")
 from latticeread.gui.app import make_app  # noqa: E402
 from latticeread.gui.axes import IntegerAxis  # noqa: E402
 from latticeread.gui.image_pane import COLOR_MAPS, color_map, nice_scale_length_um  # noqa: E402
-from latticeread.gui.main_window import MainWindow  # noqa: E402
 from latticeread.gui.panels import rate_pct  # noqa: E402
-from latticeread.gui.settings import AppSettings  # noqa: E402
-
-ROOT = Path(__file__).resolve().parents[1]
-SAMPLE = ROOT / "sample_data" / "demo_square.tif"
+from gui_windows import demo_window  # noqa: E402
 
 
 @pytest.fixture()
 def demo(qtbot, tmp_path):
-    make_app()
-    w = MainWindow(settings=AppSettings(tmp_path / "settings.ini"), synchronous=True, offer_restore=False,
-                   autosave_interval_s=0)
-    qtbot.addWidget(w)
-    w.resize(1366, 768)
-    w.show()
-    qtbot.waitExposed(w)
-    assert w.open_path(SAMPLE), w.last_error
+    w = demo_window(qtbot, tmp_path)
     qtbot.waitUntil(lambda: w.session.result(0) is not None, timeout=20000)
     w.flush()
     return w
