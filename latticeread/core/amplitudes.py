@@ -86,6 +86,7 @@ from latticeread.errors import ReconstructionError
 
 __all__ = [
     "AMPLITUDE_METHODS",
+    "BACKGROUND_MODELS",
     "WEIGHTINGS",
     "AmplitudeResult",
     "camera_weights",
@@ -202,11 +203,20 @@ class SiteBasis:
         estimator corrects for that per frame by iterative refinement (:meth:`_phase_corrected`),
         which converges when the weights vary little within a stamp. The binary refinement and
         the offset fit use the reference-phase matrix as they are.
-    background : {"constant", "plane", "none"}
+    background : {"constant", "plane", "poly2", "poly3", "none"}
+        ``poly2`` / ``poly3``: a smooth background, a polynomial of degree 2 / 3 in the frame
+        coordinates (a gradient with a broad hump or dip), fitted per frame with the sites.
         Background model fitted together with the sites.
     ridge : float
         Relative Tikhonov term added to the diagonal of the normal matrix (times its mean
         diagonal) so that sites without usable pixels do not make it singular.
+    local_psfs : sequence of PSFModel, optional
+        A PSF that changes across the field: site ``k``'s stamp is the mix
+        ``sum_j local_weights[k, j] * stamp_j`` of these PSFs (each with ``psf.radius``). The
+        normal matrix is still factorised once; a frame costs one stamp correlation per PSF
+        that some site uses. Default: ``psf`` everywhere.
+    local_weights : (N, J) ndarray, optional
+        Non-negative mixing weights of the sites (rows sum to 1), required with ``local_psfs``.
 
     Notes
     -----
@@ -218,9 +228,11 @@ class SiteBasis:
     """
 
     def __init__(self, geometry: LatticeGeometry, *, frame_shape, psf: PSFModel, sites: SiteGrid | None = None,
-                 mask=None, pixel_weights=None, background: str = "constant", ridge: float = 1e-6):
-        if background not in ("constant", "plane", "none"):
-            raise ReconstructionError(f"unknown background model {background!r}; use 'constant', 'plane' or 'none'")
+                 mask=None, pixel_weights=None, background: str = "constant", ridge: float = 1e-6,
+                 local_psfs=None, local_weights=None):
+        if background not in BACKGROUND_MODELS:
+            raise ReconstructionError(f"unknown background model {background!r}; use one of "
+                                      f"{', '.join(repr(b) for b in BACKGROUND_MODELS)}")
         self.geometry = geometry
         self.frame_shape = (int(frame_shape[0]), int(frame_shape[1]))
         self.psf = psf
@@ -271,6 +283,9 @@ class SiteBasis:
         self._weighted_pixels = pixel_weights is not None
 
         self._stamps = _StampSampler(psf)
+        self._mix = None
+        if local_psfs is not None:
+            self._set_local_psfs(local_psfs, local_weights)
         oy, ox = np.mgrid[-r:r + 1, -r:r + 1]
         self._window = (oy.ravel() * wp + ox.ravel()).astype(np.int64)
         n = len(self.sites)
@@ -279,13 +294,9 @@ class SiteBasis:
         self._cache = None
 
         # background columns (padded frame coordinates), weighted later
-        cols = []
-        if background in ("constant", "plane"):
-            cols.append(inside.ravel())
-        if background == "plane":
-            yy, xx = np.mgrid[0:hp, 0:wp]
-            cols.append(((xx - self.pad - (width - 1) / 2) / max(width, 1) * inside).ravel())
-            cols.append(((yy - self.pad - (height - 1) / 2) / max(height, 1) * inside).ravel())
+        yy, xx = np.mgrid[0:hp, 0:wp]
+        cols = [(c * inside).ravel() for c in _background_columns(background, yy - self.pad, xx - self.pad,
+                                                                   self.frame_shape)]
         self._bg = np.stack(cols, axis=1) if cols else np.zeros((hp * wp, 0))
         self._bg_nz = np.flatnonzero(self._inside)
 
@@ -293,6 +304,23 @@ class SiteBasis:
         self._one_thread = _OneThread()
         with self._one_thread():
             self._factorise(ridge)
+
+    def _set_local_psfs(self, psfs, weights):
+        """Per-site mixes of several PSFs; PSFs no site uses are dropped."""
+        psfs = list(psfs)
+        weights = np.asarray(weights, float)
+        if weights.shape != (len(self.sites), len(psfs)):
+            raise ReconstructionError(f"local PSF weights are {weights.shape} but there are {len(self.sites)} sites "
+                                      f"and {len(psfs)} local PSFs")
+        if not np.all(np.isfinite(weights)) or np.any(weights < 0) or \
+                not np.allclose(weights.sum(axis=1), 1.0, atol=1e-6):
+            raise ReconstructionError("local PSF weights must be non-negative and sum to 1 for every site")
+        if any(int(p.radius) != self.radius for p in psfs):
+            raise ReconstructionError(f"every local PSF needs the stamp radius of the main PSF ({self.radius} pixels)")
+        used = np.flatnonzero(weights.max(axis=0) > 0)
+        self._mix = weights[:, used]
+        self._local = [psfs[j] for j in used]
+        self._local_stamps = [_StampSampler(psfs[j]) for j in used]
 
     def _factorise(self, ridge):
         """Normal matrix at the reference offset, its banded Cholesky factor, background couplings."""
@@ -325,11 +353,11 @@ class SiteBasis:
         # per-frame projections: correlation of the frame with the centred stamp on a region
         # around the sites, then cubic-spline interpolation at the (shifted) site centres
         self._kernel = self.psf.stamps([0.0], [0.0])[0][::-1, ::-1].copy()
+        self._kernels = None if self._mix is None else \
+            np.stack([p.stamps([0.0], [0.0])[0][::-1, ::-1] for p in self._local])
         self._wcrop = None if self._uniform else weights[self.crop]
-        bgf = [np.ones(self.frame_shape)] if background in ("constant", "plane") else []
-        if background == "plane":
-            yy, xx = np.mgrid[0:height, 0:width]
-            bgf += [(xx - (width - 1) / 2) / max(width, 1), (yy - (height - 1) / 2) / max(height, 1)]
+        yy, xx = np.mgrid[0:height, 0:width]
+        bgf = _background_columns(background, yy, xx, self.frame_shape)
         self._bg_crop = np.stack([b[self.crop].ravel() for b in bgf]) if bgf else np.zeros((0, 0))
         self._frac_inside = self._spline(np.ones(self.frame_shape))
         self._frac_usable = self._spline(weights > 0) if mask is not None or pixel_weights is not None \
@@ -356,7 +384,13 @@ class SiteBasis:
         lim = self.pad - self.radius
         ix = np.clip(np.rint(x).astype(np.int64), -lim, self.frame_shape[1] - 1 + lim)
         iy = np.clip(np.rint(y).astype(np.int64), -lim, self.frame_shape[0] - 1 + lim)
-        data = self._stamps(x - ix, y - iy).reshape(len(x), -1)
+        if self._mix is None:
+            data = self._stamps(x - ix, y - iy).reshape(len(x), -1)
+        else:
+            data = np.zeros((len(x), self._window.size))
+            for j, sampler in enumerate(self._local_stamps):
+                sel = np.flatnonzero(self._mix[:, j] > 0)
+                data[sel] += self._mix[sel, j, None] * sampler(x[sel] - ix[sel], y[sel] - iy[sel]).reshape(sel.size, -1)
         hp, wp = self.padded_shape
         anchor = (iy + self.pad) * wp + (ix + self.pad)
         indices = (anchor[:, None] + self._window[None, :]).ravel()
@@ -372,7 +406,10 @@ class SiteBasis:
 
     # --- the linear estimator --------------------------------------------------------------
     def _spline(self, image) -> np.ndarray:
-        """Cubic-spline coefficients of ``image`` correlated with the centred stamp, on the region."""
+        """Cubic-spline coefficients of ``image`` correlated with the centred stamp, on the region.
+
+        With local PSFs: one coefficient array per local PSF, stacked on the first axis.
+        """
         y0, y1, x0, x1 = self._roi
         image = np.asarray(image, float)
         if image.shape == self.frame_shape:
@@ -385,12 +422,15 @@ class SiteBasis:
         shape = buf.shape
         if getattr(self, "_kernel_fft_shape", None) != shape:
             fshape = tuple(scipy.fft.next_fast_len(n + k - 1, real=True) for n in shape)
-            self._kernel_fft = scipy.fft.rfft2(self._kernel, s=fshape)
+            kernels = self._kernel if self._kernels is None else self._kernels
+            self._kernel_fft = scipy.fft.rfft2(kernels, s=fshape)
             self._kernel_fft_shape, self._fshape = shape, fshape
         full = scipy.fft.irfft2(scipy.fft.rfft2(buf, s=self._fshape) * self._kernel_fft, s=self._fshape)
         h0 = (k - 1) // 2
-        corr = full[h0:h0 + shape[0], h0:h0 + shape[1]]
-        return ndimage.spline_filter(corr, order=3, mode="mirror")
+        corr = full[..., h0:h0 + shape[0], h0:h0 + shape[1]]
+        if corr.ndim == 2:
+            return ndimage.spline_filter(corr, order=3, mode="mirror")
+        return np.stack([ndimage.spline_filter(c, order=3, mode="mirror") for c in corr])
 
     def _sample(self, coef, offset, extra=(0.0, 0.0), every: int = 1) -> np.ndarray:
         """Spline ``coef`` sampled at the site centres for ``offset`` (+ ``extra``), pixels."""
@@ -398,7 +438,15 @@ class SiteBasis:
         y0, _, x0, _ = self._roi
         sy, sx = self.sites.y[::every], self.sites.x[::every]
         coords = np.stack([sy + dy + extra[1] - y0, sx + dx + extra[0] - x0])
-        return ndimage.map_coordinates(coef, coords, order=3, prefilter=False, mode="mirror")
+        if coef.ndim == 2:
+            return ndimage.map_coordinates(coef, coords, order=3, prefilter=False, mode="mirror")
+        mix = self._mix[::every]
+        out = np.zeros(sy.size)
+        for j in range(coef.shape[0]):
+            sel = np.flatnonzero(mix[:, j] > 0)
+            out[sel] += mix[sel, j] * ndimage.map_coordinates(coef[j], coords[:, sel], order=3, prefilter=False,
+                                                              mode="mirror")
+        return out
 
     def _weighted(self, image, bad_pixels=None) -> np.ndarray:
         """The fitted part of a frame (the region around the sites), bad pixels zeroed, weighted."""
@@ -485,7 +533,19 @@ class SiteBasis:
         """Mean background over the frame in photons per pixel from fitted coefficients."""
         if coefficients.size == 0:
             return 0.0
+        if self.background_model.startswith("poly"):  # the mean of the fitted surface over the fitted region
+            return float(self._bg_crop.mean(axis=1) @ coefficients)
         return float(coefficients[0])
+
+    def background_image(self, coefficients) -> np.ndarray:
+        """The fitted background over the frame (photons per pixel) from fitted coefficients."""
+        height, width = self.frame_shape
+        yy, xx = np.mgrid[0:height, 0:width]
+        cols = _background_columns(self.background_model, yy, xx, self.frame_shape)
+        out = np.zeros(self.frame_shape)
+        for c, b in zip(cols, np.asarray(coefficients, float)):
+            out += b * c
+        return out
 
     # --- the lattice phase by model fitting --------------------------------------------------
     def explained(self, image, *, offset) -> float:
@@ -910,6 +970,33 @@ class SiteBasis:
             n[l] = True
             g -= atom * (gram[l].T @ np.ones(l.size) - gram[k].T @ np.ones(k.size))
         return n, g, passes
+
+#: Background models of :class:`SiteBasis`.
+BACKGROUND_MODELS = ("constant", "plane", "poly2", "poly3", "none")
+_POLY_DEGREE = {"constant": 0, "plane": 1, "poly2": 2, "poly3": 3}
+
+
+def _background_columns(model: str, yy, xx, frame_shape) -> list:
+    """Background basis images at pixel rows ``yy`` and columns ``xx``: 1, u, v, u^2 - 1/12, u v, ...
+
+    ``u``, ``v`` are the column and row in units of the frame width and height, 0 at the
+    frame centre; the even powers have their mean over the frame removed (u^2 - 1/12), so the
+    first coefficient stays close to the mean background.
+    """
+    if model == "none":
+        return []
+    height, width = frame_shape
+    u = (xx - (width - 1) / 2) / max(width, 1)
+    v = (yy - (height - 1) / 2) / max(height, 1)
+    cols = [np.ones(np.shape(u))]
+    for degree in range(1, _POLY_DEGREE[model] + 1):
+        for j in range(degree + 1):
+            term = u ** (degree - j) * v ** j
+            if degree == 2 and j != 1:
+                term = term - 1.0 / 12.0
+            cols.append(term)
+    return cols
+
 
 def pixel_integrated_table(psf: PSFModel, *, oversample: int = 4) -> tuple[np.ndarray, int, int]:
     """The PSF averaged over one pixel, tabulated every ``1 / (oversample * s)`` pixel.
