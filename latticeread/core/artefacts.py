@@ -324,8 +324,8 @@ def _edges_smoothed(out, lap, edge_rows) -> None:
     out[:, w - _REACH:] = blur(lap[:, w - d:])[:, d - _REACH:]
     if edge_rows[0]:
         out[:_REACH] = blur(lap[:d])[:_REACH]
-    if edge_rows[1]:
-        out[h - _REACH:] = blur(lap[h - d:])[d - _REACH:]
+    if edge_rows[1]:  # a short last strip may hold fewer than d rows
+        out[h - _REACH:] = blur(lap[max(h - d, 0):])[-_REACH:]
 
 
 def _screen_rows(image, top, *, ks, camera: CameraModel, n_sigma: float, scales=SCALES, first: bool = True,
