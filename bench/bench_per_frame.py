@@ -77,7 +77,9 @@ def _profile(fn, top: int = 18):
     prof.enable()
     fn()
     prof.disable()
-    pstats.Stats(prof).sort_stats("tottime").print_stats(top)
+    stats = pstats.Stats(prof)
+    stats.sort_stats("cumulative").print_stats(top)
+    stats.sort_stats("tottime").print_stats(top)
 
 
 def _offset_error(found, truth_offset, geometry) -> float:
