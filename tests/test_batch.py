@@ -162,7 +162,7 @@ def assert_runs_identical(a, b):
     assert len(a) == len(b)
     for name in ("source", "file_hash", "frame_index", "occupation", "amplitude", "p_occupied", "x", "y",
                  "flags", "offset", "a1", "a2", "threshold", "n_sites", "n_occupied", "filling",
-                 "peak_to_background", "lattice_residual"):
+                 "peak_to_background", "lattice_residual", "frame_digest"):
         va, vb = np.asarray(getattr(a, name)), np.asarray(getattr(b, name))
         assert va.dtype == vb.dtype and va.shape == vb.shape, name
         if va.dtype.kind in "fiub":

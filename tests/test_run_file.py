@@ -16,7 +16,7 @@ import pytest
 
 from latticeread import __version__
 from latticeread.errors import ExportError, FrameFileError
-from latticeread.io.run_file import RUN_FORMAT, RunWriter, ShotKey, ShotRecord, read_run
+from latticeread.io.run_file import RUN_FORMAT, RUN_FORMAT_VERSION, RunWriter, ShotKey, ShotRecord, read_run
 
 CAL = json.dumps({"format": "latticeread-calibration", "geometry": {"a1": [4.0, 0.0], "a2": [0.0, 4.0]},
                   "frame_shape": [64, 64], "notes": {"made": "today"}})
@@ -265,7 +265,7 @@ def test_read_results_gives_plain_arrays_and_a_settings_dict(tmp_path):
     assert arrays["warnings"].tolist() == ["", "few atoms\npoor fit", ""]
     assert arrays["failure_reason"].tolist() == ["truncated"] and arrays["failure_frame_index"].tolist() == [-1]
     assert settings["calibration"] == json.loads(CAL) and settings["metadata"] == {"command": "batch"}
-    assert (settings["n_frames"], settings["n_failures"], settings["format_version"]) == (3, 1, 4)
+    assert (settings["n_frames"], settings["n_failures"], settings["format_version"]) == (3, 1, RUN_FORMAT_VERSION)
     table, _ = read_results(path, matrices=False)
     assert "occupation" not in table and table["threshold"].tolist() == [250.0, 251.0, 252.0]
 
@@ -329,5 +329,5 @@ def test_version_1_file_is_read_and_converted_on_resume(tmp_path):
     # the rebuilt old row has no image-model checks (NaN), the new one its own numbers
     assert np.isnan(run.light_outside[0]) and run.light_outside[1] == _record(1).light_outside
     with h5py.File(path, "r") as f:
-        assert f.attrs["format_version"] == 4
+        assert f.attrs["format_version"] == RUN_FORMAT_VERSION
         assert "frames" in f and "shots" not in f  # one row per frame, named so since format 4

@@ -34,8 +34,8 @@ from latticeread.core.calibration import Calibration
 from latticeread.errors import FrameFileError, LatticeReadError, ReconstructionError
 from latticeread.io.run_file import ShotKey, ShotRecord
 
-__all__ = ["ShotFailure", "FrameAnalyser", "open_stack", "close_stack", "hash_file", "shot_record", "classify_records",
-           "analyse_stack", "merge_calibration"]
+__all__ = ["ShotFailure", "FrameAnalyser", "open_stack", "close_stack", "hash_file", "frame_digest", "frame_digests",
+           "shot_record", "classify_records", "analyse_stack", "merge_calibration"]
 
 log = logging.getLogger(__name__)
 
@@ -240,6 +240,52 @@ def hash_file(path, *, block_size: int = 1 << 20) -> str:
     return digest.hexdigest()
 
 
+def frame_digest(image) -> str:
+    """Hex BLAKE2b-128 digest of one frame's pixels (32 characters): the identity of an exposure.
+
+    The pixel type, the frame size and the raw pixel bytes as read from the input file go
+    into it, so two frames have the same digest only when they hold the same numbers. With
+    camera noise two different exposures practically never do; a blank or synthetic frame
+    repeated in a stack does, which is why a digest is only compared with the frame stored at
+    the same position of the same file (:meth:`latticeread.io.run_file.RunWriter.same_frame_stored`).
+
+    Parameters
+    ----------
+    image : (H, W) ndarray
+        The frame in counts, as :func:`open_stack` returns it.
+    """
+    image = np.ascontiguousarray(image)
+    shape = "x".join(str(int(s)) for s in image.shape)
+    digest = hashlib.blake2b(f"{image.dtype.str} {shape}\n".encode(), digest_size=16)
+    digest.update(image.tobytes())
+    return digest.hexdigest()
+
+
+def frame_digests(path, indices) -> dict[int, str]:
+    """:func:`frame_digest` of the frames ``indices`` of a file (read one at a time).
+
+    Frames that cannot be read are left out (the reconstruction reports them).
+    """
+    import warnings
+
+    out: dict[int, str] = {}
+    try:
+        stack = open_stack(path)
+    except Exception:  # noqa: BLE001 - an unreadable file is reported where it is reconstructed
+        return out
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # constant or saturated frames warn where reconstructed
+            for i in indices:
+                try:
+                    out[int(i)] = frame_digest(stack[int(i)])
+                except Exception:  # noqa: BLE001 - see above
+                    continue
+    finally:
+        close_stack(stack)
+    return out
+
+
 def _file_identity(path) -> tuple | None:
     """(size, modification time in ns, inode, device) of a file; None when it is gone."""
     try:
@@ -334,6 +380,7 @@ class FrameAnalyser:
             self.calibration.check_frame_shape(tuple(stack.frame_shape), where=f"the frames of {name}")
             seen = len(getattr(stack, "warnings", ()))
             image = stack[key.frame_index]
+            digest = frame_digest(image)  # before the pipeline sees the pixels
             load_warnings = tuple(getattr(stack, "warnings", ())[seen:])  # constant frame, saturation...
             if np.ndim(image) != 2:
                 raise ReconstructionError(f"frame {key.frame_index} of {name} has {np.ndim(image)} dimensions; "
@@ -342,7 +389,7 @@ class FrameAnalyser:
             with self._blas.limit(limits=1, user_api="blas"):
                 result = self.reconstructor(image, frame_index=key.frame_index,
                                             where=f"frame {key.frame_index} of {name}")
-            record = shot_record(key, result)
+            record = replace(shot_record(key, result), frame_digest=digest)
             if load_warnings:
                 record = replace(record, warnings=tuple(dict.fromkeys((*load_warnings, *record.warnings))))
             return record

@@ -59,6 +59,8 @@ def read_results(path, *, matrices: bool = True) -> tuple[dict, dict]:
           ``filling``, ``peak_to_background``, ``lattice_residual``, ``written_at``
           (Unix time): float64; ``n_sites``, ``n_occupied``: int64;
         * ``warnings``: str, one warning per line ("" when none);
+        * ``frame_digest``: str, hex digest of the frame's pixels ("" in files before
+          format version 5);
         * ``failure_source``, ``failure_file_hash``, ``failure_error``,
           ``failure_reason``: str, ``failure_frame_index`` int64 (-1: whole file),
           ``failure_resolved`` bool: one entry per failed frame or file, not per frame.
@@ -99,6 +101,7 @@ def read_results(path, *, matrices: bool = True) -> tuple[dict, dict]:
         "n_sites": run.n_sites, "n_occupied": run.n_occupied, "filling": run.filling,
         "peak_to_background": run.peak_to_background, "lattice_residual": run.lattice_residual,
         "written_at": run.written_at, "warnings": np.array(["\n".join(w) for w in run.warnings], dtype=str),
+        "frame_digest": run.frame_digest,
     }
     if matrices:
         for name in ("occupation", "amplitude", "p_occupied", "x", "y", "flags"):

@@ -4,7 +4,11 @@ A run file collects the reconstruction of many shots. It is appended to a block 
 at a time; a run that is killed, interrupted or stopped by a full disk leaves a readable
 file holding every shot committed before, and running the same command again skips those
 shots (each is keyed by the input file path, a content hash of the file and the frame
-index inside it).
+index inside it). Each row also carries a digest of the frame's pixels: when an input changes
+after some of its frames were stored (a camera that appends frames to one file and paused,
+a file that grew between two batch runs), the new version is a new input, and its frames
+whose pixels equal the stored frame at the same position of the same file are the same
+exposures, so they are not stored again (:attr:`RunWriter.stored_digests`).
 
 Safety
 ------
@@ -30,7 +34,7 @@ Safety
   with a message naming the first. Readers take no lock and are never blocked: open the
   file with ``h5py.File(path, "r", swmr=True)`` or :func:`read_run`.
 
-Layout (format version 4; all per-frame datasets share the first axis)
+Layout (format version 5; all per-frame datasets share the first axis)
 ---------------------------------------------------------------------
 Root attributes (written when the file is created, never changed)
     ``format`` = ``"latticeread-run"``, ``format_version``, ``program_version``,
@@ -52,7 +56,9 @@ Root attributes (written when the file is created, never changed)
     (float64, lattice fit diagnostics), ``warnings`` (UTF-8 bytes, one warning per line),
     ``written_at`` (float64, Unix time of writing), ``light_outside``, ``model_residual``,
     ``light_explained`` (float64, does the site model explain the frame; format version 3,
-    :mod:`latticeread.core.frame_check`).
+    :mod:`latticeread.core.frame_check`), ``frame_digest`` (bytes, hex BLAKE2b-128 of the
+    frame's pixel type, size and raw pixel bytes as read from the input; format version 5,
+    empty in rows of older files and where the frames did not come from a file).
 ``occupation`` (n, rows, cols) uint8
     1 occupied, 0 empty, 255 outside the reconstructed region.
 ``amplitude``, ``p_occupied``, ``x``, ``y`` (n, rows, cols) float64
@@ -66,9 +72,10 @@ Root attributes (written when the file is created, never changed)
     later retry succeeded), ``written_at``.
 
 Text is stored as fixed-length UTF-8 bytes (SWMR cannot append variable-length strings
-safely); a text longer than its field ends in ``" [cut]"``. Version 1 files (counters in
-attributes, variable-length strings) are read, and converted to version 2 when a writer
-resumes them.
+safely); a text longer than its field ends in ``" [cut]"``. Files of every earlier version
+are read as they are (missing columns read as NaN, zero or empty text) and copied into the
+current layout when a writer resumes them; their rows keep an empty ``frame_digest``
+("pixels not recorded"), so a frame of theirs cannot be recognised in a changed input.
 """
 
 from __future__ import annotations
@@ -110,14 +117,14 @@ __all__ = [
 log = logging.getLogger(__name__)
 
 RUN_FORMAT = "latticeread-run"
-RUN_FORMAT_VERSION = 4
+RUN_FORMAT_VERSION = 5
 
 #: Call fsync after the rows and after the committed counter of every block (see Safety).
 #: Only the benchmark turns this off, to measure what it costs.
 SYNC_TO_DISK = True
 
 #: Bytes of each text field (a Linux path is at most 4096 bytes).
-_TEXT = {"source": 4096, "file_hash": 64, "warnings": 4096, "error": 128, "reason": 4096}
+_TEXT = {"source": 4096, "file_hash": 64, "warnings": 4096, "error": 128, "reason": 4096, "frame_digest": 64}
 _CUT = " [cut]"
 #: per-shot scalar/vector columns of ``shots/``: name -> (dtype, trailing shape)
 _SHOT_COLUMNS = {
@@ -141,6 +148,7 @@ _SHOT_COLUMNS = {
     "light_outside": (np.float64, ()),
     "model_residual": (np.float64, ()),
     "light_explained": (np.float64, ()),
+    "frame_digest": (f"S{_TEXT['frame_digest']}", ()),
 }
 #: Columns added in format version 3 (NaN in the rows of older files).
 _CHECK_COLUMNS = ("light_outside", "model_residual", "light_explained")
@@ -162,6 +170,8 @@ _DESCRIPTIONS = {
     "frames/light_outside": ("fraction", "light above background outside the analysed region"),
     "frames/model_residual": ("ratio (1 = camera noise)", "image-model residual over the expected noise"),
     "frames/light_explained": ("fraction", "bright light the site model accounts for"),
+    "frames/frame_digest": ("hex BLAKE2b-128 (empty: not recorded)",
+                            "digest of the frame's pixel type, size and raw pixel bytes"),
 }
 #: per-site matrices: name -> (dtype, fill value outside the region)
 _MATRICES = {
@@ -240,6 +250,9 @@ class ShotRecord:
         the light above background outside the analysed region, residual over the camera's
         expected noise (1 = as expected), share of the bright light the model accounts for;
         NaN when not measured.
+    frame_digest : str
+        Hex BLAKE2b-128 of the frame's pixels (:func:`latticeread.analysis.service.frame_digest`);
+        empty when unknown.
     """
 
     key: ShotKey
@@ -262,6 +275,7 @@ class ShotRecord:
     light_outside: float = float("nan")
     model_residual: float = float("nan")
     light_explained: float = float("nan")
+    frame_digest: str = ""
 
     @property
     def matrix_shape(self) -> tuple[int, int]:
@@ -356,7 +370,7 @@ ROWS_GROUP = "frames"
 
 
 def _rows(f: h5py.File):
-    """The per-frame rows of a run file: ``frames/`` (format 4), ``shots/`` in older files."""
+    """The per-frame rows of a run file: ``frames/`` (format 4 on), ``shots/`` in older files."""
     return f[ROWS_GROUP] if ROWS_GROUP in f else f["shots"]
 
 
@@ -500,6 +514,7 @@ class RunWriter:
         self._file: h5py.File | None = None
         self._done: set[ShotKey] = set()
         self._failed: dict[ShotKey, int] = {}
+        self._stored: dict[tuple[str, int], set[str]] = {}  # (source, frame) -> frame digests in the file
         self._n = self._nf = 0
         self._lock = RunFileLock(self.path)
         self._open()
@@ -600,9 +615,11 @@ class RunWriter:
         n, nf = _counts(f)
         self._n, self._nf = n, nf
         s = _rows(f)
-        for src, digest, idx in zip(_decode_text(s["source"], n), _decode_text(s["file_hash"], n),
-                                    s["frame_index"][:n]):
+        pixels = _decode_text(s["frame_digest"], n) if "frame_digest" in s else np.full(n, "")
+        for src, digest, idx, frame in zip(_decode_text(s["source"], n), _decode_text(s["file_hash"], n),
+                                           s["frame_index"][:n], pixels):
             self._done.add(ShotKey(str(src), str(digest), int(idx)))
+            self._stored.setdefault((str(src), int(idx)), set()).add(str(frame))
         g = f["failures"]
         resolved = g["resolved"][:nf]
         for row, (src, digest, idx) in enumerate(zip(_decode_text(g["source"], nf), _decode_text(g["file_hash"], nf),
@@ -631,11 +648,12 @@ class RunWriter:
                     for name, (dtype, _tail) in _SHOT_COLUMNS.items():
                         d = f[ROWS_GROUP][name]
                         d.resize(stop, axis=0)
-                        if name in _TEXT:
+                        if name not in _rows(src):
+                            # version 1 files stored no origin, versions 1-2 no frame checks,
+                            # versions 1-4 no frame digests (empty: not recorded)
+                            d[start:stop] = b"" if name in _TEXT else np.nan if name in _CHECK_COLUMNS else 0
+                        elif name in _TEXT:
                             d[start:stop] = _encode_text(_decode_text(_rows(src)[name], stop)[start:], _TEXT[name])
-                        elif name not in _rows(src):
-                            # version 1 files stored no origin, versions 1-2 no frame checks
-                            d[start:stop] = np.nan if name in _CHECK_COLUMNS else 0
                         else:
                             d[start:stop] = _rows(src)[name][start:stop]
                 g = f["failures"]
@@ -659,9 +677,20 @@ class RunWriter:
         return set(self._failed)
 
     @property
+    def stored_digests(self) -> dict[tuple[str, int], set[str]]:
+        """Frame digests in the file per ``(source, frame_index)`` ("" for rows of files before
+        format version 5, whose pixels were not recorded)."""
+        return {k: set(v) for k, v in self._stored.items()}
+
+    @property
     def n_shots(self) -> int:
         """Committed shots in the file."""
         return self._n
+
+    def same_frame_stored(self, key: ShotKey, frame_digest: str) -> bool:
+        """True when the file holds the frame at ``key``'s position of ``key``'s file with these
+        pixels (from an earlier version of that file, e.g. before it grew)."""
+        return bool(frame_digest) and frame_digest in self._stored.get((key.source, key.frame_index), ())
 
     def _require_open(self) -> h5py.File:
         if self._file is None:
@@ -713,8 +742,10 @@ class RunWriter:
         Returns
         -------
         int
-            Number of shots written (shots already in the file, or repeated in ``records``,
-            are skipped with a logged warning).
+            Number of shots written. Shots already in the file, repeated in ``records``, or
+            whose frame (same file, same position, same pixel digest) is in the file from an
+            earlier version of their input are skipped with a logged warning; their keys
+            count as done.
 
         Raises
         ------
@@ -726,12 +757,23 @@ class RunWriter:
         f = self._require_open()
         block: list[ShotRecord] = []
         keys: set[ShotKey] = set()
+        frames: set[tuple[str, int, str]] = set()
+        same: list[ShotKey] = []
         for record in records:
             if record.key in self._done or record.key in keys:
                 log.warning("shot %s is already in %s; not written twice", record.key, self.path)
                 continue
+            frame = (record.key.source, record.key.frame_index, record.frame_digest)
+            if self.same_frame_stored(record.key, record.frame_digest) or (record.frame_digest and frame in frames):
+                same.append(record.key)
+                continue
             keys.add(record.key)
+            frames.add(frame)
             block.append(record)
+        if same:
+            log.warning("%s: already in %s from an earlier version of the file (same pixels); not written twice",
+                        describe_keys(same), self.path)
+            self._done.update(same)
         if not block:
             return 0
         n = self._n
@@ -764,6 +806,7 @@ class RunWriter:
             "written_at": [now] * m,
             "origin": [r.origin for r in block],
             **{name: [getattr(r, name) for r in block] for name in _CHECK_COLUMNS},
+            "frame_digest": _encode_text([r.frame_digest for r in block], _TEXT["frame_digest"]),
         }
         matrices = {name: np.stack([np.asarray(getattr(r, name), dtype=dtype) for r in block])
                     for name, (dtype, _fill) in _MATRICES.items()}
@@ -794,6 +837,8 @@ class RunWriter:
                               f"{describe_os_error(exc, self.path)} (the file keeps the {n} frames written "
                               "before)") from exc
         self._done.update(keys)
+        for source, index, digest in frames:
+            self._stored.setdefault((source, index), set()).add(digest)
         return m
 
     def record_failure(self, key: ShotKey, *, error: str, reason: str) -> None:
@@ -903,6 +948,8 @@ class RunData:
     light_outside, model_residual, light_explained : (n,) ndarray of float64
         The image-model checks of each shot (:class:`ShotRecord`); NaN in files before
         format version 3.
+    frame_digest : (n,) ndarray of str
+        Hex digest of each frame's pixels; "" in files before format version 5.
     n_sites, n_occupied : (n,) ndarray of int64
     warnings : tuple of tuple of str
         Warnings per shot.
@@ -943,6 +990,7 @@ class RunData:
     light_outside: np.ndarray = field(default_factory=lambda: np.zeros(0))
     model_residual: np.ndarray = field(default_factory=lambda: np.zeros(0))
     light_explained: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    frame_digest: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=str))
 
     def __len__(self) -> int:
         return int(self.frame_index.size)
@@ -962,6 +1010,7 @@ class RunData:
             "filling": self.filling, "peak_to_background": self.peak_to_background,
             "lattice_residual": self.lattice_residual, "light_outside": self.light_outside,
             "model_residual": self.model_residual, "light_explained": self.light_explained,
+            "frame_digest": self.frame_digest,
         }
 
 
@@ -1033,6 +1082,7 @@ def read_run(path, *, matrices: bool = True) -> RunData:
             warnings=warnings, failures=failures,
             origin=s["origin"][:n] if "origin" in s else np.zeros((n, 2), np.int64),
             **{name: s[name][:n] if name in s else np.full(n, np.nan) for name in _CHECK_COLUMNS},
+            frame_digest=_decode_text(s["frame_digest"], n) if "frame_digest" in s else np.full(n, "", dtype="<U1"),
             calibration=json.loads(str(f.attrs.get("calibration", "{}"))),
             program_version=str(f.attrs.get("program_version", "")),
             metadata=json.loads(str(f.attrs.get("metadata", "{}"))),

@@ -16,7 +16,11 @@ threshold of their pooled histogram, when the last of them is back
 A shot that fails (corrupt file, no lattice, wrong frame size) is recorded in the run
 file's failures table with its reason and the run goes on. Running the same command again
 skips the shots already in the run file and the shots that failed before (their files are
-unchanged, so they would fail again; ``retry_failed=True`` tries them anyway).
+unchanged, so they would fail again; ``retry_failed=True`` tries them anyway). A file that
+changed since some of its frames were stored (it grew, or was rewritten) is a new input; of
+its frames, those whose pixels equal the stored frame at the same position (same digest,
+:func:`latticeread.analysis.service.frame_digest`) are the same exposures and are skipped,
+so a file that grew between two runs adds only its new frames.
 """
 
 from __future__ import annotations
@@ -45,6 +49,7 @@ from latticeread.analysis.service import (  # noqa: F401 - names kept for caller
     ShotFailure,
     classify_records,
     close_stack,
+    frame_digests,
     hash_file,
     open_stack,
     shot_record,
@@ -157,6 +162,9 @@ class ShotPlan:
         Shots skipped because they are already in the run file.
     n_failed_before : int
         Shots (or files) skipped because they failed in an earlier run.
+    same : list of ShotKey
+        Shots of a file that changed since it was stored (it grew) whose frame, with the
+        same pixels at the same position of the file, is already in the run file; skipped.
     """
 
     tasks: list
@@ -164,6 +172,11 @@ class ShotPlan:
     n_files: int
     n_done_before: int
     n_failed_before: int
+    same: list = dataclasses.field(default_factory=list)
+
+    @property
+    def n_same_before(self) -> int:
+        return len(self.same)
 
 
 def _open_stack(path):
@@ -182,7 +195,7 @@ def _count_frames(path: Path) -> int:
 
 
 def plan_shots(files, *, done=frozenset(), failed=frozenset(), retry_failed: bool = False,
-               count_frames=_count_frames) -> ShotPlan:
+               count_frames=_count_frames, stored=None, digest_frames=frame_digests) -> ShotPlan:
     """List the shots of ``files`` that still have to be reconstructed.
 
     Parameters
@@ -198,6 +211,14 @@ def plan_shots(files, *, done=frozenset(), failed=frozenset(), retry_failed: boo
     count_frames : callable, optional
         ``count_frames(path) -> int``; by default opens the file with
         :func:`latticeread.io.frames.load_frames` (headers only).
+    stored : dict, optional
+        Frame digests in the run file per ``(source, frame_index)``
+        (:attr:`latticeread.io.run_file.RunWriter.stored_digests`). A frame of a changed file
+        whose digest is stored for the same file and position is skipped (it is in the run
+        file from the earlier version); only such frames are read here.
+    digest_frames : callable, optional
+        ``digest_frames(path, indices) -> {index: digest}``; default
+        :func:`latticeread.analysis.service.frame_digests`.
 
     Returns
     -------
@@ -205,6 +226,8 @@ def plan_shots(files, *, done=frozenset(), failed=frozenset(), retry_failed: boo
     """
     tasks: list[ShotKey] = []
     failures: list[ShotFailure] = []
+    same: list[ShotKey] = []
+    stored = stored or {}
     n_done = n_failed = n_files = 0
     for path in files:
         n_files += 1
@@ -227,6 +250,7 @@ def plan_shots(files, *, done=frozenset(), failed=frozenset(), retry_failed: boo
         if n_frames == 0:
             failures.append(ShotFailure(whole, "FrameFileError", f"{path.name} holds no frames"))
             continue
+        todo = []
         for i in range(n_frames):
             key = ShotKey(source, digest, i)
             if key in done:
@@ -234,8 +258,26 @@ def plan_shots(files, *, done=frozenset(), failed=frozenset(), retry_failed: boo
             elif key in failed and not retry_failed:
                 n_failed += 1
             else:
-                tasks.append(key)
-    return ShotPlan(tasks, failures, n_files, n_done, n_failed)
+                todo.append(key)
+        known = [k for k in todo if (source, k.frame_index) in stored]
+        if known:
+            pixels = digest_frames(path, [k.frame_index for k in known])
+            if pixels and hash_file(path) != digest:
+                pixels = {}  # changed again while it was read: the reconstruction will say so
+            taken = {k for k in known if pixels.get(k.frame_index, "") in stored[(source, k.frame_index)] - {""}}
+            unknown = [k for k in known if k not in taken and "" in stored[(source, k.frame_index)]]
+            if taken:
+                log.warning("%s changed after %s were stored (it grew or was rewritten); those frames have the "
+                            "same pixels as stored and are not stored again", path.name,
+                            describe_keys(sorted(taken))[len(path.name) + 1:])
+            if unknown:
+                log.warning("%s changed after %s were stored by a version of latticeread that did not record "
+                            "frame pixels; they are stored again and may be duplicates of the stored rows",
+                            path.name, describe_keys(unknown)[len(path.name) + 1:])
+            same.extend(sorted(taken))
+            todo = [k for k in todo if k not in taken]
+        tasks.extend(todo)
+    return ShotPlan(tasks, failures, n_files, n_done, n_failed, same)
 
 
 # --- summary ---------------------------------------------------------------------------------
@@ -282,6 +324,9 @@ class BatchSummary:
     fidelity : FidelityReport or None
         Loss and hopping between consecutive images, when the run was told that shots hold
         several images (``images_per_shot`` > 1) and enough complete shots exist.
+    n_skipped_same : int
+        Frames of inputs that changed since they were stored (a file that grew) skipped
+        because the run file holds the same frame (same file, position and pixels).
     """
 
     run_file: Path
@@ -303,6 +348,7 @@ class BatchSummary:
     workers: str = ""
     warnings: tuple = ()
     fidelity: object = None
+    n_skipped_same: int = 0
 
     def format(self) -> str:
         """Several lines of plain text for the terminal."""
@@ -310,7 +356,9 @@ class BatchSummary:
             f"run file      {self.run_file}",
             f"input files   {self.n_files}",
             f"this run      {self.n_new} frames written, {self.n_failed} failed, "
-            f"{self.n_skipped_done} already done, {self.n_skipped_failed} skipped (failed before)",
+            f"{self.n_skipped_done} already done, {self.n_skipped_failed} skipped (failed before)"
+            + (f", {self.n_skipped_same} already stored from an earlier version of their file (same pixels)"
+               if self.n_skipped_same else ""),
             f"time          {self.seconds:.1f} s" + (f", {self.frames_per_second:.1f} frames/s on {self.workers}"
                                                      if np.isfinite(self.frames_per_second) else ""),
             f"run file now  {self.n_shots_total} frames, {self.n_failures_total} unresolved failures",
@@ -434,6 +482,7 @@ def summarize_run(path, calibration: Calibration, *, counts: dict, seconds: floa
     return BatchSummary(
         run_file=Path(path), n_files=counts.get("files", 0), n_new=new, n_failed=counts.get("failed", 0),
         n_skipped_done=counts.get("skipped_done", 0), n_skipped_failed=counts.get("skipped_failed", 0),
+        n_skipped_same=counts.get("skipped_same", 0),
         n_shots_total=n, n_failures_total=n_failures_total, mean_filling=mean_filling, filling_std=filling_std,
         offset_shift_px=tuple(float(v) for v in mean_shift), phase_scatter_px=scatter,
         phase_drift_max_sites=drift_max, seconds=float(seconds),
@@ -520,12 +569,14 @@ def run_batch(inputs, *, calibration, out, workers: int | None = None, scheduler
     files = find_input_files(inputs, exclude=[out])
     meta = {"inputs": [os.fspath(i) for i in inputs], "workers": workers, "scheduler": scheduler,
             **(metadata or {})}
-    counts = {"files": len(files), "new": 0, "failed": 0, "skipped_done": 0, "skipped_failed": 0}
+    counts = {"files": len(files), "new": 0, "failed": 0, "skipped_done": 0, "skipped_failed": 0, "skipped_same": 0}
     examples: list[str] = []
     with RunWriter(out, calibration_json=cal_json, metadata=meta) as writer:
-        plan = plan_shots(files, done=writer.done, failed=writer.failed, retry_failed=retry_failed)
+        plan = plan_shots(files, done=writer.done, failed=writer.failed, retry_failed=retry_failed,
+                          stored=writer.stored_digests)
         counts["skipped_done"] = plan.n_done_before
         counts["skipped_failed"] = plan.n_failed_before
+        counts["skipped_same"] = plan.n_same_before
         for failure in plan.failures:
             writer.record_failure(failure.key, error=failure.error, reason=failure.reason)
             counts["failed"] += 1
@@ -581,7 +632,10 @@ class _BlockWriter:
     def flush(self) -> None:
         records, self._records = self._records, []
         if records:
-            self.counts["new"] += self.writer.append_many(records)
+            written = self.writer.append_many(records)
+            self.counts["new"] += written
+            # the writer skips a frame it holds from an earlier version of the same file
+            self.counts["skipped_same"] = self.counts.get("skipped_same", 0) + len(records) - written
         self._last = time.monotonic()
 
 

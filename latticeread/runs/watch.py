@@ -10,7 +10,10 @@ the future), **and** it opens as a valid frame file whose last frame can be read
 same size and time after reading as before (a TIFF still being written fails that test).
 The settle time covers a
 camera that appends frames to one file: between two frames the file is unchanged and
-readable, but it is not complete. A file that stays unchanged but unreadable for
+readable, but it is not complete. A camera that pauses longer than the settle time is taken
+at the pause; when the file grows, the new version is reported as a new input and
+:class:`LiveRun` stores only its new frames (the frames already stored are recognised by
+their pixels at the same position of the file, :func:`latticeread.runs.batch.plan_shots`). A file that stays unchanged but unreadable for
 ``give_up_polls`` polls is reported as broken, once.
 
 A file is reported once per distinct content. Changes are noticed by size, modification
@@ -162,8 +165,9 @@ class FolderWatcher:
     Notes
     -----
     A file is reported once per version: if it is rewritten (size or time changes) after
-    it was reported, it is reported again when it is complete again, with a warning in the
-    log when it had been taken with fewer frames (it grew after it was taken).
+    it was reported, it is reported again when it is complete again, with a note in the log
+    when it had been taken with fewer frames (it grew after it was taken; :class:`LiveRun`
+    then stores only the frames it did not hold).
     """
 
     def __init__(self, folder, *, suffixes=FRAME_SUFFIXES, exclude=(), include_existing: bool = True,
@@ -257,8 +261,9 @@ class FolderWatcher:
                 continue
             if state.reported is not None and state.n_frames is not None and isinstance(n_frames, int) \
                     and n_frames > state.n_frames:
-                log.warning("%s grew from %d to %d frames after it was taken; it is taken again as a new input "
-                            "(raise the settle time if the camera appends frames slowly)", path.name,
+                log.warning("%s grew from %d to %d frames after it was taken; it is taken again, and its frames "
+                            "already stored are recognised by their pixels and not stored twice (raise the settle "
+                            "time if the camera pauses this long within one acquisition)", path.name,
                             state.n_frames, n_frames)
             state.reported = stat
             taken = self._taken.setdefault(path, set())
@@ -366,7 +371,7 @@ class LiveRun:
         self.out = Path(os.fspath(out))
         self.retry_failed = bool(retry_failed)
         self.stats = RunningStats()
-        self.counts = {"files": 0, "new": 0, "failed": 0, "skipped_done": 0, "skipped_failed": 0}
+        self.counts = {"files": 0, "new": 0, "failed": 0, "skipped_done": 0, "skipped_failed": 0, "skipped_same": 0}
         self._examples: list[str] = []
         self._queue: deque = deque()  # reported by the watcher, not handled yet
         self.watcher = FolderWatcher(folder, exclude=[self.out], include_existing=include_existing,
@@ -391,9 +396,11 @@ class LiveRun:
                 self.counts["skipped_failed"] += 1
                 return []
             return [failure]
-        plan = plan_shots([event.path], done=writer.done, failed=writer.failed, retry_failed=self.retry_failed)
+        plan = plan_shots([event.path], done=writer.done, failed=writer.failed, retry_failed=self.retry_failed,
+                          stored=writer.stored_digests)
         self.counts["skipped_done"] += plan.n_done_before
         self.counts["skipped_failed"] += plan.n_failed_before
+        self.counts["skipped_same"] += plan.n_same_before
         shots = []
         for key in plan.tasks:
             raise_if_interrupted()
@@ -429,6 +436,8 @@ class LiveRun:
                     if isinstance(outcome, ShotFailure):
                         self._writer.record_failure(outcome.key, error=outcome.error, reason=outcome.reason)
                     elif not self._writer.append(outcome):
+                        if self._writer.same_frame_stored(outcome.key, outcome.frame_digest):
+                            self.counts["skipped_same"] += 1
                         continue
                 except ExportError as exc:
                     missing = [o.key for o in outcomes[position:]]
