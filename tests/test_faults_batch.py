@@ -106,6 +106,7 @@ def test_batch_killed_at_random_moments_resumes_to_the_reference(data, tmp_path)
         assert len(set(run.keys)) == len(run), err
         counts.append(len(run))
     assert counts == sorted(counts)
+    assert counts[0] < N_FRAMES, "the first kill came after the batch had finished: nothing was tested"
     _resume_and_compare(data, out)
 
 
@@ -128,13 +129,17 @@ def test_ctrl_c_during_batch_stops_quickly_with_130_and_resumes(data, tmp_path):
 
 
 def test_full_disk_during_batch_exits_4_naming_the_shots_not_written(data, tmp_path):
+    # A block reserves its upper bound plus 1 MiB of HDF5 margin, so under a 1 MB limit the
+    # first block fails whatever its size (blocks are smaller on a busy machine: a larger limit
+    # let a loaded run end without ever reaching it). Stops between blocks at other moments
+    # are tests/test_faults_run_file.py's, with blocks of fixed size.
     out = tmp_path / "run.h5"
-    proc = subprocess.run(_cli(*_batch_args(data, out), limit=2_500_000), capture_output=True, text=True,
+    proc = subprocess.run(_cli(*_batch_args(data, out), limit=1_000_000), capture_output=True, text=True,
                           timeout=120)
     assert proc.returncode == 4, proc.stderr
-    assert "full" in proc.stderr and "not written: shot_0.tif frames" in proc.stderr
+    assert "full" in proc.stderr and f"not written: shot_0.tif frames 0-{N_FRAMES - 1}" in proc.stderr
     assert "Segmentation" not in proc.stderr and "internal error" not in proc.stderr
-    assert 0 <= _shots(out) < N_FRAMES  # readable, with whatever was committed
+    assert _shots(out) == 0  # readable
     _resume_and_compare(data, out)
 
 
@@ -221,6 +226,7 @@ def test_watch_killed_or_interrupted_keeps_every_shot_once(data, tmp_path):
         _, err = proc.communicate()
     killed = read_run(out)
     assert len(set(killed.keys)) == len(killed), err
+    assert len(killed) < N_FRAMES, "the kill came after the watch had stored everything: nothing was tested"
     proc = subprocess.Popen(_cli(*_watch_args(data, out)), stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
                             text=True)
     # one shot more than the killed run held (waiting for more than the file holds would idle
@@ -260,3 +266,27 @@ def test_fidelity_reads_the_batch_run_file(data, tmp_path, capsys):
                  "--out", str(tmp_path / "report.json")]) == 0
     assert (tmp_path / "report.json").exists()
     assert "not a latticeread occupation file" not in capsys.readouterr().err
+
+
+def test_full_disk_during_reconstruct_to_hdf5_exits_4_and_leaves_nothing(tmp_path, monkeypatch, capsys):
+    # In this process (the subprocess cases above cost seconds each): the disk refuses the space
+    # of the first block, as posix_fallocate does on a full file system (ENOSPC).
+    import errno
+
+    from latticeread.cli import main
+
+    cal, paths, _ = make_dataset(tmp_path / "data", n_files=1, frames_per_file=2, seed=13)
+    save_calibration(tmp_path / "cal.json", cal)
+    out = tmp_path / "out"
+    out.mkdir()
+
+    def full(fd, offset, length):
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+
+    monkeypatch.setattr(os, "posix_fallocate", full)
+    code = main(["reconstruct", str(paths[0]), "-c", str(tmp_path / "cal.json"), "-o", str(out / "sites.h5"),
+                 "--quiet"])
+    err = capsys.readouterr().err
+    assert code == 4, err
+    assert "is full" in err and "internal error" not in err
+    assert list(out.iterdir()) == []  # no output, no temporary file, no lock file

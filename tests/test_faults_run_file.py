@@ -286,3 +286,27 @@ def test_every_commit_reaches_the_disk_rows_first_then_the_counter(tmp_path, mon
     with RunWriter(path, calibration_json=CAL) as w:
         w.append_many([record(5)])
     assert seen == [] and len(read_run(path, matrices=False).keys) == 6
+
+
+def test_ctrl_c_during_a_commit_is_held_until_the_block_is_committed(tmp_path, monkeypatch):
+    # Ctrl-C arrives after the rows of a block are flushed and before the counter that makes
+    # them count: the commit finishes first, then the KeyboardInterrupt comes.
+    path = tmp_path / "run.h5"
+    real_fsync = os.fsync
+    sent = []
+
+    def fsync_then_ctrl_c(fd):
+        real_fsync(fd)
+        if not sent:
+            sent.append(True)
+            os.kill(os.getpid(), signal.SIGINT)
+
+    with RunWriter(path, calibration_json=CAL) as w:
+        w.append_many([record(i) for i in range(2)])
+        monkeypatch.setattr(os, "fsync", fsync_then_ctrl_c)
+        with pytest.raises(KeyboardInterrupt):
+            w.append_many([record(i) for i in range(2, 5)])
+        monkeypatch.undo()
+        assert sent and w.n_shots == 5
+    check_exact(path, 5)
+    assert signal.getsignal(signal.SIGINT) is signal.default_int_handler
