@@ -51,6 +51,7 @@ import numpy as np
 import pyqtgraph as pg
 from PySide6 import QtCore, QtGui, QtWidgets
 
+from latticeread.gui.axes import plain_plot
 from latticeread.gui.panels import SMALLEST_PERCENT, WARNING_STYLE, rate_pct, show_warnings
 
 __all__ = ["FidelityPanel", "TYPICAL_LOSS", "MEANING", "loss_note"]
@@ -225,14 +226,7 @@ class FidelityPanel(QtWidgets.QWidget):
                                    "that vanished in each shot, counted, with its interval; the "
                                    "green band marks the typical loss of 1–2 % per image")
         self.trend_plot.setMinimumSize(300, 160)
-        tp = self.trend_plot.getPlotItem()
-        tp.showGrid(x=True, y=True, alpha=0.25)
-        tp.setLabel("bottom", "shot")
-        tp.setLabel("left", "per image (%)")
-        tp.hideButtons()
-        tp.setMenuEnabled(False)
-        for axis in ("left", "bottom"):
-            tp.getAxis(axis).enableAutoSIPrefix(False)
+        tp = plain_plot(self.trend_plot, bottom="shot", left="per image (%)", grid=0.25)
         self._band = pg.LinearRegionItem(values=(100 * TYPICAL_LOSS[0], 100 * TYPICAL_LOSS[1]),
                                          orientation="horizontal", movable=False,
                                          brush=pg.mkBrush(80, 200, 80, 45), pen=pg.mkPen(None))

@@ -65,7 +65,7 @@ import pyqtgraph as pg
 from PySide6 import QtCore, QtWidgets
 
 from latticeread.core.geometry import LatticeGeometry
-from latticeread.gui.axes import IntegerAxis
+from latticeread.gui.axes import IntegerAxis, plain_plot
 from latticeread.gui.panels import WARNING_STYLE, fmt, show_warnings
 
 __all__ = ["GeometryPanel"]
@@ -102,15 +102,7 @@ class GeometryPanel(QtWidgets.QWidget):
             "reciprocal vectors ±b1, ±b2 of the geometry shown here fall (they follow the manual "
             "adjustments). Scroll to zoom, drag to pan.")
         self.spectrum_plot.setMinimumSize(200, 200)
-        sp = self.spectrum_plot.getPlotItem()
-        sp.setAspectLocked(True)
-        sp.invertY(True)
-        sp.hideButtons()
-        sp.setMenuEnabled(False)
-        sp.setLabel("bottom", "kx (FFT pixels)")
-        sp.setLabel("left", "ky (FFT pixels)")
-        for axis in ("left", "bottom"):
-            sp.getAxis(axis).enableAutoSIPrefix(False)
+        sp = plain_plot(self.spectrum_plot, bottom="kx (FFT pixels)", left="ky (FFT pixels)", image=True)
         self._no_spectrum = pg.TextItem("no spectrum yet", color=(200, 200, 200), anchor=(0.5, 0.5))
         sp.addItem(self._no_spectrum, ignoreBounds=True)
         sp.setRange(xRange=(-1, 1), yRange=(-1, 1), padding=0)
@@ -289,14 +281,7 @@ class GeometryPanel(QtWidgets.QWidget):
         self.drift_plot.setToolTip("Lattice phase of every frame against frame index, as the change "
                                    "since the first frame shown, with the fitted linear trend (dashed)")
         self.drift_plot.setMinimumHeight(150)
-        dp = self.drift_plot.getPlotItem()
-        dp.showGrid(x=True, y=True, alpha=0.25)
-        dp.setLabel("bottom", "frame")
-        dp.setLabel("left", "offset (px)")
-        dp.hideButtons()
-        dp.setMenuEnabled(False)
-        for axis in ("left", "bottom"):
-            dp.getAxis(axis).enableAutoSIPrefix(False)
+        dp = plain_plot(self.drift_plot, bottom="frame", left="offset (px)", grid=0.25)
         self._drift_legend = dp.addLegend(offset=(-10, 10), labelTextColor=(40, 40, 40))
         colours = ((30, 100, 200), (210, 90, 20))
         self._drift_curves = [
@@ -320,15 +305,7 @@ class GeometryPanel(QtWidgets.QWidget):
             "Grey background (bar on the right): relative brightness of one atom across the frame, "
             "1 at the centre of the brightness map.")
         self.distortion_plot.setMinimumHeight(150)
-        dsp = self.distortion_plot.getPlotItem()
-        dsp.setAspectLocked(True)
-        dsp.invertY(True)
-        dsp.hideButtons()
-        dsp.setMenuEnabled(False)
-        dsp.setLabel("bottom", "x (px)")
-        dsp.setLabel("left", "y (px)")
-        for axis in ("left", "bottom"):
-            dsp.getAxis(axis).enableAutoSIPrefix(False)
+        dsp = plain_plot(self.distortion_plot, bottom="x (px)", left="y (px)", image=True)
         self._brightness_image = pg.ImageItem(axisOrder="row-major")
         self._brightness_image.setColorMap(pg.colormap.get("CET-L1"))
         self._brightness_image.setZValue(-10)

@@ -59,6 +59,7 @@ import numpy as np
 import pyqtgraph as pg
 from PySide6 import QtCore, QtWidgets
 
+from latticeread.gui.axes import plain_plot
 from latticeread.gui.panels import WARNING_STYLE, fmt, rate_pct, show_warnings
 
 __all__ = ["HistogramPanel", "THRESHOLD_METHODS"]
@@ -200,14 +201,7 @@ class HistogramPanel(QtWidgets.QWidget):
             "Histogram of site amplitudes. Drag the red line to move the occupancy threshold; "
             "blue: empty-site component, orange: occupied-site component, dashed: their sum.")
         self.plot_widget.setMinimumSize(260, 170)
-        item = self.plot_widget.getPlotItem()
-        item.setLabel("bottom", "site amplitude", units=None)
-        item.setLabel("left", "sites per bin")
-        item.showGrid(x=True, y=True, alpha=0.2)
-        item.setMenuEnabled(False)
-        item.hideButtons()
-        for axis in ("left", "bottom"):
-            item.getAxis(axis).enableAutoSIPrefix(False)
+        item = plain_plot(self.plot_widget, bottom="site amplitude", left="sites per bin", grid=0.2)
         item.getViewBox().setMouseEnabled(x=True, y=False)
         self._hist_curve = pg.PlotDataItem(stepMode="center", fillLevel=0, brush=_HIST_BRUSH,
                                            pen=pg.mkPen((90, 110, 140), width=1))

@@ -39,6 +39,7 @@ import numpy as np
 import pyqtgraph as pg
 from PySide6 import QtCore, QtWidgets
 
+from latticeread.gui.axes import plain_plot
 from latticeread.gui.panels import WARNING_STYLE, fmt, show_warnings
 
 __all__ = ["ObservablesPanel"]
@@ -54,14 +55,8 @@ def _plot(title: str, left: str, bottom: str, tip: str) -> pg.PlotWidget:
     w = pg.PlotWidget(background="w")
     w.setToolTip(tip)
     w.setMinimumSize(220, 180)
-    p = w.getPlotItem()
+    p = plain_plot(w, bottom=bottom, left=left)
     p.setTitle(title, color=(40, 40, 40), size="9pt")
-    p.setLabel("left", left)
-    p.setLabel("bottom", bottom)
-    p.hideButtons()
-    p.setMenuEnabled(False)
-    for axis in ("left", "bottom"):
-        p.getAxis(axis).enableAutoSIPrefix(False)
     return w
 
 

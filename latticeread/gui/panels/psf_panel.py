@@ -41,6 +41,7 @@ import pyqtgraph as pg
 from PySide6 import QtCore, QtWidgets
 
 from latticeread.core.psf import PSFModel, airy_psf
+from latticeread.gui.axes import plain_plot
 from latticeread.gui.panels import WARNING_STYLE, fmt, show_warnings
 
 __all__ = ["PSFPanel"]
@@ -66,13 +67,7 @@ class PSFPanel(QtWidgets.QWidget):
         self.image_plot.setToolTip("The PSF: image of one atom, finely sampled, in camera pixels "
                                    "from the atom position")
         self.image_plot.setMinimumSize(200, 200)
-        ip = self.image_plot.getPlotItem()
-        ip.setAspectLocked(True)
-        ip.invertY(True)
-        ip.hideButtons()
-        ip.setMenuEnabled(False)
-        ip.setLabel("bottom", "x (px)")
-        ip.setLabel("left", "y (px)")
+        ip = plain_plot(self.image_plot, bottom="x (px)", left="y (px)", image=True)
         self._image = pg.ImageItem(axisOrder="row-major")
         self._image.setColorMap(pg.colormap.get("viridis"))
         ip.addItem(self._image)
@@ -84,14 +79,7 @@ class PSFPanel(QtWidgets.QWidget):
             "optics entered below (blue dashed), both for the same total flux and divided by the "
             "ideal peak; vertical lines at half the FWHM")
         self.profile_plot.setMinimumSize(240, 200)
-        pp = self.profile_plot.getPlotItem()
-        pp.showGrid(x=True, y=True, alpha=0.25)
-        pp.setLabel("bottom", "distance from atom (px)")
-        pp.setLabel("left", "intensity / ideal peak")
-        pp.hideButtons()
-        pp.setMenuEnabled(False)
-        for axis in ("left", "bottom"):
-            pp.getAxis(axis).enableAutoSIPrefix(False)
+        pp = plain_plot(self.profile_plot, bottom="distance from atom (px)", left="intensity / ideal peak", grid=0.25)
         pp.addLegend(offset=(-10, 10), labelTextColor=(40, 40, 40))
         self._measured_curve = pg.PlotDataItem(pen=_MEASURED_PEN, name="PSF")
         self._ideal_curve = pg.PlotDataItem(pen=_IDEAL_PEN, name="ideal Airy")
