@@ -850,7 +850,7 @@ class SiteBasis:
             gram, v = correction.gram, correction.v
             diag = gram.diagonal()
         rhs = c - (v @ bg if v.shape[1] else 0.0)
-        pattern = self._interaction_pattern(gram, diag)
+        pattern = self._pattern_of(gram, diag)
         # sites with (almost) no usable pixels cannot be tested: they stay empty
         dead = diag < 0.05 * np.median(diag)
         best = None
@@ -859,15 +859,16 @@ class SiteBasis:
         for start in starts:
             n, g, passes = self._local_search(start & ~dead, rhs, gram, diag, pattern, atom=atom, max_iter=max_iter,
                                               dead=dead, moves=self._moves(gram))
-            energy = atom * atom * (n @ (gram @ n.astype(float))) - 2 * atom * (n @ rhs)
+            gn = gram @ n.astype(float)  # G n, kept for the energy and the atom's brightness below
+            energy = atom * atom * (n @ gn) - 2 * atom * (n @ rhs)
             if best is None or energy < best[0]:
-                best = (energy, n, g, passes)
-        _, n, g, passes = best
+                best = (energy, n, g, passes, gn)
+        _, n, g, passes, gn = best
         # the brightness of one atom: least-squares scale of the pattern, then search again (an
         # empty pattern means the guess was too bright: halve it)
         for _ in range(12 if fit_atom else 0):
             nf = n.astype(float)
-            norm = float(nf @ (gram @ nf))
+            norm = float(nf @ gn)
             new_atom = float(nf @ rhs) / norm if norm > 0 else 0.5 * atom
             if not np.isfinite(new_atom) or new_atom <= 0:
                 break
@@ -876,16 +877,23 @@ class SiteBasis:
             atom = float(np.clip(new_atom, 0.5 * atom, 2.0 * atom))
             n, g, more = self._local_search(n.copy(), rhs, gram, diag, pattern, atom=atom, max_iter=max_iter,
                                             dead=dead, moves=self._moves(gram))
+            gn = gram @ n.astype(float)
             passes += more
         self._last_pattern = n
         self.last_atom_photons = atom
-        self.last_energy = float(atom * atom * (n @ (gram @ n.astype(float))) - 2 * atom * (n @ rhs))
+        self.last_energy = float(atom * atom * (n @ gn) - 2 * atom * (n @ rhs))
         return atom * n + g / diag, passes
+
+    def _pattern_of(self, gram, diag):
+        """:meth:`_interaction_pattern` of ``gram``, kept while the same matrix object is used."""
+        if getattr(self, "_pattern_gram", None) is gram:  # the object is held, so its identity is not reused
+            return self._pattern_cache
+        self._pattern_gram, self._pattern_cache = gram, self._interaction_pattern(gram, diag)
+        return self._pattern_cache
 
     def _moves(self, gram):
         """Ordered pairs of nearest and diagonal neighbours ``(k, l)`` and ``G_kk + G_ll - 2 G_kl``."""
-        key = id(gram)
-        if getattr(self, "_moves_key", None) == key:
+        if getattr(self, "_moves_gram", None) is gram:  # the object is held, so its identity is not reused
             return self._moves_cache
         s = self.sites
         lookup = s.to_matrix(np.arange(len(s)), fill=-1, dtype=np.int64)
@@ -901,7 +909,7 @@ class SiteBasis:
         src, dst = np.concatenate(src), np.concatenate(dst)
         diag = gram.diagonal()
         gkl = np.asarray(gram[src, dst]).ravel()
-        self._moves_key, self._moves_cache = key, (src, dst, diag[src] + diag[dst] - 2 * gkl)
+        self._moves_gram, self._moves_cache = gram, (src, dst, diag[src] + diag[dst] - 2 * gkl)
         return self._moves_cache
 
     @staticmethod
@@ -926,18 +934,42 @@ class SiteBasis:
         nonempty = np.diff(indptr) > 0
         passes = 0
 
-        def neighbourhood_min(values):
+        def neighbourhood_min(values, rows):
+            """``min(values[l])`` over the pattern's row ``k``, at the sites ``rows`` (inf elsewhere).
+
+            Only rows that can decide anything are reduced (those of sites with a negative value):
+            in late passes a few dozen instead of every site's neighbourhood.
+            """
             out = np.full(n.size, np.inf)
-            out[nonempty] = np.minimum.reduceat(values[indices], indptr[:-1][nonempty])
+            if rows.size > n.size // 8:
+                out[nonempty] = np.minimum.reduceat(values[indices], indptr[:-1][nonempty])
+                return out
+            rows = rows[nonempty[rows]]
+            if rows.size == 0:
+                return out
+            starts = indptr[rows]
+            lengths = indptr[rows + 1] - starts
+            firsts = np.cumsum(lengths) - lengths
+            gather = np.arange(int(firsts[-1] + lengths[-1])) + np.repeat(starts - firsts, lengths)
+            out[rows] = np.minimum.reduceat(values[indices[gather]], firsts)
             return out
 
+        self_cost = atom * atom * diag
+        tie = 1 + order
+        if moves is not None:
+            src, dst, cost = moves  # cost = G_kk + G_ll - 2 G_kl for each ordered pair
+            move_cost = atom * atom * cost
+            move_tie = 1 + order[src]
         for passes in range(1, max_iter + 1):
-            d_e = atom * atom * diag + np.where(n, 2 * atom * g, -2 * atom * g)
-            d_e = d_e * (1 + order)
+            d_e = self_cost + np.where(n, 2 * atom * g, -2 * atom * g)
+            d_e = d_e * tie
             if dead is not None:
                 d_e[dead] = np.inf
             if np.any(d_e < 0):
-                flip = (d_e < 0) & (d_e <= neighbourhood_min(d_e))
+                # a site flips when it is the best of its neighbourhood; only sites with d_e < 0
+                # can be, and for them the neighbours with d_e >= 0 never decide
+                negative = np.flatnonzero(d_e < 0)
+                flip = (d_e < 0) & (d_e <= neighbourhood_min(d_e, negative))
                 idx = np.flatnonzero(flip)
                 delta = np.where(n[idx], -1.0, 1.0)
                 n[idx] = ~n[idx]
@@ -945,19 +977,23 @@ class SiteBasis:
                 continue
             if moves is None:
                 break
-            src, dst, cost = moves  # cost = G_kk + G_ll - 2 G_kl for each ordered pair
             ok = n[src] & ~n[dst]
             if dead is not None:
                 ok &= ~dead[dst]
-            d_m = np.where(ok, atom * atom * cost - 2 * atom * (g[dst] - g[src]), np.inf)
-            d_m = d_m * (1 + order[src])
-            if not np.any(d_m < 0):
+            ok = np.flatnonzero(ok)  # moves of an atom to an empty site
+            d_m = (move_cost[ok] - 2 * atom * (g[dst[ok]] - g[src[ok]])) * move_tie[ok]
+            # best lowering move touching each site (moves that raise the energy never decide whether a
+            # lowering one is the best of its neighbourhood, so only those enter)
+            lower = d_m < 0
+            if not lower.any():
                 break
-            best = np.full(n.size, np.inf)  # best move touching each site
-            np.minimum.at(best, src, d_m)
-            np.minimum.at(best, dst, d_m)
-            near = neighbourhood_min(best)
-            take = np.flatnonzero((d_m < 0) & (d_m <= near[src]) & (d_m <= near[dst]))
+            cand, cm = ok[lower], d_m[lower]
+            cs, cd = src[cand], dst[cand]
+            best = np.full(n.size, np.inf)
+            np.minimum.at(best, cs, cm)
+            np.minimum.at(best, cd, cm)
+            near = neighbourhood_min(best, np.unique(np.concatenate([cs, cd])))
+            take = cand[(cm <= near[cs]) & (cm <= near[cd])]
             # one move per site even if two moves tie
             _, first = np.unique(np.concatenate([src[take], dst[take]]), return_index=True)
             used = np.zeros(2 * take.size, bool)
