@@ -98,6 +98,9 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
     lat.add_argument("--refine-frames", type=number(low=1, integer=True), default=4, metavar="N",
                      help="frames fitted together by the image-model fit (default 4; the spacing error falls "
                           "as 1/sqrt(N))")
+    parser.add_argument("--psf-zones", type=number(low=1, high=8, integer=True), default=None, metavar="N",
+                        help="measure the PSF in N x N zones of the atoms' region and blend them across the field "
+                             "(a PSF that worsens toward the edge; adds seconds to a minute)")
     parser.add_argument("--force", action="store_true", help="overwrite an existing output file")
     add_camera_arguments(parser)
 
@@ -164,7 +167,8 @@ def run(args: argparse.Namespace) -> int:
         cal = calibrate(stack, psf=psf, camera=camera, pixel_size_nm=args.pixel_size_nm,
                         threshold_method=args.threshold_method, method=args.method, max_frames=args.max_frames,
                         refine_vectors=getattr(args, "refine_vectors", False),
-                        refine_frames=getattr(args, "refine_frames", 4), lattice_prior=prior)
+                        refine_frames=getattr(args, "refine_frames", 4), lattice_prior=prior,
+                        psf_zones=getattr(args, "psf_zones", None))
         if getattr(args, "weighting", "none") == "camera":
             cal = with_camera_weighting(cal, stack, max_frames=args.max_frames)
     finally:

@@ -41,6 +41,7 @@ from latticeread.core.classify import ThresholdResult
 from latticeread.core.distortion import DistortionField
 from latticeread.core.geometry import LatticeGeometry
 from latticeread.core.psf import PSFModel
+from latticeread.core.psf_zones import ZonePSFs
 from latticeread.core.region import SiteRegion
 from latticeread.errors import CalibrationError, ReconstructionError
 
@@ -380,6 +381,9 @@ class Calibration:
         ``applied`` leaves the sites on the perfect lattice too).
     brightness : BrightnessMap or None
         Relative brightness of an atom across the field (None or not ``applied`` = uniform).
+    psf_zones : ZonePSFs or None
+        PSFs measured in zones of the field and blended between them (None or not ``applied``
+        = ``psf`` everywhere); :func:`latticeread.core.psf_zones.estimate_zone_psfs`.
     notes : dict
         Provenance only (source files, fit diagnostics, warnings); not compared. Settings
         given here in the format-1 way (``weighting``, ``index_bounds``,
@@ -401,6 +405,7 @@ class Calibration:
     frame_policy: FramePolicy = field(default_factory=FramePolicy)
     distortion: DistortionField | None = None
     brightness: BrightnessMap | None = None
+    psf_zones: ZonePSFs | None = None
     notes: dict = field(default_factory=dict)
 
     def __post_init__(self):
@@ -428,11 +433,19 @@ class Calibration:
             object.__setattr__(self, "brightness", BrightnessMap.from_dict(self.brightness))
         elif self.brightness is not None and not isinstance(self.brightness, BrightnessMap):
             raise CalibrationError(f"brightness must be a BrightnessMap or None, got {type(self.brightness).__name__}")
+        if isinstance(self.psf_zones, dict):
+            try:
+                object.__setattr__(self, "psf_zones", ZonePSFs.from_dict(self.psf_zones))
+            except (KeyError, TypeError, ValueError) as exc:
+                raise CalibrationError(f"the calibration's zone PSFs (psf_zones) are malformed: {exc}") from exc
+        elif self.psf_zones is not None and not isinstance(self.psf_zones, ZonePSFs):
+            raise CalibrationError(f"psf_zones must be ZonePSFs or None, got {type(self.psf_zones).__name__}")
 
     def _key(self) -> tuple:
         return (self.geometry, self.psf, self.camera, tuple(int(s) for s in self.frame_shape), self.threshold,
                 self.threshold_method, self.amplitude_method, self.pixel_size_nm, self.options, self.threshold_scope,
-                _fit_key(self.threshold_fit), self.frame_policy, self.distortion, self.brightness)
+                _fit_key(self.threshold_fit), self.frame_policy, self.distortion, self.brightness,
+                None if self.psf_zones is None else repr(self.psf_zones.to_dict()))
 
     def __eq__(self, other) -> bool:
         if not isinstance(other, Calibration):
@@ -490,6 +503,7 @@ class Calibration:
             "frame_policy": self.frame_policy.to_dict(),
             "distortion": None if self.distortion is None else self.distortion.to_dict(),
             "brightness": None if self.brightness is None else self.brightness.to_dict(),
+            "psf_zones": None if self.psf_zones is None else self.psf_zones.to_dict(),
             "notes": self.notes,
         }
 
@@ -527,7 +541,8 @@ class Calibration:
                 amplitude_method=str(data.get("amplitude_method", "linear")),
                 pixel_size_nm=None if pixel is None else float(pixel),
                 options=options, threshold_scope=scope, threshold_fit=fit, frame_policy=frame_policy,
-                distortion=data.get("distortion"), brightness=data.get("brightness"), notes=notes,
+                distortion=data.get("distortion"), brightness=data.get("brightness"),
+                psf_zones=data.get("psf_zones"), notes=notes,
             )
         except CalibrationError:
             raise

@@ -372,8 +372,8 @@ class Reconstructor:
         self.pixel_weights = None
         if weighting == "camera":
             self.pixel_weights = _camera_pixel_weights(calibration, shape, reference)
-        self.basis = SiteBasis(calibration.geometry, frame_shape=shape, psf=calibration.psf, sites=self.fit_sites,
-                               mask=mask, pixel_weights=self.pixel_weights)
+        self.basis = SiteBasis(calibration.geometry, frame_shape=shape, sites=self.fit_sites, mask=mask,
+                               pixel_weights=self.pixel_weights, **_basis_psfs(calibration, self.fit_sites))
         # the phase is one global number: fit it on a central block of at most PHASE_BLOCK^2 sites
         # (its own, much narrower factorisation) instead of on every site
         self.phase_basis = self.basis
@@ -384,8 +384,8 @@ class Reconstructor:
                 max(rc - h, fs.row_min), min(rc + h - 1, fs.row_min + fs.n_rows - 1),
                 max(cc - h, fs.col_min), min(cc + h - 1, fs.col_min + fs.n_cols - 1))))
             if len(block) >= 100:
-                self.phase_basis = SiteBasis(calibration.geometry, frame_shape=shape, psf=calibration.psf,
-                                             sites=block, mask=mask, pixel_weights=self.pixel_weights)
+                self.phase_basis = SiteBasis(calibration.geometry, frame_shape=shape, sites=block, mask=mask,
+                                             pixel_weights=self.pixel_weights, **_basis_psfs(calibration, block))
         self.threshold = _calibration_threshold(calibration)
         atom = options.photons_per_atom
         if atom is None and calibration.threshold is not None:
@@ -804,6 +804,19 @@ def region_sites(calibration: Calibration, *, index_bounds=None) -> tuple[SiteGr
     return sites, keep
 
 
+def _basis_psfs(calibration: Calibration, sites: SiteGrid) -> dict:
+    """The PSF keyword arguments of :class:`SiteBasis`: the calibration's PSF, or its applied zone PSFs.
+
+    With zone PSFs the main PSF only sets the stamp radius: the calibration's PSF with the
+    zones' common radius.
+    """
+    zones = calibration.psf_zones
+    if zones is None or not zones.applied:
+        return {"psf": calibration.psf}
+    return {"psf": dataclasses.replace(calibration.psf, radius=zones.radius), "local_psfs": zones.psfs,
+            "local_weights": zones.weights(sites.x, sites.y)}
+
+
 def _placed(calibration: Calibration, sites: SiteGrid) -> SiteGrid:
     """The sites where the calibration's lens distortion puts them (unchanged without an applied field)."""
     field_ = calibration.distortion
@@ -898,7 +911,7 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
               threshold_method: str = "mixture", method: str | None = None, mask=None,
               restrict_region: bool = True, max_frames: int = 50, refine_vectors: bool = False,
               refine_frames: int = 4, lattice_prior: dict | None = None,
-              correct_distortion: bool = True, correct_brightness: bool = True) -> Calibration:
+              correct_distortion: bool = True, correct_brightness: bool = True, psf_zones=None) -> Calibration:
     """Make a calibration from a stack of frames.
 
     Parameters
@@ -952,6 +965,11 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
         (:func:`latticeread.core.distortion.fit_distortion`; stored in ``distortion``) and place
         the sites with it when it passes the significance test given there (the lattice
         vectors are refitted together with it); noted in ``distortion``.
+    psf_zones : int or (int, int), optional
+        Measure the PSF in ``n x n`` (or ``rows x cols``) zones of the analysed region and blend
+        them across the field (:func:`latticeread.core.psf_zones.estimate_zone_psfs`; stored in
+        ``psf_zones``, zones with too few atoms named in ``warnings``). Default: one PSF
+        everywhere. Costs several seconds to a minute per calibration.
     correct_brightness : bool
         With linear (or deconvolution) amplitudes, fit a smooth relative-brightness map to the
         amplitudes of the occupied sites (:func:`latticeread.core.brightness.fit_brightness`;
@@ -1065,6 +1083,13 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
             pooled, pooled_flags, warnings = _pooled(rec, chosen)
             tr = select_threshold(pooled, method=threshold_method, camera=camera, flags=pooled_flags)
     _check_region(rec, notes, psf_warnings)
+    if psf_zones:
+        zones = _zones_from(clean, rec, psf_zones, notes, psf_warnings)
+        if zones is not None and zones.applied:
+            draft = draft.replace(psf_zones=zones)
+            rec = Reconstructor(draft, method="linear", mask=mask, refit_phase=rec.refit_phase)
+            pooled, pooled_flags, warnings = _pooled(rec, chosen)
+            tr = select_threshold(pooled, method=threshold_method, camera=camera, flags=pooled_flags)
     if np.isfinite(tr.threshold):
         # the histogram of the sites where atoms occur: sites that never hold an atom (corners of
         # the bounding box, the margin) have no neighbours' light and would make the empty peak
@@ -1135,7 +1160,8 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
     options = draft.options.replace(photons_per_atom=float(atom) if np.isfinite(atom) and atom > 0 else None)
     return Calibration(geometry=geometry, psf=psf, camera=camera, frame_shape=shape, threshold=float(tr.threshold),
                        threshold_method=threshold_method, amplitude_method=method, pixel_size_nm=pixel_size_nm,
-                       options=options, threshold_fit=tr, distortion=distortion, brightness=brightness, notes=notes)
+                       options=options, threshold_fit=tr, distortion=distortion, brightness=brightness,
+                       psf_zones=draft.psf_zones, notes=notes)
 
 
 def lattice_constraint_kwargs(prior: dict | None, *, angle_between: float = np.pi / 2) -> dict:
@@ -1284,6 +1310,25 @@ def _geometry_from_frames(clean, *, psf, prior, n_fit, notes) -> LatticeGeometry
                                     "spacing_sigma": float(geometry.quality.spacing_sigma),
                                     "sigma_px": float(geometry.quality.residual)}
     return geometry
+
+
+def _zones_from(clean, rec: Reconstructor, grid, notes: dict, warnings: list):
+    """Zone PSFs measured on the calibration frames (None, with a note, when that fails)."""
+    from latticeread.core.psf_zones import estimate_zone_psfs
+
+    if np.ndim(grid) == 0:
+        grid = (int(grid), int(grid))
+    cal = rec.calibration
+    try:
+        zones = estimate_zone_psfs(clean, geometry=cal.geometry, psf=cal.psf, sites=rec.fit_sites,
+                                   site_x=rec.sites.x, site_y=rec.sites.y, grid=grid)
+    except ReconstructionError as exc:
+        notes["psf_zones"] = f"no zone PSFs: {exc}"
+        warnings.append(f"the PSF could not be measured in zones ({exc}); one PSF is used everywhere")
+        return None
+    notes["psf_zones"] = zones.describe()
+    warnings.extend(zones.warnings)
+    return zones
 
 
 def _brightness_from(rec: Reconstructor, pooled, flags, tr, *, n_frames: int, notes: dict):

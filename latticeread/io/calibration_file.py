@@ -32,6 +32,9 @@ Layout (all lengths in pixels, amplitudes and thresholds in photons)::
                      "applied": bool, ...fit diagnostics} or null   (optional; absent = none),
       "brightness": {"centre": [x, y], "scale": px, "order": n, "coef": [...], "applied": bool,
                      ...fit diagnostics} or null   (optional; absent = uniform),
+      "psf_zones": {"grid": [rows, cols], "bounds": [x0, x1, y0, y1], "psfs": [psf, ...],
+                    "n_atoms": [...], "fitted": [...], "fwhm": [...], "applied": bool, "warnings": [...]}
+                   or null   (optional; absent = one PSF everywhere),
       "notes": {...}   (provenance only)
     }
 
@@ -241,6 +244,12 @@ _SCHEMA = {
     "brightness.order": (True, _int, False),
     "brightness.coef": (True, (lambda v: isinstance(v, list) and all(_is_number(x) for x in v),
                                "a list of numbers"), False),
+    "psf_zones": (False, _obj, True),
+    "psf_zones.grid": (True, (_int_pair, "a list of two whole numbers [rows, columns]"), False),
+    "psf_zones.bounds": (True, (lambda v: isinstance(v, list) and len(v) == 4 and all(_is_number(x) for x in v),
+                                "a list of four numbers [x0, x1, y0, y1]"), False),
+    "psf_zones.psfs": (True, (lambda v: isinstance(v, list) and all(isinstance(x, dict) for x in v),
+                              "a list of PSF objects"), False),
     "notes": (False, _obj, False),
 }
 
