@@ -290,3 +290,28 @@ def test_full_disk_during_reconstruct_to_hdf5_exits_4_and_leaves_nothing(tmp_pat
     assert code == 4, err
     assert "is full" in err and "internal error" not in err
     assert list(out.iterdir()) == []  # no output, no temporary file, no lock file
+
+
+def test_full_disk_during_watch_exits_4_naming_the_frames_and_the_watch_resumes(tmp_path, monkeypatch, capsys):
+    import errno
+
+    from latticeread.cli import main
+
+    cal, paths, _ = make_dataset(tmp_path / "data", n_files=1, frames_per_file=2, seed=14)
+    save_calibration(tmp_path / "cal.json", cal)
+    args = ["watch", str(tmp_path / "data"), "-c", str(tmp_path / "cal.json"), "-o", str(tmp_path / "live.h5"),
+            "--max-files", "1", "--settle", "0", "--interval", "0.05", "--quiet"]
+
+    def full(fd, offset, length):
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+
+    monkeypatch.setattr(os, "posix_fallocate", full)
+    code = main(args)
+    err = capsys.readouterr().err
+    assert code == 4, err
+    assert "is full" in err and "not written: shot_0.tif frames 0-1" in err and "internal error" not in err
+    assert _shots(tmp_path / "live.h5") == 0  # readable
+    monkeypatch.undo()
+    assert main(args) == 0  # space again: the same command stores every frame once
+    run = read_run(tmp_path / "live.h5")
+    assert sorted(run.frame_index.tolist()) == [0, 1] and len(run.failures) == 0

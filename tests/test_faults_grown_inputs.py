@@ -198,3 +198,33 @@ def test_a_format_4_file_reads_and_resumes_with_unknown_digests(tmp_path, caplog
 
     with h5py.File(path, "r") as f:
         assert f.attrs["format_version"] == RUN_FORMAT_VERSION == 5
+
+
+def test_the_readers_of_run_files_take_format_5_and_format_4(frames, tmp_path):
+    # read_results is checked above; here the fidelity command's reader (its whole analysis on a
+    # run file is tests/test_faults_batch.py's, at seconds per run) and the observables command.
+    import argparse
+    import shutil
+
+    from latticeread.cli import main
+    from latticeread.commands import fidelity
+    from latticeread.io.observables_file import read_occupation_input
+
+    cal, stack = frames
+    data = tmp_path / "data"
+    data.mkdir()
+    _append(data / "shot.tif", stack)
+    run_batch([data], calibration=cal, out=tmp_path / "run5.h5", workers=0, progress=False)
+    shutil.copy(tmp_path / "run5.h5", tmp_path / "run4.h5")
+    _as_format_4(tmp_path / "run4.h5")
+    read = {}
+    for name in ("run5.h5", "run4.h5"):
+        path = tmp_path / name
+        assert fidelity._results_kind(path) == "run"
+        read[name] = fidelity._run_file(path, argparse.Namespace(images_per_shot=2))
+        assert len(read_occupation_input(path).occupation) == 6
+        assert main(["observables", str(path), "--out", str(tmp_path / f"{name}.obs.h5"), "--bootstrap", "10",
+                     "-q"]) == 0
+    for new, old in zip(read["run5.h5"][:3], read["run4.h5"][:3]):
+        np.testing.assert_array_equal(new, old)
+    assert read["run5.h5"][0].shape[:2] == (3, 2)  # 3 shots of 2 images

@@ -88,6 +88,7 @@ import os
 import signal
 import threading
 import time
+import types
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -677,10 +678,11 @@ class RunWriter:
         return set(self._failed)
 
     @property
-    def stored_digests(self) -> dict[tuple[str, int], set[str]]:
+    def stored_digests(self):
         """Frame digests in the file per ``(source, frame_index)`` ("" for rows of files before
-        format version 5, whose pixels were not recorded)."""
-        return {k: set(v) for k, v in self._stored.items()}
+        format version 5, whose pixels were not recorded): a read-only view that follows the
+        writer (not copied: a long watch asks for it once per file)."""
+        return types.MappingProxyType(self._stored)
 
     @property
     def n_shots(self) -> int:
