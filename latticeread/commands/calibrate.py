@@ -98,6 +98,10 @@ def add_parser(parser: argparse.ArgumentParser) -> None:
     lat.add_argument("--refine-frames", type=number(low=1, integer=True), default=4, metavar="N",
                      help="frames fitted together by the image-model fit (default 4; the spacing error falls "
                           "as 1/sqrt(N))")
+    parser.add_argument("--background", choices=["constant", "plane", "poly2", "poly3", "auto"], default="constant",
+                        help="background fitted with the sites in every frame: a constant (default), a plane, a "
+                             "polynomial surface of degree 2 or 3 (gradients, broad stray-light humps), or 'auto' "
+                             "(degree 2 when the frames show one)")
     parser.add_argument("--psf-zones", type=number(low=1, high=8, integer=True), default=None, metavar="N",
                         help="measure the PSF in N x N zones of the atoms' region and blend them across the field "
                              "(a PSF that worsens toward the edge; adds seconds to a minute)")
@@ -168,7 +172,7 @@ def run(args: argparse.Namespace) -> int:
                         threshold_method=args.threshold_method, method=args.method, max_frames=args.max_frames,
                         refine_vectors=getattr(args, "refine_vectors", False),
                         refine_frames=getattr(args, "refine_frames", 4), lattice_prior=prior,
-                        psf_zones=getattr(args, "psf_zones", None))
+                        psf_zones=getattr(args, "psf_zones", None), background=getattr(args, "background", "constant"))
         if getattr(args, "weighting", "none") == "camera":
             cal = with_camera_weighting(cal, stack, max_frames=args.max_frames)
     finally:

@@ -153,6 +153,9 @@ class AmplitudeResult:
         Refinement passes (``"nonlinear"``) or deconvolution iterations; 0 for ``"linear"``.
     warnings : tuple of str
         Reasons why the amplitudes may mislead.
+    background_coefficients : (m,) ndarray or None
+        The fitted background's coefficients (:meth:`SiteBasis.background_image` makes the
+        image of them); None where the estimator does not fit them.
     """
 
     amplitudes: np.ndarray = field(repr=False)
@@ -163,6 +166,7 @@ class AmplitudeResult:
     method: str = "linear"
     iterations: int = 0
     warnings: tuple[str, ...] = ()
+    background_coefficients: np.ndarray | None = field(default=None, repr=False, compare=False)
 
 
 def _as_image(image, frame_shape=None) -> np.ndarray:
@@ -789,7 +793,7 @@ class SiteBasis:
         x, y = self.positions(offset)
         return AmplitudeResult(amplitudes=amps, background=self.background_level(bg), flags=flags, x=x, y=y,
                                method="linear" if refine_level is None else "nonlinear",
-                               iterations=iterations, warnings=tuple(warnings))
+                               iterations=iterations, warnings=tuple(warnings), background_coefficients=bg)
 
     def _phase_corrected(self, c, d, amps, bg, *, offset, bad, correction, max_steps: int = 6, rtol: float = 1e-7):
         """Iterative refinement of the linear solution with the normal matrix of this frame's phase.

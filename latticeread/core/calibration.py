@@ -61,6 +61,7 @@ THRESHOLD_METHODS = ("mixture", "otsu", "minimum")
 PIXEL_POLICIES = ("flag", "fail")
 #: The threshold policy of a calibration without a fixed threshold, in every front end.
 DEFAULT_THRESHOLD_SCOPE = "pooled"
+_BACKGROUNDS = ("constant", "plane", "poly2", "poly3")
 _WEIGHTINGS = ("none", "camera")
 _PHASE_METHODS = ("atoms", "model", "fourier")
 #: Settings that format version 1 kept in ``notes``.
@@ -167,6 +168,10 @@ class ReconstructionOptions:
         The analysed region (shapes in pixels, masked areas, excluded sites;
         :mod:`latticeread.core.region`); sites outside it are fitted but left out of the
         results. The default analyses every site.
+    background : {"constant", "plane", "poly2", "poly3"}
+        Background fitted with the sites in every frame: a constant, or a smooth polynomial
+        surface of degree 1-3 (gradients and broad humps of stray light that change from frame
+        to frame; :class:`latticeread.core.amplitudes.SiteBasis`).
     """
 
     weighting: str = "none"
@@ -177,8 +182,12 @@ class ReconstructionOptions:
     refit_phase: bool = True
     hot_pixels: tuple = ()
     region: SiteRegion = field(default_factory=SiteRegion)
+    background: str = "constant"
 
     def __post_init__(self):
+        if self.background not in _BACKGROUNDS:
+            raise CalibrationError(f"unknown background model {self.background!r}; use one of "
+                                   f"{', '.join(repr(b) for b in _BACKGROUNDS)}")
         if self.weighting not in _WEIGHTINGS:
             raise CalibrationError(f"unknown pixel weighting {self.weighting!r}; use 'none' (every pixel counts the "
                                    "same) or 'camera' (inverse camera-noise variance)")
@@ -217,7 +226,8 @@ class ReconstructionOptions:
                 "phase_method": self.phase_method, "refit_phase": self.refit_phase,
                 "hot_pixels": [list(p) for p in self.hot_pixels],
                 # written only when set, so files without a region stay readable by older versions
-                **({} if self.region.is_everything else {"region": self.region.to_dict()})}
+                **({} if self.region.is_everything else {"region": self.region.to_dict()}),
+                **({} if self.background == "constant" else {"background": self.background})}
 
     @classmethod
     def from_dict(cls, data: dict) -> "ReconstructionOptions":

@@ -373,7 +373,8 @@ class Reconstructor:
         if weighting == "camera":
             self.pixel_weights = _camera_pixel_weights(calibration, shape, reference)
         self.basis = SiteBasis(calibration.geometry, frame_shape=shape, sites=self.fit_sites, mask=mask,
-                               pixel_weights=self.pixel_weights, **_basis_psfs(calibration, self.fit_sites))
+                               pixel_weights=self.pixel_weights, background=options.background,
+                               **_basis_psfs(calibration, self.fit_sites))
         # the phase is one global number: fit it on a central block of at most PHASE_BLOCK^2 sites
         # (its own, much narrower factorisation) instead of on every site
         self.phase_basis = self.basis
@@ -385,7 +386,8 @@ class Reconstructor:
                 max(cc - h, fs.col_min), min(cc + h - 1, fs.col_min + fs.n_cols - 1))))
             if len(block) >= 100:
                 self.phase_basis = SiteBasis(calibration.geometry, frame_shape=shape, sites=block, mask=mask,
-                                             pixel_weights=self.pixel_weights, **_basis_psfs(calibration, block))
+                                             pixel_weights=self.pixel_weights, background=options.background,
+                                             **_basis_psfs(calibration, block))
         self.threshold = _calibration_threshold(calibration)
         atom = options.photons_per_atom
         if atom is None and calibration.threshold is not None:
@@ -613,6 +615,11 @@ class Reconstructor:
                 exclude = part if exclude is None else exclude | part
         if getattr(self, "_pixel_model", None) is None:
             self._pixel_model = PixelModel(self.calibration.psf)
+        if self.basis.background_model.startswith("poly") and amp.background_coefficients is not None:
+            # the check compares with one background level: take the fitted surface's structure out
+            surface = self.basis.background_image(amp.background_coefficients) - amp.background
+            full = np.array(full, dtype=float)
+            full[crop] -= surface[crop]
         return check_frame(full, crop=crop, x=amp.x, y=amp.y, amplitudes=amp.amplitudes, background=amp.background,
                            model=self._pixel_model, camera=self.camera, exclude=exclude,
                            unit=amplitude_unit(self.camera))
@@ -633,7 +640,11 @@ class Reconstructor:
 
         if getattr(self, "_pixel_model", None) is None:
             self._pixel_model = PixelModel(self.calibration.psf)
-        amp = fit(filled)
+        # start from the background under the hits, not from their neighbours' light: a hit on an
+        # empty site between atoms, filled from those atoms' wings, looks like an atom and the
+        # few fill-and-fit steps do not take that back (they do raise an atom under a hit)
+        level = float(np.median(photons[self.basis.crop]))
+        amp = fit(np.where(art, level, filled))
         for _ in range(steps):
             filled = model_fill(photons, art, x=amp.x, y=amp.y, amplitudes=amp.amplitudes,
                                 background=amp.background, model=self._pixel_model)
@@ -911,7 +922,8 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
               threshold_method: str = "mixture", method: str | None = None, mask=None,
               restrict_region: bool = True, max_frames: int = 50, refine_vectors: bool = False,
               refine_frames: int = 4, lattice_prior: dict | None = None,
-              correct_distortion: bool = True, correct_brightness: bool = True, psf_zones=None) -> Calibration:
+              correct_distortion: bool = True, correct_brightness: bool = True, psf_zones=None,
+              background: str = "constant") -> Calibration:
     """Make a calibration from a stack of frames.
 
     Parameters
@@ -965,6 +977,11 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
         (:func:`latticeread.core.distortion.fit_distortion`; stored in ``distortion``) and place
         the sites with it when it passes the significance test given there (the lattice
         vectors are refitted together with it); noted in ``distortion``.
+    background : {"constant", "plane", "poly2", "poly3", "auto"}
+        Background fitted with the sites in every frame (stored in ``options.background``).
+        ``"auto"``: a degree-2 surface when it lowers the calibration frames' residual by far
+        more than noise would (:data:`BACKGROUND_SIGNIFICANCE`; noted in ``background``), else
+        a constant.
     psf_zones : int or (int, int), optional
         Measure the PSF in ``n x n`` (or ``rows x cols``) zones of the analysed region and blend
         them across the field (:func:`latticeread.core.psf_zones.estimate_zone_psfs`; stored in
@@ -1083,6 +1100,13 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
             pooled, pooled_flags, warnings = _pooled(rec, chosen)
             tr = select_threshold(pooled, method=threshold_method, camera=camera, flags=pooled_flags)
     _check_region(rec, notes, psf_warnings)
+    if background == "auto":
+        background = _choose_background(rec, chosen, notes)
+    if background != "constant":
+        draft = draft.with_options(background=background)
+        rec = Reconstructor(draft, method="linear", mask=mask, refit_phase=rec.refit_phase)
+        pooled, pooled_flags, warnings = _pooled(rec, chosen)
+        tr = select_threshold(pooled, method=threshold_method, camera=camera, flags=pooled_flags)
     if psf_zones:
         zones = _zones_from(clean, rec, psf_zones, notes, psf_warnings)
         if zones is not None and zones.applied:
@@ -1310,6 +1334,37 @@ def _geometry_from_frames(clean, *, psf, prior, n_fit, notes) -> LatticeGeometry
                                     "spacing_sigma": float(geometry.quality.spacing_sigma),
                                     "sigma_px": float(geometry.quality.residual)}
     return geometry
+
+
+#: ``background="auto"`` takes the degree-2 surface when it lowers the residual of the
+#: calibration frames by more than this many times the noise variance per frame (a surface
+#: fitted to pure noise lowers it by about 5, its number of extra parameters).
+BACKGROUND_SIGNIFICANCE = 100.0
+
+
+def _choose_background(rec: Reconstructor, frames, notes: dict, n_frames: int = 3) -> str:
+    """``"poly2"`` when a smooth background surface explains the calibration frames much better, else ``"constant"``."""
+    basis = rec.basis
+    try:
+        poly = SiteBasis(basis.geometry, frame_shape=basis.frame_shape, sites=basis.sites, mask=basis.mask,
+                         pixel_weights=rec.pixel_weights, background="poly2", **_basis_psfs(rec.calibration, basis.sites))
+    except ReconstructionError as exc:
+        notes["background"] = f"constant (the surface fit failed: {exc})"
+        return "constant"
+    gains = []
+    for image in frames[:n_frames]:
+        geometry, amp, _ = rec.extract_full(image)
+        photons = rec._photons(np.asarray(image))
+        y = basis._weighted(photons)
+        total = float(np.sum(y * photons[basis.crop]))
+        flat = basis.explained(photons, offset=geometry.offset)
+        noise = max((total - flat) / max(basis._n_bg_pixels, 1.0), 1e-12)
+        gains.append((poly.explained(photons, offset=geometry.offset) - flat) / noise)
+    gain = float(np.median(gains)) if gains else 0.0
+    choice = "poly2" if gain > BACKGROUND_SIGNIFICANCE else "constant"
+    notes["background"] = (f"{choice}: a degree-2 background surface lowers the residual by {gain:.0f} times the "
+                           f"noise variance per frame (threshold {BACKGROUND_SIGNIFICANCE:.0f})")
+    return choice
 
 
 def _zones_from(clean, rec: Reconstructor, grid, notes: dict, warnings: list):

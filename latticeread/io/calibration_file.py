@@ -220,6 +220,7 @@ _SCHEMA = {
         isinstance(x, int) and not isinstance(x, bool) for x in v), "a list of four whole numbers"), True),
     "reconstruction.photons_per_atom": (False, _number, True),
     "reconstruction.phase_method": (False, _str, False),
+    "reconstruction.background": (False, _str, False),
     "reconstruction.refit_phase": (False, (lambda v: isinstance(v, bool), "true or false"), False),
     "reconstruction.reference": (False, _obj, True),
     "reconstruction.region": (False, _obj, True),
