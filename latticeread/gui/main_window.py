@@ -804,6 +804,7 @@ class MainWindow(QtWidgets.QMainWindow):
             gp.set_brightness(None if cal is None else cal.brightness, None if cal is None else cal.frame_shape)
         if hasattr(pp, "set_psf"):
             pp.set_psf(None if cal is None else cal.psf)
+            pp.set_zones(None if cal is None else cal.psf_zones)
             pp.set_optics(numerical_aperture=st["numerical_aperture"], wavelength_nm=st["wavelength_nm"],
                           pixel_size_nm=st.get("pixel_size_nm"))
         if hasattr(hp, "set_method") and cal is not None:

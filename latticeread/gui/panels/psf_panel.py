@@ -13,6 +13,11 @@ Methods (data in)
     ellipticity and number of atoms used (from ``params["ellipticity"]``,
     ``params["n_atoms"]`` of empirical models) and any ``params["warnings"]``. None clears.
     A "log image" box switches the image to a logarithmic scale (display only).
+``set_zones(zone_psfs)``
+    Show a calibration's :class:`latticeread.core.psf_zones.ZonePSFs`: every zone's PSF
+    image in its place in the field (each scaled to its own peak), its FWHM in pixels and
+    ``few atoms`` where a zone had too few atoms for its own PSF, plus the zones' warnings.
+    None hides the view.
 ``set_optics(*, numerical_aperture=None, wavelength_nm=None, pixel_size_nm=None)``
     Fill the optics boxes (e.g. from the calibration) without emitting ``opticsChanged``.
 ``optics()``
@@ -28,8 +33,8 @@ Signals (user actions out)
 ``estimateRequested()``
     "Estimate PSF" pressed: estimate the PSF from isolated atoms in the frames.
 
-Attribute for the owner: ``profile_plot`` and ``image_plot`` (pyqtgraph PlotWidgets, for plot
-export).
+Attribute for the owner: ``profile_plot``, ``image_plot`` and ``zones_plot`` (pyqtgraph
+PlotWidgets, for plot export).
 """
 
 from __future__ import annotations
@@ -61,6 +66,8 @@ class PSFPanel(QtWidgets.QWidget):
         super().__init__(parent)
         self._psf: PSFModel | None = None
         self._psf_image: np.ndarray | None = None
+        self._zones = None
+        self._zone_labels: list = []
 
         # --- image ------------------------------------------------------------------
         self.image_plot = pg.PlotWidget(background="k")
@@ -92,9 +99,21 @@ class PSFPanel(QtWidgets.QWidget):
             line.setVisible(False)
             pp.addItem(line, ignoreBounds=True)
 
+        # --- zone PSFs across the field ------------------------------------------------
+        self.zones_plot = pg.PlotWidget(background="k")
+        self.zones_plot.setToolTip("PSF measured in each zone of the field, in its place (top left = top left of "
+                                   "the atoms' region), each scaled to its own peak; numbers: FWHM in pixels")
+        self.zones_plot.setMinimumSize(200, 200)
+        zp = plain_plot(self.zones_plot, bottom="zone column", left="zone row", image=True)
+        self._zones_image = pg.ImageItem(axisOrder="row-major")
+        self._zones_image.setColorMap(pg.colormap.get("viridis"))
+        zp.addItem(self._zones_image)
+        self.zones_plot.setVisible(False)
+
         plots = QtWidgets.QBoxLayout(QtWidgets.QBoxLayout.LeftToRight)
         plots.addWidget(self.image_plot, 2)
         plots.addWidget(self.profile_plot, 3)
+        plots.addWidget(self.zones_plot, 2)
 
         # --- optics ---------------------------------------------------------------------
         optics = QtWidgets.QGroupBox("Optics for the ideal pattern")
@@ -186,6 +205,44 @@ class PSFPanel(QtWidgets.QWidget):
             self.image_plot.getPlotItem().autoRange(padding=0)
         self._redraw()
 
+    def set_zones(self, zone_psfs) -> None:
+        """Show the zone PSFs of a calibration (see module docstring); None hides the view."""
+        self._zones = zone_psfs
+        zp = self.zones_plot.getPlotItem()
+        for item in self._zone_labels:
+            zp.removeItem(item)
+        self._zone_labels = []
+        if zone_psfs is None:
+            self._zones_image.clear()
+            self.zones_plot.setVisible(False)
+            self._redraw()
+            return
+        rows, cols = zone_psfs.grid
+        r = zone_psfs.radius
+        s = 2  # display samples per pixel
+        n = (2 * r + 1) * s
+        mosaic = np.zeros((rows * n, cols * n))
+        for k, psf in enumerate(zone_psfs.psfs):
+            img = psf.image(supersample=s)[:n, :n]
+            i, j = divmod(k, cols)
+            top = float(np.nanmax(img)) or 1.0
+            mosaic[i * n:i * n + img.shape[0], j * n:j * n + img.shape[1]] = img / top
+        self._zones_image.setImage(mosaic, levels=(0.0, 1.0))
+        self._zones_image.setRect(QtCore.QRectF(0.0, 0.0, float(cols), float(rows)))
+        for k in range(rows * cols):
+            i, j = divmod(k, cols)
+            width = zone_psfs.fwhm[k]
+            text = f"{width:.2f} px" if np.isfinite(width) else "-"
+            if not zone_psfs.fitted[k]:
+                text += "\nfew atoms"
+            label = pg.TextItem(text, color=(255, 255, 255), anchor=(0, 0))
+            label.setPos(j + 0.03, i + 0.03)
+            zp.addItem(label)
+            self._zone_labels.append(label)
+        self.zones_plot.setVisible(True)
+        zp.autoRange(padding=0)
+        self._redraw()
+
     def _show_image(self) -> None:
         img = getattr(self, "_psf_image", None)
         if img is None:
@@ -264,7 +321,16 @@ class PSFPanel(QtWidgets.QWidget):
             else:
                 rows.append(("source", "model, not measured"))
             rows.append(("stamp radius", f"{psf.radius} px"))
-            show_warnings(self.warnings_label, params.get("warnings", ()))
+            zones = self._zones
+            zone_warnings = ()
+            if zones is not None:
+                f = np.asarray(zones.fwhm)
+                f = f[np.isfinite(f)]
+                state = "" if zones.applied else " (not used)"
+                rows.append((f"zone PSFs {zones.grid[0]}x{zones.grid[1]}{state}",
+                             f"FWHM {f.min():.2f}-{f.max():.2f} px" if f.size else "-"))
+                zone_warnings = zones.warnings
+            show_warnings(self.warnings_label, tuple(params.get("warnings", ())) + tuple(zone_warnings))
         html = "<table cellspacing='2'>" + "".join(
             f"<tr><td>{k}</td><td><b>{v}</b></td></tr>" for k, v in rows) + "</table>"
         self.numbers_label.setText(html)
