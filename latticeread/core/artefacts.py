@@ -51,7 +51,7 @@ from latticeread.core.camera import CameraModel
 from latticeread.core.psf import PSFModel
 
 __all__ = ["ArtefactResult", "ArtefactFinder", "CleanedStack", "clean_stack", "model_fill", "PixelModel", "ARTEFACT_WARNING", "hot_pixel_mask", "sharpness", "bounds", "SCALES", "find_artefacts", "find_hot_pixels", "fill_pixels",
-           "SHARPEST_FWHM"]
+           "SHARPEST_FWHM", "refit_near_artefacts"]
 
 log = logging.getLogger(__name__)
 
@@ -814,6 +814,66 @@ def model_fill(photons, mask, *, x, y, amplitudes, background, model: PixelModel
         rows, cols = np.nonzero(labels[sl] == i)
         rows, cols = rows + sl[0].start, cols + sl[1].start
         out[rows, cols] = model(rows, cols, x=x, y=y, amplitudes=amplitudes, background=float(background))
+    return out
+
+
+def refit_near_artefacts(photons, mask, *, x, y, amplitudes, background, model: PixelModel,
+                         bad=None) -> np.ndarray:
+    """Amplitudes of the sites near masked pixels, refitted on the pixels around them that are left.
+
+    For every group of masked pixels, the sites within a stamp radius of it are refitted by
+    least squares on the unmasked pixels within two stamp radii of the group, with every other
+    site's light (its current amplitude) and the background held fixed. This is the fit that
+    leaves the masked pixels out, solved locally: the fill-and-fit steps
+    (:func:`model_fill`) converge slowly for a site whose core is masked, and stop wherever
+    their start put it.
+
+    Parameters
+    ----------
+    photons : (H, W) ndarray
+        The frame, photons per pixel.
+    mask : (H, W) ndarray of bool
+        Pixels left out (this frame's hits).
+    x, y, amplitudes : (N,) ndarray
+        Site centres (pixels) and current amplitudes (photons).
+    background : float or (H, W) ndarray
+        Fitted background, photons per pixel.
+    model : PixelModel
+    bad : (H, W) ndarray of bool, optional
+        Further pixels never used (hot pixels).
+
+    Returns
+    -------
+    (N,) ndarray
+        The amplitudes, changed only for the sites near masked pixels.
+    """
+    photons = np.asarray(photons, dtype=float)
+    mask = np.asarray(mask, dtype=bool)
+    x, y = np.asarray(x, dtype=float), np.asarray(y, dtype=float)
+    out = np.array(amplitudes, dtype=float)
+    unusable = mask if bad is None else mask | np.asarray(bad, dtype=bool)
+    h, w = photons.shape
+    r = model.radius
+    labels, _ = ndimage.label(ndimage.binary_dilation(mask, iterations=r), structure=np.ones((3, 3), bool))
+    for i, sl in enumerate(ndimage.find_objects(labels), start=1):
+        y0, y1, x0, x1 = sl[0].start, sl[0].stop, sl[1].start, sl[1].stop  # group grown by r
+        near = (x >= x0 - 0.5) & (x < x1 - 0.5) & (y >= y0 - 0.5) & (y < y1 - 0.5) & np.isfinite(out)
+        if not near.any():
+            continue
+        wy0, wy1, wx0, wx1 = max(y0 - r, 0), min(y1 + r, h), max(x0 - r, 0), min(x1 + r, w)
+        rows, cols = np.nonzero(~unusable[wy0:wy1, wx0:wx1])
+        rows, cols = rows + wy0, cols + wx0
+        idx = np.flatnonzero(near)
+        if rows.size <= idx.size:
+            continue
+        others = ~near & np.isfinite(out)
+        fixed = model(rows, cols, x=x[others], y=y[others], amplitudes=out[others], background=0.0)
+        level = background[rows, cols] if np.ndim(background) == 2 else float(background)
+        target = photons[rows, cols] - fixed - level
+        design = np.stack([model(rows, cols, x=x[k:k + 1], y=y[k:k + 1], amplitudes=np.ones(1), background=0.0)
+                           for k in idx], axis=1)
+        solution, *_ = np.linalg.lstsq(design, target, rcond=None)
+        out[idx] = solution
     return out
 
 

@@ -39,6 +39,7 @@ from latticeread.core.artefacts import (
     fill_pixels,
     hot_pixel_mask,
     model_fill,
+    refit_near_artefacts,
 )
 from latticeread.core.calibration import Calibration, ReconstructionOptions, ReferenceImage
 from latticeread.core.camera import CameraModel
@@ -649,6 +650,13 @@ class Reconstructor:
             filled = model_fill(photons, art, x=amp.x, y=amp.y, amplitudes=amp.amplitudes,
                                 background=amp.background, model=self._pixel_model)
             amp = fit(filled)
+        if self.method == "linear":
+            # the sites whose core a hit covers: refitted on the pixels left around them
+            background = amp.background if amp.background_coefficients is None or \
+                self.basis.background_model == "constant" else self.basis.background_image(amp.background_coefficients)
+            refit = refit_near_artefacts(photons, art, x=amp.x, y=amp.y, amplitudes=amp.amplitudes,
+                                         background=background, model=self._pixel_model, bad=self.hot_pixels)
+            amp = dataclasses.replace(amp, amplitudes=refit)
         flags = amp.flags | (self.basis.flags(offset=offset, artefacts=art) & np.uint8(site_flags.ARTEFACT))
         return dataclasses.replace(amp, flags=flags)
 
