@@ -23,6 +23,12 @@ SAMPLES = [
     ("demo_checkerboard.tif", "square", 40, 1, 20264,
      ["--pattern", "checkerboard", "--filling", "0.9", "--size", "128", "128"]),
     ("demo_mott.tif", "square", 40, 1, 20265, ["--pattern", "mott", "--filling", "0.93", "--size", "128", "128"]),
+    # every imperfection of a real microscope at once (invented sizes): hot pixels, cosmic rays, a
+    # Gaussian imaging beam, stray light changing per frame, barrel distortion (about 0.15 spacing
+    # at the corners), aberrations growing toward the edge, slow drift on top of the jitter
+    ("demo_realistic.tif", "square", 4, 1, 20266,
+     ["--hot-pixels", "12", "--cosmic-rays", "3", "--illumination-waist", "150", "--stray-light", "3",
+      "--distortion=-8e-8", "--aberrations", "0.3", "--drift", "0.15", "0.1"]),
 ]
 
 

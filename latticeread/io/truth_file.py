@@ -58,11 +58,14 @@ def write_truth(path, truth: SimulationTruth) -> Path:
         for name, arr in truth.artefacts.items():  # hot pixels and cosmic-ray charge
             h5.create_dataset(f"artefacts/{name}", data=np.asarray(arr), compression="gzip")
         if truth.frame_positions is not None:
-            h5.create_dataset("site_xy_frames", data=truth.frame_positions, compression="gzip")
+            h5.create_dataset("site_xy_frames", data=truth.frame_positions, compression="gzip", shuffle=True)
         if truth.illumination is not None:
             h5.create_dataset("site_illumination", data=truth.illumination)
         if truth.background_maps is not None:
-            h5.create_dataset("background_maps", data=truth.background_maps, compression="gzip")
+            # stray light to 1e-3 photons per pixel (lossy scale-offset filter): a smooth map stored exactly
+            # would take most of the file
+            h5.create_dataset("background_maps", data=truth.background_maps, compression="gzip", shuffle=True,
+                              scaleoffset=3)
         h5.attrs["truth_json"] = json.dumps(truth.to_dict())
         h5.attrs["program_version"] = __version__
         h5.attrs["row_min"] = truth.sites.row_min
