@@ -89,6 +89,7 @@ __all__ = [
     "BACKGROUND_MODELS",
     "WEIGHTINGS",
     "AmplitudeResult",
+    "OffsetFit",
     "camera_weights",
     "SiteBasis",
     "extract_amplitudes",
@@ -167,6 +168,30 @@ class AmplitudeResult:
     iterations: int = 0
     warnings: tuple[str, ...] = ()
     background_coefficients: np.ndarray | None = field(default=None, repr=False, compare=False)
+
+
+@dataclass(frozen=True)
+class OffsetFit:
+    """A frame's lattice offset from a real-space fit of its occupied sites (:meth:`SiteBasis.fit_offset_sites`).
+
+    Attributes
+    ----------
+    offset : (float, float)
+        Pixels.
+    sigma : (float, float)
+        1-sigma error of each component, pixels (NaN when it could not be estimated).
+    n_atoms : int
+        Occupied sites in the fit.
+    iterations : int
+    atom_photons : float
+        Photons of one atom fitted to the pattern.
+    """
+
+    offset: tuple[float, float]
+    sigma: tuple[float, float]
+    n_atoms: int
+    iterations: int
+    atom_photons: float
 
 
 def _as_image(image, frame_shape=None) -> np.ndarray:
@@ -486,6 +511,8 @@ class SiteBasis:
         return c, self._background_projection(y)
 
     def _background_projection(self, y) -> np.ndarray:
+        if self.background_model == "none":
+            return np.zeros(0)
         if self.background_model == "constant":
             return np.array([y.sum()])
         return np.einsum("ij,j->i", self._bg_crop, y.ravel())
@@ -658,6 +685,161 @@ class SiteBasis:
         frac = self.geometry.reciprocal @ (best - ref)
         best = best - np.rint(frac[0]) * a1 - np.rint(frac[1]) * a2
         return (float(best[0]), float(best[1])), it
+
+    def fit_offset_sites(self, image, *, atom_photons: float, start=None, search: bool = False, max_iter: int = 6,
+                         tol: float = 1e-3) -> OffsetFit:
+        """Lattice offset of one frame by a linearised real-space fit of its occupied sites (vectors kept).
+
+        The model is the image of the frame's occupied sites, each one atom (the linear amplitudes
+        at the current offset thresholded at half ``atom_photons``; the brightness of one atom is
+        the least-squares scale of that pattern). With the pattern held, the offset that fits the
+        image best solves ``sum_k <d s_k / d delta, y - model> = 0`` over the occupied sites ``k``:
+        the frame's correlation with the PSF differentiated at each occupied site (the cubic
+        spline of :meth:`_spline`), minus what the model's own neighbouring atoms put there (the
+        derivative of the stamp's autocorrelation at the sites' separations, a sparse matrix made
+        once). Newton steps on the spline's second derivatives. Only sites whose neighbourhood
+        (twice the stamp radius) lies wholly among the fitted sites enter the sums, so atoms
+        outside the fitted sites never pull the lattice. Works where the lattice's Fourier peaks
+        lie beyond the optical cut-off: the binary pattern is what a linear fit lacks there.
+
+        Parameters
+        ----------
+        image : (H, W) ndarray
+            Frame in photons per pixel (non-finite pixels count as 0).
+        atom_photons : float
+            Photons of one atom (sets the threshold of the pattern).
+        start : (float, float), optional
+            Starting offset, pixels (default: the reference offset).
+        search : bool
+            First scan a 6 x 6 grid over one unit cell for the largest matched-filter energy.
+        max_iter : int
+            Largest number of pattern / Newton steps.
+        tol : float
+            Stop when the offset moves less than this, pixels.
+
+        Returns
+        -------
+        OffsetFit
+            The offset (the lattice translate nearest the reference offset), its 1-sigma error
+            per component (pixels; cluster-robust: the scatter of the score over blocks of 4 x 4
+            sites, so a wrong PSF or pattern widens it) and the occupied sites used.
+        """
+        if not np.isfinite(atom_photons) or atom_photons <= 0:
+            raise ReconstructionError(f"the offset fit from occupied sites needs the photons of one atom as a positive "
+                                      f"number, got {atom_photons}")
+        with self._one_thread():
+            return self._fit_offset_sites(image, atom=float(atom_photons), start=start, search=search,
+                                          max_iter=max_iter, tol=tol)
+
+    def _pull_tables(self):
+        """Sparse ``D_x``, ``D_y`` (site x site): the gradient of the stamp's autocorrelation at each pair's separation,
+        and the sites whose neighbourhood lies wholly among the fitted sites (made once)."""
+        if getattr(self, "_pulls", None) is not None:
+            return self._pulls
+        stamp = self._kernel[::-1, ::-1]
+        auto = signal.correlate(stamp, stamp, mode="full")  # R(delta) = sum_p s(p) s(p - delta), centre at 2r
+        coef = ndimage.spline_filter(auto, order=3, mode="mirror")
+        centre = 2 * self.radius
+        coo = self.gram.tocoo()
+        off = coo.row != coo.col
+        k, l = coo.row[off], coo.col[off]
+        dx = self.sites.x[k] - self.sites.x[l]
+        dy = self.sites.y[k] - self.sites.y[l]
+        h = 0.05
+
+        def at(ex, ey):
+            return ndimage.map_coordinates(coef, [dy + ey + centre, dx + ex + centre], order=3, prefilter=False,
+                                           mode="constant", cval=0.0)
+
+        n = len(self.sites)
+        gx = (at(h, 0.0) - at(-h, 0.0)) / (2 * h)
+        gy = (at(0.0, h) - at(0.0, -h)) / (2 * h)
+        d_x = scipy.sparse.csr_matrix((gx, (k, l)), shape=(n, n))
+        d_y = scipy.sparse.csr_matrix((gy, (k, l)), shape=(n, n))
+        # inner sites: every lattice site within twice the stamp radius (plus a pixel) is a fitted site
+        s = self.sites
+        mask = s.to_matrix(np.ones(n, bool), fill=False)
+        a1, a2 = np.asarray(self.geometry.a1), np.asarray(self.geometry.a2)
+        reach = 2 * self.radius + 1.0
+        m = int(np.ceil(reach / min(np.hypot(*a1), np.hypot(*a2)) * 2)) + 1
+        di, dj = np.mgrid[-m:m + 1, -m:m + 1]
+        foot = np.hypot(*(a1[:, None, None] * di + a2[:, None, None] * dj)) <= reach
+        inner = ndimage.binary_erosion(mask, structure=foot, border_value=0)
+        self._pulls = (d_x, d_y, s.from_matrix(inner).astype(bool))
+        return self._pulls
+
+    def _fit_offset_sites(self, image, *, atom, start, search, max_iter, tol):
+        image = _as_image(image, self.frame_shape).astype(float)
+        d_x, d_y, inner = self._pull_tables()
+        ref = np.asarray(self.geometry.offset, float)
+        best = ref.copy() if start is None else np.asarray(start, float).reshape(2).copy()
+        y = self._weighted(image)
+        y = np.where(np.isfinite(y), y, 0.0)
+        coef = self._spline(y)
+        d = self._background_projection(y)
+        a1, a2 = np.asarray(self.geometry.a1), np.asarray(self.geometry.a2)
+        if search:
+            step = max(1, len(self.sites) // 1500)
+            grid = (np.arange(6) - 2.5) / 6
+            trials = [best + u * a1 + v * a2 for u in grid for v in grid]
+            energy = [float(np.sum(self._sample(coef, t, every=step) ** 2)) for t in trials]
+            best = trials[int(np.argmax(energy))]
+        h = 0.05
+        stencil = np.array([(0, 0), (1, 0), (-1, 0), (0, 1), (0, -1), (1, 1), (-1, -1)], float) * h
+        y0, _, x0, _ = self._roi
+        it, used, scores, hess, scale = 0, np.zeros(0, np.int64), np.zeros((0, 2)), np.eye(2), atom
+        for it in range(1, max_iter + 1):
+            c0 = self._sample(coef, best)
+            a, b = self._solve_full(c0, d)
+            n = a > atom / 2
+            nf = n.astype(float)
+            norm = float(nf @ (self.gram @ nf))
+            rhs = c0 - (self._v @ b if self._v.shape[1] else 0.0)
+            scale = float(nf @ rhs) / norm if norm > 0 else atom
+            used = np.flatnonzero(n & inner)
+            if used.size == 0:
+                break
+            dx, dy = self._shift(best)
+            sy = self.sites.y[used] + dy - y0
+            sx = self.sites.x[used] + dx - x0
+            cs = [ndimage.map_coordinates(coef, [sy + e[1], sx + e[0]], order=3, prefilter=False, mode="mirror")
+                  for e in stencil]
+            pull_x = scale * (d_x[used] @ nf)
+            pull_y = scale * (d_y[used] @ nf)
+            scores = np.stack([(cs[1] - cs[2]) / (2 * h) - pull_x, (cs[3] - cs[4]) / (2 * h) - pull_y], axis=1)
+            dxx = float(np.sum(cs[1] - 2 * cs[0] + cs[2])) / h**2
+            dyy = float(np.sum(cs[3] - 2 * cs[0] + cs[4])) / h**2
+            dxy = float(np.sum(cs[5] - cs[1] - cs[3] + 2 * cs[0] - cs[2] - cs[4] + cs[6])) / (2 * h**2)
+            hess = np.array([[dxx, dxy], [dxy, dyy]])
+            grad = scores.sum(axis=0)
+            if np.all(np.linalg.eigvalsh(hess) < 0):
+                move = -np.linalg.solve(hess, grad)
+            else:  # not near a maximum yet: move uphill by a bounded step
+                move = grad / (np.linalg.norm(grad) or 1.0) * 0.25
+            norm_move = np.hypot(*move)
+            if norm_move > 0.5:
+                move *= 0.5 / norm_move
+            best = best + move
+            if np.hypot(*move) < tol:
+                break
+        sigma = (float("nan"), float("nan"))
+        if used.size >= 2 and np.all(np.linalg.eigvalsh(hess) < 0):
+            # cluster-robust covariance: the score summed over blocks of 4 x 4 sites
+            s = self.sites
+            block = ((s.rows[used] - s.row_min) // 4) * (s.n_cols // 4 + 1) + (s.cols[used] - s.col_min) // 4
+            _, which = np.unique(block, return_inverse=True)
+            sums = np.zeros((which.max() + 1, 2))
+            np.add.at(sums, which, scores)
+            k = sums.shape[0]
+            sums -= sums.mean(axis=0)
+            meat = sums.T @ sums * (k / max(k - 1, 1))
+            inv = np.linalg.inv(hess)
+            cov = inv @ meat @ inv
+            sigma = (float(np.sqrt(max(cov[0, 0], 0.0))), float(np.sqrt(max(cov[1, 1], 0.0))))
+        frac = self.geometry.reciprocal @ (best - ref)
+        best = best - np.rint(frac[0]) * a1 - np.rint(frac[1]) * a2
+        return OffsetFit(offset=(float(best[0]), float(best[1])), sigma=sigma, n_atoms=int(used.size),
+                         iterations=it, atom_photons=scale)
 
     # --- flags ---------------------------------------------------------------------------
     def flags(self, *, offset=None, saturated=None, nonfinite=None, artefacts=None) -> np.ndarray:
