@@ -1042,6 +1042,8 @@ def calibrate(frames, *, psf: PSFModel | None = None, camera: CameraModel | None
         geometry = _geometry_from_frames(clean, psf=psf, prior=lattice_prior, n_fit=refine_frames, notes=notes)
         notes["geometry_estimated"] = True
     psf_warnings: list[str] = []
+    if "geometry_too_fine" in notes:
+        psf_warnings.append(notes["geometry_too_fine"]["why"])
     if psf is None:
         from latticeread.core.psf_estimate import estimate_psf  # PSF from isolated atoms
 
@@ -1308,6 +1310,7 @@ def _geometry_from_frames(clean, *, psf, prior, n_fit, notes) -> LatticeGeometry
         except LatticeNotFound as exc:
             notes["geometry_atoms_failed"] = str(exc)
         else:
+            geometry = _coarsest_atom_lattice(geometry, atoms, notes)
             notes["geometry_method"] = method
             notes["geometry_from_atoms"] = {"n_atoms": int(geometry.quality.n_sites_used),
                                             "spacing_sigma": float(geometry.quality.spacing_sigma),
@@ -1476,6 +1479,31 @@ def _far_site_sigma(geometry: LatticeGeometry, atoms, shape) -> float:
     centre = np.array([(shape[1] - 1) / 2.0, (shape[0] - 1) / 2.0])
     far = float(np.max(np.hypot(atoms.x[sel] - centre[0], atoms.y[sel] - centre[1]))) / min(geometry.spacings)
     return float(geometry.quality.spacing_sigma) * far
+
+
+def _coarsest_atom_lattice(geometry: LatticeGeometry, atoms, notes: dict) -> LatticeGeometry:
+    """The atoms' lattice, made coarser when every atom sits on one sublattice of it.
+
+    A few atoms can show a lattice finer than the real one (sqrt(2) finer and turned by 45
+    degrees, say) that they fit just as well; :func:`latticeread.core.sublattice.coarsest_lattice`
+    finds it by the sites the atoms never occupy. The change is noted (``geometry_too_fine``)
+    and warned about: an atom pattern that really fills one sublattice only looks the same.
+    """
+    from latticeread.core.sublattice import coarsest_lattice
+
+    sel = atoms.single
+    test = coarsest_lattice(geometry, atoms.x[sel], atoms.y[sel], frame=atoms.frame[sel])
+    if not test.too_fine:
+        return geometry
+    text = (f"the atoms' positions first showed a lattice of spacing {min(geometry.spacings):.3f} px, but "
+            f"{100 * test.share:.1f} % of {test.n_atoms} atoms sit on one site in {test.index} of it: the lattice "
+            f"taken is that sublattice (spacing {min(test.geometry.spacings):.3f} px). If the atoms really "
+            "fill only one sublattice (a checkerboard loading), give the lattice spacing and angle instead")
+    log.warning(text)
+    notes["geometry_too_fine"] = {"index": test.index, "share": test.share, "n_atoms": test.n_atoms,
+                                  "fine_spacing_px": float(min(geometry.spacings)), "why": text}
+    quality = dataclasses.replace(test.geometry.quality, warnings=test.geometry.quality.warnings + (text,))
+    return dataclasses.replace(test.geometry, quality=quality)
 
 
 def _refine_atom_geometry(clean, geometry: LatticeGeometry, *, psf: PSFModel, atoms, notes: dict) -> LatticeGeometry:
