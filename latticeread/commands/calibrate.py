@@ -192,6 +192,9 @@ def run(args: argparse.Namespace) -> int:
         if fit:
             print(f"{what} on {fit['n_frames']} frame(s): spacing uncertain to {fit['spacing_sigma']:.1e} "
                   f"(relative, 1 sigma)")
+    for key in ("psf_zones", "background"):
+        if cal.notes.get(key):
+            print(f"{key.replace('_', ' ')}: {cal.notes[key]}")
     for text in cal.notes.get("warnings", []):
         print(f"warning: {text}")
     return 0
