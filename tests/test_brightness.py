@@ -76,3 +76,13 @@ def test_classifying_against_the_map_is_as_good_as_the_true_map(beam):
 def test_too_few_occupied_sites_for_a_map_says_so():
     with pytest.raises(ReconstructionError, match="only 3 occupied sites"):
         fit_brightness([1.0, 2.0, 3.0], [1.0, 2.0, 3.0], [100.0, 90.0, 80.0], frame_shape=SHAPE)
+
+
+def test_factor_never_below_the_floor_far_from_the_atoms():
+    from latticeread.core.brightness import MIN_FACTOR, BrightnessMap
+
+    # log b = -(u^2 + v^2): a Gaussian beam of 1/e radius 10 pixels about (50, 50)
+    m = BrightnessMap(centre=(50.0, 50.0), scale=10.0, order=2, coef=(0.0, 0.0, -1.0, 0.0, -1.0), applied=True)
+    f = m.factor(np.array([50.0, 55.0, 90.0]), np.array([50.0, 50.0, 90.0]))
+    assert f[0] == pytest.approx(1.0) and f[1] == pytest.approx(np.exp(-0.25))
+    assert f[2] == MIN_FACTOR and m.relative(90.0, 90.0) < 1e-6  # the map itself is not clipped

@@ -41,6 +41,8 @@ from latticeread.errors import CalibrationError, ReconstructionError
 __all__ = ["BrightnessMap", "fit_brightness", "MIN_CHANGE", "MIN_BRIGHTNESS_SITES"]
 
 #: The map is applied only where it departs from 1 by at least this much somewhere.
+#: Smallest factor amplitudes are divided by (the map's extrapolation beyond the atoms is not trusted lower).
+MIN_FACTOR = 0.3
 MIN_CHANGE = 0.05
 #: Fewest occupied sites (over the stack) for a fit.
 MIN_BRIGHTNESS_SITES = 50
@@ -129,9 +131,13 @@ class BrightnessMap:
         return np.exp(design @ np.asarray(self.coef)).reshape(x.shape)
 
     def factor(self, x, y) -> np.ndarray:
-        """The factor classification divides amplitudes by: :meth:`relative` when applied, else 1."""
+        """The factor classification divides amplitudes by: :meth:`relative` when applied, else 1.
+
+        Never below :data:`MIN_FACTOR`: far from the atoms the smooth map is an extrapolation,
+        and dividing the empty sites' noise there by a tiny factor would make atoms of it.
+        """
         x = np.asarray(x, float)
-        return self.relative(x, y) if self.applied else np.ones(x.shape)
+        return np.maximum(self.relative(x, y), MIN_FACTOR) if self.applied else np.ones(x.shape)
 
     def image(self, shape) -> np.ndarray:
         """The map over a frame of ``shape`` (height, width), for display."""
