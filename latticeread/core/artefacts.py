@@ -840,7 +840,7 @@ def refit_near_artefacts(photons, mask, *, x, y, amplitudes, background, model: 
         Fitted background, photons per pixel.
     model : PixelModel
     bad : (H, W) ndarray of bool, optional
-        Further pixels never used (hot pixels).
+        Further pixels never used (hot pixels, saturated pixels); non-finite ones never are.
 
     Returns
     -------
@@ -851,7 +851,9 @@ def refit_near_artefacts(photons, mask, *, x, y, amplitudes, background, model: 
     mask = np.asarray(mask, dtype=bool)
     x, y = np.asarray(x, dtype=float), np.asarray(y, dtype=float)
     out = np.array(amplitudes, dtype=float)
-    unusable = mask if bad is None else mask | np.asarray(bad, dtype=bool)
+    unusable = mask | ~np.isfinite(photons)
+    if bad is not None:
+        unusable |= np.asarray(bad, dtype=bool)
     h, w = photons.shape
     r = model.radius
     labels, _ = ndimage.label(ndimage.binary_dilation(mask, iterations=r), structure=np.ones((3, 3), bool))

@@ -655,7 +655,8 @@ class Reconstructor:
             background = amp.background if amp.background_coefficients is None or \
                 self.basis.background_model == "constant" else self.basis.background_image(amp.background_coefficients)
             refit = refit_near_artefacts(photons, art, x=amp.x, y=amp.y, amplitudes=amp.amplitudes,
-                                         background=background, model=self._pixel_model, bad=self.hot_pixels)
+                                         background=background, model=self._pixel_model,
+                                         bad=_either(self.hot_pixels, saturated))
             amp = dataclasses.replace(amp, amplitudes=refit)
         flags = amp.flags | (self.basis.flags(offset=offset, artefacts=art) & np.uint8(site_flags.ARTEFACT))
         return dataclasses.replace(amp, flags=flags)
@@ -821,6 +822,13 @@ def region_sites(calibration: Calibration, *, index_bounds=None) -> tuple[SiteGr
                                                index_bounds=bounds))
     keep = sites_in_region(calibration.options.region, x=sites.x, y=sites.y, rows=sites.rows, cols=sites.cols)
     return sites, keep
+
+
+def _either(a, b):
+    """The union of two optional pixel masks (None when both are None)."""
+    if a is None:
+        return b
+    return a if b is None else a | b
 
 
 def _basis_psfs(calibration: Calibration, sites: SiteGrid) -> dict:
