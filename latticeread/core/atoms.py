@@ -10,12 +10,16 @@ the point pattern) shows the lattice however wide the PSF.
 Method
 ------
 1. **Candidates** (:func:`locate_atoms`): the frame (photons) minus a smooth background
-   (low percentile of blocks of about eight FWHM, smoothed) is smoothed lightly (a Gaussian of
-   0.4 times the PSF's width: a filter as wide as the PSF would merge atoms one spacing apart);
-   local maxima (3 x 3) above 5 robust standard deviations of the smoothed frame are candidates.
+   (low percentile of blocks of about eight FWHM, smoothed) is band-pass filtered (a Gaussian
+   of 0.4 times the PSF's width, as a filter as wide as the PSF would merge atoms one spacing
+   apart, minus one of 1.5 times it, which takes away the plateau of a crowded region); local
+   maxima (3 x 3) above 5 standard deviations of the filtered noise are candidates. The noise
+   is the pixel noise from the finest wavelet coefficients (:func:`pixel_noise`): at uniform
+   filling of 0.3 and more, a spread of the filtered frame itself would be the atoms' light.
 2. **Sub-pixel fit**: a circular 2-D Gaussian (centre, width, amplitude and a constant
    background: five parameters) is fitted to a window of about one FWHM radius around every
-   candidate (a window of 0.8 FWHM radius), all candidates at once (vectorised Gauss-Newton). The 1-sigma position error
+   candidate (a window of 0.8 FWHM radius), all candidates at once (vectorised Gauss-Newton),
+   then once more with the other candidates' fitted spots subtracted from every window. The 1-sigma position error
    comes from the fit's covariance scaled by its own residual (for a Gaussian spot it reaches
    the localisation precision sigma_psf / sqrt(N photons) in the photon-limited case;
    Thompson, Larson & Webb, Biophys. J. 82, 2775 (2002), from memory).
@@ -34,9 +38,17 @@ Method
 5. **Positions fit**: every atom is given the integer indices of its nearest site, and the
    vectors (shared) and one offset per frame follow from a linear least-squares fit of
    ``r = offset_f + i a1 + j a2`` weighted by the atoms' position errors, with atoms more than
-   3.5 robust standard deviations off the grid dropped. The fit starts on the atoms within a
-   few spacings of the frame centre and grows outwards, so an error of the Fourier vectors
-   never assigns a wrong index.
+   3.5 robust standard deviations or 0.3 spacing off the grid dropped (on crowded frames many
+   spots that pass the single-atom tests are merged neighbours anywhere in the cell). The
+   start offset is the circular mean of the atoms' positions in the cell. The fit starts on
+   the atoms within a few spacings of the frame centre and grows outwards, so an error of the
+   Fourier vectors never assigns a wrong index.
+6. **Coherence test**: in each of 3 x 3 tiles of the atoms' bounding box, more atoms must sit
+   within 0.15 spacing of a site than chance would put there (points spread at random over
+   the cell fall there with probability pi 0.15^2 a^2 / cell area), by :data:`COHERENCE_Z`
+   standard deviations; a lattice that is right near the centre and wrong far out fails. And
+   no half-cell translate of the lattice may hold a third as many atoms as its sites (a cell
+   twice too large, from a subharmonic of crowded points, fails).
 
 The basis is put in the form of :func:`latticeread.core.lattice.canonical_basis`.
 Units: positions in pixels (x = column, y = row, centre of pixel (0, 0) at (0, 0)); images in
@@ -54,14 +66,14 @@ from scipy import ndimage
 from latticeread.core.geometry import LatticeGeometry, LatticeQuality
 from latticeread.errors import FrameError, LatticeNotFound
 
-__all__ = ["LocatedAtoms", "locate_atoms", "locate_holes", "merge_located", "lattice_from_atoms", "offset_from_atoms",
+__all__ = ["LocatedAtoms", "locate_atoms", "pixel_noise", "locate_holes", "merge_located", "lattice_from_atoms", "offset_from_atoms",
            "FrameOffset", "check_geometry", "GeometryCheck", "MIN_LATTICE_ATOMS"]
 
 log = logging.getLogger(__name__)
 
 #: Fewer single atoms than this (all frames together) cannot define a lattice.
 MIN_LATTICE_ATOMS = 40
-#: Candidates need a matched-filter peak this many robust standard deviations above the median.
+#: Candidates need a band-pass filtered peak this many standard deviations of the filtered noise high.
 DETECTION_SIGMA = 5.0
 #: Accepted ranges of a single atom's fitted width and photons relative to the median candidate.
 WIDTH_RANGE = (0.85, 1.15)
@@ -72,6 +84,14 @@ PEAK_RATIO = 20.0
 MAX_RESIDUAL = 0.2
 #: Atoms farther than this many robust standard deviations from their site are dropped.
 OUTLIER_SIGMA = 3.5
+#: The positions fit keeps only atoms within this many spacings of their nearest site.
+START_CUT = 0.3
+#: Every tile's excess of atoms near a site over chance, in standard deviations (binomial).
+COHERENCE_Z = 4.0
+#: Radius (spacings) of the "near a site" disk of the coherence test.
+COHERENCE_RADIUS = 0.15
+#: Single atoms half a cell off the sites, as a fraction of those on them, that make a cell suspect.
+HALF_CELL_FRACTION = 0.3
 _FWHM_TO_SIGMA = 1.0 / (2.0 * np.sqrt(2.0 * np.log(2.0)))
 
 
@@ -161,46 +181,83 @@ def _windows(py: np.ndarray, px: np.ndarray, shape, radius: int):
     return yy, xx
 
 
-def _fit_spots(frame: np.ndarray, py: np.ndarray, px: np.ndarray, *, width0: float, radius: int, n_iter: int = 8):
+def _fit_spots(frame: np.ndarray, py: np.ndarray, px: np.ndarray, *, width0: float, radius: int, n_iter: int = 8,
+               deblend: int = 0):
     """Vectorised Gauss-Newton fit of a circular Gaussian plus constant to windows around peaks.
+
+    With ``deblend`` > 0, that many further passes fit every window after subtracting the
+    fitted spots of all the other candidates from it (neighbours' light at the window's edge
+    would otherwise be taken up by the constant and make the spot look narrow and faint).
 
     Returns x, y, photons, width, position sigma, ok (all (N,) arrays).
     """
     yy, xx = _windows(py, px, frame.shape, radius)
-    return _fit_windows(frame[yy, xx], xx.astype(float), yy.astype(float), px, py, width0=width0, radius=radius,
-                        n_iter=n_iter)
+    gx, gy = xx.astype(float), yy.astype(float)
+    data = frame[yy, xx]
+    p, jtj = _gauss_newton(data, gx, gy, _start_params(data, px, py, width0), width0=width0, n_iter=n_iter)
+    for _ in range(deblend):
+        good = np.all(np.isfinite(p), axis=1) & (p[:, 2] > 0)
+        own = np.where(good[:, None], p[:, 2:3], 0.0) * np.exp(
+            -((gx - p[:, :1]) ** 2 + (gy - p[:, 1:2]) ** 2) / (2 * p[:, 3:4] ** 2))
+        own[~np.isfinite(own)] = 0.0
+        model = np.zeros(frame.shape)
+        np.add.at(model, (yy, xx), own)
+        data = frame[yy, xx] - (model[yy, xx] - own)
+        # the first fit is close: a few iterations from it
+        p, jtj = _gauss_newton(data, gx, gy, np.where(good[:, None], p, _start_params(data, px, py, width0)),
+                               width0=width0, n_iter=max(3, n_iter // 2))
+    return _fit_result(data, gx, gy, px, py, p, jtj, radius=radius)
 
 
 def _fit_windows(data, gx, gy, px, py, *, width0: float, radius: int, n_iter: int = 8):
     """The fit of :func:`_fit_spots` on windows already cut out: ``data`` (N, P) at pixels ``gx``, ``gy``."""
-    n = px.size
-    # parameters: x0, y0, amplitude (peak height), s (width), background
-    p = np.empty((n, 5))
+    p, jtj = _gauss_newton(data, gx, gy, _start_params(data, px, py, width0), width0=width0, n_iter=n_iter)
+    return _fit_result(data, gx, gy, px, py, p, jtj, radius=radius)
+
+
+def _start_params(data, px, py, width0: float) -> np.ndarray:
+    """First guess (N, 5) of x0, y0, amplitude (peak height), width and background per window."""
+    p = np.empty((px.size, 5))
     p[:, 0], p[:, 1] = px, py
     p[:, 4] = np.percentile(data, 10, axis=1)
     p[:, 3] = width0
     p[:, 2] = np.maximum(data.max(axis=1) - p[:, 4], 1e-6)
-    ok = np.ones(n, bool)
+    return p
+
+
+def _gauss_newton(data, gx, gy, p, *, width0: float, n_iter: int):
+    """Gauss-Newton iterations of the circular Gaussian plus constant from ``p``: (parameters, J^T J)."""
+    p = np.array(p, float)
+    n, npix = data.shape
+    jac = np.empty((n, 5, npix))
+    jtj = np.zeros((n, 5, 5))
     for _ in range(n_iter):
         dx, dy = gx - p[:, :1], gy - p[:, 1:2]
         s2 = p[:, 3:4] ** 2
         g = np.exp(-(dx * dx + dy * dy) / (2 * s2))
-        model = p[:, 2:3] * g + p[:, 4:5]
-        r = data - model
-        jac = np.stack([p[:, 2:3] * g * dx / s2, p[:, 2:3] * g * dy / s2, g,
-                        p[:, 2:3] * g * (dx * dx + dy * dy) / (s2 * p[:, 3:4]), np.ones_like(g)], axis=2)
-        jtj = np.einsum("npi,npj->nij", jac, jac)
-        jtr = np.einsum("npi,np->ni", jac, r)
+        r = data - (p[:, 2:3] * g + p[:, 4:5])
+        ag = p[:, 2:3] * g / s2
+        jac[:, 0], jac[:, 1], jac[:, 2] = ag * dx, ag * dy, g
+        jac[:, 3] = ag * (dx * dx + dy * dy) / p[:, 3:4]
+        jac[:, 4] = 1.0
+        jtj = np.matmul(jac, jac.transpose(0, 2, 1))
+        jtr = np.matmul(jac, r[..., None])[..., 0]
         jtj += 1e-9 * np.eye(5)[None] * np.maximum(np.trace(jtj, axis1=1, axis2=2), 1e-12)[:, None, None]
         try:
             step = np.linalg.solve(jtj, jtr[..., None])[..., 0]
         except np.linalg.LinAlgError:
-            ok[:] = False
+            p[:] = np.nan
             break
         # keep steps bounded: centres by at most half a pixel, width within a factor 1.5
         step[:, :2] = np.clip(step[:, :2], -0.5, 0.5)
         p += step
         p[:, 3] = np.clip(p[:, 3], width0 / 1.5, width0 * 1.5)
+    return p, jtj
+
+
+def _fit_result(data, gx, gy, px, py, p, jtj, *, radius: int):
+    """x, y, photons, width, position sigma and ok of fitted parameters ``p`` (N, 5)."""
+    n = px.size
     dx, dy = gx - p[:, :1], gy - p[:, 1:2]
     s2 = p[:, 3:4] ** 2
     g = np.exp(-(dx * dx + dy * dy) / (2 * s2))
@@ -213,12 +270,52 @@ def _fit_windows(data, gx, gy, px, py, *, width0: float, radius: int, n_iter: in
     except np.linalg.LinAlgError:
         sigma = np.full(n, np.nan)
     inside = (np.abs(p[:, 0] - px) <= radius) & (np.abs(p[:, 1] - py) <= radius)
-    ok &= inside & np.isfinite(sigma) & (p[:, 2] > 0) & np.all(np.isfinite(p), axis=1)
+    ok = inside & np.isfinite(sigma) & (p[:, 2] > 0) & np.all(np.isfinite(p), axis=1)
     photons = 2 * np.pi * p[:, 2] * p[:, 3] ** 2
     return p[:, 0], p[:, 1], photons, p[:, 3], sigma, ok
 
 
-def locate_atoms(image_or_stack, *, fwhm: float, detection_sigma: float = DETECTION_SIGMA) -> LocatedAtoms:
+def pixel_noise(image) -> float:
+    """Robust standard deviation of the pixel noise of a frame, not swamped by atoms.
+
+    The finest diagonal Haar wavelet coefficients ``(a - b - c + d) / 2`` of the 2x2 blocks
+    of pixels hold white noise of the pixels' own standard deviation and next to nothing of a
+    spot as wide as a few pixels, so their median absolute value over 0.6745 is the noise
+    however many atoms fill the frame (Donoho & Johnstone, Biometrika 81, 425 (1994), from
+    memory; the estimator of scikit-image's ``skimage.restoration.estimate_sigma``, which uses a
+    Daubechies wavelet through PyWavelets, not a dependency here). Where the noise varies over
+    the frame (photon noise of the atoms) this is its median; where most pixels hold no noise
+    at all (an ideal photon counter on a dark background), the RMS of the coefficients.
+
+    Parameters
+    ----------
+    image : (H, W) array_like
+        One frame, at least 2x2 pixels (any unit; the result has the same unit).
+    """
+    a = np.asarray(image, float)
+    a = a[: a.shape[0] // 2 * 2, : a.shape[1] // 2 * 2]
+    if a.size < 4:
+        raise FrameError(f"the frame is {np.asarray(image).shape}; at least 2x2 pixels are needed to estimate its noise")
+    diag = (a[0::2, 0::2] - a[0::2, 1::2] - a[1::2, 0::2] + a[1::2, 1::2]) / 2.0
+    sigma = float(np.median(np.abs(diag)) / 0.6745)
+    if sigma == 0.0:
+        # most pixels noiseless (an ideal photon counter on a dark background): the RMS of the
+        # coefficients, atoms' photon noise included, is the scale left
+        sigma = float(np.sqrt(np.mean(diag * diag)))
+    return sigma
+
+
+def _filter_norm(s_light: float, s_wide: float) -> float:
+    """Root sum of squares of the difference-of-Gaussians kernel (white noise of 1 -> its standard deviation)."""
+    half = int(np.ceil(4 * s_wide)) + 1
+    impulse = np.zeros((2 * half + 1, 2 * half + 1))
+    impulse[half, half] = 1.0
+    kernel = ndimage.gaussian_filter(impulse, s_light) - ndimage.gaussian_filter(impulse, s_wide)
+    return float(np.sqrt(np.sum(kernel * kernel)))
+
+
+def locate_atoms(image_or_stack, *, fwhm: float, detection_sigma: float = DETECTION_SIGMA,
+                 deblend: int = 1) -> LocatedAtoms:
     """Find atoms and fit their centres to a fraction of a pixel.
 
     Parameters
@@ -229,7 +326,13 @@ def locate_atoms(image_or_stack, *, fwhm: float, detection_sigma: float = DETECT
         Full width at half maximum of the PSF, pixels (sets the filter, the fit window and the
         first guess of the width).
     detection_sigma : float
-        Candidates need a filtered peak this many robust standard deviations above the median.
+        Candidates need a band-pass filtered peak (a light Gaussian smoothing minus a wide one,
+        1.5 PSF widths: the local plateau of a crowded region is taken away) this many standard
+        deviations of the filtered noise high (the pixel noise from :func:`pixel_noise`, which
+        atoms do not swamp, times the filter's norm).
+    deblend : int
+        Passes of the spot fit with the other candidates' fitted spots subtracted (see
+        ``_fit_spots``); one pass makes atoms with neighbours two spacings away look like one atom.
 
     Returns
     -------
@@ -245,22 +348,23 @@ def locate_atoms(image_or_stack, *, fwhm: float, detection_sigma: float = DETECT
     """
     data, s0, radius = _spot_scales(image_or_stack, fwhm)
     block = max(16, int(8 * fwhm))
+    # light smoothing only: a filter as wide as the PSF would merge atoms one spacing apart
+    s_light, s_wide = max(0.6, 0.4 * s0), 1.5 * s0
+    norm = _filter_norm(s_light, s_wide)
     parts = []
     for f, frame in enumerate(data):
         clean = frame - _background(frame, block)
-        # light smoothing only: a filter as wide as the PSF would merge atoms one spacing apart
-        smooth = ndimage.gaussian_filter(clean, max(0.6, 0.4 * s0))
-        med = np.median(smooth)
-        mad = 1.4826 * np.median(np.abs(smooth - med))
-        if not np.isfinite(mad) or mad <= 0:
+        noise = pixel_noise(clean) * norm
+        if not np.isfinite(noise) or noise <= 0:
             continue
-        peak = (smooth == ndimage.maximum_filter(smooth, size=3)) & (smooth > med + detection_sigma * mad)
+        band = ndimage.gaussian_filter(clean, s_light) - ndimage.gaussian_filter(clean, s_wide)
+        peak = (band == ndimage.maximum_filter(band, size=3)) & (band > detection_sigma * noise)
         edge = radius
         peak[:edge], peak[-edge:], peak[:, :edge], peak[:, -edge:] = False, False, False, False
         py, px = np.nonzero(peak)
         if py.size == 0:
             continue
-        x, y, photons, width, sigma, ok = _fit_spots(clean, py, px, width0=s0, radius=radius)
+        x, y, photons, width, sigma, ok = _fit_spots(clean, py, px, width0=s0, radius=radius, deblend=deblend)
         parts.append((x[ok], y[ok], photons[ok], width[ok], sigma[ok], np.full(int(ok.sum()), f)))
     return _located(parts, n_frames=len(data), s0=s0, fwhm=fwhm)
 
@@ -465,6 +569,28 @@ def _reciprocal_from_points(shape, x, y, frame, *, kmin: float, kmax: float):
     raise LatticeNotFound("the located atoms line up along one direction only; no 2-D lattice")
 
 
+def _phase_offsets(x, y, frame, basis, offsets, *, centre, radius: float):
+    """Each frame's offset from the circular mean of its atoms' positions within the cell.
+
+    Every atom's position relative to the current offset, in fractional lattice coordinates,
+    is a phase ``exp(2 pi i frac)``; atoms on the lattice add up, atoms anywhere in the cell
+    (merged spots) cancel on average, so the angle of the sum is the lattice's offset even
+    when the atom nearest the centre is not on a site. Atoms within ``radius`` pixels of the
+    centre are used (a small error of the vectors twists the phase far out).
+    """
+    inv = np.linalg.inv(basis)
+    out = np.array(offsets, float)
+    near = np.hypot(x - centre[0], y - centre[1]) <= radius
+    for f in range(out.shape[0]):
+        sel = near & (frame == f)
+        if sel.sum() < 3:
+            continue
+        frac = inv @ (np.stack([x[sel], y[sel]]) - out[f][:, None])
+        shift = np.angle(np.exp(2j * np.pi * frac).sum(axis=1)) / (2 * np.pi)
+        out[f] = out[f] + basis @ shift
+    return out
+
+
 def _fit_positions(x, y, frame, sig, a1, a2, offsets, *, centre, radius=None):
     """Robust weighted least squares of shared vectors and per-frame offsets on assigned atoms.
 
@@ -476,7 +602,11 @@ def _fit_positions(x, y, frame, sig, a1, a2, offsets, *, centre, radius=None):
     frac = inv @ rel
     idx = np.rint(frac)
     d = np.stack([x, y]) - (offsets[frame].T + basis @ idx)
-    use = np.ones(x.size, bool)
+    # start from the atoms near a site: on a crowded frame many "single" spots are merged
+    # neighbours or atoms pulled by their neighbours' light, sitting anywhere in the cell, and a
+    # median over all of them would set the outlier cut wide enough to let them bias the vectors
+    spacing = min(np.hypot(*a1), np.hypot(*a2))
+    use = np.hypot(d[0], d[1]) <= START_CUT * spacing
     if radius is not None:
         dist = np.hypot(x - centre[0], y - centre[1])
         use &= dist <= radius
@@ -516,7 +646,7 @@ def _fit_positions(x, y, frame, sig, a1, a2, offsets, *, centre, radius=None):
         d = np.stack([x, y]) - (offsets[frame].T + basis @ idx)
         dn = np.hypot(d[0], d[1]) / np.maximum(sig, 0.02)
         robust = np.median(dn[use]) / 1.1774  # the median radius of a 2-D normal is 1.1774 sigma
-        keep = dn <= OUTLIER_SIGMA * max(robust, 1e-9)
+        keep = (dn <= OUTLIER_SIGMA * max(robust, 1e-9)) & (np.hypot(d[0], d[1]) <= START_CUT * spacing)
         if radius is not None:
             keep &= np.hypot(x - centre[0], y - centre[1]) <= radius
         cov = covs
@@ -604,6 +734,7 @@ def lattice_from_atoms(image_or_stack, *, fwhm: float, atoms: LocatedAtoms | Non
             k = mine[np.argmin(np.hypot(x[mine] - centre[0], y[mine] - centre[1]))]
             offsets[f] = (x[k], y[k])
     spacing = min(np.hypot(*a1), np.hypot(*a2))
+    offsets = _phase_offsets(x, y, frame, np.column_stack([a1, a2]), offsets, centre=centre, radius=8 * spacing)
     extent = np.hypot(*shape)
     # the first disk: eight spacings, or wider until it holds MIN_LATTICE_ATOMS atoms
     near = np.sort(np.hypot(x - centre[0], y - centre[1]))
@@ -627,6 +758,8 @@ def lattice_from_atoms(image_or_stack, *, fwhm: float, atoms: LocatedAtoms | Non
     if residual > MAX_RESIDUAL * min(np.hypot(*a1), np.hypot(*a2)):
         raise LatticeNotFound(f"the located atoms do not sit on the lattice their spectrum suggests (RMS distance "
                               f"{residual:.2f} px from the sites, spacing {min(np.hypot(*a1), np.hypot(*a2)):.2f} px)")
+    _check_coherence(x, y, np.hypot(d[0], d[1]), basis)
+    _check_half_cell(x, y, frame, basis, offsets)
     warnings = []
     if int(used.sum()) < MIN_LATTICE_ATOMS:
         warnings.append(f"only {int(used.sum())} atoms define the lattice: the geometry rests on few atoms")
@@ -638,6 +771,63 @@ def lattice_from_atoms(image_or_stack, *, fwhm: float, atoms: LocatedAtoms | Non
                              warnings=tuple(warnings), spacing_sigma=spacing_sigma)
     log.debug("lattice from %d atoms: a1=%s a2=%s offset=%s residual %.3f px", used.sum(), a1, a2, off, residual)
     return LatticeGeometry(a1=tuple(a1), a2=tuple(a2), offset=tuple(off), quality=quality)
+
+
+def _check_half_cell(x, y, frame, basis, offsets) -> None:
+    """Raise :class:`LatticeNotFound` when many single atoms sit half a cell off the sites.
+
+    The spectrum of crowded points can show a subharmonic or a wrong pair of peaks: a cell
+    twice too large, whose sites hold only every second row of atoms; the atoms of the other
+    rows then sit half a cell off. A half-cell translate of the lattice that has
+    significantly more atoms near it than chance (:data:`COHERENCE_Z`) and at least
+    :data:`HALF_CELL_FRACTION` as many as the sites themselves means the cell cannot be
+    trusted (merged pairs also sit half a cell off, but most fail the single-atom tests).
+    """
+    inv = np.linalg.inv(basis)
+    spacing = min(np.hypot(*basis[:, 0]), np.hypot(*basis[:, 1]))
+    radius = COHERENCE_RADIUS * spacing
+    p0 = min(np.pi * radius**2 / abs(np.linalg.det(basis)), 0.5)
+    n = x.size
+    rel = np.stack([x, y]) - offsets[frame].T
+    counts = {}
+    for h in ((0.0, 0.0), (0.5, 0.0), (0.0, 0.5), (0.5, 0.5)):
+        r = rel - (basis @ np.array(h))[:, None]
+        d = r - basis @ np.rint(inv @ r)
+        near = int(np.sum(np.hypot(d[0], d[1]) <= radius))
+        counts[h] = (near, (near - n * p0) / np.sqrt(n * p0 * (1 - p0)))
+    n0 = counts[(0.0, 0.0)][0]
+    for h in ((0.5, 0.0), (0.0, 0.5), (0.5, 0.5)):
+        nh, z = counts[h]
+        if z >= COHERENCE_Z and nh >= HALF_CELL_FRACTION * n0:
+            raise LatticeNotFound(
+                f"{nh} single atoms sit half a cell off the sites of the lattice found ({n0} on them): the cell is "
+                "probably twice too large (crowded atoms whose spectrum shows a subharmonic)")
+
+
+def _check_coherence(x, y, dist, basis, *, tiles: int = 3, min_atoms: int = 20) -> None:
+    """Raise :class:`LatticeNotFound` when some part of the frame has no more atoms near a site than chance.
+
+    ``dist`` is every atom's distance from its nearest site, pixels.
+    """
+    spacing = min(np.hypot(*basis[:, 0]), np.hypot(*basis[:, 1]))
+    radius = COHERENCE_RADIUS * spacing
+    p0 = min(np.pi * radius**2 / abs(np.linalg.det(basis)), 0.5)
+    ex = np.linspace(x.min(), x.max() + 1e-9, tiles + 1)
+    ey = np.linspace(y.min(), y.max() + 1e-9, tiles + 1)
+    ix = np.clip(np.searchsorted(ex, x, side="right") - 1, 0, tiles - 1)
+    iy = np.clip(np.searchsorted(ey, y, side="right") - 1, 0, tiles - 1)
+    for t in range(tiles * tiles):
+        m = (iy * tiles + ix) == t
+        n = int(m.sum())
+        if n < min_atoms:
+            continue
+        near = int(np.sum(dist[m] <= radius))
+        z = (near - n * p0) / np.sqrt(n * p0 * (1 - p0))
+        if z < COHERENCE_Z:
+            raise LatticeNotFound(
+                f"the located atoms fit the lattice only in part of the frame: in one ninth of it {near} of {n} sit "
+                f"within {COHERENCE_RADIUS} spacing of a site, {n * p0:.0f} would by chance ({z:.1f} sigma); the "
+                "vectors or the atoms found there are wrong")
 
 
 @dataclass(frozen=True)
