@@ -248,10 +248,14 @@ def test_temp_files_of_killed_runs_are_removed_by_the_next_run(tmp_path):
     left.write_bytes(b"half")
     mine = temp_name(tmp_path / "other.csv")
     mine.write_bytes(b"in progress")
+    left_lock = tmp_path / f".{left.name}.lock"  # the writer lock of an HDF5 output's temporary file
+    left_lock.write_text(f"{dead_pid} somehost\n")
+    mine_lock = tmp_path / f".{mine.name}.lock"
+    mine_lock.write_text(f"{os.getpid()} somehost\n")
     other_file = tmp_path / ".notes.tmp"
     other_file.write_text("not ours")
-    assert clean_stale_temps(tmp_path) == [left]
-    assert mine.exists() and other_file.exists()
+    assert sorted(clean_stale_temps(tmp_path)) == sorted([left, left_lock])
+    assert mine.exists() and mine_lock.exists() and other_file.exists()
     left.write_bytes(b"half")
     RunWriter(tmp_path / "run.h5", calibration_json=CAL).close()  # a run cleans its folder at start-up
     assert not left.exists()

@@ -156,6 +156,9 @@ def temp_name(path) -> Path:
 
 
 _TEMP_WITH_PID = re.compile(r"^\..+\.(\d+)-[0-9a-f]{8}\.tmp$")
+#: The writer lock of such a temporary file (an HDF5 output is written as a run file under its
+#: temporary name, and a run file's writer takes ``.<name>.lock``): same pid, removed with it.
+_TEMP_LOCK_WITH_PID = re.compile(r"^\.\..+\.(\d+)-[0-9a-f]{8}\.tmp\.lock$")
 #: Temporary names of earlier versions (no pid): removed once they are this old (seconds).
 _OLD_TEMP = re.compile(r"^\..+\.([0-9a-f]{8}\.tmp|[A-Za-z0-9_]{8}\.part)$")
 _OLD_TEMP_AGE = 3600.0
@@ -174,8 +177,9 @@ def _pid_running(pid: int) -> bool:
 def clean_stale_temps(folder) -> list[Path]:
     """Remove hidden temporary files that killed latticeread runs left in ``folder``.
 
-    A temporary file named by :func:`temp_name` is removed when its pid no longer runs;
-    temporary files of earlier versions (no pid in the name) when older than an hour.
+    A temporary file named by :func:`temp_name` is removed when its pid no longer runs, and so
+    is the lock file of such a temporary file; temporary files of earlier versions (no pid in
+    the name) when older than an hour.
     Files that cannot be removed are left alone.
 
     Returns
@@ -193,7 +197,7 @@ def clean_stale_temps(folder) -> list[Path]:
         name = entry.name
         if not name.startswith("."):
             continue
-        m = _TEMP_WITH_PID.match(name)
+        m = _TEMP_WITH_PID.match(name) or _TEMP_LOCK_WITH_PID.match(name)
         try:
             if m:
                 stale = int(m.group(1)) != os.getpid() and not _pid_running(int(m.group(1)))
