@@ -80,6 +80,45 @@ def test_watch_stores_each_frame_of_a_pausing_appending_camera_once(frames, tmp_
     assert summary.n_new == 6 and summary.n_skipped_same == 3
 
 
+def test_watch_stores_a_file_replaced_under_the_same_name_with_its_new_pixels(frames, tmp_path):
+    # The camera software replaces shot.tif (write elsewhere, rename over it) after the watch
+    # stored the first version: the new version is a new input, read from the new file, never
+    # from the analyser's open handle of the old one (cached stacks are keyed by content).
+    from latticeread.runs.watch import watch_folder
+
+    cal, stack = frames
+    camera = tmp_path / "camera"
+    camera.mkdir()
+    shot = camera / "shot.tif"
+    _append(shot, stack[:3])
+    polls = {"n": 0}
+
+    def camera_replaces_the_file(_seconds):
+        import os
+        import time
+
+        polls["n"] += 1
+        if polls["n"] == 4:  # long after the first version was taken (settle 0.02 s)
+            incoming = tmp_path / "incoming.tif"
+            _append(incoming, stack[3:])
+            os.replace(incoming, shot)
+        elif polls["n"] > 200:
+            raise AssertionError("the watch did not take the replaced file")
+        time.sleep(0.03)
+
+    summary = watch_folder(camera, calibration=cal, out=tmp_path / "live.h5", max_files=2, settle=0.02,
+                           interval=0.03, sleep=camera_replaces_the_file)
+    run = read_run(tmp_path / "live.h5")
+    assert polls["n"] >= 4 and summary.n_new == 6 and len(run.failures) == 0
+    versions = sorted(set(run.file_hash.tolist()), key=run.file_hash.tolist().index)
+    assert len(versions) == 2
+    for version, pixels in zip(versions, (stack[:3], stack[3:])):
+        rows = run.file_hash == version
+        assert sorted(run.frame_index[rows].tolist()) == [0, 1, 2]
+        # each row carries the digest of the pixels it was reconstructed from: the new file's
+        assert [_digest(pixels[i]) for i in run.frame_index[rows]] == run.frame_digest[rows].tolist()
+
+
 def test_batch_run_again_on_a_file_that_grew_stores_only_the_new_frames(frames, tmp_path):
     cal, stack = frames
     data = tmp_path / "data"
