@@ -194,6 +194,30 @@ def test_second_writer_is_refused_while_the_first_lives(tmp_path):
     RunWriter(path, calibration_json=CAL).close()  # free again once the first closed
 
 
+def test_a_refused_writer_names_a_holder_that_has_not_yet_written_its_pid(tmp_path):
+    # The holder takes the lock, then writes its pid: a writer started at the same instant can
+    # look in between and find the file empty, or holding the pid of a dead earlier writer.
+    import fcntl
+    import threading
+
+    path = tmp_path / "run.h5"
+    dead = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True, text=True)
+    lock = lock_path_for(path)
+    for before in ("", f"{dead.stdout.strip()} somehost\n"):
+        lock.write_text(before)
+        fd = os.open(lock, os.O_RDWR)
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            names = threading.Timer(0.1, lambda: os.pwrite(fd, f"{os.getpid()} thishost\n".encode(), 0))
+            names.start()
+            with pytest.raises(ExportError, match=f"being written by process {os.getpid()} "):
+                RunWriter(path, calibration_json=CAL)
+            names.join()
+        finally:
+            os.close(fd)
+        lock.unlink()
+
+
 def test_two_processes_start_together_on_a_new_file(tmp_path):
     path = tmp_path / "run.h5"
     procs = [writer(path, 0, 40, block=4) for _ in range(2)]

@@ -16,6 +16,7 @@ import fcntl
 import logging
 import os
 import socket
+import time
 from pathlib import Path
 
 from latticeread.errors import ExportError
@@ -25,6 +26,11 @@ from .atomic import describe_os_error
 __all__ = ["RunFileLock", "lock_path_for"]
 
 log = logging.getLogger(__name__)
+
+#: How long a refused writer waits for the lock holder to write its pid into the lock file
+#: (seconds), in this many looks.
+_OWNER_WAIT_SECONDS = 0.5
+_OWNER_WAIT_STEPS = 50
 
 
 def lock_path_for(path) -> Path:
@@ -87,7 +93,16 @@ class RunFileLock:
             try:
                 fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
             except OSError as exc:
+                # The holder writes its pid just after taking the lock: a writer that started at
+                # the same instant may look in between (and find the file empty, or the pid of a
+                # dead earlier writer); give the holder a moment to name itself.
                 owner = _read_owner(fd)
+                for _ in range(_OWNER_WAIT_STEPS):
+                    pid = owner.split()[0] if owner else ""
+                    if pid.isdigit() and _pid_alive(int(pid)):
+                        break
+                    time.sleep(_OWNER_WAIT_SECONDS / _OWNER_WAIT_STEPS)
+                    owner = _read_owner(fd)
                 os.close(fd)
                 if exc.errno in (errno.EWOULDBLOCK, errno.EAGAIN, errno.EACCES):
                     who = f"process {owner.split()[0]}" if owner else "another process"
