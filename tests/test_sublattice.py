@@ -89,20 +89,53 @@ def test_refuses_mismatched_lengths():
         coarsest_lattice(TRUE, [1.0, 2.0], [1.0], frame=[0, 0])
 
 
-def test_calibrate_of_a_few_atoms_does_not_report_a_lattice_sqrt2_too_fine():
-    """Three 160x160 frames, spacing 6 px = 1.2 FWHM (Airy), filling 0.3, 600 photons: the
-    positions of the ~70 atoms that stand apart showed a lattice sqrt(2) finer at 45 degrees
-    (spacing 4.24 px) with a spacing 'uncertain to 4e-4'; the true lattice is found now and the
-    change is named in the calibration's warnings."""
-    from latticeread.core.pipeline import calibrate
+@pytest.fixture(scope="module")
+def few_atoms():
+    """Three 160x160 frames, spacing 6 px = 1.2 FWHM (Airy), filling 0.3, 600 photons."""
     from latticeread.core.psf import airy_psf
     from latticeread.core.simulate import simulate_frames
-    from latticeread.errors import LatticeReadWarning
 
     # Born & Wolf: FWHM = 0.514 lambda / NA; this pixel size makes it 5 pixels
     psf = airy_psf(wavelength_nm=767.0, numerical_aperture=0.75, pixel_size_nm=0.514 * 767.0 / 0.75 / 5.0)
     frames, _ = simulate_frames(geometry=TRUE, frame_shape=(160, 160), psf=psf, filling=0.3,
                                 photons_per_atom=600.0, background=2.0, n_shots=3, rng=7, margin=0)
+    return frames, psf
+
+
+def test_calibrate_takes_the_coarser_lattice_when_the_atoms_route_comes_out_too_fine(few_atoms, monkeypatch):
+    """The atoms' route as it was before its fit kept only atoms near a site: it returned the
+    lattice sqrt(2) finer at 45 degrees (spacing 4.24 px). calibrate must take the true one
+    and name the change in the calibration's warnings."""
+    import latticeread.core.atoms as atoms_module
+    from latticeread.core.pipeline import calibrate
+    from latticeread.errors import LatticeReadWarning
+
+    frames, psf = few_atoms
+    found = atoms_module.lattice_from_atoms
+
+    def too_fine(*args, **kwargs):
+        right = found(*args, **kwargs)
+        return _fine(right, np.array([[1, 1], [-1, 1]]))
+
+    monkeypatch.setattr(atoms_module, "lattice_from_atoms", too_fine)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", LatticeReadWarning)
+        cal = calibrate(frames, psf=psf, restrict_region=False)
+    assert _same_lattice(cal.geometry, TRUE, atol=2e-3), cal.geometry
+    assert offset_error(cal.geometry, TRUE) < 0.05 * 6.0
+    assert cal.notes["geometry_too_fine"]["index"] == 2
+    assert any("one site in 2" in w for w in cal.notes["warnings"])
+
+
+def test_calibrate_of_a_few_atoms_does_not_report_a_lattice_sqrt2_too_fine(few_atoms):
+    """Three 160x160 frames, spacing 6 px = 1.2 FWHM (Airy), filling 0.3, 600 photons: the
+    positions of the ~70 atoms that stand apart showed a lattice sqrt(2) finer at 45 degrees
+    (spacing 4.24 px) with a spacing 'uncertain to 4e-4'; the true lattice is found now and the
+    change is named in the calibration's warnings."""
+    from latticeread.core.pipeline import calibrate
+    from latticeread.errors import LatticeReadWarning
+
+    frames, psf = few_atoms
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", LatticeReadWarning)
         cal = calibrate(frames, psf=psf, restrict_region=False)
