@@ -318,7 +318,17 @@ def test_every_commit_reaches_the_disk_rows_first_then_the_counter(tmp_path, mon
 
 def test_ctrl_c_during_a_commit_is_held_until_the_block_is_committed(tmp_path, monkeypatch):
     # Ctrl-C arrives after the rows of a block are flushed and before the counter that makes
-    # them count: the commit finishes first, then the KeyboardInterrupt comes.
+    # them count: the commit finishes first, then the KeyboardInterrupt comes. Python's own
+    # Ctrl-C handler for the test: a pytest-xdist worker process ignores SIGINT (its
+    # controller stops it), and a process that ignores Ctrl-C rightly gets no KeyboardInterrupt.
+    previous = signal.signal(signal.SIGINT, signal.default_int_handler)
+    try:
+        _ctrl_c_during_a_commit(tmp_path, monkeypatch)
+    finally:
+        signal.signal(signal.SIGINT, previous)
+
+
+def _ctrl_c_during_a_commit(tmp_path, monkeypatch):
     path = tmp_path / "run.h5"
     real_fsync = os.fsync
     sent = []

@@ -445,6 +445,33 @@ def test_damaged_sidecar(tmp_path):
         read_sites_metadata(tmp_path / "sites.csv")
 
 
+def test_settings_of_another_table_are_refused(tmp_path):
+    """A run stopped between the two renames (or a table replaced by hand) leaves a table beside
+    another table's settings: reading them names the mismatch instead of describing the wrong
+    table. The checksum is SHA-256 (hashlib) of the table's bytes."""
+    import hashlib
+    import shutil
+
+    first, second = tmp_path / "first.csv", tmp_path / "second.csv"
+    write_sites_csv(first, make_results(1))
+    write_sites_csv(second, make_results(2))
+    meta = read_sites_metadata(first)
+    assert meta["table_sha256"] == hashlib.sha256(first.read_bytes()).hexdigest()
+    assert meta["table_bytes"] == first.stat().st_size
+    shutil.copyfile(sidecar_path(first), sidecar_path(second))
+    with pytest.raises(FrameFileError, match=r"second\.csv\.json holds the settings of another table than second\.csv"):
+        read_sites_metadata(second)
+
+
+def test_settings_written_before_the_checksum_still_read(tmp_path):
+    path = tmp_path / "sites.csv"
+    write_sites_csv(path, make_results(1))
+    old = json.loads(sidecar_path(path).read_text())
+    del old["table_sha256"], old["table_bytes"]
+    sidecar_path(path).write_text(json.dumps(old))
+    assert read_sites_metadata(path)["n_frames"] == 1
+
+
 def test_single_input_name_is_not_split_into_letters(tmp_path):
     write_occupation_hdf5(tmp_path / "run.h5", make_results(1), metadata={"inputs": tmp_path / "run_0042.tif"})
     assert read_occupation_hdf5(tmp_path / "run.h5").attrs["inputs"] == [str(tmp_path / "run_0042.tif")]

@@ -53,6 +53,7 @@ names), ``fidelity`` and ``metadata``. Each dataset also carries ``units`` and
 from __future__ import annotations
 
 import datetime as _dt
+import hashlib
 import json
 import logging
 import os
@@ -336,20 +337,34 @@ def write_sites_csv(path, results: Iterable, *, calibration=None, metadata: Mapp
     n_frames = 0
     warnings_by_frame: dict[str, list[str]] = {}
     checks_by_frame: dict[str, dict] = {}
+    # the two files are renamed into place one after the other: a kill between the renames
+    # would leave a table beside another table's settings, so the settings carry the table's
+    # checksum and read_sites_metadata refuses settings that do not match their table
+    digest, n_bytes = hashlib.sha256(), 0
     with atomic_write(sidecar_path(path), "w", protect=protect) as side, \
             atomic_write(path, "w", protect=protect, newline="") as fh:
-        fh.write(",".join(CSV_COLUMNS) + "\n")
+
+        def write(text: str) -> None:
+            nonlocal n_bytes
+            data = text.encode("utf-8")
+            fh.write(text)
+            digest.update(data)
+            n_bytes += len(data)
+
+        write(",".join(CSV_COLUMNS) + "\n")
         for position, result in enumerate(results):
             f = _read_result(result, position)
             if f.warnings:
                 warnings_by_frame[str(f.index)] = list(f.warnings)
             if f.check:
                 checks_by_frame[str(f.index)] = f.check
-            fh.write(_csv_block(f))
+            write(_csv_block(f))
             n_rows += f.rows.size
             n_frames += 1
         settings["n_frames"] = n_frames
         settings["n_rows"] = n_rows
+        settings["table_bytes"] = n_bytes
+        settings["table_sha256"] = digest.hexdigest()
         settings["columns"] = {name: settings["units"][name] for name in CSV_COLUMNS}
         settings["frame_warnings"] = warnings_by_frame
         # does the site model explain each frame: light outside the region and bright light
@@ -399,14 +414,34 @@ def read_sites_csv(path) -> dict[str, np.ndarray]:
 
 
 def read_sites_metadata(path) -> dict:
-    """Settings stored beside a CSV table (its companion JSON), or ``{}`` when absent."""
+    """Settings stored beside a CSV table (its companion JSON), or ``{}`` when absent.
+
+    Raises
+    ------
+    FrameFileError
+        The companion is not valid JSON, or it was written for another table: its
+        ``table_sha256`` (SHA-256 of the table's bytes, stored since the companion carries it)
+        differs from the table's.
+    """
+    path = Path(os.fspath(path))
     side = sidecar_path(path)
     if not side.exists():
         return {}
     try:
-        return from_jsonable(json.loads(side.read_text(encoding="utf-8")))
+        settings = from_jsonable(json.loads(side.read_text(encoding="utf-8")))
     except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-        raise FrameFileError(f"{side.name} (settings of {Path(path).name}) is not valid JSON: {exc}") from exc
+        raise FrameFileError(f"{side.name} (settings of {path.name}) is not valid JSON: {exc}") from exc
+    expected = settings.get("table_sha256") if isinstance(settings, dict) else None
+    if expected is not None and path.exists():
+        digest = hashlib.sha256()
+        with open(path, "rb") as fh:
+            for block in iter(lambda: fh.read(1 << 20), b""):
+                digest.update(block)
+        if digest.hexdigest() != expected:
+            raise FrameFileError(f"{side.name} holds the settings of another table than {path.name} (the table's "
+                                 "checksum differs from the one stored with the settings; a run stopped between "
+                                 "writing the two, or one of them was replaced): write the table again")
+    return settings
 
 
 # --- HDF5 -----------------------------------------------------------------------------------
