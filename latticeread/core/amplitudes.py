@@ -627,7 +627,13 @@ class SiteBasis:
             return self._fit_offset(image, start=start, search=search, atom_photons=atom_photons,
                                     max_iter=max_iter, tol=tol)
 
-    def _fit_offset(self, image, *, start, search, atom_photons, max_iter, tol):
+    def _offset_start(self, image, *, start, search):
+        """Weighted frame, its spline and background projection, and the starting offset.
+
+        The start is ``start`` (or the calibration's offset); with ``search`` the best of a
+        6 x 6 grid over one cell by matched-filter energy, from at most 1500 sites.
+        Returns ``(y, coef, d, best, ref)``.
+        """
         image = _as_image(image, self.frame_shape).astype(float)
         ref = np.asarray(self.geometry.offset, float)
         best = ref.copy() if start is None else np.asarray(start, float).reshape(2).copy()
@@ -635,14 +641,18 @@ class SiteBasis:
         y = np.where(np.isfinite(y), y, 0.0)
         coef = self._spline(y)
         d = self._background_projection(y)
-        a1, a2 = np.asarray(self.geometry.a1), np.asarray(self.geometry.a2)
         if search:
-            # matched-filter energy on a 6 x 6 grid over one cell, from at most 1500 sites
+            a1, a2 = np.asarray(self.geometry.a1), np.asarray(self.geometry.a2)
             step = max(1, len(self.sites) // 1500)
             grid = (np.arange(6) - 2.5) / 6
             trials = [best + u * a1 + v * a2 for u in grid for v in grid]
             energy = [float(np.sum(self._sample(coef, t, every=step) ** 2)) for t in trials]
             best = trials[int(np.argmax(energy))]
+        return y, coef, d, best, ref
+
+    def _fit_offset(self, image, *, start, search, atom_photons, max_iter, tol):
+        y, coef, d, best, ref = self._offset_start(image, start=start, search=search)
+        a1, a2 = np.asarray(self.geometry.a1), np.asarray(self.geometry.a2)
         h = 0.05
         stencil = np.array([(0, 0), (1, 0), (-1, 0), (0, 1), (0, -1), (1, 1), (-1, -1)], float) * h
         zeros_bg = np.zeros((d.size, 2))
@@ -769,21 +779,9 @@ class SiteBasis:
         return self._pulls
 
     def _fit_offset_sites(self, image, *, atom, start, search, max_iter, tol):
-        image = _as_image(image, self.frame_shape).astype(float)
         d_x, d_y, inner = self._pull_tables()
-        ref = np.asarray(self.geometry.offset, float)
-        best = ref.copy() if start is None else np.asarray(start, float).reshape(2).copy()
-        y = self._weighted(image)
-        y = np.where(np.isfinite(y), y, 0.0)
-        coef = self._spline(y)
-        d = self._background_projection(y)
+        y, coef, d, best, ref = self._offset_start(image, start=start, search=search)
         a1, a2 = np.asarray(self.geometry.a1), np.asarray(self.geometry.a2)
-        if search:
-            step = max(1, len(self.sites) // 1500)
-            grid = (np.arange(6) - 2.5) / 6
-            trials = [best + u * a1 + v * a2 for u in grid for v in grid]
-            energy = [float(np.sum(self._sample(coef, t, every=step) ** 2)) for t in trials]
-            best = trials[int(np.argmax(energy))]
         h = 0.05
         stencil = np.array([(0, 0), (1, 0), (-1, 0), (0, 1), (0, -1), (1, 1), (-1, -1)], float) * h
         y0, _, x0, _ = self._roi
