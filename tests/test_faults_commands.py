@@ -208,15 +208,17 @@ def test_reconstruct_killed_at_random_moments_of_writing(zygote, data, tmp_path,
         os.kill(pid, signal.SIGKILL)
         code = zygote.wait(pid)
         assert code in (-signal.SIGKILL, 0), f"the run ended with exit code {code}"
-        if code == -signal.SIGKILL and _contents(out) == old:  # the kill landed in the writing
-            # no half-written output: the old one byte for byte (and readable), or none; what
-            # the killed run left is hidden (its temporary files or lock files)
-            assert [p.name for p in folder.iterdir() if f".{pid}-" in p.name and p.name.startswith(".")]
+        if code == -signal.SIGKILL and _contents(out) == old:
+            # no half-written output: the old one byte for byte (and readable), or none
             if old:
                 _read(out)
-            landed += 1
-            if landed == 2:
-                break
+            # the kill landed in the writing when the killed run left hidden files (its temporary
+            # or lock files); a kill in the instant between two of them leaves none, which is as
+            # safe but shows nothing: that one is not counted
+            if [p.name for p in folder.iterdir() if f".{pid}-" in p.name and p.name.startswith(".")]:
+                landed += 1
+                if landed == 2:
+                    break
         else:
             # The machine ran faster than in the measured run (a busy machine's speed varies) and
             # the kill came after the rename, or after the run had ended: then the output must be
