@@ -50,7 +50,14 @@ def _each_frame_once(run, stack) -> None:
     assert [_digest(stack[i]) for i in run.frame_index] == run.frame_digest.tolist()
 
 
-def test_watch_stores_each_frame_of_a_pausing_appending_camera_once(frames, tmp_path):
+def _watch_a_camera(frames, tmp_path, change):
+    """Watch a camera folder whose ``shot.tif`` holds frames 0-2; ``change(shot)`` runs at the 4th poll.
+
+    The 4th poll comes long after the first version was taken (settle 0.02 s), so the watch has
+    stored it before the file changes. Returns the summary, the run file read back and the polls.
+    """
+    import time
+
     from latticeread.runs.watch import watch_folder
 
     cal, stack = frames
@@ -60,20 +67,23 @@ def test_watch_stores_each_frame_of_a_pausing_appending_camera_once(frames, tmp_
     _append(shot, stack[:3])
     polls = {"n": 0}
 
-    def camera_pauses_then_appends(_seconds):
-        import time
-
+    def camera_changes_the_file(_seconds):
         polls["n"] += 1
-        if polls["n"] == 4:  # long after the first three frames were taken (settle 0.02 s)
-            _append(shot, stack[3:])
+        if polls["n"] == 4:
+            change(shot)
         elif polls["n"] > 200:
-            raise AssertionError("the watch did not take the grown file")
+            raise AssertionError("the watch did not take the changed file")
         time.sleep(0.03)
 
     summary = watch_folder(camera, calibration=cal, out=tmp_path / "live.h5", max_files=2, settle=0.02,
-                           interval=0.03, sleep=camera_pauses_then_appends)
-    run = read_run(tmp_path / "live.h5")
-    assert polls["n"] >= 4  # the camera did append after the first version was stored
+                           interval=0.03, sleep=camera_changes_the_file)
+    assert polls["n"] >= 4  # the camera did change the file after the first version was stored
+    return summary, read_run(tmp_path / "live.h5")
+
+
+def test_watch_stores_each_frame_of_a_pausing_appending_camera_once(frames, tmp_path):
+    _, stack = frames
+    summary, run = _watch_a_camera(frames, tmp_path, lambda shot: _append(shot, stack[3:]))
     assert len(run) == 6 and len(run.failures) == 0
     _each_frame_once(run, stack)
     assert len(set(run.file_hash.tolist())) == 2  # frames 0-2 from the first version, 3-5 from the grown one
@@ -84,32 +94,17 @@ def test_watch_stores_a_file_replaced_under_the_same_name_with_its_new_pixels(fr
     # The camera software replaces shot.tif (write elsewhere, rename over it) after the watch
     # stored the first version: the new version is a new input, read from the new file, never
     # from the analyser's open handle of the old one (cached stacks are keyed by content).
-    from latticeread.runs.watch import watch_folder
+    import os
 
-    cal, stack = frames
-    camera = tmp_path / "camera"
-    camera.mkdir()
-    shot = camera / "shot.tif"
-    _append(shot, stack[:3])
-    polls = {"n": 0}
+    _, stack = frames
 
-    def camera_replaces_the_file(_seconds):
-        import os
-        import time
+    def replace_the_file(shot):
+        incoming = tmp_path / "incoming.tif"
+        _append(incoming, stack[3:])
+        os.replace(incoming, shot)
 
-        polls["n"] += 1
-        if polls["n"] == 4:  # long after the first version was taken (settle 0.02 s)
-            incoming = tmp_path / "incoming.tif"
-            _append(incoming, stack[3:])
-            os.replace(incoming, shot)
-        elif polls["n"] > 200:
-            raise AssertionError("the watch did not take the replaced file")
-        time.sleep(0.03)
-
-    summary = watch_folder(camera, calibration=cal, out=tmp_path / "live.h5", max_files=2, settle=0.02,
-                           interval=0.03, sleep=camera_replaces_the_file)
-    run = read_run(tmp_path / "live.h5")
-    assert polls["n"] >= 4 and summary.n_new == 6 and len(run.failures) == 0
+    summary, run = _watch_a_camera(frames, tmp_path, replace_the_file)
+    assert summary.n_new == 6 and len(run.failures) == 0
     versions = sorted(set(run.file_hash.tolist()), key=run.file_hash.tolist().index)
     assert len(versions) == 2
     for version, pixels in zip(versions, (stack[:3], stack[3:])):
@@ -119,35 +114,40 @@ def test_watch_stores_a_file_replaced_under_the_same_name_with_its_new_pixels(fr
         assert [_digest(pixels[i]) for i in run.frame_index[rows]] == run.frame_digest[rows].tolist()
 
 
-def test_batch_run_again_on_a_file_that_grew_stores_only_the_new_frames(frames, tmp_path):
-    cal, stack = frames
+def _batch(cal, data, out):
+    return run_batch([data], calibration=cal, out=out, workers=0, progress=False)
+
+
+def _data_folder(tmp_path, frames_in_shot):
     data = tmp_path / "data"
     data.mkdir()
-    shot = data / "shot.tif"
-    _append(shot, stack[:3])
-    first = run_batch([data], calibration=cal, out=tmp_path / "run.h5", workers=0, progress=False)
+    _append(data / "shot.tif", frames_in_shot)
+    return data
+
+
+def test_batch_run_again_on_a_file_that_grew_stores_only_the_new_frames(frames, tmp_path):
+    cal, stack = frames
+    data = _data_folder(tmp_path, stack[:3])
+    first = _batch(cal, data, tmp_path / "run.h5")
     assert first.n_new == 3
-    _append(shot, stack[3:])
-    again = run_batch([data], calibration=cal, out=tmp_path / "run.h5", workers=0, progress=False)
+    _append(data / "shot.tif", stack[3:])
+    again = _batch(cal, data, tmp_path / "run.h5")
     assert (again.n_new, again.n_skipped_same, again.n_failed) == (3, 3, 0)
     run = read_run(tmp_path / "run.h5")
     assert len(run) == 6
     _each_frame_once(run, stack)
-    third = run_batch([data], calibration=cal, out=tmp_path / "run.h5", workers=0, progress=False)
+    third = _batch(cal, data, tmp_path / "run.h5")
     assert third.n_new == 0 and len(read_run(tmp_path / "run.h5")) == 6  # nothing left to do
 
 
 def test_a_replaced_file_with_new_pixels_is_stored_in_full(frames, tmp_path):
     # The other side of the rule: the same name with other exposures is a new input, all of it.
     cal, stack = frames
-    data = tmp_path / "data"
-    data.mkdir()
-    shot = data / "shot.tif"
-    _append(shot, stack[:3])
-    run_batch([data], calibration=cal, out=tmp_path / "run.h5", workers=0, progress=False)
-    shot.unlink()
-    _append(shot, stack[3:])
-    again = run_batch([data], calibration=cal, out=tmp_path / "run.h5", workers=0, progress=False)
+    data = _data_folder(tmp_path, stack[:3])
+    _batch(cal, data, tmp_path / "run.h5")
+    (data / "shot.tif").unlink()
+    _append(data / "shot.tif", stack[3:])
+    again = _batch(cal, data, tmp_path / "run.h5")
     assert (again.n_new, again.n_skipped_same) == (3, 0)
     run = read_run(tmp_path / "run.h5")
     assert sorted(run.frame_index.tolist()) == [0, 0, 1, 1, 2, 2]
@@ -158,10 +158,8 @@ def test_repeated_frames_inside_one_file_are_all_stored(frames, tmp_path):
     # Two positions of one file with equal pixels are two frames (a tiled test stack, a camera
     # that sent the same blank frame twice): only the same position of the same file is one frame.
     cal, stack = frames
-    data = tmp_path / "data"
-    data.mkdir()
-    _append(data / "shot.tif", [stack[0], stack[0]])
-    summary = run_batch([data], calibration=cal, out=tmp_path / "run.h5", workers=0, progress=False)
+    data = _data_folder(tmp_path, [stack[0], stack[0]])
+    summary = _batch(cal, data, tmp_path / "run.h5")
     assert summary.n_new == 2 and len(read_run(tmp_path / "run.h5")) == 2
 
 
@@ -250,10 +248,7 @@ def test_the_readers_of_run_files_take_format_5_and_format_4(frames, tmp_path):
     from latticeread.io.observables_file import read_occupation_input
 
     cal, stack = frames
-    data = tmp_path / "data"
-    data.mkdir()
-    _append(data / "shot.tif", stack)
-    run_batch([data], calibration=cal, out=tmp_path / "run5.h5", workers=0, progress=False)
+    _batch(cal, _data_folder(tmp_path, stack), tmp_path / "run5.h5")
     shutil.copy(tmp_path / "run5.h5", tmp_path / "run4.h5")
     _as_format_4(tmp_path / "run4.h5")
     read = {}
