@@ -183,6 +183,8 @@ _int = (lambda v: isinstance(v, int) and not isinstance(v, bool), "a whole numbe
 _str = (lambda v: isinstance(v, str), "a string")
 _obj = (lambda v: isinstance(v, dict), "an object")
 _xy = (_pair, "a list of two numbers [x, y] in pixels")
+_bool = (lambda v: isinstance(v, bool), "true or false")
+_numbers = (lambda v: isinstance(v, list) and all(_is_number(x) for x in v), "a list of numbers")
 
 #: key path -> (required, (check, expected description), nullable)
 _SCHEMA = {
@@ -221,7 +223,7 @@ _SCHEMA = {
     "reconstruction.photons_per_atom": (False, _number, True),
     "reconstruction.phase_method": (False, _str, False),
     "reconstruction.background": (False, _str, False),
-    "reconstruction.refit_phase": (False, (lambda v: isinstance(v, bool), "true or false"), False),
+    "reconstruction.refit_phase": (False, _bool, False),
     "reconstruction.reference": (False, _obj, True),
     "reconstruction.region": (False, _obj, True),
     "reconstruction.region.include": (False, (lambda v: isinstance(v, list), "a list of shapes"), False),
@@ -235,16 +237,13 @@ _SCHEMA = {
     "distortion.centre": (True, _xy, False),
     "distortion.scale": (True, _number, False),
     "distortion.order": (True, _int, False),
-    "distortion.coef_x": (True, (lambda v: isinstance(v, list) and all(_is_number(x) for x in v),
-                                 "a list of numbers"), False),
-    "distortion.coef_y": (True, (lambda v: isinstance(v, list) and all(_is_number(x) for x in v),
-                                 "a list of numbers"), False),
+    "distortion.coef_x": (True, _numbers, False),
+    "distortion.coef_y": (True, _numbers, False),
     "brightness": (False, _obj, True),
     "brightness.centre": (True, _xy, False),
     "brightness.scale": (True, _number, False),
     "brightness.order": (True, _int, False),
-    "brightness.coef": (True, (lambda v: isinstance(v, list) and all(_is_number(x) for x in v),
-                               "a list of numbers"), False),
+    "brightness.coef": (True, _numbers, False),
     "psf_zones": (False, _obj, True),
     "psf_zones.grid": (True, (_int_pair, "a list of two whole numbers [rows, columns]"), False),
     "psf_zones.bounds": (True, (lambda v: isinstance(v, list) and len(v) == 4 and all(_is_number(x) for x in v),
