@@ -862,8 +862,7 @@ class _SkewedPair:
         # normal part (its variance reduced by the h^2/12 that binning the gamma adds)
         s_eff = math.sqrt(max(s * s - (0.0 if gauss_bg else h * h / 12.0), 0.25 * s * s))
         m = int(math.ceil(10.0 * s_eff / h)) + 1
-        q = np.arange(-m, m + 1)
-        pn = special.ndtr(((q + 0.5) * h + delta) / s_eff) - special.ndtr(((q - 0.5) * h + delta) / s_eff)
+        pn = np.diff(special.ndtr(((np.arange(-m, m + 2) - 0.5) * h + delta) / s_eff))  # cells q = -m..m
         noise = np.convolve(pe, pn)  # cells at m0 + (j - c - m) h
         self.h = h
         self.x0 = m0 + (np.arange(noise.size) - c - m) * h
@@ -873,8 +872,7 @@ class _SkewedPair:
         occ = np.convolve(self.p0, ps)
         if ss > 0:  # symmetric spread of the signal on top of its gamma shape
             ms = int(math.ceil(8.0 * ss / h)) + 1
-            qs = np.arange(-ms, ms + 1)
-            occ = np.convolve(occ, special.ndtr((qs + 0.5) * h / ss) - special.ndtr((qs - 0.5) * h / ss))
+            occ = np.convolve(occ, np.diff(special.ndtr((np.arange(-ms, ms + 2) - 0.5) * h / ss)))
             self._occ_start = self.x0[0] - ms * h
         else:
             self._occ_start = self.x0[0]
@@ -908,13 +906,16 @@ class _SkewedPair:
 
 
 def _interp_uniform(a, start, h, values, left, right):
-    """Linear interpolation in a table sampled every ``h`` from ``start`` (fast for unsorted input)."""
+    """Linear interpolation in a table sampled every ``h`` from ``start`` (fast for unsorted input).
+
+    Below the table gives ``left``, above it ``right``; NaN gives NaN.
+    """
     a = np.asarray(a, dtype=float)
     u = (a - start) / h
-    with np.errstate(invalid="ignore"):
-        i = np.clip(np.floor(u), 0, values.size - 2)
+    # fmax/fmin send a NaN to index 0 (its result is NaN through f below)
+    i = np.fmin(np.fmax(np.floor(u), 0.0), values.size - 2)
     f = u - i
-    i = np.nan_to_num(i).astype(np.intp)
+    i = i.astype(np.intp)
     out = values[i] * (1.0 - f) + values[i + 1] * f
     out = np.where(u < 0, left, out)
     return np.where(u > values.size - 1, right, out)
@@ -956,10 +957,11 @@ def _fit_skewed(counts, centers, *, m0, s0, m1, s1, w1, kappa):
             pair = _SkewedPair(mm0, sn, ke, te, k, ts, ss)
         except (ValueError, MemoryError, OverflowError):
             return 1e300
-        prob = (1 - w) * np.diff(pair.cdf0(edges)) + w * np.diff(pair.cdf1(edges))
+        c0, c1 = pair.cdf0(edges), pair.cdf1(edges)
+        prob = (1 - w) * np.diff(c0) + w * np.diff(c1)
         # mass outside the histogram range goes to the two end bins
-        prob[0] += (1 - w) * pair.cdf0(edges[0]) + w * pair.cdf1(edges[0])
-        prob[-1] += (1 - w) * (1 - pair.cdf0(edges[-1])) + w * (1 - pair.cdf1(edges[-1]))
+        prob[0] += (1 - w) * c0[0] + w * c1[0]
+        prob[-1] += (1 - w) * (1 - c0[-1]) + w * (1 - c1[-1])
         return float(-np.sum(counts * np.log(np.clip(prob, 1e-300, None))))
 
     p0 = np.array([special.logit(min(max(w1, 1e-6), 1 - 1e-6)), 0.0, math.log(sn0 / s0), math.log(ke0),
