@@ -72,6 +72,12 @@ class CaseRun:
         Calibration warnings and every frame's warnings.
     offsets : list of (2,) ndarray
         Each frame's lattice offset, pixels.
+    amplitudes : list of (N_k,) ndarray
+        Site amplitudes per frame, photons (to score other thresholds offline).
+    offset_methods : list of str
+        How each frame's offset was found (``FrameResult.offset_method``).
+    offset_sigmas : list of (2,) ndarray
+        Each frame's offset 1-sigma (x, y), pixels (NaN where the method gives none).
     """
 
     x: list
@@ -80,6 +86,9 @@ class CaseRun:
     calibration: object = field(repr=False)
     warnings: tuple = ()
     offsets: list = field(default_factory=list)
+    amplitudes: list = field(default_factory=list, repr=False)
+    offset_methods: list = field(default_factory=list)
+    offset_sigmas: list = field(default_factory=list)
 
 
 def camera_from_public(public: dict):
@@ -135,15 +144,19 @@ def run_case(case_dir, *, max_frames: int | None = None, refit_phase: bool = Tru
     if max_frames is not None:
         frames = frames[:max_frames]
     cal = calibrate(frames, psf=psf, camera=camera, pixel_size_nm=pix)
-    xs, ys, occ, offsets = [], [], [], []
+    xs, ys, occ, offsets, amps, methods, sigmas = [], [], [], [], [], [], []
     warnings = list(cal.notes.get("warnings", []))
     for result in reconstruct_stack(frames, cal, refit_phase=refit_phase):
         xs.append(np.asarray(result.sites.x, float))
         ys.append(np.asarray(result.sites.y, float))
         occ.append(np.asarray(result.occupied, np.uint8))
         offsets.append(np.asarray(result.geometry.offset, float))
+        amps.append(np.asarray(result.amplitudes, float))
+        methods.append(result.offset_method)
+        sigmas.append(np.asarray(result.offset_sigma, float))
         warnings.extend(f"frame {result.frame_index}: {w}" for w in result.warnings)
-    return CaseRun(x=xs, y=ys, occupied=occ, calibration=cal, warnings=tuple(warnings), offsets=offsets)
+    return CaseRun(x=xs, y=ys, occupied=occ, calibration=cal, warnings=tuple(warnings), offsets=offsets,
+                   amplitudes=amps, offset_methods=methods, offset_sigmas=sigmas)
 
 
 @dataclass(frozen=True)

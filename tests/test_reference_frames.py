@@ -45,10 +45,7 @@ GEOMETRY_XFAIL = {
                           "outward from the optical axis (against the truth: +0.08 px at 50-100 px, +0.21 px at "
                           "100-150 px, +0.60 px beyond; 0.18-0.20 % of scale from the centres alone)",
 }
-FIDELITY_XFAIL = {
-    "r3_triangular": "fidelity 0.9974 against the oracle's 0.9998 (-0.24 pp): the geometry holds (0.015 spacing); "
-                     "the misses are atoms lost early in the exposure, below the threshold at 40 % of an atom",
-}
+FIDELITY_XFAIL: dict = {}
 
 
 #: The cases checked in this file; tests/test_reference_frames_more.py checks the others, so

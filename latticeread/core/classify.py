@@ -33,7 +33,31 @@ so both peaks share the background noise and each can be skewed; error rates and
 posteriors then come from these shapes (tabulated numerically).
 
 The ``"mixture"`` threshold is where the two weighted component densities cross (posterior
-0.5): it minimises the expected number of misclassified sites. ``"otsu"`` maximises the
+0.5): it minimises the expected number of misclassified sites.
+
+Atoms lost during the exposure
+------------------------------
+An atom lost (or hopping away) at a random moment of the exposure gives the light of the
+fraction of the exposure it stayed: with the moment uniform over the exposure, its amplitude
+is spread uniformly between the empty level and a full atom (the standard picture of loss
+during imaging, common practice, no source). Such sites were occupied at the start of the
+exposure, which is what an occupation matrix reports. For normal peaks and the ``"mixture"``
+method the fit adds this third component to the occupied class: its density ``lam`` (sites per
+photon) is counted in the band between :data:`LOSS_BAND_EMPTY` empty widths above the empty
+level and :data:`LOSS_BAND_OCCUPIED` occupied widths below the atom level, where the two peaks
+hold almost no sites. The threshold then minimises the expected number of misclassified sites
+under the full model: ``errors(t) = (empty sites above t) + (occupied sites below t)``, with the
+empty sites above ``t`` counted on the histogram itself (the number of sites above ``t`` minus
+the lost atoms there), because a normal peak underestimates an EMCCD's upper tail several
+times (see "Skewed peaks"); up to a constant that is ``N(above t) + 2 lam t``, minimised over
+the sites between two empty widths and the two-peak crossing. Without sites between the peaks
+(``lam`` = 0) the threshold is the two-peak crossing. A minimum of the counted errors is where
+the empty density equals the occupied one; the posterior follows the same model: above two
+empty widths the empty peak's tail is taken as exponential (an EMCCD register's output has an
+exponential tail; for sCMOS it only widens the tail), with the decay that makes the two
+densities equal at the chosen threshold. The false-negative rate includes the lost atoms below
+the threshold (``loss_fraction x`` the share of a uniform spread below it).
+ ``"otsu"`` maximises the
 between-class variance of the histogram; ``"minimum"`` takes the lowest bin between the two
 peaks of the smoothed histogram. For every method the fitted components give the error rates
 at the chosen threshold.
@@ -95,6 +119,14 @@ FALLBACK_Z = 5.0
 MIN_SITES = 50
 #: Fewer sites in the occupied component than this gives a "few atoms" warning.
 MIN_ATOMS = 10
+#: The band where the sites of atoms lost during the exposure are counted: from this many empty
+#: widths above the empty level (a normal peak holds 3e-7 of its sites beyond; the same
+#: number as :data:`FALLBACK_Z`) ...
+LOSS_BAND_EMPTY = 5.0
+#: ... to this many occupied widths below the atom level (3e-5 of the atoms below).
+LOSS_BAND_OCCUPIED = 4.0
+#: The exponential tail of the empty peak starts this many empty widths above the empty level.
+TAIL_START = 2.0
 
 _MAD_TO_STD = 1.482602218505602  # 1 / Phi^-1(3/4) for a normal distribution
 
@@ -137,6 +169,15 @@ class ThresholdResult:
         ``noise_shape`` of inf means no gamma part) and the occupied one adds
         ``Gamma(signal_shape, signal_scale) + N(0, signal_sd^2)`` (photons). ``empty_std``, ``occupied_mean``
         and ``occupied_std`` are the moments of these distributions.
+    loss_fraction : float
+        Share of the occupied sites whose atom was lost (or hopped away) during the exposure:
+        amplitudes spread uniformly between ``empty_mean`` and ``occupied_mean`` (see the module
+        notes, "Atoms lost during the exposure"); 0 when none were seen or not modelled. Counted
+        in ``occupied_fraction``; the occupied peak (``occupied_mean``, ``occupied_std``) holds the
+        rest.
+    empty_tail : float
+        Decay length (photons) of the exponential upper tail of the empty peak beyond
+        ``TAIL_START`` empty widths; 0 when the tail is the normal one.
     """
 
     threshold: float
@@ -152,6 +193,8 @@ class ThresholdResult:
     warnings: tuple[str, ...] = ()
     model: str = "gaussian"
     skew: tuple = ()
+    loss_fraction: float = 0.0
+    empty_tail: float = 0.0
 
     # --- derived ---------------------------------------------------------------------
     @property
@@ -210,6 +253,12 @@ class ThresholdResult:
             mid = 0.5 * (self.empty_mean + self.occupied_mean)
             with np.errstate(divide="ignore", invalid="ignore"):
                 p = np.where(total > 0, occ / total, (a > mid).astype(float))
+        elif self.loss_fraction > 0 or self.empty_tail > 0:
+            w = min(max(self.occupied_fraction, 1e-300), 1 - 1e-16)
+            with np.errstate(divide="ignore", invalid="ignore", under="ignore"):
+                log0 = math.log(1 - w) + self._log_empty(a)
+                log1 = math.log(w) + np.log(self._occupied_density(a))
+                p = special.expit(log1 - log0)
         else:
             w = min(max(self.occupied_fraction, 1e-300), 1 - 1e-16)
             z0 = (a - self.empty_mean) / self.empty_std
@@ -219,6 +268,15 @@ class ThresholdResult:
             p = special.expit(log_odds)
         p = np.where(np.isnan(a), np.nan, p)
         return p
+
+    def _log_empty(self, a) -> np.ndarray:
+        """Log density of the empty peak (per photon): normal, with the exponential upper tail."""
+        return _log_empty_density(a, self.empty_mean, self.empty_std, self.empty_tail)
+
+    def _occupied_density(self, a) -> np.ndarray:
+        """Density of the occupied class (per photon): the atom peak plus the atoms lost in the exposure."""
+        return _occupied_density(a, self.empty_mean, self.empty_std, self.occupied_mean, self.occupied_std,
+                                 self.loss_fraction)
 
     def with_threshold(self, threshold: float) -> "ThresholdResult":
         """Same components, a new threshold (e.g. dragged by the user) and its error rates.
@@ -231,7 +289,8 @@ class ThresholdResult:
         t = float(threshold)
         if not np.isfinite(t):
             raise ReconstructionError(f"the threshold must be a finite number of photons, got {threshold}")
-        fp, fn = _error_rates(t, self.empty_mean, self.empty_std, self.occupied_mean, self.occupied_std)
+        fp, fn = _error_rates(t, self.empty_mean, self.empty_std, self.occupied_mean, self.occupied_std,
+                              loss=self.loss_fraction, tail=self.empty_tail)
         if self.is_skewed:
             pair = self._pair()
             fp, fn = _tail_rates(pair, t)
@@ -260,7 +319,7 @@ class ThresholdResult:
     def from_dict(cls, data: dict) -> "ThresholdResult":
         """Inverse of :meth:`to_dict`; raises ReconstructionError on missing keys."""
         names = [f.name for f in dataclasses.fields(cls)]
-        required = [n for n in names if n not in ("warnings", "model", "skew")]
+        required = [n for n in names if n not in ("warnings", "model", "skew", "loss_fraction", "empty_tail")]
         missing = [n for n in required if n not in data]
         if missing:
             raise ReconstructionError(f"threshold record is missing {', '.join(missing)}")
@@ -294,6 +353,7 @@ def select_threshold(
     flags=None,
     peak_shape: str = "normal",
     max_iter: int = 300,
+    exposure_loss: bool = True,
 ) -> ThresholdResult:
     """Choose the occupancy threshold from the histogram of site amplitudes.
 
@@ -324,6 +384,12 @@ def select_threshold(
         camera model the signal variance is kept >= ``F^2 / QE`` x its mean.
     max_iter : int
         Maximum number of EM iterations.
+    exposure_loss : bool
+        With normal peaks and ``"mixture"``: model the atoms lost during the exposure (module
+        notes, "Atoms lost during the exposure"), which moves the threshold to the fewest
+        expected errors under that model and puts them in the false-negative rate. False gives
+        the two-peak fit alone (rates of reading a full atom, e.g. to correct loss counts that
+        already include the atoms lost during an image).
 
     Returns
     -------
@@ -381,6 +447,7 @@ def select_threshold(
     model = "gaussian" if kappa is None else "camera"
 
     skew: tuple = ()
+    loss, tail = 0.0, 0.0
     t_otsu = otsu_threshold(None, hist=(counts, centers))
     fit = _fit_two_normals(x, c, t_init=t_otsu, kappa=kappa, binwidth=binwidth, max_iter=max_iter)
     m0, s0, m1, s1, w1, converged = fit
@@ -446,6 +513,9 @@ def select_threshold(
             t = _crossing(m0, s0, m1, s1, w1)
             if pair is not None:
                 t = _crossing_skewed(pair, w1, t, m0, m1)
+            elif exposure_loss:
+                t, loss, tail = _loss_threshold(x, c, m0=m0, s0=s0, m1=m1, s1=s1, w1=w1, t_mix=t,
+                                                n_sites=n_sites)
         elif method == "otsu":
             t = t_otsu
         else:
@@ -455,7 +525,7 @@ def select_threshold(
                 t = t_otsu
         method_used = method
 
-    fp, fn = _error_rates(t, m0, s0, m1, s1)
+    fp, fn = _error_rates(t, m0, s0, m1, s1, loss=loss, tail=tail)
     if skew:
         pair = _SkewedPair(m0, *skew)
         fp, fn = _tail_rates(pair, t)
@@ -468,7 +538,7 @@ def select_threshold(
         threshold=float(t), method=method_used, empty_mean=float(m0), empty_std=float(s0),
         occupied_mean=float(m1), occupied_std=float(s1), occupied_fraction=float(w1),
         false_positive_rate=fp, false_negative_rate=fn, n_sites=n_sites, warnings=tuple(warn), model=model,
-        skew=skew)
+        skew=skew, loss_fraction=float(loss), empty_tail=float(tail))
 
 
 #: Largest threshold a user may set, in detected photons per site and exposure (or counts when
@@ -813,10 +883,114 @@ def _crossing(m0, s0, m1, s1, w1):
     return 0.5 * (m0 + m1)
 
 
-def _error_rates(t, m0, s0, m1, s1):
+def _error_rates(t, m0, s0, m1, s1, *, loss=0.0, tail=0.0):
+    """(FP, FN) at threshold ``t``: the empty peak above it (with its exponential tail), the occupied
+    class below it (atom peak and the atoms lost during the exposure)."""
     fp = float(special.ndtr(-(t - m0) / s0)) if np.isfinite(m0) and s0 > 0 else float("nan")
     fn = float(special.ndtr((t - m1) / s1)) if np.isfinite(m1) and s1 > 0 else float("nan")
+    if tail > 0 and np.isfinite(fp):
+        knee = m0 + TAIL_START * s0
+        if t > knee:  # the exponential tail beyond the knee, from the normal density at the knee
+            fp = max(fp, float(_normal_pdf(knee, m0, s0)) * tail * math.exp(-(t - knee) / tail))
+    if loss > 0 and np.isfinite(fn):
+        fn = (1.0 - loss) * fn + loss * _loss_cdf(t, m0, s0, m1, s1)
     return fp, fn
+
+
+def _normal_pdf(a, m, s):
+    return np.exp(-0.5 * ((np.asarray(a, float) - m) / s) ** 2) / (s * math.sqrt(2 * math.pi))
+
+
+#: Fractions of the exposure at which the lost-atom component is sampled (midpoints).
+_LOSS_NODES = (np.arange(64) + 0.5) / 64
+
+
+def _loss_spread(m0, s0, m1, s1):
+    """Means and widths of the lost-atom component sampled over the fraction of the exposure survived."""
+    means = m0 + _LOSS_NODES * (m1 - m0)
+    widths = np.sqrt(s0 * s0 + _LOSS_NODES * max(s1 * s1 - s0 * s0, 0.0))
+    return means, widths
+
+
+def _loss_cdf(t, m0, s0, m1, s1) -> float:
+    """P(amplitude <= t) of an atom lost at a uniformly random moment of the exposure."""
+    means, widths = _loss_spread(m0, s0, m1, s1)
+    return float(np.mean(special.ndtr((t - means) / widths)))
+
+
+def _occupied_density(a, m0, s0, m1, s1, loss):
+    """Density (per photon) of the occupied class: (1 - loss) x atom peak + loss x uniform spread."""
+    a = np.asarray(a, float)
+    dens = (1.0 - loss) * _normal_pdf(a, m1, s1)
+    if loss > 0:
+        means, widths = _loss_spread(m0, s0, m1, s1)
+        flat = a.ravel()
+        spread = np.zeros(flat.size)
+        for mu, sd in zip(means, widths):  # 64 nodes; keeps memory at one array of the sites
+            spread += _normal_pdf(flat, mu, sd)
+        dens = dens + loss * (spread / means.size).reshape(a.shape)
+    return dens
+
+
+def _log_empty_density(a, m0, s0, tail):
+    """Log density of the empty peak: normal, beyond ``TAIL_START`` widths the larger of it and the
+    exponential tail of decay ``tail`` (photons) that starts from the normal density there."""
+    a = np.asarray(a, float)
+    z = (a - m0) / s0
+    log_n = -0.5 * z * z - math.log(s0) - 0.5 * math.log(2 * math.pi)
+    if tail <= 0:
+        return log_n
+    knee = m0 + TAIL_START * s0
+    log_knee = -0.5 * TAIL_START**2 - math.log(s0) - 0.5 * math.log(2 * math.pi)
+    log_t = log_knee - (a - knee) / tail
+    return np.where(a > knee, np.maximum(log_n, log_t), log_n)
+
+
+def _loss_threshold(x, c, *, m0, s0, m1, s1, w1, t_mix, n_sites):
+    """The fewest-errors threshold with the atoms lost during the exposure (module notes).
+
+    Returns ``(threshold, loss_fraction, empty_tail)``; ``(t_mix, 0, 0)`` when no site lies
+    between the peaks.
+    """
+    lo, hi = m0 + LOSS_BAND_EMPTY * s0, m1 - LOSS_BAND_OCCUPIED * s1
+    if not (np.isfinite(lo) and np.isfinite(hi)) or hi <= lo or not (m1 > m0):
+        return t_mix, 0.0, 0.0
+    values = np.asarray(x, float)
+    counts = np.ones(values.size) if c is None else np.asarray(c, float)
+    order = np.argsort(values, kind="stable")
+    values, counts = values[order], counts[order]
+    in_band = (values > lo) & (values <= hi)
+    n_band = float(counts[in_band].sum())
+    if n_band <= 0:
+        return t_mix, 0.0, 0.0
+    lam = n_band / (hi - lo)  # lost atoms per photon of amplitude
+    n_occ = w1 * n_sites
+    loss = min(lam * (m1 - m0) / n_occ, 0.5) if n_occ > 0 else 0.0
+    # errors(t) up to a constant = sites above t + 2 lam t, for t just above each candidate
+    above = counts.sum() - np.cumsum(counts)
+    cand = (values > m0 + TAIL_START * s0) & (values < t_mix)
+    if not cand.any():
+        return t_mix, loss, 0.0
+    idx = np.flatnonzero(cand)
+    cost = above[idx] + 2.0 * lam * values[idx]
+    cost_mix = float(counts[values > t_mix].sum()) + 2.0 * lam * t_mix
+    k = int(np.argmin(cost))
+    if not cost[k] < cost_mix:
+        t = t_mix
+    else:
+        i = idx[k]
+        nxt = values[i + 1] if i + 1 < values.size else t_mix
+        t = 0.5 * (values[i] + min(nxt, t_mix))
+    # the posterior of the same model: the empty density equals the occupied one at t
+    knee = m0 + TAIL_START * s0
+    occ = w1 * float(_occupied_density(t, m0, s0, m1, s1, loss))
+    empty_knee = (1.0 - w1) * float(_normal_pdf(knee, m0, s0))
+    tail = 0.0
+    if t > knee and occ > 0 and empty_knee > occ:
+        tail = (t - knee) / math.log(empty_knee / occ)
+        if (1.0 - w1) * float(_normal_pdf(t, m0, s0)) >= occ:
+            tail = 0.0  # the normal tail is the heavier one already
+    return float(t), float(loss), float(tail)
 
 
 # --- skewed peaks: gamma-shaped background noise and gamma-shaped atom signal -------------

@@ -174,7 +174,8 @@ def misread_rates(amplitudes, *, thresholds, camera=None, peak_shape: str | None
     pooled = np.concatenate([a[np.isfinite(a)] for a in frames])
     if pooled.size < 3:
         raise FidelityError(f"only {pooled.size} finite site amplitudes: misread rates cannot be estimated")
-    fit = select_threshold(pooled, method=threshold_method, camera=camera, peak_shape=shape)
+    # atoms lost during an image are losses to count, not misreads: the two-peak fit alone
+    fit = select_threshold(pooled, method=threshold_method, camera=camera, peak_shape=shape, exposure_loss=False)
     warnings = list(fit.warnings)
     used = "skewed" if fit.is_skewed else "normal"
     if shape == "skewed" and used != "skewed":
