@@ -74,9 +74,10 @@ import logging
 import warnings as _warnings
 
 import numpy as np
+import scipy.sparse
 from scipy import ndimage
 
-from latticeread.core.amplitudes import SiteBasis, pixel_integrated_table
+from latticeread.core.amplitudes import SiteBasis, _StampBlocks, pixel_integrated_table
 from latticeread.core.camera import CameraModel
 from latticeread.core.geometry import LatticeGeometry, LatticeQuality, SiteGrid, lattice_sites
 from latticeread.core.psf import PSFModel
@@ -101,7 +102,8 @@ class _PSFTable:
     differentiated on the table by central differences. On a grid that fine, linear
     interpolation errs by (grid step)^2 / 8 times the curvature: below 1e-3 of the peak for
     a PSF of 2 pixels FWHM or more (the error bound of linear interpolation, common
-    practice), and it reads the table several times faster than cubic splines.
+    practice), and it reads the table several times faster than cubic splines. Whole stamps
+    are read block by block (:class:`latticeread.core.amplitudes._StampBlocks`).
     """
 
     def __init__(self, psf: PSFModel, oversample: int = 4):
@@ -109,13 +111,10 @@ class _PSFTable:
         gy, gx = np.gradient(acc, 1.0 / k)
         self.tables = [np.ascontiguousarray(t) for t in (acc, gx, gy)]
         self.k, self.origin, self.radius = k, half, int(psf.radius)
+        self.blocks = _StampBlocks(self.tables, k=k, origin=half, radius=self.radius, order=1)
 
-    def __call__(self, dx, dy, derivatives: bool = True):
-        """Normalised stamps and their derivatives with respect to the emitter position.
-
-        Returns ``(stamp, d_stamp/d_x_emitter, d_stamp/d_y_emitter)``, each (N, S, S); the
-        derivatives are None when not asked for (a third of the work).
-        """
+    def _points(self, dx, dy, which):
+        """The tables ``which`` read value by value at every stamp pixel, each (N, S, S)."""
         p = np.arange(-self.radius, self.radius + 1, dtype=float)
         # separable bilinear weights: rows depend on (site, stamp row), columns on (site, stamp column)
         cy = (p[None, :] - np.asarray(dy, float)[:, None]) * self.k + self.origin
@@ -131,10 +130,44 @@ class _PSFTable:
             return ((1 - fy) * ((1 - fx) * t[r0, c0] + fx * t[r0, c0 + 1])
                     + fy * ((1 - fx) * t[r0 + 1, c0] + fx * t[r0 + 1, c0 + 1]))
 
-        u = read(self.tables[0])
+        return [read(self.tables[t]) for t in which]
+
+    def read(self, dx, dy, which) -> list:
+        """The tables ``which`` (0 value, 1 x and 2 y derivative) at every stamp pixel, each (N, S, S)."""
+        dx = np.asarray(dx, float)
+        dy = np.asarray(dy, float)
+        size = 2 * self.radius + 1
+        ok = self.blocks.covers(dx, dy)
+        if np.all(ok):
+            return [v.reshape(dx.size, size, size) for v in self.blocks(dx, dy, which)]
+        out = [np.empty((dx.size, size, size)) for _ in which]
+        if np.any(ok):
+            for o, v in zip(out, self.blocks(dx[ok], dy[ok], which)):
+                o[ok] = v.reshape(-1, size, size)
+        for o, v in zip(out, self._points(dx[~ok], dy[~ok], which)):
+            o[~ok] = v
+        return out
+
+    def raw(self, dx, dy, which) -> tuple[list, list]:
+        """The tables ``which`` at every stamp pixel (each (N, S, S)) and their sums over the window (each (N,))."""
+        dx = np.asarray(dx, float)
+        dy = np.asarray(dy, float)
+        ok = self.blocks.covers(dx, dy)
+        if np.all(ok):
+            return self.read(dx, dy, which), self.blocks.sums(dx, dy, which)
+        values = self.read(dx, dy, which)
+        return values, [v.sum(axis=(1, 2)) for v in values]
+
+    def __call__(self, dx, dy, derivatives: bool = True):
+        """Normalised stamps and their derivatives with respect to the emitter position.
+
+        Returns ``(stamp, d_stamp/d_x_emitter, d_stamp/d_y_emitter)``, each (N, S, S); the
+        derivatives are None when not asked for (a third of the work).
+        """
         if not derivatives:
+            (u,) = self.read(dx, dy, (0,))
             return u / u.sum(axis=(1, 2), keepdims=True), None, None
-        ux, uy = read(self.tables[1]), read(self.tables[2])
+        u, ux, uy = self.read(dx, dy, (0, 1, 2))
         # the emitter moving by +dx samples the table at p - dx: derivative flips sign
         ux, uy = -ux, -uy
         norm = u.sum(axis=(1, 2), keepdims=True)
@@ -219,19 +252,49 @@ class _Problem:
         full = (height + 2 * pad, width + 2 * pad)
         n_full = full[0] * full[1]
         oy, ox = np.mgrid[0:2 * r + 1, 0:2 * r + 1]
+        window = (oy * full[1] + ox).ravel()
         x = offset[0] + self.rows * a1[0] + self.cols * a2[0]
         y = offset[1] + self.rows * a1[1] + self.cols * a2[1]
         xi, yi = np.rint(x).astype(int), np.rint(y).astype(int)
+        anchor = (yi + pad - r) * full[1] + (xi + pad - r)
+        # the normalised stamp is u / n and its derivative by the site's x is (-u_x + u g_x / n) / n
+        # (u the table read at the stamp pixels, n and g_x its and u_x's sums over the window):
+        # the normalisation goes into the coefficients, and each table's stamps are scattered
+        # once for all the images that use them (one sparse product, the images side by side)
+        columns = {0: [], 1: [], 2: []}  # table -> (image, kind of coefficient)
+        for j, (_, part) in enumerate(coefficients):
+            columns[0].append((j, "value" if part == 0 else "slope"))
+            if part:
+                columns[part].append((j, "derivative"))
+        tables = tuple(t for t in (0, 1, 2) if columns[t])
+        sums = {t: np.zeros((n_full, len(columns[t]))) for t in tables}
+        step = max(1, 2 ** 21 // window.size)
+        for start in range(0, len(x), step):
+            idx = np.arange(start, min(start + step, len(x)))
+            values, totals = self.table.raw(x[idx] - xi[idx], y[idx] - yi[idx], tables)
+            read = dict(zip(tables, values))
+            total = dict(zip(tables, totals))
+            norm = total[0]
+            rows = (anchor[idx, None] + window[None, :]).ravel()
+            indptr = np.arange(0, idx.size * window.size + 1, window.size)
+            for t in tables:
+                coef = np.empty((idx.size, len(columns[t])))
+                for col, (j, kind) in enumerate(columns[t]):
+                    c = np.asarray(coefficients[j][0], float)[idx]
+                    part = coefficients[j][1]
+                    if kind == "value":
+                        coef[:, col] = c / norm
+                    elif kind == "derivative":
+                        coef[:, col] = -c / norm
+                    else:
+                        coef[:, col] = c * total[part] / (norm * norm)
+                stamps = scipy.sparse.csc_matrix((read[t].ravel(), rows, indptr), shape=(n_full, idx.size))
+                sums[t] += stamps @ coef
         out = [np.zeros(n_full) for _ in coefficients]
-        need = any(part for _, part in coefficients)
-        for start in range(0, len(x), 256):
-            idx = np.arange(start, min(start + 256, len(x)))
-            parts = self.table(x[idx] - xi[idx], y[idx] - yi[idx], derivatives=need)
-            flat = ((yi[idx, None, None] + pad - r + oy[None]) * full[1]
-                    + (xi[idx, None, None] + pad - r + ox[None])).ravel()
-            for image, (c, part) in zip(out, coefficients):
-                image += np.bincount(flat, weights=(np.asarray(c, float)[idx, None, None] * parts[part]).ravel(),
-                                     minlength=n_full)
+        for t in tables:
+            for col, (j, _) in enumerate(columns[t]):
+                out[j] += sums[t][:, col]
+        return [image.reshape(full) for image in out]
         return [image.reshape(full) for image in out]
 
     def model_and_derivatives(self, a1, a2, offset, amp, *, derivatives: bool = True):
