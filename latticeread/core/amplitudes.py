@@ -68,8 +68,11 @@ Woodbury update), so their sites still get an estimate, but flagged.
 
 from __future__ import annotations
 
+import collections
 import contextlib
+import hashlib
 import logging
+import threading
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -311,7 +314,7 @@ class SiteBasis:
         self._uniform = pixel_weights is None and mask is None
         self._weighted_pixels = pixel_weights is not None
 
-        self._stamps = _StampSampler(psf)
+        self._stamps = cached_table("stamps", psf, _StampSampler)
         self._mix = None
         if local_psfs is not None:
             self._set_local_psfs(local_psfs, local_weights)
@@ -349,13 +352,13 @@ class SiteBasis:
         used = np.flatnonzero(weights.max(axis=0) > 0)
         self._mix = weights[:, used]
         self._local = [psfs[j] for j in used]
-        self._local_stamps = [_StampSampler(psfs[j]) for j in used]
+        self._local_stamps = [cached_table("stamps", psfs[j], _StampSampler) for j in used]
 
     def _factorise(self, ridge):
         """Normal matrix at the reference offset, its banded Cholesky factor, background couplings."""
         n = len(self.sites)
         bt = self._basis_t((0.0, 0.0))
-        wbt = bt.multiply(self._weights[None, :]).tocsr()
+        wbt = scipy.sparse.csr_matrix((bt.data * self._weights[bt.indices], bt.indices, bt.indptr), shape=bt.shape)
         gram = (wbt @ bt.T).tocsr()
         diag = gram.diagonal()
         scale = float(np.mean(diag[diag > 0])) if np.any(diag > 0) else 1.0
@@ -1353,6 +1356,40 @@ class _StampBlocks:
             for e in range(dx.size):
                 np.dot(weight[e], blocks[index[e]], out=o[e])
         return out
+
+
+#: PSF tables kept for reuse (a fit builds many site bases of one PSF); the oldest goes first.
+_TABLE_CACHE_SIZE = 4
+_table_cache: collections.OrderedDict = collections.OrderedDict()
+_table_cache_lock = threading.Lock()
+
+
+def _psf_key(psf: PSFModel) -> tuple:
+    """What identifies a PSF's tables: kind, width, window, sub-sampling, parameters and kernel."""
+    kernel = None
+    if psf.kernel is not None:
+        k = np.ascontiguousarray(psf.kernel, dtype=float)
+        kernel = (k.shape, hashlib.sha1(k.tobytes()).hexdigest())
+    return (psf.kind, float(psf.fwhm), int(psf.radius), int(psf.supersample), repr(sorted(psf.params.items())),
+            kernel)
+
+
+def cached_table(kind: str, psf: PSFModel, make):
+    """``make(psf)`` for this PSF, made once and reused while it is among the last few used.
+
+    The tables are read-only after they are made, so one object serves every caller.
+    """
+    key = (kind, _psf_key(psf))
+    with _table_cache_lock:
+        if key in _table_cache:
+            _table_cache.move_to_end(key)
+            return _table_cache[key]
+    value = make(psf)
+    with _table_cache_lock:
+        _table_cache[key] = value
+        while len(_table_cache) > _TABLE_CACHE_SIZE:
+            _table_cache.popitem(last=False)
+    return value
 
 
 class _StampSampler:

@@ -77,7 +77,7 @@ import numpy as np
 import scipy.sparse
 from scipy import ndimage
 
-from latticeread.core.amplitudes import SiteBasis, _StampBlocks, pixel_integrated_table
+from latticeread.core.amplitudes import SiteBasis, _StampBlocks, cached_table, pixel_integrated_table
 from latticeread.core.camera import CameraModel
 from latticeread.core.geometry import LatticeGeometry, LatticeQuality, SiteGrid, lattice_sites
 from latticeread.core.psf import PSFModel
@@ -214,7 +214,7 @@ class _Problem:
         self.frames = frames
         self.psf = psf
         self.rows, self.cols = rows, cols
-        self.table = _PSFTable(psf)
+        self.table = cached_table("model", psf, _PSFTable)
         self.shape = frames.shape[1:]
 
     def solve_linear(self, a1, a2, offsets):
