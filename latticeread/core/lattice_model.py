@@ -216,6 +216,7 @@ class _Problem:
         self.rows, self.cols = rows, cols
         self.table = cached_table("model", psf, _PSFTable)
         self.shape = frames.shape[1:]
+        self._last_render = None
 
     def solve_linear(self, a1, a2, offsets):
         """Amplitudes, backgrounds and the site bases of every frame at one geometry.
@@ -298,12 +299,23 @@ class _Problem:
         return [image.reshape(full) for image in out]
 
     def model_and_derivatives(self, a1, a2, offset, amp, *, derivatives: bool = True):
-        """The sites' image and its derivatives by (a1x, a1y, a2x, a2y, offset x, offset y)."""
+        """The sites' image and its derivatives by (a1x, a1y, a2x, a2y, offset x, offset y).
+
+        The last result is kept: the fit asks for the same images again (the step's residual,
+        then its Jacobian, then the covariance at the end).
+        """
+        amp = np.asarray(amp, float)
+        key = (tuple(np.asarray(a1, float)), tuple(np.asarray(a2, float)), tuple(np.asarray(offset, float)),
+               amp.tobytes())
+        last = self._last_render
+        if last is not None and last[0] == key and (last[2] is not None or not derivatives):
+            return last[1], (last[2] if derivatives else [])
         rows, cols = self.rows.astype(float), self.cols.astype(float)
         wanted = [(amp, 0)]
         if derivatives:
             wanted += [(amp * rows, 1), (amp * rows, 2), (amp * cols, 1), (amp * cols, 2), (amp, 1), (amp, 2)]
         images = self.render(a1, a2, offset, wanted)
+        self._last_render = (key, images[0], images[1:] if derivatives else None)
         return images[0], images[1:]
 
     def jacobian(self, a1, a2, offsets, amps, bgs, bases, *, crop, rss_only=False):
