@@ -155,7 +155,8 @@ def test_calibrate_unaided_beyond_the_cut_off_reads_the_lattice_from_the_atoms()
     assert cal.notes["geometry_check"]["ok"]
     results = list(reconstruct_stack(frames, cal))
     for f, res in enumerate(results):
-        assert res.offset_method == "atoms"
+        # started from the atoms, refined by the fit of all occupied sites where that is more precise
+        assert res.offset_method in ("atoms", "sites")
         assert 0 < res.offset_sigma[0] < 0.1
         assert _max_site_error(res.geometry, truth.geometries[f], frames.shape[1:]) < 0.02
     # asked for the Fourier phase at 0.8 FWHM: the atoms decide, and the frame says why

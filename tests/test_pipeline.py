@@ -253,3 +253,36 @@ def test_calibration_round_trip_keeps_the_threshold_fit(scenario):
     rec = Reconstructor(again)
     assert rec.threshold.threshold == pytest.approx(cal.threshold)
     assert rec.threshold.has_components
+
+
+
+def test_offset_beyond_the_cut_off_from_all_occupied_sites_is_more_precise_than_from_the_lone_atoms():
+    """Below 1 FWHM each frame's offset starts from its lone atoms; the real-space fit of all its
+    occupied sites (SiteBasis.fit_offset_sites) replaces it when its 1-sigma is smaller, and says so.
+    Truth: the forward model's per-frame offsets (phase jitter 0.5 px)."""
+    from latticeread.core.atoms import locate_atoms, offset_from_atoms
+    from latticeread.core.calibration import ReconstructionOptions
+
+    psf = airy_psf(wavelength_nm=767.0, numerical_aperture=0.75, pixel_size_nm=105.0)  # FWHM 5.0 px
+    s, angle = 0.85 * psf.fwhm, 0.3
+    geo = LatticeGeometry(a1=(s * np.cos(angle), s * np.sin(angle)), a2=(-s * np.sin(angle), s * np.cos(angle)),
+                          offset=(80.3, 79.6))
+    frames, truth = simulate_frames(geometry=geo, frame_shape=(160, 160), psf=psf, camera=CAMERA,
+                                    region=("disk", 15), filling=0.3, photons_per_atom=900.0, background=1.5,
+                                    n_shots=2, phase_jitter=0.5, rng=5)
+    cal = Calibration(geometry=geo, psf=psf, camera=CAMERA, frame_shape=(160, 160), threshold=450.0,
+                      options=ReconstructionOptions(phase_method="atoms", photons_per_atom=900.0))
+    spacing = min(geo.spacings)
+    errors_sites, errors_atoms = [], []
+    for f, res in enumerate(reconstruct_stack(frames, cal)):
+        assert res.offset_method == "sites", res.warnings
+        sigma = float(np.hypot(*res.offset_sigma))
+        true = np.asarray(truth.geometries[f].offset)
+        errors_sites.append(np.hypot(*(np.asarray(res.geometry.offset) - true)) / spacing)
+        photons = CAMERA.counts_to_photons(frames[f])
+        atoms = offset_from_atoms(photons, geo, fwhm=psf.fwhm, atoms=locate_atoms(photons, fwhm=psf.fwhm))
+        assert 0 < sigma < float(np.hypot(*atoms.sigma))
+        errors_atoms.append(np.hypot(*(np.asarray(atoms.offset) - true)) / spacing)
+        assert errors_sites[-1] < 4 * sigma / spacing + 0.002  # the stated 1-sigma holds
+    assert max(errors_sites) < 0.01
+    assert np.mean(errors_sites) < np.mean(errors_atoms)

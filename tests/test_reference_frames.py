@@ -38,8 +38,6 @@ CASES = ("r1_square_resolved", "r2_mott_disk", "r3_triangular", "r4_sparse_tight
 #: Cases failing today, with the numbers measured when the mark was set (calibrated with the Airy
 #: PSF of public.json, default settings otherwise).
 GEOMETRY_XFAIL = {
-    "r2_mott_disk": "max site error 0.022 spacing: frame 1's offset rests on the ~35 atoms and holes that stand "
-                    "apart (0.014 spacing off, 1 sigma 0.013); the vectors from one frame's model fit add 0.010",
     "r5_field_and_drift": "max site error 0.101 spacing: the offsets hold every frame within 0.018 spacing, but the "
                           "atoms' lattice is 0.33 % too long: the field-dependent PSF moves the Gaussian-fitted centres "
                           "outward from the optical axis (against the truth: +0.08 px at 50-100 px, +0.21 px at "

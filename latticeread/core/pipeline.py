@@ -84,6 +84,10 @@ REFINE_TOL = 0.002
 #: this, or a 1-sigma error above :data:`OFFSET_SIGMA_WARN` spacings.
 OFFSET_MIN_ATOMS = 10
 OFFSET_SIGMA_WARN = 0.02
+#: The offsets from the atoms that stand apart and from all occupied sites must agree within
+#: this many combined 1-sigma errors for the more precise one to be used (about 1e-4 by chance
+#: for two normal errors in 2-D).
+OFFSET_AGREEMENT = 4.0
 
 
 
@@ -119,7 +123,9 @@ class FrameResult:
         Why this frame's result may mislead.
     offset_method : str
         How this frame's lattice offset was found: ``"atoms"`` (positions of its single atoms,
-        :func:`latticeread.core.atoms.offset_from_atoms`), ``"model"`` (image-model fit),
+        :func:`latticeread.core.atoms.offset_from_atoms`), ``"sites"`` (a real-space fit of all its
+        occupied sites started there, :meth:`SiteBasis.fit_offset_sites`, used when its 1-sigma is
+        the smaller and the two agree), ``"model"`` (image-model fit),
         ``"fourier"`` (Fourier phase, then the model fit) or ``"calibration"`` (not re-fitted).
     offset_sigma : (float, float)
         1-sigma error of the offset's x and y, pixels (NaN where the method gives none).
@@ -499,9 +505,16 @@ class Reconstructor:
                 warnings.append(f"the lattice offset could not be fitted from single atoms ({exc}); the image-model "
                                 "fit searched the whole unit cell instead")
             else:
+                offset, sigma, n_used, source = found.offset, found.sigma, found.n_atoms, "atom(s) that stand apart"
                 self._offset_info = ("atoms", found.sigma)
-                fitted = geometry.with_offset(found.offset)
-                text = offset_warning(found.sigma, found.n_atoms, min(geometry.spacings))
+                sites, disagree = self._offset_from_sites(clean, found)
+                if disagree:
+                    warnings.append(disagree)
+                elif sites is not None:
+                    offset, sigma, n_used, source = sites.offset, sites.sigma, sites.n_atoms, "occupied site(s)"
+                    self._offset_info = ("sites", sites.sigma)
+                fitted = geometry.with_offset(offset)
+                text = offset_warning(sigma, n_used, min(geometry.spacings), source=source)
                 if text:
                     warnings.append(text)
                     poor = True
@@ -529,6 +542,36 @@ class Reconstructor:
             self._offset_info = ("calibration", (float("nan"), float("nan")))
             return geometry, warnings, True
         return geometry.with_offset(offset), warnings, poor
+
+    def _offset_from_sites(self, clean, found):
+        """The real-space fit of every occupied site (:meth:`SiteBasis.fit_offset_sites`), started at the
+        atoms' offset ``found``: ``(fit, "")`` when it is the more precise of the two (smaller 1-sigma),
+        ``(None, "")`` when it is not or cannot run (the photons of one atom unknown, as in the first
+        pass of a calibration), ``(None, warning)`` when the two disagree by more than
+        :data:`OFFSET_AGREEMENT` combined sigma (the atoms' offset is kept).
+
+        The site fit uses every fitted site (not the central phase block: atoms outside a block
+        would leak light into its background) and every occupied site, not only those that stand
+        apart; on the reference frames beyond the optical cut-off it was 1.5-5 times more precise.
+        """
+        if self.atom_photons is None:
+            return None, ""
+        try:
+            fit = self.basis.fit_offset_sites(clean, atom_photons=self.atom_photons, start=found.offset)
+        except (ReconstructionError, np.linalg.LinAlgError) as exc:
+            log.info("offset from occupied sites failed: %s", exc)
+            return None, ""
+        s_sites, s_atoms = np.hypot(*fit.sigma), np.hypot(*found.sigma)
+        if not (np.isfinite(s_sites) and s_sites > 0 and fit.n_atoms >= OFFSET_MIN_ATOMS):
+            return None, ""
+        if not (np.isfinite(s_atoms) and s_atoms > 0) or s_sites >= s_atoms:
+            return None, ""
+        apart = float(np.hypot(fit.offset[0] - found.offset[0], fit.offset[1] - found.offset[1]))
+        if apart > OFFSET_AGREEMENT * float(np.hypot(s_sites, s_atoms)):
+            return None, (f"the lattice offset from the occupied sites lies {apart:.2f} px from the one from the atoms "
+                          f"that stand apart, more than {OFFSET_AGREEMENT:g} times their combined 1-sigma; the atoms' "
+                          "offset was used")
+        return fit, ""
 
     def extract_full(self, image, *, where: str = "the frame") -> tuple[LatticeGeometry, AmplitudeResult, tuple]:
         """Geometry, amplitudes (with background and flags) and warnings of one frame.
@@ -1459,7 +1502,7 @@ def _distortion_from_frames(clean, geometry: LatticeGeometry, psf: PSFModel, not
     return fit.field, (fit.geometry if fit.field.applied else geometry)
 
 
-def offset_warning(sigma, n_atoms: int, spacing: float) -> str:
+def offset_warning(sigma, n_atoms: int, spacing: float, *, source: str = "atom(s) that stand apart") -> str:
     """Why a frame's offset from its atoms may misplace every site ("" when it holds).
 
     Parameters
@@ -1470,11 +1513,13 @@ def offset_warning(sigma, n_atoms: int, spacing: float) -> str:
         Atoms (and holes) that fixed it.
     spacing : float
         Smallest lattice spacing, pixels.
+    source : str
+        What the offset rests on, for the message.
     """
     err = float(np.hypot(*sigma))
     if n_atoms >= OFFSET_MIN_ATOMS and err <= OFFSET_SIGMA_WARN * spacing:
         return ""
-    return (f"this frame's lattice offset is poorly determined: it rests on {n_atoms} atom(s) that stand apart and is "
+    return (f"this frame's lattice offset is poorly determined: it rests on {n_atoms} {source} and is "
             f"uncertain to {err:.2f} px ({err / spacing:.3f} spacing, 1 sigma); every site of the frame may sit that far "
             "from its atom")
 
