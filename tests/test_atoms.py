@@ -163,7 +163,7 @@ def test_calibrate_unaided_beyond_the_cut_off_reads_the_lattice_from_the_atoms()
     from latticeread.core.pipeline import Reconstructor
 
     res = Reconstructor(cal, phase_method="fourier")(frames[1], frame_index=1)
-    assert res.offset_method == "atoms"
+    assert res.offset_method in ("atoms", "sites")
     assert any("the Fourier phase was not used" in w for w in res.warnings)
     assert _max_site_error(res.geometry, truth.geometries[1], frames.shape[1:]) < 0.02
     # a frame with a handful of atoms: its offset is said to be poorly determined, through the
