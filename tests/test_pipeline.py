@@ -7,6 +7,7 @@ from the physics of the scenario (well separated histograms), not tuned values.
 
 from __future__ import annotations
 
+import json
 import types
 
 import numpy as np
@@ -256,11 +257,11 @@ def test_calibration_round_trip_keeps_the_threshold_fit(scenario):
 
 
 
-def test_offset_beyond_the_cut_off_from_all_occupied_sites_is_more_precise_than_from_the_lone_atoms():
-    """Below 1 FWHM each frame's offset starts from its lone atoms; the real-space fit of all its
-    occupied sites (SiteBasis.fit_offset_sites) replaces it when its 1-sigma is smaller, and says so.
-    Truth: the forward model's per-frame offsets (phase jitter 0.5 px)."""
-    from latticeread.core.atoms import locate_atoms, offset_from_atoms
+
+@pytest.fixture(scope="module")
+def tight_offsets():
+    """Two frames at 0.85 FWHM (beyond the optical cut-off of the Airy PSF), reconstructed with the
+    true vectors; each frame's offset is drawn afresh (phase jitter 0.5 px)."""
     from latticeread.core.calibration import ReconstructionOptions
 
     psf = airy_psf(wavelength_nm=767.0, numerical_aperture=0.75, pixel_size_nm=105.0)  # FWHM 5.0 px
@@ -272,9 +273,19 @@ def test_offset_beyond_the_cut_off_from_all_occupied_sites_is_more_precise_than_
                                     n_shots=2, phase_jitter=0.5, rng=5)
     cal = Calibration(geometry=geo, psf=psf, camera=CAMERA, frame_shape=(160, 160), threshold=450.0,
                       options=ReconstructionOptions(phase_method="atoms", photons_per_atom=900.0))
+    return geo, psf, frames, truth, cal, list(reconstruct_stack(frames, cal))
+
+
+def test_offset_beyond_the_cut_off_from_all_occupied_sites_is_more_precise_than_from_the_lone_atoms(tight_offsets):
+    """Below 1 FWHM each frame's offset starts from its lone atoms; the real-space fit of all its
+    occupied sites (SiteBasis.fit_offset_sites) replaces it when its 1-sigma is smaller, and says so.
+    Truth: the forward model's per-frame offsets."""
+    from latticeread.core.atoms import locate_atoms, offset_from_atoms
+
+    geo, psf, frames, truth, cal, results = tight_offsets
     spacing = min(geo.spacings)
     errors_sites, errors_atoms = [], []
-    for f, res in enumerate(reconstruct_stack(frames, cal)):
+    for f, res in enumerate(results):
         assert res.offset_method == "sites", res.warnings
         sigma = float(np.hypot(*res.offset_sigma))
         true = np.asarray(truth.geometries[f].offset)
@@ -286,3 +297,29 @@ def test_offset_beyond_the_cut_off_from_all_occupied_sites_is_more_precise_than_
         assert errors_sites[-1] < 4 * sigma / spacing + 0.002  # the stated 1-sigma holds
     assert max(errors_sites) < 0.01
     assert np.mean(errors_sites) < np.mean(errors_atoms)
+
+
+def test_every_output_stores_each_frames_offset_method_and_sigma(tight_offsets, tmp_path):
+    """The CSV settings, the HDF5 export and the run file of batch/watch (one ShotRecord path)
+    carry how each frame's offset was found and its 1-sigma."""
+    from latticeread.analysis.service import shot_record
+    from latticeread.io import read_results, read_sites_metadata, write_occupation_hdf5, write_sites_csv
+    from latticeread.io.run_file import RunWriter, ShotKey
+
+    *_, cal, results = tight_offsets
+    want_sigma = np.array([r.offset_sigma for r in results])
+    assert np.all(np.isfinite(want_sigma)) and np.all(want_sigma > 0)
+    write_sites_csv(tmp_path / "s.csv", results, calibration=cal)
+    offsets = read_sites_metadata(tmp_path / "s.csv")["frame_offsets"]
+    for r in results:
+        entry = offsets[str(r.frame_index)]
+        assert entry["method"] == "sites"
+        np.testing.assert_allclose(entry["sigma"], r.offset_sigma)
+        np.testing.assert_allclose(entry["offset"], r.geometry.offset)
+    write_occupation_hdf5(tmp_path / "s.h5", results, calibration=cal)
+    with RunWriter(tmp_path / "run.h5", calibration_json=json.dumps(cal.to_dict())) as w:
+        w.append_many([shot_record(ShotKey("/data/f.tif", "ab" * 16, r.frame_index), r) for r in results])
+    for name in ("s.h5", "run.h5"):
+        arrays, _ = read_results(tmp_path / name)
+        assert arrays["offset_method"].tolist() == ["sites"] * len(results)
+        np.testing.assert_allclose(arrays["offset_sigma"], want_sigma)

@@ -155,6 +155,8 @@ def shot_record(key: ShotKey, result) -> ShotRecord:
         peak_to_background=float(geometry.quality.peak_to_background),
         lattice_residual=float(geometry.quality.residual), warnings=tuple(warnings),
         false_positive_rate=fp, false_negative_rate=fn, origin=(int(sites.row_min), int(sites.col_min)),
+        offset_sigma=tuple(float(v) for v in getattr(result, "offset_sigma", (float("nan"),) * 2)),
+        offset_method=str(getattr(result, "offset_method", "") or ""),
         **_check_numbers(getattr(result, "check", None)))
 
 

@@ -154,6 +154,8 @@ class _Frame:
     offset: tuple[float, float]
     warnings: tuple[str, ...]
     check: dict
+    offset_sigma: tuple[float, float] = (float("nan"), float("nan"))
+    offset_method: str = ""
 
 
 def _check_numbers(result) -> dict:
@@ -232,8 +234,10 @@ def _read_result(result, position: int) -> _Frame:
             rows, cols, x, y, amplitude, occupied, p_occ, flags))
     geometry = getattr(result, "geometry", None)
     offset = tuple(float(v) for v in geometry.offset) if geometry is not None else (float("nan"),) * 2
+    sigma = tuple(float(v) for v in getattr(result, "offset_sigma", (float("nan"),) * 2))
     return _Frame(index, rows, cols, x, y, amplitude, occupied, p_occ, flags,
-                  _threshold_value(result), offset, _frame_warnings(result), _check_numbers(result))
+                  _threshold_value(result), offset, _frame_warnings(result), _check_numbers(result),
+                  offset_sigma=sigma, offset_method=str(getattr(result, "offset_method", "") or ""))
 
 
 def _settings(calibration, metadata: Mapping | None, *, fmt: str) -> dict:
@@ -337,6 +341,7 @@ def write_sites_csv(path, results: Iterable, *, calibration=None, metadata: Mapp
     n_frames = 0
     warnings_by_frame: dict[str, list[str]] = {}
     checks_by_frame: dict[str, dict] = {}
+    offsets_by_frame: dict[str, dict] = {}
     # the two files are renamed into place one after the other: a kill between the renames
     # would leave a table beside another table's settings, so the settings carry the table's
     # checksum and read_sites_metadata refuses settings that do not match their table
@@ -358,6 +363,8 @@ def write_sites_csv(path, results: Iterable, *, calibration=None, metadata: Mapp
                 warnings_by_frame[str(f.index)] = list(f.warnings)
             if f.check:
                 checks_by_frame[str(f.index)] = f.check
+            offsets_by_frame[str(f.index)] = {"offset": list(f.offset), "sigma": list(f.offset_sigma),
+                                              "method": f.offset_method}
             write(_csv_block(f))
             n_rows += f.rows.size
             n_frames += 1
@@ -370,6 +377,8 @@ def write_sites_csv(path, results: Iterable, *, calibration=None, metadata: Mapp
         # does the site model explain each frame: light outside the region and bright light
         # explained (fractions), residual over the camera's expected noise (1 = as expected)
         settings["frame_checks"] = to_jsonable(checks_by_frame)
+        # each frame's lattice offset (pixels), its 1-sigma (pixels, "NaN": not estimated) and how it was found
+        settings["frame_offsets"] = to_jsonable(offsets_by_frame)
         side.write(json.dumps(settings, indent=2, allow_nan=False) + "\n")
     log.info("wrote %d site rows of %d frames to %s", n_rows, n_frames, path)
     return n_rows
@@ -545,7 +554,8 @@ def write_occupation_hdf5(path, results: Iterable, *, calibration=None, metadata
                     key=ShotKey(source, "", f.index), **matrices, offset=f.offset,
                     a1=tuple(float(v) for v in geometry.a1) if geometry is not None else nan2,
                     a2=tuple(float(v) for v in geometry.a2) if geometry is not None else nan2,
-                    threshold=f.threshold, warnings=f.warnings, origin=(row_min, col_min), **f.check))
+                    threshold=f.threshold, warnings=f.warnings, origin=(row_min, col_min),
+                    offset_sigma=f.offset_sigma, offset_method=f.offset_method, **f.check))
                 if len(pending) >= block:
                     n += writer.append_many(pending)
                     pending = []

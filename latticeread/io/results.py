@@ -61,6 +61,10 @@ def read_results(path, *, matrices: bool = True) -> tuple[dict, dict]:
         * ``warnings``: str, one warning per line ("" when none);
         * ``frame_digest``: str, hex digest of the frame's pixels ("" in files before
           format version 5);
+        * ``offset_sigma`` (n, 2) pixels: 1-sigma error of each frame's offset (NaN: not
+          estimated, or a file before format version 6); ``offset_method``: str, how it was
+          found (``atoms``, ``sites``, ``model``, ``fourier``, ``calibration``; "" before
+          format version 6);
         * ``failure_source``, ``failure_file_hash``, ``failure_error``,
           ``failure_reason``: str, ``failure_frame_index`` int64 (-1: whole file),
           ``failure_resolved`` bool: one entry per failed frame or file, not per frame.
@@ -101,7 +105,7 @@ def read_results(path, *, matrices: bool = True) -> tuple[dict, dict]:
         "n_sites": run.n_sites, "n_occupied": run.n_occupied, "filling": run.filling,
         "peak_to_background": run.peak_to_background, "lattice_residual": run.lattice_residual,
         "written_at": run.written_at, "warnings": np.array(["\n".join(w) for w in run.warnings], dtype=str),
-        "frame_digest": run.frame_digest,
+        "frame_digest": run.frame_digest, "offset_sigma": run.offset_sigma, "offset_method": run.offset_method,
     }
     if matrices:
         for name in ("occupation", "amplitude", "p_occupied", "x", "y", "flags"):

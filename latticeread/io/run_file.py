@@ -58,7 +58,12 @@ Root attributes (written when the file is created, never changed)
     ``light_explained`` (float64, does the site model explain the frame; format version 3,
     :mod:`latticeread.core.frame_check`), ``frame_digest`` (bytes, hex BLAKE2b-128 of the
     frame's pixel type, size and raw pixel bytes as read from the input; format version 5,
-    empty in rows of older files and where the frames did not come from a file).
+    empty in rows of older files and where the frames did not come from a file),
+    ``offset_sigma`` ((n, 2) float64, 1-sigma error of the offset's x and y in pixels; NaN
+    where the method gives none) and ``offset_method`` (bytes: how the offset was found,
+    ``atoms``, ``sites``, ``model``, ``fourier`` or ``calibration``,
+    :attr:`latticeread.core.pipeline.FrameResult.offset_method`) (format version 6; NaN and
+    empty in rows of older files).
 ``occupation`` (n, rows, cols) uint8
     1 occupied, 0 empty, 255 outside the reconstructed region.
 ``amplitude``, ``p_occupied``, ``x``, ``y`` (n, rows, cols) float64
@@ -118,14 +123,15 @@ __all__ = [
 log = logging.getLogger(__name__)
 
 RUN_FORMAT = "latticeread-run"
-RUN_FORMAT_VERSION = 5
+RUN_FORMAT_VERSION = 6
 
 #: Call fsync after the rows and after the committed counter of every block (see Safety).
 #: Only the benchmark turns this off, to measure what it costs.
 SYNC_TO_DISK = True
 
 #: Bytes of each text field (a Linux path is at most 4096 bytes).
-_TEXT = {"source": 4096, "file_hash": 64, "warnings": 4096, "error": 128, "reason": 4096, "frame_digest": 64}
+_TEXT = {"source": 4096, "file_hash": 64, "warnings": 4096, "error": 128, "reason": 4096, "frame_digest": 64,
+         "offset_method": 16}
 _CUT = " [cut]"
 #: per-shot scalar/vector columns of ``shots/``: name -> (dtype, trailing shape)
 _SHOT_COLUMNS = {
@@ -150,9 +156,13 @@ _SHOT_COLUMNS = {
     "model_residual": (np.float64, ()),
     "light_explained": (np.float64, ()),
     "frame_digest": (f"S{_TEXT['frame_digest']}", ()),
+    "offset_sigma": (np.float64, (2,)),
+    "offset_method": (f"S{_TEXT['offset_method']}", ()),
 }
 #: Columns added in format version 3 (NaN in the rows of older files).
 _CHECK_COLUMNS = ("light_outside", "model_residual", "light_explained")
+#: Number columns that read as NaN in the rows of files that lack them.
+_NAN_COLUMNS = _CHECK_COLUMNS + ("offset_sigma",)
 #: Units and meaning written as dataset attributes (``units``, ``description``).
 _DESCRIPTIONS = {
     "occupation": ("1 occupied, 0 empty, 255 outside the region", "site occupation"),
@@ -173,6 +183,8 @@ _DESCRIPTIONS = {
     "frames/light_explained": ("fraction", "bright light the site model accounts for"),
     "frames/frame_digest": ("hex BLAKE2b-128 (empty: not recorded)",
                             "digest of the frame's pixel type, size and raw pixel bytes"),
+    "frames/offset_sigma": ("pixels (x, y)", "1-sigma error of the lattice offset (NaN: not estimated)"),
+    "frames/offset_method": ("text", "how the frame's lattice offset was found (empty: not recorded)"),
 }
 #: per-site matrices: name -> (dtype, fill value outside the region)
 _MATRICES = {
@@ -254,6 +266,11 @@ class ShotRecord:
     frame_digest : str
         Hex BLAKE2b-128 of the frame's pixels (:func:`latticeread.analysis.service.frame_digest`);
         empty when unknown.
+    offset_sigma : (2,) tuple of float
+        1-sigma error of ``offset`` (x, y), pixels; NaN when the method gives none.
+    offset_method : str
+        How ``offset`` was found (:attr:`latticeread.core.pipeline.FrameResult.offset_method`);
+        empty when unknown.
     """
 
     key: ShotKey
@@ -277,6 +294,8 @@ class ShotRecord:
     model_residual: float = float("nan")
     light_explained: float = float("nan")
     frame_digest: str = ""
+    offset_sigma: tuple[float, float] = (float("nan"), float("nan"))
+    offset_method: str = ""
 
     @property
     def matrix_shape(self) -> tuple[int, int]:
@@ -652,7 +671,7 @@ class RunWriter:
                         if name not in _rows(src):
                             # version 1 files stored no origin, versions 1-2 no frame checks,
                             # versions 1-4 no frame digests (empty: not recorded)
-                            d[start:stop] = b"" if name in _TEXT else np.nan if name in _CHECK_COLUMNS else 0
+                            d[start:stop] = b"" if name in _TEXT else np.nan if name in _NAN_COLUMNS else 0
                         elif name in _TEXT:
                             d[start:stop] = _encode_text(_decode_text(_rows(src)[name], stop)[start:], _TEXT[name])
                         else:
@@ -809,6 +828,8 @@ class RunWriter:
             "origin": [r.origin for r in block],
             **{name: [getattr(r, name) for r in block] for name in _CHECK_COLUMNS},
             "frame_digest": _encode_text([r.frame_digest for r in block], _TEXT["frame_digest"]),
+            "offset_sigma": [tuple(float(v) for v in r.offset_sigma) for r in block],
+            "offset_method": _encode_text([r.offset_method for r in block], _TEXT["offset_method"]),
         }
         matrices = {name: np.stack([np.asarray(getattr(r, name), dtype=dtype) for r in block])
                     for name, (dtype, _fill) in _MATRICES.items()}
@@ -952,6 +973,11 @@ class RunData:
         format version 3.
     frame_digest : (n,) ndarray of str
         Hex digest of each frame's pixels; "" in files before format version 5.
+    offset_sigma : (n, 2) ndarray of float64
+        1-sigma error of each offset (x, y), pixels; NaN where not estimated and in files
+        before format version 6.
+    offset_method : (n,) ndarray of str
+        How each offset was found; "" in files before format version 6.
     n_sites, n_occupied : (n,) ndarray of int64
     warnings : tuple of tuple of str
         Warnings per shot.
@@ -993,6 +1019,8 @@ class RunData:
     model_residual: np.ndarray = field(default_factory=lambda: np.zeros(0))
     light_explained: np.ndarray = field(default_factory=lambda: np.zeros(0))
     frame_digest: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=str))
+    offset_sigma: np.ndarray = field(default_factory=lambda: np.zeros((0, 2)))
+    offset_method: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=str))
 
     def __len__(self) -> int:
         return int(self.frame_index.size)
@@ -1013,6 +1041,8 @@ class RunData:
             "lattice_residual": self.lattice_residual, "light_outside": self.light_outside,
             "model_residual": self.model_residual, "light_explained": self.light_explained,
             "frame_digest": self.frame_digest,
+            "offset_sigma_x": self.offset_sigma[:, 0], "offset_sigma_y": self.offset_sigma[:, 1],
+            "offset_method": self.offset_method,
         }
 
 
@@ -1085,6 +1115,8 @@ def read_run(path, *, matrices: bool = True) -> RunData:
             origin=s["origin"][:n] if "origin" in s else np.zeros((n, 2), np.int64),
             **{name: s[name][:n] if name in s else np.full(n, np.nan) for name in _CHECK_COLUMNS},
             frame_digest=_decode_text(s["frame_digest"], n) if "frame_digest" in s else np.full(n, "", dtype="<U1"),
+            offset_sigma=s["offset_sigma"][:n] if "offset_sigma" in s else np.full((n, 2), np.nan),
+            offset_method=_decode_text(s["offset_method"], n) if "offset_method" in s else np.full(n, "", dtype="<U1"),
             calibration=json.loads(str(f.attrs.get("calibration", "{}"))),
             program_version=str(f.attrs.get("program_version", "")),
             metadata=json.loads(str(f.attrs.get("metadata", "{}"))),
