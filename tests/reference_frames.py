@@ -268,8 +268,14 @@ def main(argv=None) -> int:
         print(f"{case}: {score.summary()}; oracle {oracle:.4f} (diff {100 * (score.mean_fidelity - oracle):+.2f} pp);"
               f" {time.perf_counter() - t0:.0f} s; {len(run.warnings)} warning(s)")
         notes = run.calibration.notes
+        sigmas = [float(np.hypot(*s)) for s in run.offset_sigmas]
+        worst = max((s for s in sigmas if np.isfinite(s)), default=float("nan"))
+        spacing = min(run.calibration.geometry.spacings)
         print(f"    geometry by {notes.get('geometry_method', '?')}, offsets by "
-              f"{run.calibration.options.phase_method}; check {notes.get('geometry_check')}")
+              f"{run.calibration.options.phase_method} (per frame: {', '.join(sorted(set(run.offset_methods)))}; "
+              f"largest 1-sigma {worst / spacing:.4f} spacing); threshold {run.calibration.threshold:.0f} photons "
+              f"(lost-atom share {getattr(run.calibration.threshold_fit, 'loss_fraction', 0.0):.3f}); "
+              f"check {notes.get('geometry_check')}")
         for w in sorted(set(run.warnings))[:6]:
             print(f"    warning: {w}")
     return 0
