@@ -421,3 +421,18 @@ def test_loss_fields_round_trip_and_old_records_load():
     assert ThresholdResult.from_dict(old).loss_fraction == 0.0
     moved = tr.with_threshold(tr.threshold + 50)
     assert moved.loss_fraction == tr.loss_fraction and moved.false_negative_rate > tr.false_negative_rate
+
+
+def test_lost_atom_rate_is_the_integral_of_its_density():
+    """The closed-form share of lost atoms below a threshold against scipy.integrate.quad of the
+    density the posterior uses (general reference library)."""
+    from scipy import integrate
+
+    from latticeread.core.classify import _loss_cdf, _occupied_density
+
+    def density(x):
+        return float(_occupied_density(np.array([x]), 5.0, 30.0, 900.0, 70.0, 1.0)[0])
+
+    for t in (40.0, 150.0, 450.0, 890.0, 1100.0):
+        assert _loss_cdf(t, 5.0, 30.0, 900.0, 70.0) == pytest.approx(integrate.quad(density, -400, t, limit=200)[0],
+                                                                     abs=1e-9)

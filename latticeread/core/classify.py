@@ -901,21 +901,24 @@ def _normal_pdf(a, m, s):
     return np.exp(-0.5 * ((np.asarray(a, float) - m) / s) ** 2) / (s * math.sqrt(2 * math.pi))
 
 
-#: Fractions of the exposure at which the lost-atom component is sampled (midpoints).
-_LOSS_NODES = (np.arange(64) + 0.5) / 64
-
-
-def _loss_spread(m0, s0, m1, s1):
-    """Means and widths of the lost-atom component sampled over the fraction of the exposure survived."""
-    means = m0 + _LOSS_NODES * (m1 - m0)
-    widths = np.sqrt(s0 * s0 + _LOSS_NODES * max(s1 * s1 - s0 * s0, 0.0))
-    return means, widths
+def _uniform_spread(z0, z1, s0, s1, m1_minus_m0):
+    """Density of a uniform spread between two levels, its lower edge blurred by ``s0`` and its
+    upper edge by ``s1`` (per photon; ``z0``, ``z1`` the amplitude in units of each edge)."""
+    return (special.ndtr(z0) - special.ndtr(z1)) / m1_minus_m0
 
 
 def _loss_cdf(t, m0, s0, m1, s1) -> float:
-    """P(amplitude <= t) of an atom lost at a uniformly random moment of the exposure."""
-    means, widths = _loss_spread(m0, s0, m1, s1)
-    return float(np.mean(special.ndtr((t - means) / widths)))
+    """P(amplitude <= t) of an atom lost at a uniformly random moment of the exposure.
+
+    The amplitude is uniform between the empty level ``m0`` and the atom level ``m1``; its lower
+    edge carries the empty sites' noise ``s0`` and its upper edge the atoms' noise ``s1``. The
+    integral of ``Phi((a - m) / s)`` is ``s (z Phi(z) + phi(z))``.
+    """
+    def ramp(m, s):
+        z = (t - m) / s
+        return s * (z * special.ndtr(z) + math.exp(-0.5 * z * z) / math.sqrt(2 * math.pi))
+
+    return float(min(max((ramp(m0, s0) - ramp(m1, s1)) / (m1 - m0), 0.0), 1.0))
 
 
 def _occupied_density(a, m0, s0, m1, s1, loss):
@@ -923,12 +926,7 @@ def _occupied_density(a, m0, s0, m1, s1, loss):
     a = np.asarray(a, float)
     dens = (1.0 - loss) * _normal_pdf(a, m1, s1)
     if loss > 0:
-        means, widths = _loss_spread(m0, s0, m1, s1)
-        flat = a.ravel()
-        spread = np.zeros(flat.size)
-        for mu, sd in zip(means, widths):  # 64 nodes; keeps memory at one array of the sites
-            spread += _normal_pdf(flat, mu, sd)
-        dens = dens + loss * (spread / means.size).reshape(a.shape)
+        dens = dens + loss * _uniform_spread((a - m0) / s0, (a - m1) / s1, s0, s1, m1 - m0)
     return dens
 
 
