@@ -7,7 +7,9 @@ sites, the cloud of the binary method's timing in bench/bench_lattice_atoms.py),
 atom, 1 photon/pixel background, sCMOS camera (2 counts per electron, bias 100, read noise 3).
 ``--region 0`` fills the whole frame instead (about 134,000 sites: more than a site basis can be
 factorised for, and calibrate says so).
-``calibrate`` gets the frame, the PSF (from the optics) and the camera, nothing about the lattice.
+``calibrate`` gets the frame, the PSF (from the optics) and the camera, nothing about the lattice;
+with ``--prior`` also the lab's spacing 1 % and angle 1 degree off (``lattice_prior``: the route
+when the atoms' positions show no lattice).
 
 Printed per seed: wall and CPU seconds (``time.process_time``, this process and its threads; BLAS
 pinned to one thread) with the load average beside them (other processes on the 2 cores lengthen
@@ -88,12 +90,14 @@ def main():
     ap.add_argument("--photons", type=float, default=400.0)
     ap.add_argument("--region", type=int, default=84, help="sites per side of the loaded block (0: whole frame)")
     ap.add_argument("--seeds", type=int, default=2)
+    ap.add_argument("--prior", action="store_true", help="give a spacing 1 %% and an angle 1 degree off")
     ap.add_argument("--profile", action="store_true")
     args = ap.parse_args()
     shape = (args.size, args.size)
     print(f"calibrate, {args.size}x{args.size}, square lattice at {args.ratio:.2f} FWHM (Airy FWHM {FWHM:g} px), "
           f"filling {args.filling:g} in {'the whole frame' if args.region <= 0 else f'a {args.region}x{args.region}-site block'}"
-          f", {args.photons:g} photons/atom, sCMOS; PSF and camera given, no lattice hint")
+          f", {args.photons:g} photons/atom, sCMOS; PSF and camera given, "
+          f"{'spacing 1 % and angle 1 deg off given' if args.prior else 'no lattice hint'}")
     print(f"{'seed':>4} {'wall s':>7} {'CPU s':>7} {'route':>16} {'spacing':>8} {'angle mrad':>10} "
           f"{'centre sp':>9} {'far sp':>7}")
     for seed in range(args.seeds):
@@ -109,7 +113,11 @@ def main():
                 warnings.simplefilter("ignore", LatticeReadWarning)
                 if profile is not None:
                     profile.enable()
-                cal = calibrate(frames, psf=PSF, camera=CAMERA)
+                prior = None
+                if args.prior:
+                    prior = {"spacing_px": 1.01 * args.ratio * FWHM,
+                             "angle_deg": float(np.degrees(np.arctan2(truth.a1[1], truth.a1[0]))) + 1.0}
+                cal = calibrate(frames, psf=PSF, camera=CAMERA, lattice_prior=prior)
         except LatticeReadError as exc:
             print(f"{seed:4d} {time.perf_counter() - t0:7.1f} {time.process_time() - c0:7.1f} FAILED: {exc}; {_load()}")
             continue

@@ -1160,7 +1160,7 @@ class SiteBasis:
                 idx = np.flatnonzero(flip)
                 delta = np.where(n[idx], -1.0, 1.0)
                 n[idx] = ~n[idx]
-                g -= atom * (gram[idx].T @ delta)
+                g -= atom * _rows_sum(gram, idx, delta)
                 continue
             if moves is None:
                 break
@@ -1191,8 +1191,28 @@ class SiteBasis:
             k, l = src[take], dst[take]
             n[k] = False
             n[l] = True
-            g -= atom * (gram[l].T @ np.ones(l.size) - gram[k].T @ np.ones(k.size))
+            g -= atom * (_rows_sum(gram, l, np.ones(l.size)) - _rows_sum(gram, k, np.ones(k.size)))
         return n, g, passes
+
+def _rows_sum(matrix, rows, weights) -> np.ndarray:
+    """``matrix[rows].T @ weights`` for a CSR ``matrix`` without building the sub-matrix.
+
+    The rows' entries are gathered in the same order and summed per column by ``np.bincount``,
+    which adds them in that order as the sparse product does: the same numbers, bit for bit.
+    """
+    rows = np.asarray(rows, dtype=np.int64)
+    n = matrix.shape[1]
+    if rows.size == 0:
+        return np.zeros(n)
+    indptr = matrix.indptr
+    starts = indptr[rows]
+    lengths = indptr[rows + 1] - starts
+    firsts = np.cumsum(lengths) - lengths
+    total = int(firsts[-1] + lengths[-1])
+    gather = np.arange(total) + np.repeat(starts - firsts, lengths)
+    values = matrix.data[gather] * np.repeat(np.asarray(weights, float), lengths)
+    return np.bincount(matrix.indices[gather], weights=values, minlength=n)
+
 
 #: Background models of :class:`SiteBasis`.
 BACKGROUND_MODELS = ("constant", "plane", "poly2", "poly3", "none")
