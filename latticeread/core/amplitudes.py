@@ -366,7 +366,10 @@ class SiteBasis:
         gram = gram + scipy.sparse.identity(n, format="csr") * self._ridge
         self.gram = gram
         self.gram_diagonal = gram.diagonal().copy()
-        self._factor = _BandedSPD(gram)
+        # sites by pixel row (or column): for a lattice turned against the pixel axes a narrower
+        # band than the lattice's own row order
+        sx, sy = np.asarray(self.sites.x, float), np.asarray(self.sites.y, float)
+        self._factor = _BandedSPD(gram, orders=(np.lexsort((sx, sy)), np.lexsort((sy, sx))))
         # couplings to the background columns and the Schur complement
         wbg = self._bg * self._weights[:, None]
         self._v = np.asarray(bt @ wbg) if self._bg.shape[1] else np.zeros((n, 0))
@@ -1462,28 +1465,32 @@ class _StampSampler:
 class _BandedSPD:
     """Cholesky factor of a sparse SPD matrix stored as a band (ordering chosen to narrow it)."""
 
-    def __init__(self, matrix):
+    def __init__(self, matrix, orders=()):
         coo = matrix.tocoo()
         n = matrix.shape[0]
         self.n = n
         bw = int(np.max(np.abs(coo.row - coo.col))) if coo.nnz else 0
-        # reverse Cuthill-McKee only if it narrows the band
+        # reverse Cuthill-McKee, or another ordering offered (``orders``: permutations, e.g. the
+        # sites by pixel row), only if it narrows the band; the factor's cost grows as its square
         perm = None
         from scipy.sparse.csgraph import reverse_cuthill_mckee
 
-        p = reverse_cuthill_mckee(matrix.tocsr(), symmetric_mode=True)
-        inv = np.empty_like(p)
-        inv[p] = np.arange(n)
-        bw_p = int(np.max(np.abs(inv[coo.row] - inv[coo.col]))) if coo.nnz else 0
-        if bw_p < bw:
-            perm, bw = p, bw_p
+        half = coo.row < coo.col  # the matrix is symmetric: one triangle gives the band
+        pair_rows, pair_cols = coo.row[half], coo.col[half]
+        for p in (reverse_cuthill_mckee(matrix.tocsr(), symmetric_mode=True), *orders):
+            p = np.asarray(p)
+            inv = np.empty_like(p)
+            inv[p] = np.arange(n)
+            bw_p = int(np.max(np.abs(inv[pair_rows] - inv[pair_cols]))) if pair_rows.size else 0
+            if bw_p < bw:
+                perm, bw, chosen = p, bw_p, inv
         self.perm = perm
         self.bandwidth = bw
         if n * (bw + 1) > 4e8:
             raise ReconstructionError(
                 f"the site basis is too large to factorise ({n} sites coupled over {bw} neighbours); restrict "
                 f"the reconstruction to the region holding atoms")
-        rows, cols = (coo.row, coo.col) if perm is None else (inv[coo.row], inv[coo.col])
+        rows, cols = (coo.row, coo.col) if perm is None else (chosen[coo.row], chosen[coo.col])
         upper = rows <= cols
         band = np.zeros((bw + 1, n))
         band[bw + rows[upper] - cols[upper], cols[upper]] = coo.data[upper]
