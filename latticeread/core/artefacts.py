@@ -165,15 +165,12 @@ def bounds(psf: PSFModel) -> tuple[float, ...]:
 
 
 def _background(image, block: int) -> np.ndarray:
-    """Smooth low background: the 20th percentile of blocks of ``block`` pixels, interpolated."""
+    """Smooth low background: the block levels of :func:`_block_levels`, interpolated."""
     h, w = image.shape
-    block = max(1, min(int(block), h, w))
-    hb, wb = h // block, w // block
-    crop = image[:hb * block, :wb * block].reshape(hb, block, wb, block).transpose(0, 2, 1, 3)
-    low = np.percentile(crop.reshape(hb, wb, -1), 20, axis=2)
-    if hb == 1 and wb == 1:
+    low = _block_levels(image, block)
+    if low.shape == (1, 1):
         return np.full(image.shape, float(low[0, 0]))
-    return ndimage.zoom(low, (h / hb, w / wb), order=1, mode="nearest", grid_mode=True)
+    return ndimage.zoom(low, (h / low.shape[0], w / low.shape[1]), order=1, mode="nearest", grid_mode=True)
 
 
 def _smooth(image, scale: str) -> np.ndarray:
@@ -253,12 +250,22 @@ _FOOTPRINTS = {"blob": np.ones((9, 9), bool), "row": np.ones((1, 3), bool), "col
 
 
 def _block_levels(image, block: int) -> np.ndarray:
-    """20th percentile of each block of ``block`` x ``block`` pixels (photons): the coarse background."""
+    """The coarse background (photons): the lower envelope of the blocks' 20th percentiles.
+
+    Each block of ``block`` x ``block`` pixels gives its 20th percentile; each block then
+    takes the lowest of its own and its eight neighbours' values. The shape test's bound holds
+    for any background at or below the true one (a lower ``b`` only lowers every score), but
+    not above it: inside a region filled with atoms fewer than a fifth of a block's pixels
+    may be free of their light, and its percentile then lies far above the background (on a
+    filled 16 x 16 site region with a 2.7 pixel PSF, 6 photons per pixel above a background
+    of 0.4, which made 13 % of the pixels fail the test).
+    """
     h, w = image.shape
     block = max(1, min(int(block), h, w))
     hb, wb = h // block, w // block
     crop = image[:hb * block, :wb * block].reshape(hb, block, wb, block).transpose(0, 2, 1, 3)
-    return np.percentile(crop.reshape(hb, wb, -1), 20, axis=2)
+    levels = np.percentile(crop.reshape(hb, wb, -1), 20, axis=2)
+    return ndimage.minimum_filter(levels, size=3, mode="nearest")
 
 
 def _interpolation_axis(n_out: int, n_in: int, index):
