@@ -631,7 +631,86 @@ class SiteBasis:
         """
         with self._one_thread():
             return self._fit_offset(image, start=start, search=search, atom_photons=atom_photons,
-                                    max_iter=max_iter, tol=tol)
+                                    max_iter=max_iter, tol=tol)[:2]
+
+    def fit_offset_model(self, image, *, start=None, search: bool = False, max_iter: int = 8,
+                         tol: float = 3e-3) -> OffsetFit:
+        """:meth:`fit_offset` with least-squares amplitudes, and the offset's 1-sigma error.
+
+        The 1-sigma is the heteroscedasticity-robust ("sandwich", HC0) covariance of a weighted
+        least-squares parameter (White 1980, from memory): with ``g`` the derivative of the
+        model image with respect to the offset, made orthogonal to the site and background
+        columns (the amplitudes are re-fitted at every offset), ``W`` the pixel weights and
+        ``r`` the residual, ``cov = A^-1 M A^-1`` with ``A = g^T W g`` and
+        ``M = g^T W r r^T W g`` summed pixel by pixel. It needs no noise model and holds for
+        Poisson noise that differs between atoms and background.
+
+        Returns
+        -------
+        OffsetFit
+            ``n_atoms`` counts the sites with an amplitude above half the median of the upper
+            half; ``atom_photons`` is NaN (least-squares amplitudes).
+        """
+        with self._one_thread():
+            offset, it, y = self._fit_offset(image, start=start, search=search, atom_photons=None,
+                                             max_iter=max_iter, tol=tol)
+            sigma, a = self._offset_sigma(image, offset)
+        bright = a[a > 0]
+        level = 0.5 * float(np.median(bright[bright >= np.median(bright)])) if bright.size else np.inf
+        return OffsetFit(offset=offset, sigma=sigma, n_atoms=int(np.sum(a > level)), iterations=it,
+                         atom_photons=float("nan"))
+
+    def _offset_sigma(self, image, offset):
+        """1-sigma (x, y) of a least-squares offset (see :meth:`fit_offset_model`) and the amplitudes there."""
+        image = _as_image(image, self.frame_shape).astype(float)
+        raw = np.where(np.isfinite(image[self.crop]), image[self.crop], 0.0)
+        w = (np.ones(raw.shape) if self._wcrop is None else np.asarray(self._wcrop, float)).ravel()
+        ys, xs = self.crop
+        hp, wp = self.padded_shape
+        idx = ((np.arange(ys.start, ys.stop) + self.pad)[:, None] * wp
+               + (np.arange(xs.start, xs.stop) + self.pad)[None, :]).ravel()
+        bt = self._basis_t(self._shift(offset))
+
+        def fit(cols):  # least-squares sites and background for pixel columns of the crop
+            pad = np.zeros((hp * wp, cols.shape[1]))
+            pad[idx] = w[:, None] * cols
+            d = np.stack([self._background_projection((w * col).reshape(raw.shape)) for col in cols.T], axis=1)
+            a, b = self._solve_full(np.asarray(bt @ pad), d)
+            sites = np.asarray(bt.T @ a)
+            model = sites[idx]
+            if b.size:
+                model = model + self._bg_crop.T @ b
+            return a[:, 0], sites[:, 0], model
+
+        a, sites, model = fit(raw.reshape(-1, 1))
+        resid = raw.ravel() - model[:, 0]
+        # the model image's derivative with respect to the offset is minus its spatial gradient;
+        # the site image is PSF-blurred (band-limited), so the spectral derivative is accurate.
+        # Taken on the crop widened by the padding (the stamps of the sites that reach the crop).
+        r0, r1 = ys.start, ys.stop + 2 * self.pad
+        c0, c1 = xs.start, xs.stop + 2 * self.pad
+        window = sites.reshape(hp, wp)[r0:r1, c0:c1]
+        shape = (scipy.fft.next_fast_len(window.shape[0], real=True),
+                 scipy.fft.next_fast_len(window.shape[1], real=True))
+        spectrum = scipy.fft.rfft2(window, s=shape)
+        kx = 2 * np.pi * scipy.fft.rfftfreq(shape[1])
+        ky = 2 * np.pi * scipy.fft.fftfreq(shape[0])
+        if shape[1] % 2 == 0:
+            kx[-1] = 0.0
+        if shape[0] % 2 == 0:
+            ky[shape[0] // 2] = 0.0
+        inner = (slice(self.pad, self.pad + raw.shape[0]), slice(self.pad, self.pad + raw.shape[1]))
+        g = np.stack([-scipy.fft.irfft2(1j * kx[None, :] * spectrum, s=shape)[inner].ravel(),
+                      -scipy.fft.irfft2(1j * ky[:, None] * spectrum, s=shape)[inner].ravel()], axis=1)
+        g = g - fit(g)[2]  # the part of the offset's signature the amplitudes cannot absorb
+        info = g.T @ (w[:, None] * g)
+        score = g * (w * resid)[:, None]
+        try:
+            inv = np.linalg.inv(info)
+        except np.linalg.LinAlgError:
+            return (float("nan"), float("nan")), a
+        cov = inv @ (score.T @ score) @ inv
+        return (float(np.sqrt(max(cov[0, 0], 0.0))), float(np.sqrt(max(cov[1, 1], 0.0)))), a
 
     def _offset_start(self, image, *, start, search):
         """Weighted frame, its spline and background projection, and the starting offset.
@@ -700,7 +779,7 @@ class SiteBasis:
                 break
         frac = self.geometry.reciprocal @ (best - ref)
         best = best - np.rint(frac[0]) * a1 - np.rint(frac[1]) * a2
-        return (float(best[0]), float(best[1])), it
+        return (float(best[0]), float(best[1])), it, y
 
     def fit_offset_sites(self, image, *, atom_photons: float, start=None, search: bool = False, max_iter: int = 6,
                          tol: float = 1e-3) -> OffsetFit:

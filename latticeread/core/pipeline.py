@@ -533,8 +533,19 @@ class Reconstructor:
                 warnings.append(f"the Fourier phase fit failed in this frame ({exc}); the model fit searched "
                                 "the whole unit cell instead")
         atom = self.atom_photons if self.method == "nonlinear" else None
-        offset, _ = self.phase_basis.fit_offset(clean, start=start, search=search, atom_photons=atom)
-        self._offset_info = ("fourier" if self.phase_method == "fourier" else "model", (float("nan"), float("nan")))
+        sigma = (float("nan"), float("nan"))
+        if atom is None:
+            fit = self.phase_basis.fit_offset_model(clean, start=start, search=search)
+            offset, sigma = fit.offset, fit.sigma
+            err, spacing = float(np.hypot(*sigma)), min(geometry.spacings)
+            if not err <= OFFSET_SIGMA_WARN * spacing:  # also when no 1-sigma could be had (NaN)
+                warnings.append(f"this frame's lattice offset is poorly determined by the image-model fit: "
+                                f"uncertain to {err:.2f} px ({err / spacing:.3f} spacing, 1 sigma); every site of "
+                                "the frame may sit that far from its atom")
+                poor = True
+        else:
+            offset, _ = self.phase_basis.fit_offset(clean, start=start, search=search, atom_photons=atom)
+        self._offset_info = ("fourier" if self.phase_method == "fourier" else "model", sigma)
         shift = np.hypot(offset[0] - geometry.offset[0], offset[1] - geometry.offset[1])
         if shift > max(geometry.spacings):
             warnings.append(f"the re-fitted lattice moved by {shift:.2f} pixels, more than a lattice spacing; "
