@@ -79,6 +79,10 @@ DEFAULT_SETTINGS: dict[str, Any] = {
 }
 
 
+#: Offset method and 1-sigma of a frame not (yet) extracted, or whose record did not keep them.
+_NO_OFFSET_INFO = ("", (float("nan"), float("nan")))
+
+
 @dataclasses.dataclass(frozen=True)
 class ReconstructBatch:
     """Amplitudes of a few frames produced by a reconstruct job (any thread).
@@ -102,6 +106,9 @@ class ReconstructBatch:
     checks : tuple of FrameCheck or None
         Per-frame check of how well the site model explains the frame
         (:mod:`latticeread.core.frame_check`); empty when not computed.
+    offsets : tuple of (str, (float, float))
+        Per frame, how its offset was found and its 1-sigma (x, y) in pixels
+        (:attr:`latticeread.core.pipeline.Reconstructor.last_offset`); empty when not recorded.
     """
 
     generation: int
@@ -112,6 +119,7 @@ class ReconstructBatch:
     backgrounds: np.ndarray
     warnings: tuple
     checks: tuple = ()
+    offsets: tuple = ()
 
 
 @dataclasses.dataclass(frozen=True)
@@ -200,6 +208,7 @@ class Session:
         self._backgrounds: np.ndarray | None = None  # (n_frames,) photons per pixel
         self._warnings: list = []                    # per-frame extraction warnings
         self._checks: list = []                      # per-frame model checks (FrameCheck or None)
+        self._offsets: list = []                     # per-frame (offset method, 1-sigma) of the extraction
         self._geometries: list = []
         self._done: np.ndarray = np.zeros(0, dtype=bool)
         self._results: dict[int, Any] = {}           # classified FrameResult cache
@@ -687,6 +696,7 @@ class Session:
         self._backgrounds = None
         self._warnings = [()] * n
         self._checks = [None] * n
+        self._offsets = [_NO_OFFSET_INFO] * n
         self._geometries = [None] * n
         self._done = np.zeros(n, dtype=bool)
         self._results.clear()
@@ -783,10 +793,11 @@ class Session:
                 if should_stop():
                     return
                 chunk = indices[start:start + batch_size]
-                geoms, amps, flags, backs, warns, checks = [], [], [], [], [], []
+                geoms, amps, flags, backs, warns, checks, offsets = [], [], [], [], [], [], []
                 for i in chunk:
                     g, amp, w = rec.extract_full(frame(i), where=f"frame {i} of {name}")
                     checks.append(rec.last_check)
+                    offsets.append(rec.last_offset)
                     geoms.append(g)
                     amps.append(np.asarray(amp.amplitudes, dtype=float))
                     flags.append(np.asarray(amp.flags, dtype=np.uint8))
@@ -797,7 +808,7 @@ class Session:
                 done = len(amps)
                 yield ReconstructBatch(generation, tuple(chunk[:done]), tuple(geoms), np.stack(amps),
                                        np.stack(flags), np.asarray(backs, dtype=float), tuple(warns),
-                                       tuple(checks[:done]))
+                                       tuple(checks[:done]), tuple(offsets[:done]))
 
         job.n_frames = len(indices)  # type: ignore[attr-defined]
         return job
@@ -829,7 +840,7 @@ class Session:
                         generation, tuple(r[0] for r in rows), tuple(r[1] for r in rows),
                         np.stack([r[2] for r in rows]), np.stack([r[3] for r in rows]),
                         np.asarray([r[4] for r in rows], dtype=float), tuple(r[5] for r in rows),
-                        tuple(r[6] for r in rows))
+                        tuple(r[6] for r in rows), tuple(r[7] for r in rows))
         finally:
             pool.close(cancel=True)
 
@@ -845,6 +856,7 @@ class Session:
             self._backgrounds = np.full(self.n_frames, np.nan)
             self._warnings = [()] * self.n_frames
             self._checks = [None] * self.n_frames
+            self._offsets = [_NO_OFFSET_INFO] * self.n_frames
         if batch.amplitudes.shape[1] != self._amplitudes.shape[1]:
             raise LatticeReadError(
                 f"frame {batch.indices[0]} gave {batch.amplitudes.shape[1]} sites but earlier frames gave "
@@ -857,10 +869,12 @@ class Session:
         self._flags[idx] = batch.flags
         self._backgrounds[idx] = batch.backgrounds
         checks = batch.checks or (None,) * len(idx)
-        for i, g, w, c in zip(idx, batch.geometries, batch.warnings, checks):
+        offsets = batch.offsets or (_NO_OFFSET_INFO,) * len(idx)
+        for i, g, w, c, o in zip(idx, batch.geometries, batch.warnings, checks, offsets):
             self._geometries[i] = g
             self._warnings[i] = tuple(w)
             self._checks[i] = c
+            self._offsets[i] = o
             self._results.pop(i, None)
             self._frame_fits.pop(i, None)
         self._done[idx] = True
@@ -1011,7 +1025,7 @@ class Session:
             occupied=np.zeros(n, np.uint8), p_occupied=np.zeros(n), flags=self._flags[i],
             background=float(self._backgrounds[i]), method=self.reconstructor().method,
             warnings=tuple(self._warnings[i]), excluded=self.reconstructor().excluded_at(self._geometries[i].offset),
-            check=self.frame_check(i))
+            check=self.frame_check(i), offset_method=self._offsets[i][0], offset_sigma=self._offsets[i][1])
         res = pipeline.reclassify(bare, thr)
         self._results[i] = res
         return res
@@ -1211,6 +1225,12 @@ class Session:
             coef = np.polynomial.polynomial.polyfit(idx.astype(float), offsets, 1)
             trend = np.polynomial.polynomial.polyval(idx.astype(float), coef).T
         return idx, offsets, trend
+
+    def offset_records(self, indices) -> tuple[tuple[str, ...], np.ndarray]:
+        """How each of the frames ``indices`` had its offset found, and its 1-sigma (n, 2) in pixels
+        (NaN where not estimated; "" where not recorded)."""
+        info = [self._offsets[int(i)] if int(i) < len(self._offsets) else _NO_OFFSET_INFO for i in indices]
+        return tuple(m for m, _ in info), np.array([s for _, s in info], dtype=float).reshape(-1, 2)
 
     def model_job(self, index: int | None = None):
         """A function rendering the model image of a frame: sum of amplitude x PSF (photons)."""
@@ -1562,7 +1582,9 @@ class Session:
             results = SessionResults(
                 rows=self._sites.rows, cols=self._sites.cols, done=self._done.copy(),
                 amplitude=self._amplitudes.copy(), flags=self._flags.copy(), offset=offsets,
-                background=self._backgrounds.copy(), frame_warnings=tuple(tuple(w) for w in self._warnings))
+                background=self._backgrounds.copy(), frame_warnings=tuple(tuple(w) for w in self._warnings),
+                offset_sigma=np.array([o[1] for o in self._offsets], float).reshape(-1, 2),
+                offset_method=tuple(o[0] for o in self._offsets))
         fidelity = self._fidelity.to_dict() if self._fidelity is not None else None
         return SessionRecord(
             frames_source=self._frames_source, frames_dataset=self._frames_dataset, n_frames=self.n_frames,
@@ -1643,6 +1665,10 @@ class Session:
         self._backgrounds = res.background
         self._warnings = [tuple(w) for w in res.frame_warnings] or [()] * self.n_frames
         self._checks = [None] * self.n_frames  # a saved session keeps the warnings, not the numbers
+        methods = tuple(res.offset_method) if len(res.offset_method) == self.n_frames else ("",) * self.n_frames
+        sigmas = res.offset_sigma if res.offset_sigma is not None and len(res.offset_sigma) == self.n_frames \
+            else np.full((self.n_frames, 2), np.nan)
+        self._offsets = [(str(m), (float(s[0]), float(s[1]))) for m, s in zip(methods, sigmas)]
         self._geometries = [geom.with_offset(res.offset[i]) if done[i] else None for i in range(self.n_frames)]
         self.amplitudes_changed.emit(tuple(int(i) for i in np.flatnonzero(done)))
         self._refresh_threshold_result()

@@ -416,13 +416,14 @@ class FrameAnalyser:
         -------
         tuple
             ``(index, geometry, amplitudes (photons), flags, background (photons/pixel),
-            warnings, frame check)``; the check is a
-            :class:`~latticeread.core.frame_check.FrameCheck` or None.
+            warnings, frame check, (offset method, offset 1-sigma (x, y) in pixels))``; the
+            check is a :class:`~latticeread.core.frame_check.FrameCheck` or None.
         """
         with self._blas.limit(limits=1, user_api="blas"):
             g, amp, w = self.reconstructor.extract_full(image, where=where)
         return (int(index), g, np.asarray(amp.amplitudes, dtype=float), np.asarray(amp.flags, dtype=np.uint8),
-                float(np.mean(amp.background)), tuple(str(x) for x in w), self.reconstructor.last_check)
+                float(np.mean(amp.background)), tuple(str(x) for x in w), self.reconstructor.last_check,
+                self.reconstructor.last_offset)
 
     def close(self) -> None:
         while self._stacks:

@@ -584,6 +584,12 @@ class Reconstructor:
                           "offset was used")
         return fit, ""
 
+    @property
+    def last_offset(self) -> tuple[str, tuple[float, float]]:
+        """How the last frame's offset was found and its 1-sigma (x, y) in pixels (see :class:`FrameResult`)."""
+        method, sigma = getattr(self, "_offset_info", ("calibration", (float("nan"), float("nan"))))
+        return str(method), (float(sigma[0]), float(sigma[1]))
+
     def extract_full(self, image, *, where: str = "the frame") -> tuple[LatticeGeometry, AmplitudeResult, tuple]:
         """Geometry, amplitudes (with background and flags) and warnings of one frame.
 

@@ -857,7 +857,8 @@ class MainWindow(QtWidgets.QMainWindow):
         if hasattr(gp, "set_drift"):
             idx, offsets, trend = s.phase_drift()
             if len(idx) >= 2:
-                gp.set_drift(idx, offsets, trend, units="px")
+                methods, sigma = s.offset_records(idx)
+                gp.set_drift(idx, offsets, trend, units="px", sigma=sigma, methods=methods)
 
     def _refresh_classification(self) -> None:
         s = self.session

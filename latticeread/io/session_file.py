@@ -71,6 +71,10 @@ class SessionResults:
         Fitted background, photons per pixel.
     frame_warnings : tuple of tuple of str
         Warnings of each frame's extraction.
+    offset_sigma : (n_frames, 2) ndarray or None
+        1-sigma of each frame's offset, pixels (NaN: not estimated; None: not recorded, older files).
+    offset_method : tuple of str
+        How each frame's offset was found ("" where not recorded).
     """
 
     rows: np.ndarray
@@ -81,6 +85,8 @@ class SessionResults:
     offset: np.ndarray
     background: np.ndarray
     frame_warnings: tuple
+    offset_sigma: np.ndarray | None = None
+    offset_method: tuple = ()
 
 
 @dataclasses.dataclass(frozen=True)
@@ -174,6 +180,9 @@ def write_session(path, record: SessionRecord, *, protect=None) -> Path:
                 f.create_dataset("amplitude", data=res.amplitude, compression="lzf")
                 f.create_dataset("flags", data=res.flags, compression="lzf")
                 f.attrs["frame_warnings"] = json.dumps([list(w) for w in res.frame_warnings])
+                if res.offset_sigma is not None:
+                    f.create_dataset("offset_sigma", data=np.asarray(res.offset_sigma, float))
+                f.attrs["offset_method"] = json.dumps(list(res.offset_method))
     with atomic_write(json_path, "w", protect=protect) as fh:
         fh.write(text)
     return json_path
@@ -285,7 +294,9 @@ def _read_results(h5_path: Path):
                 rows=h5["rows"][()], cols=h5["cols"][()], done=h5["done"][()].astype(bool),
                 amplitude=h5["amplitude"][()], flags=h5["flags"][()], offset=h5["offset"][()],
                 background=h5["background"][()] if "background" in h5 else np.zeros(n),
-                frame_warnings=tuple(warnings))
+                frame_warnings=tuple(warnings),
+                offset_sigma=h5["offset_sigma"][()] if "offset_sigma" in h5 else None,
+                offset_method=tuple(str(m) for m in json.loads(h5.attrs.get("offset_method", "[]"))))
     except (OSError, KeyError, ValueError) as exc:
         raise FrameFileError(f"the results file {h5_path.name} of this session is damaged: {exc}") from exc
     return frames, results

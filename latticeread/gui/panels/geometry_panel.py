@@ -59,6 +59,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
+from collections import Counter
 
 import numpy as np
 import pyqtgraph as pg
@@ -279,7 +280,8 @@ class GeometryPanel(QtWidgets.QWidget):
         # --- drift -----------------------------------------------------------------------
         self.drift_plot = pg.PlotWidget(background="w", axisItems={"bottom": IntegerAxis("bottom")})
         self.drift_plot.setToolTip("Lattice phase of every frame against frame index, as the change "
-                                   "since the first frame shown, with the fitted linear trend (dashed)")
+                                   "since the first frame shown, with its 1-sigma error bars where the "
+                                   "frame's offset fit gave one and the fitted linear trend (dashed)")
         self.drift_plot.setMinimumHeight(150)
         dp = plain_plot(self.drift_plot, bottom="frame", left="offset (px)", grid=0.25)
         self._drift_legend = dp.addLegend(offset=(-10, 10), labelTextColor=(40, 40, 40))
@@ -291,6 +293,10 @@ class GeometryPanel(QtWidgets.QWidget):
                               for c in colours]
         for c in self._drift_curves + self._trend_curves:
             dp.addItem(c)
+        self._drift_bars = [pg.ErrorBarItem(x=np.zeros(0), y=np.zeros(0), height=np.zeros(0), beam=0.2,
+                                            pen=pg.mkPen(c, width=1)) for c in colours]
+        for bar in self._drift_bars:
+            dp.addItem(bar)
         self.drift_label = QtWidgets.QLabel("no drift data")
         self.drift_label.setWordWrap(True)
         self.drift_label.setToolTip("Spread of the phase over the stack and the slope of the "
@@ -405,8 +411,13 @@ class GeometryPanel(QtWidgets.QWidget):
         self._update_expected()
         self.spectrum_plot.getPlotItem().autoRange(padding=0)
 
-    def set_drift(self, frame_indices, offsets, trend=None, *, units: str = "px") -> None:
-        """Plot per-frame phase (N, 2) against frame index; ``units`` "px" or "sites"."""
+    def set_drift(self, frame_indices, offsets, trend=None, *, units: str = "px", sigma=None,
+                  methods=None) -> None:
+        """Plot per-frame phase (N, 2) against frame index; ``units`` "px" or "sites".
+
+        ``sigma`` (N, 2), in the same units, draws 1-sigma error bars (NaN: none); ``methods``
+        (N strings) names how each offset was found, counted in the label below the plot.
+        """
         if units not in ("px", "sites"):
             raise ValueError(f"drift units must be 'px' or 'sites', got {units!r}")
         f = np.asarray(frame_indices, dtype=float).ravel()
@@ -424,7 +435,20 @@ class GeometryPanel(QtWidgets.QWidget):
         for i, curve in enumerate(self._drift_curves):
             curve.setData(f, o[:, i] - ref[i], connect="finite")
             self._drift_legend.addItem(curve, names[i])
+        s = np.full_like(o, np.nan) if sigma is None else np.asarray(sigma, dtype=float).reshape(-1, 2)
+        if s.shape != o.shape:
+            raise ValueError(f"{f.size} frame indices but {s.shape[0]} offset sigmas")
+        for i, bar in enumerate(self._drift_bars):
+            ok = np.isfinite(s[:, i]) & np.isfinite(o[:, i])
+            bar.setData(x=f[ok], y=o[ok, i] - ref[i], height=2 * s[ok, i])
         text = [f"{f.size} frames"]
+        if methods is not None and len(methods):
+            if len(methods) != f.size:
+                raise ValueError(f"{f.size} frame indices but {len(methods)} offset methods")
+            counts = Counter(m or "not recorded" for m in methods)
+            text.append("offset from " + ", ".join(f"{m} ({n})" for m, n in sorted(counts.items())))
+        if np.isfinite(s).any():
+            text.append(f"largest 1-sigma {fmt(float(np.nanmax(np.hypot(s[:, 0], s[:, 1]))))} {unit_text}")
         if f.size:
             spread = np.nanmax(o, axis=0) - np.nanmin(o, axis=0)
             text.append(f"peak-to-peak {names[0]} {fmt(spread[0])} {unit_text}, "
