@@ -101,6 +101,7 @@ __all__ = [
     "THRESHOLD_METHODS",
     "check_threshold",
     "MAX_THRESHOLD_PHOTONS",
+    "lost_atom_density",
 ]
 
 logger = logging.getLogger(__name__)
@@ -899,6 +900,19 @@ def _error_rates(t, m0, s0, m1, s1, *, loss=0.0, tail=0.0):
 
 def _normal_pdf(a, m, s):
     return np.exp(-0.5 * ((np.asarray(a, float) - m) / s) ** 2) / (s * math.sqrt(2 * math.pi))
+
+
+def lost_atom_density(a, *, empty_mean: float, empty_std: float, occupied_mean: float,
+                      occupied_std: float) -> np.ndarray:
+    """Density (per photon) of the amplitude of an atom lost at a uniformly random moment of the exposure.
+
+    Uniform between the empty level and a full atom, its lower edge blurred by the empty width
+    and its upper edge by the occupied one (module notes, "Atoms lost during the exposure");
+    it integrates to 1. Amplitudes and parameters in photons.
+    """
+    a = np.asarray(a, float)
+    return _uniform_spread((a - empty_mean) / empty_std, (a - occupied_mean) / occupied_std, empty_std,
+                           occupied_std, occupied_mean - empty_mean)
 
 
 def _uniform_spread(z0, z1, s0, s1, m1_minus_m0):

@@ -190,6 +190,7 @@ class HistogramPanel(QtWidgets.QWidget):
         self._counts = None
         self._n_finite = 0
         self._components = None
+        self._loss = 0.0  # share of the occupied class lost during the exposure (a plateau between the peaks)
         self._programmatic = False  # True while the owner moves the line
         self._n_outside = 0
         self._last_dragged = None
@@ -334,6 +335,7 @@ class HistogramPanel(QtWidgets.QWidget):
         """Show a threshold result (see the module docstring for the fields read)."""
         if result is None:
             self._components = None
+            self._loss = 0.0
             self._update_component_curves(force=True)
             self.rates_label.setText("false positives - · false negatives -")
             show_warnings(self.warnings_label, ())
@@ -348,8 +350,11 @@ class HistogramPanel(QtWidgets.QWidget):
             f"false positives {self._pct(fp)} of empty sites · false negatives {self._pct(fn)} of occupied sites"
             + (f" · method: {method}" if method is not None else ""))
         comps = _components(result)
-        if not _same(comps, self._components):
+        loss = _get(result, "loss_fraction", default=0.0)
+        loss = float(loss) if isinstance(loss, (int, float)) and math.isfinite(loss) and 0 < loss < 1 else 0.0
+        if not _same(comps, self._components) or loss != self._loss:
             self._components = comps
+            self._loss = loss
             self._update_component_curves(force=True)
             self._update_summary()
         show_warnings(self.warnings_label, _get(result, "warnings", default=()))
@@ -425,6 +430,12 @@ class HistogramPanel(QtWidgets.QWidget):
         zeros = np.zeros_like(x)
         empty = scale * (1.0 - frac) * _gauss(x, e_mu, e_sd) if _valid(e_mu, e_sd) else zeros
         occ = scale * frac * _gauss(x, o_mu, o_sd) if _valid(o_mu, o_sd) else zeros
+        if self._loss > 0 and _valid(e_mu, e_sd) and _valid(o_mu, o_sd) and o_mu > e_mu:
+            # the occupied class holds the atoms lost during the exposure: a plateau between the peaks
+            from latticeread.core.classify import lost_atom_density
+
+            spread = lost_atom_density(x, empty_mean=e_mu, empty_std=e_sd, occupied_mean=o_mu, occupied_std=o_sd)
+            occ = scale * frac * ((1.0 - self._loss) * _gauss(x, o_mu, o_sd) + self._loss * spread)
         total = empty + occ
         if not (_valid(e_mu, e_sd) and _valid(o_mu, o_sd)):
             total = zeros  # one component only: the sum adds nothing
@@ -454,6 +465,8 @@ class HistogramPanel(QtWidgets.QWidget):
             parts.append(f"empty {fmt(e_mu)} ± {fmt(e_sd)} {u}" if _valid(e_mu, e_sd) else "no empty component")
             parts.append(f"occupied {fmt(o_mu)} ± {fmt(o_sd)} {u}" if _valid(o_mu, o_sd) else "no occupied component")
             parts.append(f"fitted filling {100 * frac:.1f} %")
+            if self._loss > 0:
+                parts.append(f"lost during the exposure {100 * self._loss:.1f} % of the atoms")
         self.summary_label.setText(" · ".join(parts))
 
     # ------------------------------------------------------------- user events
